@@ -1,0 +1,300 @@
+"""Typed values that cross module boundaries.
+
+The flow is: ``sr.read`` turns an SR content tree into :class:`Observation` objects,
+``vocabulary`` maps them to :class:`Measurements` (canonical measures in canonical units),
+``grading`` turns :class:`Measurements` plus :class:`Context` into an :class:`Assessment`,
+and ``sr.write`` turns that into a result SR.  No DICOM library types appear here.
+
+All models are immutable (frozen) so a value handed to another module cannot be changed
+behind its back.
+"""
+
+from __future__ import annotations
+
+from enum import StrEnum
+
+from pydantic import BaseModel, ConfigDict, Field
+
+#: Shown on every result (table, JSON, result SR, summary).  Wording is the project's own.
+CAUTION = (
+    "Decision support only: this automated assessment must be confirmed by a qualified "
+    "reader under local protocols before any clinical use."
+)
+
+
+class Frozen(BaseModel):
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+
+# ---------------------------------------------------------------------------------------------
+# Codes
+# ---------------------------------------------------------------------------------------------
+
+
+class Code(Frozen):
+    """A coded concept.  Equality and hashing ignore the meaning: codes are keyed by
+    (scheme, value) only, because meanings differ between editions (common practice,
+    PS3.16 advises matching on designator and value)."""
+
+    value: str
+    scheme: str
+    meaning: str = ""
+
+    @property
+    def key(self) -> tuple[str, str]:
+        return (self.scheme, self.value)
+
+    def __eq__(self, other: object) -> bool:
+        return isinstance(other, Code) and self.key == other.key
+
+    def __hash__(self) -> int:
+        return hash(self.key)
+
+    def __str__(self) -> str:
+        return f"({self.value}, {self.scheme}, \"{self.meaning}\")"
+
+
+class Modifier(Frozen):
+    """A CODE child that qualifies a measurement (HAS CONCEPT MOD / HAS ACQ CONTEXT /
+    HAS PROPERTIES), either on the item itself or inherited from an enclosing container."""
+
+    name: Code
+    value: Code
+    inherited: bool = False
+
+
+class Observation(Frozen):
+    """One NUM content item found in a source SR, with every modifier that applies to it."""
+
+    path: str  # content-item path, "1" is the root, "1.3.2" its 3rd child's 2nd child
+    concept: Code
+    value: float | None  # None when the item has no measured value (see qualifier)
+    unit: Code | None  # UCUM code from Measurement Units Code Sequence
+    qualifier: Code | None = None  # Numeric Value Qualifier, when present
+    modifiers: tuple[Modifier, ...] = ()  # own modifiers first, then inherited ones
+    source_uid: str = ""  # SOP Instance UID of the SR it came from
+
+    def modifier(self, name: Code) -> Code | None:
+        """Value of the nearest modifier with this concept name (own beats inherited)."""
+        for m in self.modifiers:
+            if m.name == name:
+                return m.value
+        return None
+
+
+class CodedItem(Frozen):
+    """A CODE content item that is not a modifier of a measurement (e.g. Cardiac Rhythm,
+    a coded finding); the grading context may use it."""
+
+    path: str
+    concept: Code
+    value: Code
+    modifiers: tuple[Modifier, ...] = ()
+    source_uid: str = ""
+
+
+class SourceDocument(Frozen):
+    """What the reader took out of one source SR (no DICOM types)."""
+
+    sop_instance_uid: str
+    sop_class_uid: str
+    study_instance_uid: str
+    series_instance_uid: str
+    #: ContentDate + ContentTime (else InstanceCreationDate/Time) as "YYYYMMDDHHMMSS.ffffff";
+    #: used to let the more recently created SR win when several carry one measure.
+    created: str = ""
+    template: str | None = None  # "5200", "5300", ... when identified
+    document_title: Code | None = None
+    patient_age_years: float | None = None  # from PatientAge / Subject Age
+    observations: tuple[Observation, ...] = ()
+    coded_items: tuple[CodedItem, ...] = ()
+    by_reference_items: int = 0  # by-reference relationships seen (not followed)
+    warnings: tuple[str, ...] = ()
+
+
+# ---------------------------------------------------------------------------------------------
+# Canonical measures
+# ---------------------------------------------------------------------------------------------
+
+
+class Measure(StrEnum):
+    """Canonical measures.  The names are part of the JSON contract."""
+
+    mitral_e = "mitral_e"
+    mitral_a = "mitral_a"
+    e_a_ratio = "e_a_ratio"
+    deceleration_time = "deceleration_time"
+    e_prime_septal = "e_prime_septal"
+    e_prime_lateral = "e_prime_lateral"
+    e_prime_average = "e_prime_average"
+    e_e_prime_septal = "e_e_prime_septal"
+    e_e_prime_lateral = "e_e_prime_lateral"
+    e_e_prime_average = "e_e_prime_average"
+    tr_peak_velocity = "tr_peak_velocity"
+    pasp = "pasp"
+    lavi = "lavi"
+    lvef = "lvef"
+    ivrt = "ivrt"
+    pv_s_d_ratio = "pv_s_d_ratio"
+    la_reservoir_strain = "la_reservoir_strain"
+    age = "age"
+
+
+class Origin(StrEnum):
+    """How the value used for a measure was obtained from the source(s)."""
+
+    measured = "measured"  # one value in the source
+    selected = "selected"  # one of several, chosen by Selection Status in the source
+    device_mean = "device-mean"  # the source marked it as a mean (Derivation = Mean)
+    mean_of_repeats = "mean-of-repeats"  # several unmarked repeats, averaged here
+    derived = "derived"  # computed here from other measures (e.g. E / average e')
+    patient = "patient"  # from the patient module (age)
+
+
+class MeasureValue(Frozen):
+    measure: Measure
+    value: float
+    unit: str  # canonical UCUM unit of the measure
+    origin: Origin
+    n: int = 1  # number of samples behind the value
+    detail: str = ""  # plain words, e.g. "mean of 3 unmarked repeats"
+    codes: tuple[str, ...] = ()  # source concept codes, e.g. "80070-6 LN"
+    paths: tuple[str, ...] = ()  # content-item paths in the source tree, e.g. "1.4.2.3"
+    source_uids: tuple[str, ...] = ()  # SOP Instance UIDs of the source SRs used
+
+
+class Exclusion(Frozen):
+    """An observation that was recognised but not used, with the reason."""
+
+    path: str
+    concept: Code
+    measure: Measure | None = None
+    value: float | None = None
+    unit: str | None = None
+    reason: str
+    source_uid: str = ""
+
+
+class Unrecognised(Frozen):
+    """A numeric item that no mapping recognised; kept so an administrator can map it."""
+
+    path: str
+    concept: Code
+    value: float | None = None
+    unit: str | None = None
+    modifiers: tuple[Modifier, ...] = ()
+    source_uid: str = ""
+
+
+class Measurements(Frozen):
+    values: dict[Measure, MeasureValue] = Field(default_factory=dict)
+    excluded: tuple[Exclusion, ...] = ()
+    unrecognised: tuple[Unrecognised, ...] = ()
+    notes: tuple[str, ...] = ()  # e.g. reported ratio inconsistent with its components
+
+    def get(self, measure: Measure) -> float | None:
+        mv = self.values.get(measure)
+        return None if mv is None else mv.value
+
+
+# ---------------------------------------------------------------------------------------------
+# Grading context and result
+# ---------------------------------------------------------------------------------------------
+
+
+class Guideline(StrEnum):
+    ase_eacvi_2016 = "ase-eacvi-2016"
+
+
+class Rhythm(StrEnum):
+    sinus = "sinus"
+    af = "af"
+    unknown = "unknown"
+
+
+class Context(Frozen):
+    """What the grading needs beyond the measurements."""
+
+    rhythm: Rhythm = Rhythm.unknown
+    myocardial_disease: bool = False
+    #: LVEF below this is "reduced" (ASE/EACVI 2016 gives no number; 50 % is the usual
+    #: operational cut-off, see shared reference I-16-10).
+    lvef_reduced_below: float = 50.0
+    #: Algorithm A decides only when at least this many criteria are available (I-16-1).
+    min_criteria_available: int = 1
+
+
+class Grade(StrEnum):
+    normal = "normal"
+    grade_1 = "grade-1"
+    grade_2 = "grade-2"
+    grade_3 = "grade-3"
+    indeterminate = "indeterminate"
+    not_gradable = "not-gradable"
+
+
+class FillingPressure(StrEnum):
+    normal = "normal"
+    elevated = "elevated"
+    indeterminate = "indeterminate"
+    unknown = "unknown"
+
+
+class Comparison(StrEnum):
+    gt = ">"
+    ge = ">="
+    lt = "<"
+    le = "<="
+
+    def holds(self, value: float, threshold: float) -> bool:
+        match self:
+            case Comparison.gt:
+                return value > threshold
+            case Comparison.ge:
+                return value >= threshold
+            case Comparison.lt:
+                return value < threshold
+            case Comparison.le:
+                return value <= threshold
+        raise AssertionError(self)  # pragma: no cover
+
+
+class Verdict(StrEnum):
+    met = "met"
+    not_met = "not-met"
+    unavailable = "unavailable"
+
+
+class Criterion(Frozen):
+    """One evaluated rule: ``measure comparison threshold`` and its verdict."""
+
+    id: str  # stable identifier, e.g. "ase16.a.e_e_prime_average"
+    step: str  # algorithm step, e.g. "algorithm A", "algorithm B step 2"
+    label: str  # plain words, e.g. "Average E/e' > 14"
+    measure: Measure
+    value: float | None
+    unit: str
+    comparison: Comparison
+    threshold: float
+    verdict: Verdict
+    source: str  # citation of the threshold
+
+
+class Pathway(StrEnum):
+    normal_lvef = "normal-lvef"  # ASE/EACVI 2016 Figure 8A, then 8B if dysfunction
+    reduced_lvef_or_myocardial_disease = "reduced-lvef-or-myocardial-disease"  # Figure 8B
+    not_applicable = "not-applicable"
+
+
+class Assessment(Frozen):
+    guideline: Guideline
+    guideline_citation: str
+    rule_set_version: str
+    pathway: Pathway
+    pathway_reason: str
+    grade: Grade
+    filling_pressure: FillingPressure
+    criteria: tuple[Criterion, ...] = ()
+    reasoning: tuple[str, ...] = ()  # short sentences in the order the algorithm took
+    notes: tuple[str, ...] = ()  # caveats, missing data, inconsistencies
+    caution: str = CAUTION

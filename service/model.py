@@ -51,7 +51,7 @@ class Code(Frozen):
         return hash(self.key)
 
     def __str__(self) -> str:
-        return f"({self.value}, {self.scheme}, \"{self.meaning}\")"
+        return f'({self.value}, {self.scheme}, "{self.meaning}")'
 
 
 class Modifier(Frozen):
@@ -138,6 +138,45 @@ class Measure(StrEnum):
     pv_s_d_ratio = "pv_s_d_ratio"
     la_reservoir_strain = "la_reservoir_strain"
     age = "age"
+    # used by special situations and the AF rules (issue-level additions; optional inputs)
+    e_acceleration_rate = "e_acceleration_rate"  # cm/s2, peak acceleration rate of mitral E
+    bmi = "bmi"  # kg/m2
+    heart_rate = "heart_rate"  # /min
+    ar_a_duration = "ar_a_duration"  # ms, pulmonary-vein Ar duration minus mitral A duration
+    # mitral inflow during the Valsalva manoeuvre (Stage = 261039008 SCT), kept apart from rest
+    mitral_e_valsalva = "mitral_e_valsalva"
+    mitral_a_valsalva = "mitral_a_valsalva"
+    e_a_ratio_valsalva = "e_a_ratio_valsalva"
+
+
+#: canonical UCUM unit of every measure
+CANONICAL_UNITS: dict[Measure, str] = {
+    Measure.mitral_e: "cm/s",
+    Measure.mitral_a: "cm/s",
+    Measure.e_a_ratio: "{ratio}",
+    Measure.deceleration_time: "ms",
+    Measure.e_prime_septal: "cm/s",
+    Measure.e_prime_lateral: "cm/s",
+    Measure.e_prime_average: "cm/s",
+    Measure.e_e_prime_septal: "{ratio}",
+    Measure.e_e_prime_lateral: "{ratio}",
+    Measure.e_e_prime_average: "{ratio}",
+    Measure.tr_peak_velocity: "m/s",
+    Measure.pasp: "mm[Hg]",
+    Measure.lavi: "mL/m2",
+    Measure.lvef: "%",
+    Measure.ivrt: "ms",
+    Measure.pv_s_d_ratio: "{ratio}",
+    Measure.la_reservoir_strain: "%",
+    Measure.age: "a",
+    Measure.e_acceleration_rate: "cm/s2",
+    Measure.bmi: "kg/m2",
+    Measure.heart_rate: "/min",
+    Measure.ar_a_duration: "ms",
+    Measure.mitral_e_valsalva: "cm/s",
+    Measure.mitral_a_valsalva: "cm/s",
+    Measure.e_a_ratio_valsalva: "{ratio}",
+}
 
 
 class Origin(StrEnum):
@@ -204,6 +243,24 @@ class Measurements(Frozen):
 
 class Guideline(StrEnum):
     ase_eacvi_2016 = "ase-eacvi-2016"
+    ase_2025 = "ase-2025"
+    bse_2024 = "bse-2024"
+
+
+class SpecialSituation(StrEnum):
+    """Conditions in which the standard algorithm does not apply as is (guideline sections on
+    special populations).  Flagged by configuration, command line, or a coded SR finding."""
+
+    sinus_tachycardia = "sinus-tachycardia"  # includes E-A fusion
+    mitral_regurgitation = "mitral-regurgitation"  # moderate or more
+    mitral_stenosis = "mitral-stenosis"
+    mitral_annular_calcification = "mitral-annular-calcification"  # moderate or severe
+    prosthetic_mitral_valve = "prosthetic-mitral-valve"
+    heart_transplant = "heart-transplant"
+    hypertrophic_cardiomyopathy = "hypertrophic-cardiomyopathy"
+    restrictive_cardiomyopathy = "restrictive-cardiomyopathy"
+    pulmonary_hypertension_non_cardiac = "pulmonary-hypertension-non-cardiac"
+    lbbb_or_ventricular_pacing = "lbbb-or-ventricular-pacing"
 
 
 class Rhythm(StrEnum):
@@ -222,6 +279,11 @@ class Context(Frozen):
     lvef_reduced_below: float = 50.0
     #: Algorithm A decides only when at least this many criteria are available (I-16-1).
     min_criteria_available: int = 1
+    special_situations: frozenset[SpecialSituation] = frozenset()
+    #: where the rhythm came from, in plain words ("coded Cardiac Rhythm item", "sender default")
+    rhythm_source: str = ""
+    #: a value within this fraction of a cut-off is "near" it (borderline check); 0 disables
+    borderline_fraction: float = 0.10
 
 
 class Grade(StrEnum):
@@ -283,7 +345,32 @@ class Criterion(Frozen):
 class Pathway(StrEnum):
     normal_lvef = "normal-lvef"  # ASE/EACVI 2016 Figure 8A, then 8B if dysfunction
     reduced_lvef_or_myocardial_disease = "reduced-lvef-or-myocardial-disease"  # Figure 8B
-    not_applicable = "not-applicable"
+    sinus_general = "sinus-general"  # ASE 2025 general algorithm (any LVEF)
+    atrial_fibrillation = "atrial-fibrillation"  # filling pressure only, no grade
+    special_situation = "special-situation"  # alternative criteria of a guideline
+    not_applicable = "not-applicable"  # the standard algorithm does not apply; no grade
+
+
+class BorderlineFlag(Frozen):
+    """A criterion whose value lies within measurement variability of its cut-off and whose
+    flip to the other side would change the grade or the filling pressure."""
+
+    criterion_id: str
+    measure: Measure
+    value: float
+    threshold: float
+    alternative_grade: Grade
+    alternative_filling_pressure: FillingPressure
+    text: str
+
+
+class SupportingFinding(Frozen):
+    """Evidence reported beside the algorithm, never a vote inside it (e.g. Valsalva)."""
+
+    name: str
+    text: str
+    supports_elevated_pressure: bool | None = None
+    agrees_with_result: bool | None = None
 
 
 class Assessment(Frozen):
@@ -297,4 +384,20 @@ class Assessment(Frozen):
     criteria: tuple[Criterion, ...] = ()
     reasoning: tuple[str, ...] = ()  # short sentences in the order the algorithm took
     notes: tuple[str, ...] = ()  # caveats, missing data, inconsistencies
+    rhythm: Rhythm = Rhythm.unknown
+    special_situations: tuple[SpecialSituation, ...] = ()
+    borderline: tuple[BorderlineFlag, ...] = ()
+    supporting: tuple[SupportingFinding, ...] = ()
     caution: str = CAUTION
+
+    @property
+    def is_borderline(self) -> bool:
+        return bool(self.borderline)
+
+
+class AssessmentSet(Frozen):
+    """One or more guidelines evaluated on the same measurements; the primary comes first."""
+
+    primary: Assessment
+    others: tuple[Assessment, ...] = ()
+    disagreements: tuple[str, ...] = ()  # plain-language sentences where guidelines differ

@@ -93,6 +93,15 @@ class CodedItem(Frozen):
     source_uid: str = ""
 
 
+class InstanceRef(Frozen):
+    """Reference to a stored DICOM instance (e.g. an earlier result SR now superseded)."""
+
+    study_instance_uid: str
+    series_instance_uid: str
+    sop_class_uid: str
+    sop_instance_uid: str
+
+
 class SourceDocument(Frozen):
     """What the reader took out of one source SR (no DICOM types)."""
 

@@ -1,0 +1,214 @@
+"""One study in, one result SR out: the glue shared by the ``grade`` command and the service.
+
+read (``sr.read``) -> map (``vocabulary.mapper``) -> grade (``grading``) -> write (``sr.write``).
+Nothing here talks to the network or the journal; callers decide where results go.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from datetime import datetime
+from enum import StrEnum
+from pathlib import Path
+
+from pydantic import ConfigDict, Field
+from pydicom import Dataset
+
+from service import SOFTWARE_NAME, __version__
+from service.errors import RejectedInput
+from service.model import (
+    Assessment,
+    AssessmentSet,
+    CodedItem,
+    Context,
+    Frozen,
+    Guideline,
+    InstanceRef,
+    Measurements,
+    Rhythm,
+    SourceDocument,
+)
+
+
+class GradeOptions(Frozen):
+    """Everything that decides the result besides the sources (part of the result's identity)."""
+
+    guideline: Guideline = Guideline.ase_eacvi_2016
+    context: Context = Field(default_factory=Context)
+    compare: bool = False  # evaluate every implemented guideline, primary first
+    uid_root: str | None = None  # None: 2.25 UUID-derived UIDs
+
+
+class GradeStatus(StrEnum):
+    graded = "graded"
+    not_gradable = "not-gradable"
+    rejected = "rejected"
+
+
+class StudyOutcome(Frozen):
+    model_config = ConfigDict(frozen=True, extra="forbid", arbitrary_types_allowed=True)
+
+    status: GradeStatus
+    reason: str = ""
+    study_instance_uid: str = ""
+    documents: tuple[SourceDocument, ...] = ()
+    measurements: Measurements | None = None
+    assessments: AssessmentSet | None = None
+    result: Dataset | None = None  # the result SR, ready to store or send
+
+    @property
+    def assessment(self) -> Assessment | None:
+        return None if self.assessments is None else self.assessments.primary
+
+    @property
+    def result_uid(self) -> str | None:
+        return None if self.result is None else str(self.result.SOPInstanceUID)
+
+
+# Rhythm values that the reader may find in a coded Cardiac Rhythm item (8884-9 LN).
+CARDIAC_RHYTHM = ("LN", "8884-9")
+AF_VALUES = {("SCT", "49436004"), ("MDC", "10:9472")}
+SINUS_VALUES = {("SCT", "64730000"), ("SCT", "106067008")}
+
+
+def rhythm_from_documents(
+    documents: Sequence[SourceDocument],
+) -> tuple[Rhythm, str] | None:
+    """The rhythm stated by a coded Cardiac Rhythm item, newest document first."""
+    for doc in sorted(documents, key=lambda d: d.created, reverse=True):
+        item: CodedItem
+        for item in doc.coded_items:
+            if item.concept.key != CARDIAC_RHYTHM:
+                continue
+            if item.value.key in AF_VALUES:
+                return Rhythm.af, f"coded Cardiac Rhythm item in {doc.sop_instance_uid}"
+            if item.value.key in SINUS_VALUES:
+                return Rhythm.sinus, f"coded Cardiac Rhythm item in {doc.sop_instance_uid}"
+    return None
+
+
+def effective_context(documents: Sequence[SourceDocument], context: Context) -> Context:
+    """A coded rhythm in the SR beats the configured default."""
+    found = rhythm_from_documents(documents)
+    if found is None:
+        if context.rhythm_source:
+            return context
+        source = "not stated" if context.rhythm is Rhythm.unknown else "configured default"
+        return context.model_copy(update={"rhythm_source": source})
+    rhythm, source = found
+    return context.model_copy(update={"rhythm": rhythm, "rhythm_source": source})
+
+
+def result_identity(
+    documents: Sequence[SourceDocument],
+    options: GradeOptions,
+    table_digest: str,
+    rule_set_version: str,
+) -> tuple[str, str]:
+    """(SOP Instance UID, Series Instance UID) of the result: deterministic, so a re-sent study
+    under the same rules and configuration yields the same instance (no duplicate in the PACS)."""
+    from service.sr.identity import config_digest, derive_uid
+
+    sources = sorted(d.sop_instance_uid for d in documents)
+    digest = config_digest({"options": options.model_dump(mode="json"), "mapping": table_digest})
+    study = documents[0].study_instance_uid
+    instance = derive_uid(
+        SOFTWARE_NAME, "result", *sources, rule_set_version, digest, root=options.uid_root
+    )
+    series = derive_uid(SOFTWARE_NAME, "series", study, root=options.uid_root)
+    return instance, series
+
+
+def grade_study(
+    datasets: Sequence[Dataset],
+    options: GradeOptions,
+    *,
+    table: object | None = None,
+    site_mapping_files: Sequence[Path] = (),
+    predecessors: Sequence[InstanceRef] = (),
+    content_datetime: datetime | None = None,
+) -> StudyOutcome:
+    """Grade the SRs of one study together.  Never raises for bad input: returns a ``rejected``
+    outcome with the reason instead."""
+    from service.grading import IMPLEMENTED_GUIDELINES, assess
+    from service.sr.read import read_document
+    from service.sr.write import build_result_sr
+    from service.vocabulary.mapper import build_measurements, load_mapping_table
+
+    if not datasets:
+        return StudyOutcome(status=GradeStatus.rejected, reason="no source objects")
+    documents: list[SourceDocument] = []
+    for ds in datasets:
+        try:
+            documents.append(read_document(ds))
+        except RejectedInput as exc:
+            return StudyOutcome(status=GradeStatus.rejected, reason=str(exc))
+    studies = {d.study_instance_uid for d in documents}
+    if len(studies) != 1:
+        return StudyOutcome(
+            status=GradeStatus.rejected,
+            reason=f"sources belong to {len(studies)} different studies; grading is per study",
+        )
+    if table is None:
+        table = load_mapping_table(site_mapping_files)
+    measurements = build_measurements(documents, table)
+    if not measurements.values or set(measurements.values) <= {"age"}:
+        why = "no echo measurement recognised"
+        if measurements.excluded:
+            why += (
+                f" ({len(measurements.excluded)} excluded, e.g. {measurements.excluded[0].reason})"
+            )
+        return StudyOutcome(
+            status=GradeStatus.rejected,
+            reason=why,
+            study_instance_uid=documents[0].study_instance_uid,
+            documents=tuple(documents),
+            measurements=measurements,
+        )
+    context = effective_context(documents, options.context)
+    primary = assess(measurements, context, options.guideline)
+    others: list[Assessment] = []
+    if options.compare:
+        others = [
+            assess(measurements, context, g)
+            for g in IMPLEMENTED_GUIDELINES
+            if g != options.guideline
+        ]
+    assessments = AssessmentSet(
+        primary=primary, others=tuple(others), disagreements=_disagreements(primary, others)
+    )
+    instance_uid, series_uid = result_identity(
+        documents, options, table.digest, primary.rule_set_version
+    )
+    result = build_result_sr(
+        list(datasets),
+        assessments,
+        measurements,
+        sop_instance_uid=instance_uid,
+        series_instance_uid=series_uid,
+        predecessors=[p for p in predecessors if p.sop_instance_uid != instance_uid],
+        content_datetime=content_datetime,
+        software_version=__version__,
+    )
+    status = GradeStatus.not_gradable if primary.grade == "not-gradable" else GradeStatus.graded
+    return StudyOutcome(
+        status=status,
+        reason="; ".join(primary.reasoning[-1:]) if status is GradeStatus.not_gradable else "",
+        study_instance_uid=documents[0].study_instance_uid,
+        documents=tuple(documents),
+        measurements=measurements,
+        assessments=assessments,
+        result=result,
+    )
+
+
+def _disagreements(primary: Assessment, others: Sequence[Assessment]) -> tuple[str, ...]:
+    out = []
+    for other in others:
+        if (other.grade, other.filling_pressure) != (primary.grade, primary.filling_pressure):
+            out.append(
+                f"{primary.guideline.value}: {primary.grade.value}, filling pressure "
+                f"{primary.filling_pressure.value}; {other.guideline.value}: "
+                f"{other.grade.value}, filling pressure {other.filling_pressure.value}."
+            )
+    return tuple(out)

@@ -1,0 +1,80 @@
+"""Command-line options that decide how a study is graded, shared by ``grade`` and ``demo``."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from service.model import Context, Guideline, Rhythm, SpecialSituation
+from service.pipeline import GradeOptions
+
+
+def add_grading_arguments(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("grading")
+    g.add_argument(
+        "--guideline",
+        choices=[x.value for x in Guideline],
+        default=Guideline.ase_eacvi_2016.value,
+        help="rule set (default: %(default)s); a rule set not implemented in full is refused",
+    )
+    g.add_argument(
+        "--myocardial-disease",
+        action="store_true",
+        help="known myocardial disease with normal LVEF (use the reduced-LVEF pathway)",
+    )
+    g.add_argument(
+        "--rhythm",
+        choices=[x.value for x in Rhythm],
+        default=Rhythm.unknown.value,
+        help="rhythm when the SR does not state it (a coded Cardiac Rhythm item wins)",
+    )
+    g.add_argument(
+        "--situation",
+        action="append",
+        default=[],
+        choices=[x.value for x in SpecialSituation],
+        metavar="NAME",
+        help="flag a special situation (repeatable): "
+        + ", ".join(x.value for x in SpecialSituation),
+    )
+    g.add_argument(
+        "--lvef-reduced-below",
+        type=float,
+        default=50.0,
+        metavar="PCT",
+        help="LVEF below this is reduced (default: %(default)s %%)",
+    )
+    g.add_argument(
+        "--compare", action="store_true", help="also evaluate every other implemented guideline"
+    )
+    g.add_argument(
+        "--mapping",
+        action="append",
+        type=Path,
+        metavar="FILE",
+        help="site code-mapping TOML file (repeatable)",
+    )
+    g.add_argument("--uid-root", metavar="ROOT", help="UID root for result UIDs (default 2.25)")
+
+
+def grade_options_from_args(args: argparse.Namespace) -> GradeOptions:
+    from service.errors import UserError
+    from service.grading import IMPLEMENTED_GUIDELINES
+
+    guideline = Guideline(args.guideline)
+    if guideline not in IMPLEMENTED_GUIDELINES:
+        raise UserError(
+            f"guideline {guideline.value!r} is not implemented in full; available: "
+            + ", ".join(g.value for g in IMPLEMENTED_GUIDELINES)
+        )
+    rhythm = Rhythm(args.rhythm)
+    context = Context(
+        rhythm=rhythm,
+        rhythm_source="" if rhythm is Rhythm.unknown else "command line",
+        myocardial_disease=args.myocardial_disease,
+        lvef_reduced_below=args.lvef_reduced_below,
+        special_situations=frozenset(SpecialSituation(s) for s in args.situation),
+    )
+    return GradeOptions(
+        guideline=guideline, context=context, compare=args.compare, uid_root=args.uid_root
+    )

@@ -369,6 +369,10 @@ def _step_2(trace: _Trace, lvef_depressed: bool) -> _Result:
         trace.check(T.TR_VELOCITY, f"{p}.tr_peak_velocity", STEP_B2).verdict,
         trace.check(T.LAVI, f"{p}.lavi", STEP_B2).verdict,
     ]
+    labels = ("E/e′", "TR velocity", "LAVI")
+    missing = [label for label, v in zip(labels, votes, strict=True) if v is Verdict.unavailable]
+    if missing:
+        trace.note(f"Algorithm B step 2 criteria not available: {', '.join(missing)}.")
     t = tally(votes)
     counted = f"{t.met} of {t.available} available criteria met"
     if t.available == 3:

@@ -136,7 +136,7 @@ def describe(criterion: Criterion, name: str, unit: str) -> str:
     """One reasoning sentence for an evaluated criterion, e.g.
     "Average E/e′ 15.2 against > 14: met."."""
     if criterion.value is None:
-        return f"{name} not available: criterion {criterion.label} unavailable."
+        return f"{name} not available; criterion {criterion.label} not evaluated."
     u = f" {unit}" if unit else ""
     return (
         f"{name} {fmt(criterion.value)}{u} against {SYMBOLS[criterion.comparison]} "

@@ -1,0 +1,549 @@
+"""Result SR writer: structure, identity, references, determinism, round trip.
+
+Sources named beside checks: PS3.3 (SR Document General Module, SOP Common Module) as
+summarised in the project's DICOM reference; highdicom ``srread`` for the round trip.
+All patients and clinics are invented ("Harbour Vale Cardiac Centre").
+"""
+
+from __future__ import annotations
+
+from datetime import datetime
+
+import pytest
+from highdicom.sr import srread
+from pydicom import Dataset, dcmread
+from pydicom.dataset import FileMetaDataset
+from pydicom.uid import ExplicitVRLittleEndian
+
+import service
+from service.errors import UserError
+from service.model import (
+    CAUTION,
+    Assessment,
+    AssessmentSet,
+    BorderlineFlag,
+    Comparison,
+    Criterion,
+    FillingPressure,
+    Grade,
+    Guideline,
+    InstanceRef,
+    Measure,
+    Measurements,
+    MeasureValue,
+    Origin,
+    Pathway,
+    Rhythm,
+    SpecialSituation,
+    SupportingFinding,
+    Verdict,
+)
+from service.sr import codes as C
+from service.sr.identity import derive_uid
+from service.sr.write import build_result_sr, summary_text
+
+COMPREHENSIVE_SR = "1.2.840.10008.5.1.4.1.1.88.33"
+ENHANCED_SR = "1.2.840.10008.5.1.4.1.1.88.22"
+SIMPLIFIED_ECHO_SR = "1.2.840.10008.5.1.4.1.1.88.72"
+EXTENSIBLE_SR = "1.2.840.10008.5.1.4.1.1.88.35"
+WHEN = datetime(2026, 3, 14, 9, 26, 53)
+PAPER = "Nagueh 2016 JASE 29:277"
+
+
+# ---------------------------------------------------------------------------------------------
+# Fixtures: invented source SRs and assessments
+# ---------------------------------------------------------------------------------------------
+
+
+def make_source(n: int = 1, sop_class: str = COMPREHENSIVE_SR, study: str | None = None) -> Dataset:
+    """A small echo SR as a scanner would send it (invented patient)."""
+    ds = Dataset()
+    ds.SpecificCharacterSet = "ISO_IR 100"
+    ds.SOPClassUID = sop_class
+    ds.SOPInstanceUID = derive_uid("test source", str(n), sop_class)
+    ds.StudyInstanceUID = study or derive_uid("test study")
+    ds.SeriesInstanceUID = derive_uid("test series", str(n))
+    ds.Modality = "SR"
+    ds.PatientName = "Quayle^Marina"
+    ds.PatientID = "HVCC-000417"
+    ds.IssuerOfPatientID = "HVCC"
+    ds.PatientBirthDate = "19580612"
+    ds.PatientSex = "F"
+    ds.PatientAge = "067Y"
+    ds.AccessionNumber = "HV26-3141"
+    ds.StudyID = "E2607"
+    ds.StudyDate = "20260314"
+    ds.StudyTime = "091500"
+    ds.ReferringPhysicianName = "Brightwater^Owen"
+    ds.StudyDescription = "Transthoracic echocardiogram"
+    ds.InstitutionName = "Harbour Vale Cardiac Centre"
+    ds.Manufacturer = "Harbour Vale test bench"
+    ds.SeriesNumber = 3
+    ds.InstanceNumber = n
+    ds.ValueType = "CONTAINER"
+    ds.ContinuityOfContent = "SEPARATE"
+    title = Dataset()
+    title.CodeValue, title.CodingSchemeDesignator = "125200", "DCM"
+    title.CodeMeaning = "Adult Echocardiography Procedure Report"
+    ds.ConceptNameCodeSequence = [title]
+    ds.ContentSequence = []
+    ds.CompletionFlag = "COMPLETE"
+    ds.VerificationFlag = "UNVERIFIED"
+    ds.ContentDate, ds.ContentTime = "20260314", "092000"
+    ds.file_meta = FileMetaDataset()
+    ds.file_meta.TransferSyntaxUID = ExplicitVRLittleEndian
+    return ds
+
+
+def crit(
+    cid: str,
+    measure: Measure,
+    value: float | None,
+    comparison: Comparison,
+    threshold: float,
+    label: str,
+    step: str = "algorithm A",
+) -> Criterion:
+    unit = {
+        Measure.e_e_prime_average: "{ratio}",
+        Measure.e_prime_septal: "cm/s",
+        Measure.e_prime_lateral: "cm/s",
+        Measure.tr_peak_velocity: "m/s",
+        Measure.lavi: "mL/m2",
+        Measure.e_a_ratio: "{ratio}",
+        Measure.mitral_e: "cm/s",
+    }[measure]
+    if value is None:
+        verdict = Verdict.unavailable
+    else:
+        verdict = Verdict.met if comparison.holds(value, threshold) else Verdict.not_met
+    return Criterion(
+        id=cid,
+        step=step,
+        label=label,
+        measure=measure,
+        value=value,
+        unit=unit,
+        comparison=comparison,
+        threshold=threshold,
+        verdict=verdict,
+        source=f"{PAPER}, Fig 8A",
+    )
+
+
+def criteria_a(ee: float | None, sep: float | None, tr: float | None, lavi: float | None):
+    return (
+        crit(
+            "ase16.a.ee_avg", Measure.e_e_prime_average, ee, Comparison.gt, 14, "Average E/e′ > 14"
+        ),
+        crit("ase16.a.e_sep", Measure.e_prime_septal, sep, Comparison.lt, 7, "Septal e′ < 7 cm/s"),
+        crit(
+            "ase16.a.tr", Measure.tr_peak_velocity, tr, Comparison.gt, 2.8, "TR velocity > 2.8 m/s"
+        ),
+        crit("ase16.a.lavi", Measure.lavi, lavi, Comparison.gt, 34, "LAVI > 34 mL/m²"),
+    )
+
+
+def assessment(
+    grade: Grade,
+    pressure: FillingPressure,
+    *,
+    guideline: Guideline = Guideline.ase_eacvi_2016,
+    pathway: Pathway = Pathway.normal_lvef,
+    criteria=(),
+    **kw,
+) -> Assessment:
+    return Assessment(
+        guideline=guideline,
+        guideline_citation=f"{PAPER}-314 (ASE/EACVI 2016)",
+        rule_set_version="ase16-1",
+        pathway=pathway,
+        pathway_reason=kw.pop("pathway_reason", "LVEF 62 % is normal and no myocardial disease"),
+        grade=grade,
+        filling_pressure=pressure,
+        criteria=criteria,
+        reasoning=kw.pop("reasoning", ("Four criteria available.", "Result follows Fig 8A.")),
+        **kw,
+    )
+
+
+def measurements() -> Measurements:
+    return Measurements(
+        values={
+            Measure.mitral_e: MeasureValue(
+                measure=Measure.mitral_e, value=92.0, unit="cm/s", origin=Origin.measured,
+                codes=("80070-6 LN",), paths=("1.4.1",), source_uids=("1.2.3",),
+            ),
+            Measure.e_prime_septal: MeasureValue(
+                measure=Measure.e_prime_septal, value=5.0, unit="cm/s",
+                origin=Origin.mean_of_repeats, n=3, detail="mean of 3 unmarked repeats",
+                codes=("79911-4 LN",),
+            ),
+            Measure.e_e_prime_average: MeasureValue(
+                measure=Measure.e_e_prime_average, value=15.3, unit="{ratio}",
+                origin=Origin.derived, n=1, detail="E / average e′",
+            ),
+            Measure.lvef: MeasureValue(
+                measure=Measure.lvef, value=62.0, unit="%", origin=Origin.device_mean, n=2
+            ),
+            Measure.age: MeasureValue(measure=Measure.age, value=67, unit="a", origin=Origin.patient),
+        },
+        notes=("Reported E/e′ differs from its components by 12 %; components used.",),
+    )  # fmt: skip
+
+
+def _set(primary: Assessment, *others: Assessment, disagreements=()) -> AssessmentSet:
+    return AssessmentSet(primary=primary, others=others, disagreements=disagreements)
+
+
+#: constructed cases: every grade, indeterminate, not-gradable with a reason, borderline,
+#: compared guidelines, special situation, AF pathway
+CASES: dict[str, AssessmentSet] = {
+    "normal": _set(
+        assessment(Grade.normal, FillingPressure.normal, criteria=criteria_a(9, 8.5, 2.2, 28))
+    ),
+    "grade-1": _set(
+        assessment(Grade.grade_1, FillingPressure.normal, rhythm=Rhythm.sinus,
+                   criteria=criteria_a(10, 6, 2.4, 30))
+    ),
+    "grade-2": _set(
+        assessment(Grade.grade_2, FillingPressure.elevated, criteria=criteria_a(15.3, 5, 3.0, 38),
+                   pathway=Pathway.reduced_lvef_or_myocardial_disease)
+    ),
+    "grade-3": _set(
+        assessment(Grade.grade_3, FillingPressure.elevated, criteria=criteria_a(18, 4, 3.3, 45))
+    ),
+    "indeterminate": _set(
+        assessment(Grade.indeterminate, FillingPressure.indeterminate,
+                   criteria=criteria_a(15, 8, None, None),
+                   notes=("TR velocity and LAVI unavailable.",))
+    ),
+    "not-gradable": _set(
+        assessment(Grade.not_gradable, FillingPressure.unknown,
+                   pathway=Pathway.not_applicable,
+                   pathway_reason="Moderate mitral stenosis: the standard algorithm does not apply",
+                   special_situations=(SpecialSituation.mitral_stenosis,),
+                   criteria=criteria_a(None, None, None, None), reasoning=())
+    ),
+    "borderline": _set(
+        assessment(
+            Grade.normal, FillingPressure.normal, criteria=criteria_a(13.4, 7.5, 2.9, 30),
+            borderline=(BorderlineFlag(
+                criterion_id="ase16.a.ee_avg", measure=Measure.e_e_prime_average, value=13.4,
+                threshold=14, alternative_grade=Grade.indeterminate,
+                alternative_filling_pressure=FillingPressure.indeterminate,
+                text="Average E/e′ 13.4 is within 10 % of the cut-off 14; above it the result "
+                "would be indeterminate.",
+            ),),
+            supporting=(SupportingFinding(
+                name="Valsalva", text="E/A fell by 55 % with Valsalva",
+                supports_elevated_pressure=True, agrees_with_result=False,
+            ),),
+        )
+    ),
+    "compared": _set(
+        assessment(Grade.grade_1, FillingPressure.normal, criteria=criteria_a(12, 6, 2.5, 33)),
+        assessment(Grade.grade_2, FillingPressure.elevated, guideline=Guideline.ase_2025,
+                   pathway=Pathway.sinus_general, criteria=criteria_a(12, 6, 2.5, 33)),
+        disagreements=("2016: grade 1; 2025: grade 2 — the 2025 e′ cut-off differs.",),
+    ),
+    "af": _set(
+        assessment(Grade.not_gradable, FillingPressure.elevated, rhythm=Rhythm.af,
+                   pathway=Pathway.atrial_fibrillation, criteria=criteria_a(12, 6, 3.1, 40))
+    ),
+}  # fmt: skip
+
+PREDECESSOR = InstanceRef(
+    study_instance_uid=derive_uid("test study"),
+    series_instance_uid=derive_uid("result series"),
+    sop_class_uid=COMPREHENSIVE_SR,
+    sop_instance_uid=derive_uid("earlier result"),
+)
+
+
+def build(case: str, *, sources=None, predecessors=(), when: datetime | None = WHEN) -> Dataset:
+    sources = sources or [make_source()]
+    return build_result_sr(
+        sources,
+        CASES[case],
+        measurements(),
+        sop_instance_uid=derive_uid("result", case),
+        series_instance_uid=derive_uid("result series"),
+        predecessors=predecessors,
+        content_datetime=when,
+    )
+
+
+def save(ds: Dataset, path) -> str:
+    ds.save_as(path, enforce_file_format=True)
+    return str(path)
+
+
+def walk(item: Dataset, depth: int = 0):
+    """(depth, item) for every content item below ``item``."""
+    for child in item.get("ContentSequence", []):
+        yield depth + 1, child
+        yield from walk(child, depth + 1)
+
+
+def name_of(item: Dataset) -> tuple[str, str]:
+    c = item.ConceptNameCodeSequence[0]
+    return c.CodeValue, c.CodingSchemeDesignator
+
+
+def find(ds: Dataset, code: C.CodeDef) -> list[Dataset]:
+    return [i for _, i in walk(ds) if name_of(i) == (code.value, code.scheme)]
+
+
+# ---------------------------------------------------------------------------------------------
+# Tests
+# ---------------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_round_trip_through_highdicom_srread(case, tmp_path):
+    # highdicom srread re-parses the saved file into a typed ComprehensiveSR (highdicom 0.28.2)
+    path = save(build(case, predecessors=[PREDECESSOR]), tmp_path / f"{case}.dcm")
+    doc = srread(path)
+    assert type(doc).__name__ == "ComprehensiveSR"
+    assert doc.SOPClassUID == COMPREHENSIVE_SR
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_grade_and_pressure_items_carry_the_assessment(case):
+    ds = build(case)
+    a = CASES[case].primary
+    grades = find(ds, C.GRADE)
+    assert grades[0].ConceptCodeSequence[0].CodeValue == C.GRADE_VALUES[a.grade].value
+    assert grades[0].ConceptCodeSequence[0].CodingSchemeDesignator == "99DSRG"
+    pressures = find(ds, C.FILLING_PRESSURE)
+    fp = C.FILLING_PRESSURE_VALUES[a.filling_pressure]
+    assert pressures[0].ConceptCodeSequence[0].CodeValue == fp.value
+    # one grade and one pressure per assessment, primary first
+    assert len(grades) == len(pressures) == 1 + len(CASES[case].others)
+    # each criterion is INFERRED FROM evidence of the grade, in order
+    children = [c for c in grades[0].get("ContentSequence", [])]
+    assert [c.RelationshipType for c in children] == ["INFERRED FROM"] * len(a.criteria)
+    for c, item in zip(a.criteria, children, strict=True):
+        assert name_of(item) == (
+            C.MEASURE_CONCEPTS[c.measure].value,
+            C.MEASURE_CONCEPTS[c.measure].scheme,
+        )
+        if c.value is None:
+            assert item.ValueType == "TEXT" and item.TextValue == "not available"
+        else:
+            assert item.ValueType == "NUM"
+            mv = item.MeasuredValueSequence[0]
+            assert float(mv.NumericValue) == pytest.approx(c.value)
+            assert mv.MeasurementUnitsCodeSequence[0].CodeValue == c.unit
+            assert mv.MeasurementUnitsCodeSequence[0].CodingSchemeDesignator == "UCUM"
+        verdict = [p for p in item.ContentSequence if name_of(p)[0] == C.CRITERION_VERDICT.value]
+        expected = {"met": "CRITMET", "not-met": "CRITNOTMET", "unavailable": "CRITUNAVAIL"}
+        assert verdict[0].ConceptCodeSequence[0].CodeValue == expected[c.verdict.value]
+        assert verdict[0].RelationshipType == "HAS PROPERTIES"
+        cutoff = [p for p in item.ContentSequence if name_of(p)[0] == C.CUTOFF.value]
+        assert float(cutoff[0].MeasuredValueSequence[0].NumericValue) == c.threshold
+
+
+def test_reasoning_notes_caution_summary_in_order():
+    ds = build("indeterminate")
+    a = CASES["indeterminate"].primary
+    assert [i.TextValue for i in find(ds, C.REASONING)] == list(a.reasoning)
+    assert [i.TextValue for i in find(ds, C.NOTE)] == list(a.notes)
+    # the exact caution string, in the Impressions container (19005-8 LN, PS3.16 CID 7001)
+    (impressions,) = find(ds, C.IMPRESSIONS)
+    texts = {name_of(i): i.TextValue for i in impressions.ContentSequence}
+    assert texts[("CAUTION", "99DSRG")] == CAUTION
+    assert texts[("121073", "DCM")] == summary_text(CASES["indeterminate"])
+    assert "indeterminate" in texts[("121073", "DCM")]
+
+
+def test_not_gradable_carries_reason_and_special_situation():
+    ds = build("not-gradable")
+    (pathway,) = find(ds, C.PATHWAY)
+    assert pathway.ConceptCodeSequence[0].CodeValue == "PW-NOTAPPLICABLE"
+    reason = pathway.ContentSequence[0]
+    assert reason.RelationshipType == "INFERRED FROM"
+    assert "mitral stenosis" in reason.TextValue
+    (situation,) = find(ds, C.SPECIAL_SITUATION)
+    assert situation.ConceptCodeSequence[0].CodeValue == "SS-MS"
+    assert "Reason: Moderate mitral stenosis" in find(ds, C.IMPRESSION)[0].TextValue
+
+
+def test_borderline_flag_and_supporting_finding():
+    ds = build("borderline")
+    (flag,) = find(ds, C.BORDERLINE)
+    # Yes from PS3.16 CID 230
+    assert flag.ConceptCodeSequence[0].CodeValue == "373066001"
+    (detail,) = flag.ContentSequence
+    assert "13.4" in detail.TextValue
+    props = {name_of(p)[0]: p.ConceptCodeSequence[0].CodeValue for p in detail.ContentSequence[1:]}
+    assert props == {"ALTGRADE": "DFG-INDET", "ALTFILLPRESSURE": "371934000"}
+    (finding,) = find(ds, C.SUPPORTING_FINDING)
+    assert finding.TextValue.startswith("Valsalva:")
+    assert "Borderline: e_e_prime_average" in find(ds, C.IMPRESSION)[0].TextValue
+    # a result without flags says No (373067005 SCT, PS3.16 CID 230)
+    (no_flag,) = find(build("normal"), C.BORDERLINE)
+    assert no_flag.ConceptCodeSequence[0].CodeValue == "373067005"
+
+
+def test_compared_guidelines_primary_first_with_disagreement():
+    ds = build("compared")
+    guidelines = [i.ConceptCodeSequence[0].CodeValue for i in find(ds, C.GUIDELINE)]
+    assert guidelines == ["GL-ASEEACVI2016", "GL-ASE2025"]
+    roles = [i.ConceptCodeSequence[0].CodeValue for i in find(ds, C.ASSESSMENT_ROLE)]
+    assert roles == ["PRIMARY", "COMPARISON"]
+    assert [i.TextValue for i in find(ds, C.DISAGREEMENT)] == list(CASES["compared"].disagreements)
+    assert "For comparison, ASE 2025: grade II" in find(ds, C.IMPRESSION)[0].TextValue
+    assert not find(build("normal"), C.GUIDELINE_COMPARISON)
+
+
+def test_measurements_used_with_origin():
+    ds = build("grade-2")
+    (container,) = find(ds, C.MEASUREMENTS_USED)
+    nums = {name_of(i)[0]: i for i in container.ContentSequence if i.ValueType == "NUM"}
+    assert set(nums) == {"80070-6", "79911-4", "EEPRIMEAVERAGE", "18043-0", "121033"}
+    septal = nums["79911-4"]
+    origin = [p.TextValue for p in septal.ContentSequence if name_of(p)[0] == "VALUEORIGIN"]
+    assert origin == ["mean of unmarked repeats, computed here, n = 3; mean of 3 unmarked repeats"]
+    # Derivation (121401 DCM) = Mean (373098007 SCT) / Calculated (258090004 SCT), PS3.16 CID 3627
+    deriv = {
+        k: [p.ConceptCodeSequence[0].CodeValue for p in v.ContentSequence if p.ValueType == "CODE"]
+        for k, v in nums.items()
+    }
+    assert deriv["79911-4"] == ["373098007"]
+    assert deriv["EEPRIMEAVERAGE"] == ["258090004"]
+    assert deriv["80070-6"] == []
+    notes = [i.TextValue for i in container.ContentSequence if name_of(i)[0] == "MEASNOTE"]
+    assert notes == list(measurements().notes)
+
+
+def test_same_patient_and_study_new_series_unverified():
+    # identity carried over (PS3.3 Patient / General Study modules), new series,
+    # Verification UNVERIFIED, Completion COMPLETE, Preliminary PRELIMINARY (PS3.3 C.17.2)
+    src = make_source()
+    ds = build("grade-2", sources=[src])
+    for kw in (
+        "PatientName", "PatientID", "IssuerOfPatientID", "PatientBirthDate", "PatientSex",
+        "StudyInstanceUID", "AccessionNumber", "StudyID", "StudyDate", "StudyTime",
+        "ReferringPhysicianName", "StudyDescription",
+    ):  # fmt: skip
+        assert ds[kw].value == src[kw].value, kw
+    assert ds.SeriesInstanceUID != src.SeriesInstanceUID
+    assert ds.SOPInstanceUID == derive_uid("result", "grade-2")
+    assert ds.Modality == "SR" and ds.SOPClassUID == COMPREHENSIVE_SR
+    assert ds.SeriesDescription == "Diastolic function assessment (automated)"
+    assert ds.SeriesNumber == 9901 and ds.InstanceNumber == 1
+    assert (ds.VerificationFlag, ds.CompletionFlag, ds.PreliminaryFlag) == (
+        "UNVERIFIED", "COMPLETE", "PRELIMINARY",
+    )  # fmt: skip
+    assert ds.Manufacturer == "diastolic-sr project"
+    assert ds.SoftwareVersions == f"diastolic-sr {service.__version__}"
+    assert (str(ds.ContentDate), str(ds.ContentTime)) == ("20260314", "092653")
+    (scheme,) = ds.CodingSchemeIdentificationSequence
+    assert scheme.CodingSchemeDesignator == "99DSRG"
+    assert scheme.CodingSchemeName == "diastolic-sr grading concepts"
+    assert "PredecessorDocumentsSequence" not in ds
+
+
+@pytest.mark.parametrize(
+    "classes", [[COMPREHENSIVE_SR, ENHANCED_SR, SIMPLIFIED_ECHO_SR, EXTENSIBLE_SR]]
+)
+def test_every_source_referenced_as_evidence(classes):
+    sources = [make_source(i + 1, c) for i, c in enumerate(classes)]
+    ds = build("grade-1", sources=sources)
+    # Current Requested Procedure Evidence Sequence (PS3.3 C.17.2) lists every source
+    refs = {
+        (s.ReferencedSOPClassUID, s.ReferencedSOPInstanceUID)
+        for study in ds.CurrentRequestedProcedureEvidenceSequence
+        for series in study.ReferencedSeriesSequence
+        for s in series.ReferencedSOPSequence
+    }
+    assert refs == {(s.SOPClassUID, s.SOPInstanceUID) for s in sources}
+    composites = [
+        (i.ReferencedSOPSequence[0].ReferencedSOPClassUID,
+         i.ReferencedSOPSequence[0].ReferencedSOPInstanceUID)
+        for i in find(ds, C.CURRENT_PROCEDURE_EVIDENCE)
+    ]  # fmt: skip
+    assert composites == [(s.SOPClassUID, s.SOPInstanceUID) for s in sources]
+    assert "PertinentOtherEvidenceSequence" not in ds
+
+
+def test_predecessors_listed():
+    second = PREDECESSOR.model_copy(update={"sop_instance_uid": derive_uid("older result")})
+    ds = build("grade-1", predecessors=[PREDECESSOR, second, PREDECESSOR])
+    (study,) = ds.PredecessorDocumentsSequence
+    assert study.StudyInstanceUID == PREDECESSOR.study_instance_uid
+    (series,) = study.ReferencedSeriesSequence
+    assert series.SeriesInstanceUID == PREDECESSOR.series_instance_uid
+    assert [s.ReferencedSOPInstanceUID for s in series.ReferencedSOPSequence] == [
+        PREDECESSOR.sop_instance_uid,
+        second.sop_instance_uid,
+    ]
+
+
+def _bytes(ds: Dataset, path) -> bytes:
+    save(ds, path)
+    return path.read_bytes()
+
+
+def test_deterministic_output(tmp_path):
+    # same inputs and content time -> byte-identical file (common practice for idempotent
+    # re-sends: the PACS must not receive a different object under the same UID)
+    a = _bytes(build("borderline", predecessors=[PREDECESSOR]), tmp_path / "a.dcm")
+    b = _bytes(build("borderline", predecessors=[PREDECESSOR]), tmp_path / "b.dcm")
+    assert a == b
+    c = _bytes(build("grade-3"), tmp_path / "c.dcm")
+    assert c != a
+    later = build("borderline", predecessors=[PREDECESSOR], when=datetime(2026, 3, 15, 8, 0))
+    assert _bytes(later, tmp_path / "d.dcm") != a
+
+
+def test_without_content_datetime_uses_now():
+    ds = build("normal", when=None)
+    assert len(str(ds.ContentDate)) == 8 and str(ds.ContentDate) >= "2026"
+
+
+def test_saved_file_reads_back_with_utf8_text(tmp_path):
+    path = save(build("borderline"), tmp_path / "r.dcm")
+    ds = dcmread(path)
+    assert ds.SpecificCharacterSet == "ISO_IR 192"
+    rules = [i.TextValue for i in find(ds, C.CRITERION_RULE)]
+    assert "Average E/e′ > 14" in rules and "LAVI > 34 mL/m²" in rules
+    assert ds.PatientName == "Quayle^Marina"
+
+
+def test_source_missing_optional_identity_still_builds():
+    src = make_source()
+    for kw in ("AccessionNumber", "StudyID", "ReferringPhysicianName", "PatientSex"):
+        delattr(src, kw)
+    ds = build("normal", sources=[src])
+    assert ds.AccessionNumber == "" and ds.StudyID == ""
+    assert "AccessionNumber" not in src  # the caller's dataset is not changed
+
+
+@pytest.mark.parametrize(
+    "kwargs, message",
+    [
+        ({"sources": []}, "at least one source"),
+        ({"sop_instance_uid": "not.a.uid"}, "not a valid DICOM UID"),
+        ({"series_instance_uid": "1.02.3"}, "not a valid DICOM UID"),
+    ],
+)
+def test_bad_arguments_give_clear_errors(kwargs, message):
+    args = {
+        "sources": [make_source()],
+        "sop_instance_uid": derive_uid("x"),
+        "series_instance_uid": derive_uid("y"),
+    }
+    args.update(kwargs)
+    sources = args.pop("sources")
+    with pytest.raises(UserError, match=message):
+        build_result_sr(sources, CASES["normal"], measurements(), **args)
+
+
+def test_source_without_uid_is_a_clear_error():
+    src = make_source()
+    del src.SOPInstanceUID
+    with pytest.raises(UserError, match="no SOPInstanceUID"):
+        build("normal", sources=[src])

@@ -1,0 +1,148 @@
+"""``diastolic-sr queue``: pending, failed and recent work from the node's journal; re-queue
+failed deliveries; re-grade a study.  Works while the node runs (the journal is shared)."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import time
+from datetime import UTC, datetime
+from typing import Any
+
+from service.config import apply_overrides, load_config
+from service.errors import UserError
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "queue",
+        help="show pending, failed and recent work; re-queue failed deliveries; re-grade",
+        description="Show the node's work from its journal: studies waiting to be graded, "
+        "results waiting to be delivered, failures with their reasons, and recent studies.",
+    )
+    p.add_argument("--config", metavar="FILE", help="configuration file (for its data_dir)")
+    p.add_argument("--data-dir", metavar="DIR", help="the node's data directory")
+    p.add_argument(
+        "--requeue-failed",
+        action="store_true",
+        help="put every failed delivery back in the outbox (attempts start again)",
+    )
+    p.add_argument(
+        "--regrade",
+        action="append",
+        default=[],
+        metavar="STUDY_UID",
+        help="grade this study again from its spooled objects (repeatable)",
+    )
+    p.add_argument("--recent", type=int, default=20, metavar="N", help="recent studies shown")
+    p.add_argument("--json", action="store_true", help="print one JSON document")
+    p.set_defaults(func=run)
+
+
+def _when(ts: float | None) -> str:
+    if ts is None:
+        return "-"
+    return datetime.fromtimestamp(ts, UTC).strftime("%Y-%m-%d %H:%M:%S")
+
+
+def run(args: argparse.Namespace) -> int:
+    from service.network.service import journal_path
+    from service.store.journal import Journal
+
+    cfg = apply_overrides(load_config(args.config), data_dir=args.data_dir)
+    path = journal_path(cfg.data_dir)
+    if not path.exists():
+        raise UserError(f"no journal at {path} (has the node run with this data directory?)")
+    journal = Journal(path)
+    try:
+        actions: list[str] = []
+        for study in args.regrade:
+            if not journal.request_regrade(study):
+                raise UserError(f"unknown study {study!r}: not in the journal")
+            actions.append(f"study {study} queued for re-grading")
+        if args.requeue_failed:
+            n = journal.requeue_failed()
+            actions.append(f"{n} failed deliver{'y' if n == 1 else 'ies'} re-queued")
+        report = build_report(journal, recent=args.recent)
+    finally:
+        journal.close()
+    if args.json:
+        print(json.dumps({"actions": actions, **report}, indent=2))
+        return 0
+    for line in actions:
+        print(line)
+    print_report(report)
+    return 0
+
+
+def build_report(journal: Any, *, recent: int) -> dict[str, Any]:
+    now = time.time()
+    waiting = journal.studies(states=["received", "assembled"])
+    failed_studies = journal.studies(states=["failed"])
+    pending = journal.deliveries(states=["pending"])
+    failed = journal.deliveries(states=["failed"])
+    return {
+        "counts": journal.counts(),
+        "studies_waiting": [
+            {
+                "study_uid": s["study_uid"],
+                "state": s["state"],
+                "calling_ae": s["calling_ae"],
+                "due_in_seconds": round(max(0.0, s["due_at"] - now), 1),
+            }
+            for s in waiting
+        ],
+        "deliveries_pending": [
+            {
+                "result_uid": d["result_uid"],
+                "study_uid": d["study_uid"],
+                "destination": d["destination"],
+                "target": d["target"],
+                "attempts": d["attempts"],
+                "next_attempt": _when(d["next_attempt_at"]),
+                "last_error": d["last_error"],
+            }
+            for d in pending
+        ],
+        "failed": [
+            {"study_uid": s["study_uid"], "reason": s["reason"], "result_uid": s["result_uid"]}
+            for s in failed_studies
+        ],
+        "deliveries_failed": [
+            {
+                "result_uid": d["result_uid"],
+                "destination": d["destination"],
+                "target": d["target"],
+                "attempts": d["attempts"],
+                "reason": d["last_error"],
+            }
+            for d in failed
+        ],
+        "recent": [
+            {
+                "study_uid": s["study_uid"],
+                "state": s["state"],
+                "calling_ae": s["calling_ae"],
+                "result_uid": s["result_uid"],
+                "updated": _when(s["updated_at"]),
+                "reason": s["reason"],
+            }
+            for s in journal.studies(limit=recent)
+        ],
+    }
+
+
+def print_report(report: dict[str, Any]) -> None:
+    counts = report["counts"]
+    print("journal: " + (", ".join(f"{k}={v}" for k, v in sorted(counts.items())) or "empty"))
+    sections = [
+        ("studies waiting to be graded", report["studies_waiting"]),
+        ("deliveries pending", report["deliveries_pending"]),
+        ("failed studies", report["failed"]),
+        ("failed deliveries", report["deliveries_failed"]),
+        ("recent studies", report["recent"]),
+    ]
+    for title, rows in sections:
+        print(f"\n{title}: {len(rows)}")
+        for row in rows:
+            print("  " + "  ".join(f"{k}={v}" for k, v in row.items() if v not in (None, "")))

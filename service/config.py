@@ -1,0 +1,426 @@
+"""The node's configuration: one TOML file (stdlib ``tomllib``) validated by pydantic models.
+
+Every value has an embedded default, so the node starts with no file at all.  Errors are raised
+as :class:`~service.errors.UserError` naming the key path, the bad value and what is allowed,
+e.g. ``routes[2].destinations: unknown destination "PACS2"; defined: PACS_MAIN, ARCHIVE``.
+
+Command-line flags of ``serve`` override the file through :func:`apply_overrides`.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import re
+import tomllib
+import types
+import typing
+from collections.abc import Iterable, Sequence
+from pathlib import Path
+from typing import Annotated, Any
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+
+from service.errors import UserError
+from service.model import Context, Guideline, Rhythm
+
+#: the route that applies to a calling AE with no route of its own
+DEFAULT_ROUTE = "*"
+DEFAULT_AE_TITLE = "DIASTOLIC_SR"
+DEFAULT_PORT = 11112
+DEFAULT_DATA_DIR = "diastolic-sr-data"
+
+_AE_CHARS = re.compile(r"^[\x20-\x5b\x5d-\x7e]{1,16}$")  # PS3.5 6.2 AE: no backslash, no control
+_UID = re.compile(r"^(0|[1-9][0-9]*)(\.(0|[1-9][0-9]*))*$")  # PS3.5 9.1
+
+
+def check_ae_title(value: str) -> str:
+    """An AE title per PS3.5 Table 6.2-1 (AE VR): 1-16 characters, no backslash or control
+    characters, not only spaces.  Leading and trailing spaces are not significant."""
+    if not isinstance(value, str) or not _AE_CHARS.match(value) or not value.strip():
+        raise ValueError(
+            "an AE title is 1 to 16 printable characters without backslash, not only spaces"
+        )
+    return value.strip()
+
+
+AETitle = Annotated[str, Field(min_length=1)]
+
+
+class Section(BaseModel):
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+
+class NodeConfig(Section):
+    """The local Application Entity."""
+
+    ae_title: AETitle = DEFAULT_AE_TITLE
+    #: address to listen on; "" listens on all interfaces
+    bind: str = ""
+    #: TCP port; 0 lets the system pick a free one (it is written to ``run/listener.json``)
+    port: int = Field(default=DEFAULT_PORT, ge=0, le=65535)
+    #: spool and journal; relative paths are taken from the configuration file's folder
+    data_dir: str = DEFAULT_DATA_DIR
+
+    @field_validator("ae_title")
+    @classmethod
+    def _ae(cls, v: str) -> str:
+        return check_ae_title(v)
+
+
+class LimitsConfig(Section):
+    max_associations: int = Field(default=16, ge=8, le=1000)
+    #: maximum PDU length we receive, bytes (0 = unlimited)
+    max_pdu: int = Field(default=16382, ge=0)
+    acse_timeout: float = Field(default=30.0, gt=0)
+    dimse_timeout: float = Field(default=60.0, gt=0)
+    network_timeout: float = Field(default=60.0, gt=0)
+    #: on shutdown, wait this long for open associations to finish before aborting them
+    shutdown_grace_seconds: float = Field(default=10.0, ge=0)
+
+
+class AccessConfig(Section):
+    #: calling AE titles allowed to associate; empty allows any
+    allowed_calling_aes: list[AETitle] = Field(default_factory=list)
+    #: accept image storage SOP classes and discard the objects (so a rule that forwards a
+    #: whole study does not fail); SR objects are always kept
+    accept_images: bool = False
+
+    @field_validator("allowed_calling_aes")
+    @classmethod
+    def _aes(cls, v: list[str]) -> list[str]:
+        return [check_ae_title(x) for x in v]
+
+
+class AssemblyConfig(Section):
+    #: grade a study this many seconds after its last object arrived (0: at once)
+    settle_seconds: float = Field(default=10.0, ge=0, le=86400)
+    #: number of studies graded at the same time
+    workers: int = Field(default=1, ge=1, le=16)
+
+
+class SenderDefaults(Section):
+    """What the grading assumes for studies from one sender when the SR does not say."""
+
+    rhythm: Rhythm = Rhythm.unknown
+    myocardial_disease: bool = False
+
+
+class GradingConfig(Section):
+    guideline: Guideline = Guideline.ase_eacvi_2016
+    #: also evaluate every other implemented guideline and report disagreements
+    compare: bool = False
+    #: LVEF below this (%) takes the reduced-LVEF pathway
+    lvef_reduced_below: float = Field(default=50.0, gt=0, lt=100)
+    #: UID root for result UIDs; "" gives 2.25 UUID-derived UIDs
+    uid_root: str = ""
+    #: site code-mapping files (TOML), relative to the configuration file's folder
+    mapping_files: list[str] = Field(default_factory=list)
+    #: defaults for every sender, overridden per calling AE in [senders.AET]
+    defaults: SenderDefaults = Field(default_factory=SenderDefaults)
+
+    @field_validator("uid_root")
+    @classmethod
+    def _root(cls, v: str) -> str:
+        v = v.strip()
+        if v and (not _UID.match(v) or len(v) > 40):
+            raise ValueError("a UID root is dotted digits without leading zeros, at most 40 long")
+        return v
+
+
+class DestinationConfig(Section):
+    """A DICOM peer that receives results by C-STORE."""
+
+    ae_title: AETitle
+    host: str = Field(min_length=1)
+    port: int = Field(ge=1, le=65535)
+
+    @field_validator("ae_title")
+    @classmethod
+    def _ae(cls, v: str) -> str:
+        return check_ae_title(v)
+
+
+class RouteConfig(Section):
+    #: calling AE title of the sender, or "*" for every sender without a route of its own
+    calling_ae: str
+    destinations: list[str] = Field(default_factory=list)
+
+    @field_validator("calling_ae")
+    @classmethod
+    def _calling(cls, v: str) -> str:
+        return v if v == DEFAULT_ROUTE else check_ae_title(v)
+
+
+class DeliveryConfig(Section):
+    #: attempts per result and destination before it is marked failed (never dropped)
+    max_attempts: int = Field(default=10, ge=1, le=10000)
+    backoff_initial_seconds: float = Field(default=5.0, gt=0)
+    backoff_max_seconds: float = Field(default=600.0, gt=0)
+    #: also write every result into this folder (relative to data_dir); "" disables
+    results_folder: str = "results"
+
+
+class Config(Section):
+    node: NodeConfig = Field(default_factory=NodeConfig)
+    limits: LimitsConfig = Field(default_factory=LimitsConfig)
+    access: AccessConfig = Field(default_factory=AccessConfig)
+    assembly: AssemblyConfig = Field(default_factory=AssemblyConfig)
+    grading: GradingConfig = Field(default_factory=GradingConfig)
+    senders: dict[str, SenderDefaults] = Field(default_factory=dict)
+    destinations: dict[str, DestinationConfig] = Field(default_factory=dict)
+    routes: list[RouteConfig] = Field(default_factory=list)
+    delivery: DeliveryConfig = Field(default_factory=DeliveryConfig)
+    #: folder of the configuration file (relative paths are resolved from it); not a TOML key
+    base_dir: str = Field(default="", exclude=True)
+
+    # -- derived values ------------------------------------------------------------------------
+
+    @property
+    def data_dir(self) -> Path:
+        return _resolve(self.base_dir, self.node.data_dir)
+
+    @property
+    def results_dir(self) -> Path | None:
+        folder = self.delivery.results_folder
+        return None if not folder else _resolve(str(self.data_dir), folder)
+
+    @property
+    def mapping_paths(self) -> list[Path]:
+        return [_resolve(self.base_dir, p) for p in self.grading.mapping_files]
+
+    def destinations_for(self, calling_ae: str) -> list[str]:
+        """Names of the destinations for results of studies sent by ``calling_ae``."""
+        calling_ae = calling_ae.strip()
+        for route in self.routes:
+            if route.calling_ae == calling_ae:
+                return list(route.destinations)
+        for route in self.routes:
+            if route.calling_ae == DEFAULT_ROUTE:
+                return list(route.destinations)
+        if not self.routes:  # no routing table: every destination is the default route
+            return list(self.destinations)
+        return []
+
+    def sender_defaults(self, calling_ae: str) -> SenderDefaults:
+        return self.senders.get(calling_ae.strip(), self.grading.defaults)
+
+    def grading_context(self, calling_ae: str) -> Context:
+        d = self.sender_defaults(calling_ae)
+        return Context(
+            rhythm=d.rhythm,
+            myocardial_disease=d.myocardial_disease,
+            lvef_reduced_below=self.grading.lvef_reduced_below,
+        )
+
+    def digest(self) -> str:
+        """Short digest of the effective configuration (for logs and status)."""
+        text = json.dumps(self.model_dump(mode="json"), sort_keys=True)
+        return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def _resolve(base: str, path: str) -> Path:
+    p = Path(path).expanduser()
+    if not p.is_absolute() and base:
+        p = Path(base) / p
+    return p
+
+
+# ---------------------------------------------------------------------------------------------
+# Loading and validation
+# ---------------------------------------------------------------------------------------------
+
+
+def default_config() -> Config:
+    """The embedded defaults (what ``serve`` runs on with no configuration file)."""
+    return Config()
+
+
+def load_config(path: str | Path | None) -> Config:
+    """Read and validate a configuration file; ``None`` gives the embedded defaults."""
+    if path is None:
+        return default_config()
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise UserError(f"cannot read configuration {p}: {exc.strerror or exc}") from None
+    except UnicodeDecodeError:
+        raise UserError(f"configuration {p} is not UTF-8 text") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise UserError(f"configuration {p}: not valid TOML: {exc}") from None
+    return config_from_dict(data, base_dir=str(p.resolve().parent), source=str(p))
+
+
+def config_from_dict(data: dict[str, Any], *, base_dir: str = "", source: str = "") -> Config:
+    if "base_dir" in data:
+        raise UserError(_prefix(source) + "base_dir: unknown key")
+    try:
+        cfg = Config.model_validate({**data, "base_dir": base_dir})
+    except ValidationError as exc:
+        raise UserError(_prefix(source) + _describe(exc)) from None
+    problems = list(_cross_check(cfg))
+    if problems:
+        raise UserError(_prefix(source) + "; ".join(problems))
+    return cfg
+
+
+def _prefix(source: str) -> str:
+    return f"configuration {source}: " if source else "configuration: "
+
+
+def _cross_check(cfg: Config) -> Iterable[str]:
+    defined = ", ".join(sorted(cfg.destinations)) or "none"
+    for name in cfg.destinations:
+        if not re.match(r"^[A-Za-z0-9_.-]{1,64}$", name):
+            yield (
+                f'destinations.{name}: bad destination name "{name}"; allowed: letters, digits, '
+                "'_', '.', '-' (at most 64)"
+            )
+    for name in cfg.senders:
+        try:
+            check_ae_title(name)
+        except ValueError as exc:
+            yield f'senders."{name}": {exc}'
+    seen: dict[str, int] = {}
+    for i, route in enumerate(cfg.routes):
+        if route.calling_ae in seen:
+            yield (
+                f'routes[{i}].calling_ae: "{route.calling_ae}" already routed by '
+                f"routes[{seen[route.calling_ae]}]"
+            )
+        seen.setdefault(route.calling_ae, i)
+        for j, dest in enumerate(route.destinations):
+            if dest not in cfg.destinations:
+                yield (
+                    f'routes[{i}].destinations[{j}]: unknown destination "{dest}"; '
+                    f"defined: {defined}"
+                )
+    if cfg.delivery.backoff_max_seconds < cfg.delivery.backoff_initial_seconds:
+        yield (
+            f"delivery.backoff_max_seconds: {cfg.delivery.backoff_max_seconds} is below "
+            f"delivery.backoff_initial_seconds ({cfg.delivery.backoff_initial_seconds})"
+        )
+
+
+def _loc(loc: Sequence[int | str]) -> str:
+    out = ""
+    for part in loc:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            out += ("." if out else "") + str(part)
+    return out or "(top level)"
+
+
+def _model_at(loc: Sequence[int | str]) -> type[BaseModel] | None:
+    """The model class that holds the last key of ``loc`` (to list the allowed keys)."""
+    model: Any = Config
+    for part in loc[:-1]:
+        if isinstance(model, type) and issubclass(model, BaseModel):
+            field = model.model_fields.get(str(part))
+            if field is None:
+                return None
+            model = field.annotation
+            continue
+        # list[X] / dict[str, X]: this part is an index or key, step into X
+        args = typing.get_args(model)
+        if not args:
+            return None
+        model = args[-1]
+    while not (isinstance(model, type) and issubclass(model, BaseModel)):
+        args = typing.get_args(model)
+        if not args or isinstance(model, types.UnionType):
+            return None
+        model = args[-1]
+    return model
+
+
+def _describe(exc: ValidationError) -> str:
+    lines = []
+    for err in exc.errors():
+        loc = err["loc"]
+        where = _loc(loc)
+        kind = err["type"]
+        if kind == "extra_forbidden":
+            model = _model_at(loc)
+            allowed = ", ".join(k for k in model.model_fields if k != "base_dir") if model else "?"
+            lines.append(f"{where}: unknown key; allowed: {allowed}")
+            continue
+        bad = err.get("input")
+        msg = str(err["msg"]).removeprefix("Value error, ")
+        if kind == "enum" and err.get("ctx", {}).get("expected"):
+            msg = f"must be one of {err['ctx']['expected']}"
+        if kind == "missing":
+            lines.append(f"{where}: required key missing")
+        else:
+            lines.append(f"{where}: {_show(bad)} is not allowed: {msg}")
+    return "; ".join(lines)
+
+
+def _show(value: Any) -> str:
+    text = json.dumps(value, default=str) if not isinstance(value, str) else f'"{value}"'
+    return text if len(text) <= 80 else text[:77] + "..."
+
+
+# ---------------------------------------------------------------------------------------------
+# Command-line overrides
+# ---------------------------------------------------------------------------------------------
+
+_FORWARD = re.compile(r"^(?P<aet>[^@]{1,16})@(?P<host>[^:@]+|\[[0-9a-fA-F:]+\]):(?P<port>\d{1,5})$")
+
+
+def parse_forward(text: str) -> DestinationConfig:
+    """``AET@HOST:PORT`` -> a destination."""
+    m = _FORWARD.match(text.strip())
+    if not m:
+        raise UserError(f'--forward "{text}": expected AET@HOST:PORT, e.g. PACS@127.0.0.1:104')
+    try:
+        return DestinationConfig(ae_title=m["aet"], host=m["host"].strip("[]"), port=int(m["port"]))
+    except ValidationError as exc:
+        raise UserError(f'--forward "{text}": {_describe(exc)}') from None
+
+
+def apply_overrides(
+    cfg: Config,
+    *,
+    port: int | None = None,
+    ae_title: str | None = None,
+    forward: Sequence[str] = (),
+    data_dir: str | None = None,
+    settle_seconds: float | None = None,
+    bind: str | None = None,
+) -> Config:
+    """The configuration with command-line flags applied (each flag beats the file).
+
+    ``--forward`` destinations are named ``FORWARD_1``, ``FORWARD_2``, ... and join the
+    default route (``*``), which is created when the routing table has none."""
+    data = cfg.model_dump(mode="json")
+    data["base_dir"] = cfg.base_dir
+    if port is not None:
+        data["node"]["port"] = port
+    if ae_title is not None:
+        data["node"]["ae_title"] = ae_title
+    if bind is not None:
+        data["node"]["bind"] = bind
+    if data_dir is not None:
+        data["node"]["data_dir"] = str(Path(data_dir).expanduser().resolve())
+    if settle_seconds is not None:
+        data["assembly"]["settle_seconds"] = settle_seconds
+    names = []
+    for i, text in enumerate(forward, start=1):
+        dest = parse_forward(text)
+        name = f"FORWARD_{i}"
+        data["destinations"][name] = dest.model_dump(mode="json")
+        names.append(name)
+    if names and data["routes"]:
+        for route in data["routes"]:
+            if route["calling_ae"] == DEFAULT_ROUTE:
+                route["destinations"] = [*route["destinations"], *names]
+                break
+        else:
+            data["routes"].append({"calling_ae": DEFAULT_ROUTE, "destinations": names})
+    base = data.pop("base_dir")
+    return config_from_dict(data, base_dir=base, source="(command line)")

@@ -1,0 +1,252 @@
+"""Study assembly: wait for a study's settle window, then grade all its objects together.
+
+One scheduler thread watches the journal for studies whose settle window is over and hands
+each to a small pool of grading threads.  Grading reads every spooled object of the study
+(also those graded before: a late SR triggers a re-grade of the whole study, so the merged
+result uses all sources, the more recently created SR winning per measure), calls the grading
+function, stores the result SR durably in the spool and records it with its deliveries in the
+journal in one transaction.  The network threads never do any of this.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+import time
+from collections.abc import Callable, Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
+from io import BytesIO
+from pathlib import Path
+from typing import Any, Protocol
+
+import pydicom
+from pydicom import Dataset
+from pydicom.dataset import FileMetaDataset
+from pydicom.uid import PYDICOM_IMPLEMENTATION_UID, ExplicitVRLittleEndian
+
+from service.config import Config
+from service.model import InstanceRef
+from service.store.journal import FOLDER_DESTINATION, Journal, NewResult, StudyClaim
+from service.store.spool import Spool
+
+log = logging.getLogger("diastolic_sr.assembly")
+
+
+class GradeFunction(Protocol):
+    """The shape of :func:`service.pipeline.grade_study`."""
+
+    def __call__(
+        self,
+        datasets: Sequence[Dataset],
+        options: Any,
+        *,
+        site_mapping_files: Sequence[Path] = (),
+        predecessors: Sequence[InstanceRef] = (),
+    ) -> Any: ...
+
+
+def default_grade_fn() -> GradeFunction:
+    from service.pipeline import grade_study
+
+    return grade_study
+
+
+def grade_options(config: Config, calling_ae: str) -> Any:
+    from service.pipeline import GradeOptions
+
+    return GradeOptions(
+        guideline=config.grading.guideline,
+        context=config.grading_context(calling_ae),
+        compare=config.grading.compare,
+        uid_root=config.grading.uid_root or None,
+    )
+
+
+def destination_targets(config: Config, calling_ae: str) -> list[tuple[str, str]]:
+    """(name, description) of every place a result of ``calling_ae``'s study goes."""
+    out = []
+    for name in config.destinations_for(calling_ae):
+        d = config.destinations[name]
+        out.append((name, f"{d.ae_title}@{d.host}:{d.port}"))
+    if config.results_dir is not None:
+        out.append((FOLDER_DESTINATION, str(config.results_dir)))
+    return out
+
+
+def encode_part10(ds: Dataset) -> bytes:
+    """A result dataset as a Part 10 file (file meta added when missing)."""
+    if not getattr(ds, "file_meta", None) or "TransferSyntaxUID" not in ds.file_meta:
+        meta = FileMetaDataset()
+        meta.MediaStorageSOPClassUID = ds.SOPClassUID
+        meta.MediaStorageSOPInstanceUID = ds.SOPInstanceUID
+        meta.TransferSyntaxUID = ExplicitVRLittleEndian
+        meta.ImplementationClassUID = PYDICOM_IMPLEMENTATION_UID
+        ds.file_meta = meta
+    buf = BytesIO()
+    ds.save_as(buf, enforce_file_format=True)
+    return buf.getvalue()
+
+
+class Assembler:
+    def __init__(
+        self,
+        config: Config,
+        journal: Journal,
+        spool: Spool,
+        *,
+        grade_fn: GradeFunction | None = None,
+        on_result: Callable[[], None] = lambda: None,
+        poll_seconds: float = 0.5,
+    ) -> None:
+        self.config = config
+        self.journal = journal
+        self.spool = spool
+        self._grade_fn = grade_fn
+        self._on_result = on_result
+        self._poll = poll_seconds
+        self._wake = threading.Event()
+        self._stop = threading.Event()
+        self._workers = config.assembly.workers
+        self._pool = ThreadPoolExecutor(self._workers, thread_name_prefix="grade")
+        self._inflight: set[Future[None]] = set()
+        self._inflight_lock = threading.Lock()
+        self._thread = threading.Thread(target=self._run, name="assembler", daemon=True)
+
+    @property
+    def grade_fn(self) -> GradeFunction:
+        if self._grade_fn is None:
+            self._grade_fn = default_grade_fn()
+        return self._grade_fn
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def wake(self) -> None:
+        self._wake.set()
+
+    def stop(self, timeout: float = 60.0) -> None:
+        """Stop claiming; let the studies being graded finish (bounded by ``timeout``)."""
+        self._stop.set()
+        self._wake.set()
+        self._thread.join(timeout)
+        self._pool.shutdown(wait=True, cancel_futures=True)
+
+    # -- scheduling -------------------------------------------------------------------------------
+
+    def _run(self) -> None:
+        while not self._stop.is_set():
+            try:
+                self._schedule()
+            except Exception:
+                log.exception("assembly scheduler error; retrying")
+            wait = self._poll
+            due = None
+            try:
+                due = self.journal.next_due_at()
+            except Exception:
+                log.exception("journal read failed")
+            if due is not None:
+                wait = max(0.01, min(wait, due - time.time()))
+            self._wake.wait(wait)
+            self._wake.clear()
+
+    def _schedule(self) -> None:
+        with self._inflight_lock:
+            free = self._workers - len(self._inflight)
+        if free <= 0 or self._stop.is_set():
+            return
+        for claim in self.journal.claim_due(limit=free):
+            fut = self._pool.submit(self._grade_claim, claim)
+            with self._inflight_lock:
+                self._inflight.add(fut)
+            fut.add_done_callback(self._done)
+
+    def _done(self, fut: Future[None]) -> None:
+        with self._inflight_lock:
+            self._inflight.discard(fut)
+        self._wake.set()
+
+    # -- grading ---------------------------------------------------------------------------------
+
+    def _grade_claim(self, claim: StudyClaim) -> None:
+        if self._stop.is_set():
+            self.journal.release_claim(claim)
+            return
+        try:
+            self.grade(claim)
+        except Exception as exc:
+            log.exception("grading study %s failed", claim.study_uid)
+            self.journal.finish_grading(
+                claim, result=None, failure=f"internal error while grading: {exc}"
+            )
+
+    def grade(self, claim: StudyClaim) -> None:
+        datasets = []
+        for path in claim.object_paths:
+            try:
+                datasets.append(pydicom.dcmread(path))
+            except Exception as exc:  # spooled file unreadable: say so, do not guess
+                self.journal.finish_grading(
+                    claim, result=None, failure=f"spooled object {path.name} unreadable: {exc}"
+                )
+                log.error("study %s: spooled object unreadable: %s", claim.study_uid, exc)
+                return
+        predecessors = [
+            InstanceRef(
+                study_instance_uid=r["study_uid"],
+                series_instance_uid=r["series_uid"],
+                sop_class_uid=r["sop_class_uid"],
+                sop_instance_uid=r["result_uid"],
+            )
+            for r in claim.earlier_results
+        ]
+        outcome = self.grade_fn(
+            datasets,
+            grade_options(self.config, claim.calling_ae),
+            site_mapping_files=self.config.mapping_paths,
+            predecessors=predecessors,
+        )
+        status = str(getattr(outcome.status, "value", outcome.status))
+        if outcome.result is None:
+            reason = outcome.reason or status
+            self.journal.finish_grading(claim, result=None, failure=f"{status}: {reason}")
+            log.info("study %s not graded (%s): %s", claim.study_uid, status, reason)
+            return
+        ds: Dataset = outcome.result
+        result_uid = str(ds.SOPInstanceUID)
+        known = {r["result_uid"] for r in claim.earlier_results}
+        path = self.spool.result_path(claim.study_uid, result_uid)
+        if result_uid not in known or not path.exists():
+            path = self.spool.write_result(claim.study_uid, result_uid, encode_part10(ds))
+        assessment = getattr(outcome, "assessment", None)
+        new = NewResult(
+            result_uid=result_uid,
+            series_uid=str(ds.SeriesInstanceUID),
+            sop_class_uid=str(ds.SOPClassUID),
+            path=path,
+            status=status,
+            guideline=None if assessment is None else str(assessment.guideline.value),
+            grade=None if assessment is None else str(assessment.grade.value),
+            filling_pressure=(
+                None if assessment is None else str(assessment.filling_pressure.value)
+            ),
+            sources=tuple(claim.object_uids),
+            predecessors=tuple(
+                p.sop_instance_uid for p in predecessors if p.sop_instance_uid != result_uid
+            ),
+        )
+        queued = self.journal.finish_grading(
+            claim,
+            result=new,
+            destinations=destination_targets(self.config, claim.calling_ae),
+        )
+        log.info(
+            "study %s %s from %d object(s): result %s%s",
+            claim.study_uid,
+            status,
+            len(datasets),
+            result_uid,
+            "" if queued else " (already delivered or no destination: nothing new to send)",
+        )
+        if queued:
+            self._on_result()

@@ -1,0 +1,178 @@
+"""Delivery of result SRs: C-STORE (SCU) to the configured destinations, and the results folder.
+
+One thread takes due deliveries from the journal's outbox, groups them by destination, opens
+one association per destination and sends each result.  A failed attempt (destination down,
+association rejected, failure status) backs off exponentially
+(``backoff_initial_seconds * 2**(attempts-1)``, at most ``backoff_max_seconds``); past
+``max_attempts`` the delivery is marked failed with its reason, never dropped.  Everything is in
+the journal, so the outbox survives restarts.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+import time
+from collections import defaultdict
+from pathlib import Path
+
+import pydicom
+from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
+from pynetdicom import AE
+
+from service.config import Config, DestinationConfig
+from service.store.journal import FOLDER_DESTINATION, DueDelivery, Journal
+from service.store.spool import durable_write, safe_name
+
+log = logging.getLogger("diastolic_sr.sender")
+
+#: C-STORE response statuses that mean the peer has the object (PS3.4 Annex B.2.3: success
+#: and the warnings "coercion of data elements", "elements discarded", "data set does not
+#: match SOP class")
+_STORED = {0x0000, 0xB000, 0xB006, 0xB007}
+
+
+class Sender:
+    def __init__(
+        self,
+        config: Config,
+        journal: Journal,
+        *,
+        poll_seconds: float = 0.5,
+    ) -> None:
+        self.config = config
+        self.journal = journal
+        self._poll = poll_seconds
+        self._wake = threading.Event()
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="sender", daemon=True)
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def wake(self) -> None:
+        self._wake.set()
+
+    def stop(self, timeout: float = 30.0) -> None:
+        """Stop after the association in progress (pending deliveries stay in the outbox)."""
+        self._stop.set()
+        self._wake.set()
+        self._thread.join(timeout)
+
+    def _run(self) -> None:
+        while not self._stop.is_set():
+            try:
+                self.deliver_due()
+            except Exception:
+                log.exception("delivery loop error; retrying")
+            wait = self._poll
+            try:
+                nxt = self.journal.next_delivery_at()
+            except Exception:
+                nxt = None
+            if nxt is not None:
+                wait = max(0.01, min(wait, nxt - time.time()))
+            self._wake.wait(wait)
+            self._wake.clear()
+
+    def deliver_due(self) -> int:
+        """Send every delivery that is due now; returns how many were attempted."""
+        due = self.journal.due_deliveries()
+        by_dest: dict[str, list[DueDelivery]] = defaultdict(list)
+        for d in due:
+            by_dest[d.destination].append(d)
+        for name, items in by_dest.items():
+            if self._stop.is_set():
+                break
+            if name == FOLDER_DESTINATION:
+                self._to_folder(items)
+            elif name in self.config.destinations:
+                self._to_peer(self.config.destinations[name], items)
+            else:
+                for d in items:
+                    self.journal.mark_failed(d.id, f'destination "{name}" is no longer configured')
+                    log.error("result %s: destination %s not configured", d.result_uid, name)
+        return len(due)
+
+    def _failed(self, d: DueDelivery, error: str) -> None:
+        cfg = self.config.delivery
+        state = self.journal.mark_attempt_failed(
+            d.id,
+            error,
+            max_attempts=cfg.max_attempts,
+            backoff_initial=cfg.backoff_initial_seconds,
+            backoff_max=cfg.backoff_max_seconds,
+        )
+        log.warning(
+            "result %s to %s: attempt %d failed (%s)%s",
+            d.result_uid,
+            d.destination,
+            d.attempts + 1,
+            error,
+            "; giving up" if state == "failed" else "; will retry",
+        )
+
+    def _to_folder(self, items: list[DueDelivery]) -> None:
+        folder = self.config.results_dir
+        for d in items:
+            try:
+                if folder is None:
+                    raise OSError("no results folder configured")
+                data = Path(d.path).read_bytes()
+                durable_write(Path(folder) / f"{safe_name(d.result_uid)}.dcm", data)
+            except OSError as exc:
+                self._failed(d, f"cannot write to results folder: {exc}")
+                continue
+            self.journal.mark_delivered(d.id)
+            log.info("result %s written to the results folder", d.result_uid)
+
+    def _to_peer(self, dest: DestinationConfig, items: list[DueDelivery]) -> None:
+        datasets = []
+        for d in items:
+            try:
+                datasets.append((d, pydicom.dcmread(d.path)))
+            except Exception as exc:
+                self.journal.mark_failed(d.id, f"spooled result unreadable: {exc}")
+        if not datasets:
+            return
+        limits = self.config.limits
+        ae = AE(ae_title=self.config.node.ae_title)
+        ae.acse_timeout = limits.acse_timeout
+        ae.dimse_timeout = limits.dimse_timeout
+        ae.network_timeout = limits.network_timeout
+        for sop_class in sorted({str(ds.SOPClassUID) for _, ds in datasets}):
+            ae.add_requested_context(sop_class, [ExplicitVRLittleEndian, ImplicitVRLittleEndian])
+        where = f"{dest.ae_title}@{dest.host}:{dest.port}"
+        try:
+            assoc = ae.associate(dest.host, dest.port, ae_title=dest.ae_title)
+        except Exception as exc:  # bad host name and the like
+            for d, _ in datasets:
+                self._failed(d, f"cannot associate with {where}: {exc}")
+            return
+        if not assoc.is_established:
+            why = "association rejected" if assoc.is_rejected else "association failed"
+            if assoc.is_aborted:
+                why = "association aborted"
+            for d, _ in datasets:
+                self._failed(d, f"{why} by {where}")
+            return
+        try:
+            for d, ds in datasets:
+                if self._stop.is_set() or not assoc.is_established:
+                    break
+                try:
+                    status = assoc.send_c_store(ds)
+                except Exception as exc:
+                    self._failed(d, f"C-STORE to {where} raised {type(exc).__name__}: {exc}")
+                    continue
+                code = getattr(status, "Status", None)
+                if code is None:
+                    self._failed(d, f"no C-STORE response from {where}")
+                elif int(code) in _STORED:
+                    self.journal.mark_delivered(d.id)
+                    log.info("result %s delivered to %s", d.result_uid, where)
+                else:
+                    self._failed(d, f"C-STORE status 0x{int(code):04X} from {where}")
+        finally:
+            if assoc.is_established:
+                assoc.release()

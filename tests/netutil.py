@@ -1,0 +1,281 @@
+"""Helpers for the network tests: free ports, polling, in-process and subprocess nodes, DCMTK
+peers and small invented SR objects.  Loopback (127.0.0.1) only; every wait is bounded."""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import json
+import os
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import time
+from collections.abc import Callable, Iterator, Sequence
+from pathlib import Path
+from typing import Any
+
+import pydicom
+from pydicom import Dataset
+from pydicom.dataset import FileMetaDataset
+from pydicom.uid import ExplicitVRLittleEndian, generate_uid
+
+from service.pipeline import GradeStatus, StudyOutcome
+
+LOOPBACK = "127.0.0.1"
+NODE_AE = "DIASTOLIC_SR"
+REPO = Path(__file__).resolve().parents[1]
+STORESCU = "/usr/bin/storescu"
+STORESCP = "/usr/bin/storescp"
+ECHOSCU = "/usr/bin/echoscu"
+COMPREHENSIVE_SR = "1.2.840.10008.5.1.4.1.1.88.33"
+
+
+def have_dcmtk() -> bool:
+    return all(os.access(p, os.X_OK) for p in (STORESCU, STORESCP, ECHOSCU))
+
+
+def free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind((LOOPBACK, 0))
+        return int(s.getsockname()[1])
+
+
+def wait_for(condition: Callable[[], Any], timeout: float = 20.0, interval: float = 0.05) -> Any:
+    """Poll ``condition`` until it returns something truthy; fail the test after ``timeout``."""
+    deadline = time.monotonic() + timeout
+    last: Any = None
+    while time.monotonic() < deadline:
+        last = condition()
+        if last:
+            return last
+        time.sleep(interval)
+    raise AssertionError(f"condition not met within {timeout} s (last value: {last!r})")
+
+
+# ---------------------------------------------------------------------------------------------
+# Invented source objects (fictional clinic "Harbour Vale Cardiac Centre")
+# ---------------------------------------------------------------------------------------------
+
+
+def simple_sr(
+    study_uid: str | None = None,
+    *,
+    sop_uid: str | None = None,
+    patient: str = "Testperson^Ada",
+    patient_id: str = "HV-0001",
+    created: str = "20260101120000",
+) -> Dataset:
+    """A minimal Comprehensive SR (enough for the network layer; no echo content)."""
+    ds = Dataset()
+    ds.file_meta = FileMetaDataset()
+    ds.file_meta.TransferSyntaxUID = ExplicitVRLittleEndian
+    ds.file_meta.MediaStorageSOPClassUID = COMPREHENSIVE_SR
+    ds.SOPClassUID = COMPREHENSIVE_SR
+    ds.SOPInstanceUID = sop_uid or generate_uid()
+    ds.file_meta.MediaStorageSOPInstanceUID = ds.SOPInstanceUID
+    ds.StudyInstanceUID = study_uid or generate_uid()
+    ds.SeriesInstanceUID = generate_uid()
+    ds.Modality = "SR"
+    ds.PatientName = patient
+    ds.PatientID = patient_id
+    ds.InstitutionName = "Harbour Vale Cardiac Centre"
+    ds.ContentDate = created[:8]
+    ds.ContentTime = created[8:]
+    ds.ValueType = "CONTAINER"
+    ds.ContinuityOfContent = "SEPARATE"
+    return ds
+
+
+def fake_grade(
+    datasets: Sequence[Dataset],
+    options: Any,
+    *,
+    site_mapping_files: Sequence[Path] = (),
+    predecessors: Sequence[Any] = (),
+) -> StudyOutcome:
+    """Stand-in for the grading pipeline (network-layer tests only): a result whose UID is
+    derived from the sorted source UIDs, like the real pipeline's.  A source whose
+    PatientComments is "REJECT" makes the study rejected."""
+    if any(getattr(ds, "PatientComments", "") == "REJECT" for ds in datasets):
+        return StudyOutcome(status=GradeStatus.rejected, reason="no echo measurement recognised")
+    sources = sorted(str(ds.SOPInstanceUID) for ds in datasets)
+    digest = int(hashlib.sha256("|".join(sources).encode()).hexdigest()[:30], 16)
+    first = datasets[0]
+    out = Dataset()
+    out.file_meta = FileMetaDataset()
+    out.file_meta.TransferSyntaxUID = ExplicitVRLittleEndian
+    out.SOPClassUID = COMPREHENSIVE_SR
+    out.SOPInstanceUID = f"2.25.{digest}"
+    out.file_meta.MediaStorageSOPClassUID = COMPREHENSIVE_SR
+    out.file_meta.MediaStorageSOPInstanceUID = out.SOPInstanceUID
+    out.StudyInstanceUID = first.StudyInstanceUID
+    out.SeriesInstanceUID = f"2.25.{digest + 1}"
+    out.Modality = "SR"
+    out.PatientName = first.PatientName
+    out.PatientID = first.PatientID
+    if predecessors:
+        out.ReferencedSOPInstanceUID = predecessors[-1].sop_instance_uid
+    return StudyOutcome(
+        status=GradeStatus.graded, study_instance_uid=str(first.StudyInstanceUID), result=out
+    )
+
+
+def write_files(datasets: Sequence[Dataset], folder: Path) -> list[Path]:
+    folder.mkdir(parents=True, exist_ok=True)
+    paths = []
+    for ds in datasets:
+        p = folder / f"{ds.SOPInstanceUID}.dcm"
+        ds.save_as(p, enforce_file_format=True)
+        paths.append(p)
+    return paths
+
+
+# ---------------------------------------------------------------------------------------------
+# The node as a subprocess
+# ---------------------------------------------------------------------------------------------
+
+
+def write_config(path: Path, text: str) -> Path:
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+class NodeProcess:
+    """``python -m service.cli serve ...`` in a subprocess, with its log in a file."""
+
+    def __init__(self, data_dir: Path, args: Sequence[str] = ()) -> None:
+        self.data_dir = Path(data_dir)
+        self.args = list(args)
+        self.proc: subprocess.Popen[bytes] | None = None
+        self.log_path = self.data_dir.parent / f"{self.data_dir.name}-node.log"
+        self.port: int | None = None
+
+    def start(self, timeout: float = 30.0) -> int:
+        status = self.data_dir / "run" / "listener.json"
+        status.unlink(missing_ok=True)
+        self.data_dir.mkdir(parents=True, exist_ok=True)
+        with open(self.log_path, "ab") as log:
+            self.proc = subprocess.Popen(
+                [
+                    sys.executable,
+                    "-m",
+                    "service.cli",
+                    "serve",
+                    "--bind",
+                    LOOPBACK,
+                    "--data-dir",
+                    str(self.data_dir),
+                    *self.args,
+                ],
+                cwd=REPO,
+                stdout=log,
+                stderr=subprocess.STDOUT,
+            )
+
+        def ready() -> int | None:
+            assert self.proc is not None
+            if self.proc.poll() is not None:
+                raise AssertionError(f"node exited early ({self.proc.returncode}):\n{self.log()}")
+            if not status.exists():
+                return None
+            info = json.loads(status.read_text())
+            return int(info["port"]) if info.get("pid") == self.proc.pid else None
+
+        self.port = wait_for(ready, timeout)
+        return self.port
+
+    def log(self) -> str:
+        try:
+            return self.log_path.read_text(errors="replace")
+        except OSError:
+            return ""
+
+    def terminate(self, timeout: float = 30.0) -> int:
+        assert self.proc is not None
+        self.proc.send_signal(signal.SIGTERM)
+        return self.proc.wait(timeout)
+
+    def kill(self) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.kill()
+            self.proc.wait(10)
+
+    def __enter__(self) -> NodeProcess:
+        self.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.kill()
+
+
+@contextlib.contextmanager
+def storescp(out_dir: Path, port: int, ae_title: str = "PACS") -> Iterator[subprocess.Popen]:
+    """DCMTK storescp as the PACS (it listens on all interfaces; we only connect to loopback).
+    ``+uf``: one file per received object (a duplicate delivery would show as two files);
+    ``+B``: written exactly as received."""
+    out_dir.mkdir(parents=True, exist_ok=True)
+    proc = subprocess.Popen(
+        [STORESCP, "-aet", ae_title, "-od", str(out_dir), "+uf", "+B", str(port)],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    try:
+        wait_for(lambda: echo_ok(port, ae_title) or proc.poll() is not None, 15)
+        if proc.poll() is not None:
+            raise AssertionError(f"storescp exited early ({proc.returncode})")
+        yield proc
+    finally:
+        if proc.poll() is None:
+            proc.terminate()
+            try:
+                proc.wait(10)
+            except subprocess.TimeoutExpired:
+                proc.kill()
+                proc.wait(5)
+
+
+def echo_ok(port: int, called: str, calling: str = "ECHOSCU") -> bool:
+    r = subprocess.run(
+        [ECHOSCU, "-aet", calling, "-aec", called, "-to", "5", LOOPBACK, str(port)],
+        capture_output=True,
+        timeout=20,
+    )
+    return r.returncode == 0
+
+
+def pacs_uids(out_dir: Path) -> list[str]:
+    """SOP Instance UIDs of the files storescp wrote (one per received object)."""
+    out = []
+    for p in sorted(out_dir.glob("*")):
+        if p.is_file() and not p.name.startswith("."):
+            out.append(str(pydicom.dcmread(p, stop_before_pixels=True).SOPInstanceUID))
+    return out
+
+
+def run_storescu(
+    files: Sequence[Path], port: int, *, calling: str = "SCANNER1", called: str = NODE_AE
+) -> subprocess.CompletedProcess[str]:
+    return subprocess.run(
+        [
+            STORESCU,
+            "-aet",
+            calling,
+            "-aec",
+            called,
+            "-to",
+            "10",
+            LOOPBACK,
+            str(port),
+            *map(str, files),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
+
+
+def which(name: str) -> str | None:
+    return shutil.which(name)

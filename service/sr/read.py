@@ -1,0 +1,380 @@
+"""Read a DICOM SR into a :class:`~service.model.SourceDocument` (no DICOM types leave here).
+
+The content tree is walked with plain pydicom (highdicom cannot parse by-reference items).
+Containers pass their concept modifiers (Finding Site, Image Mode, Stage ...) down to the
+items they contain; an item's own modifier beats an inherited one.  By-reference
+relationships are counted, never followed.  Any malformed element is skipped with a warning;
+anything that makes the object unusable raises :class:`~service.errors.RejectedInput`.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+import os
+import re
+from dataclasses import dataclass, field
+from typing import Any
+
+import pydicom
+from pydicom.dataset import Dataset
+from pydicom.errors import InvalidDicomError
+
+from service.errors import RejectedInput
+from service.model import Code, CodedItem, Modifier, Observation, SourceDocument
+from service.vocabulary.srt import normalise
+
+SUPPORTED_SR_SOP_CLASSES: dict[str, str] = {
+    "1.2.840.10008.5.1.4.1.1.88.11": "Basic Text SR",
+    "1.2.840.10008.5.1.4.1.1.88.22": "Enhanced SR",
+    "1.2.840.10008.5.1.4.1.1.88.33": "Comprehensive SR",
+    "1.2.840.10008.5.1.4.1.1.88.34": "Comprehensive 3D SR",
+    "1.2.840.10008.5.1.4.1.1.88.35": "Extensible SR",
+    "1.2.840.10008.5.1.4.1.1.88.72": "Simplified Adult Echo SR",
+}
+
+#: relationships through which a CODE child qualifies its parent (PS3.3 C.17.3.2.4)
+MODIFIER_RELATIONSHIPS = frozenset({"HAS CONCEPT MOD", "HAS ACQ CONTEXT", "HAS PROPERTIES"})
+#: container modifiers that descendants inherit (TID 5202 Finding Site, group Image Mode, Stage)
+INHERITED_RELATIONSHIPS = frozenset({"HAS CONCEPT MOD", "HAS ACQ CONTEXT"})
+#: never inherited: they describe one value, not a group
+NOT_INHERITED = frozenset({("DCM", "121404"), ("DCM", "121401")})
+
+SUBJECT_AGE = ("DCM", "121033")
+CARDIAC_RHYTHM = ("LN", "8884-9")
+AGE_UNITS = {"a": 1.0, "mo": 1 / 12, "wk": 7 / 365.25, "d": 1 / 365.25}
+_AS = re.compile(r"^(\d{3})([DWMY])$")
+_AS_FACTOR = {"Y": 1.0, "M": 1 / 12, "W": 7 / 365.25, "D": 1 / 365.25}
+MAX_DEPTH = 64
+
+
+@dataclass
+class _Walk:
+    uid: str
+    observations: list[Observation] = field(default_factory=list)
+    coded: list[CodedItem] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    by_reference: int = 0
+
+
+def _text(value: Any) -> str:
+    if value is None:
+        return ""
+    return str(value).strip()
+
+
+def read_code(seq: Any) -> Code | None:
+    """First item of a code sequence as a Code (SRT normalised to SCT); None if unusable."""
+    try:
+        if seq is None or len(seq) == 0:
+            return None
+        item = seq[0]
+        scheme = _text(item.get("CodingSchemeDesignator"))
+        value = (
+            _text(item.get("CodeValue"))
+            or _text(item.get("LongCodeValue"))
+            or _text(item.get("URNCodeValue"))
+        )
+        if not scheme or not value:
+            return None
+        scheme, value = normalise(scheme, value)
+        return Code(value=value, scheme=scheme, meaning=_text(item.get("CodeMeaning")))
+    except Exception:
+        return None
+
+
+def _own_modifiers(item: Dataset, path: str, w: _Walk) -> list[Modifier]:
+    """CODE children related by a modifier relationship (and their own nested modifiers)."""
+    mods: list[Modifier] = []
+    for i, child in enumerate(_children(item, path, w), 1):
+        try:
+            if _text(child.get("ValueType")) != "CODE":
+                continue
+            if _text(child.get("RelationshipType")) not in MODIFIER_RELATIONSHIPS:
+                continue
+            name = read_code(child.get("ConceptNameCodeSequence"))
+            value = read_code(child.get("ConceptCodeSequence"))
+            if name is None or value is None:
+                w.warnings.append(f"{path}.{i}: modifier without a usable code; skipped")
+                continue
+            mods.append(Modifier(name=name, value=value))
+            # e.g. Topographical Modifier on a Finding Site
+            mods.extend(_own_modifiers(child, f"{path}.{i}", w))
+        except Exception as exc:  # malformed element: skip, never crash
+            w.warnings.append(f"{path}.{i}: malformed modifier skipped ({type(exc).__name__})")
+    return mods
+
+
+def _children(item: Dataset, path: str, w: _Walk) -> list[Dataset]:
+    try:
+        seq = item.get("ContentSequence")
+        if seq is None:
+            return []
+        return [c for c in seq if isinstance(c, Dataset)]
+    except Exception as exc:
+        w.warnings.append(f"{path}: unreadable ContentSequence skipped ({type(exc).__name__})")
+        return []
+
+
+def _num(item: Dataset, path: str, w: _Walk) -> tuple[float | None, Code | None]:
+    seq = item.get("MeasuredValueSequence")
+    if seq is None or len(seq) == 0:
+        return None, None
+    mv = seq[0]
+    unit = read_code(mv.get("MeasurementUnitsCodeSequence"))
+    value: float | None = None
+    raw = mv.get("FloatingPointValue")
+    if raw is None or (hasattr(raw, "__len__") and not isinstance(raw, str) and len(raw) == 0):
+        raw = mv.get("NumericValue")
+    if raw is not None:
+        if not isinstance(raw, str | bytes) and hasattr(raw, "__len__"):
+            raw = raw[0] if len(raw) else None
+        try:
+            value = float(raw) if raw is not None and _text(raw) != "" else None
+        except (TypeError, ValueError):
+            w.warnings.append(f"{path}: non-numeric measured value {raw!r}; value ignored")
+            value = None
+        if value is not None and not math.isfinite(value):
+            w.warnings.append(f"{path}: non-finite measured value {raw!r}; value ignored")
+            value = None
+    return value, unit
+
+
+def _walk(items: list[Dataset], inherited: list[Modifier], path: str, w: _Walk, depth: int) -> None:
+    if depth > MAX_DEPTH:
+        w.warnings.append(f"{path}: content tree deeper than {MAX_DEPTH}; rest skipped")
+        return
+    for i, item in enumerate(items, 1):
+        p = f"{path}.{i}"
+        try:
+            _visit(item, inherited, p, w, depth)
+        except Exception as exc:  # malformed item: skip with a warning, never crash
+            w.warnings.append(f"{p}: malformed content item skipped ({type(exc).__name__}: {exc})")
+
+
+def _visit(item: Dataset, inherited: list[Modifier], p: str, w: _Walk, depth: int) -> None:
+    if "ReferencedContentItemIdentifier" in item and "ValueType" not in item:
+        w.by_reference += 1
+        return
+    vt = _text(item.get("ValueType"))
+    if not vt:
+        w.warnings.append(f"{p}: content item without Value Type skipped")
+        return
+    rel = _text(item.get("RelationshipType"))
+    if vt == "CODE" and rel in MODIFIER_RELATIONSHIPS:
+        # read as a modifier of its parent; a Cardiac Rhythm is also kept as a coded item
+        concept = read_code(item.get("ConceptNameCodeSequence"))
+        value = read_code(item.get("ConceptCodeSequence"))
+        if concept is not None and value is not None and concept.key == CARDIAC_RHYTHM:
+            w.coded.append(CodedItem(path=p, concept=concept, value=value, source_uid=w.uid))
+        return
+    own = _own_modifiers(item, p, w)
+    own_keys = {m.name.key for m in own}
+    mods = own + [m for m in inherited if m.name.key not in own_keys]
+    if vt == "NUM":
+        concept = read_code(item.get("ConceptNameCodeSequence"))
+        if concept is None:
+            w.warnings.append(f"{p}: NUM without a usable concept name skipped")
+        else:
+            value, unit = _num(item, p, w)
+            qualifier = read_code(item.get("NumericValueQualifierCodeSequence"))
+            w.observations.append(
+                Observation(
+                    path=p,
+                    concept=concept,
+                    value=value,
+                    unit=unit,
+                    qualifier=qualifier,
+                    modifiers=tuple(mods),
+                    source_uid=w.uid,
+                )
+            )
+    elif vt == "CODE":
+        concept = read_code(item.get("ConceptNameCodeSequence"))
+        value = read_code(item.get("ConceptCodeSequence"))
+        if concept is None or value is None:
+            w.warnings.append(f"{p}: CODE item without usable codes skipped")
+        else:
+            w.coded.append(
+                CodedItem(
+                    path=p, concept=concept, value=value, modifiers=tuple(mods), source_uid=w.uid
+                )
+            )
+    children = _children(item, p, w)
+    if not children:
+        return
+    if vt == "CONTAINER":
+        passed = [
+            Modifier(name=m.name, value=m.value, inherited=True)
+            for m in mods
+            if m.name.key not in NOT_INHERITED
+            and (m.inherited or _rel_of(item, m) in INHERITED_RELATIONSHIPS)
+        ]
+    else:
+        passed = list(inherited)
+    # modifier children were consumed above; walk the rest (containers, NUMs, nested items)
+    _walk(children, passed, p, w, depth + 1)
+
+
+def _rel_of(item: Dataset, mod: Modifier) -> str:
+    for child in item.get("ContentSequence") or []:
+        if _text(child.get("ValueType")) == "CODE":
+            name = read_code(child.get("ConceptNameCodeSequence"))
+            if name is not None and name == mod.name:
+                return _text(child.get("RelationshipType"))
+    return ""
+
+
+def _age_from_as(text: str) -> float | None:
+    m = _AS.match(text)
+    if m is None:
+        return None
+    return int(m.group(1)) * _AS_FACTOR[m.group(2)]
+
+
+def _parse_date(text: str) -> dt.date | None:
+    try:
+        return dt.datetime.strptime(text[:8], "%Y%m%d").date()
+    except ValueError:
+        return None
+
+
+def _patient_age(ds: Dataset, obs: list[Observation], warnings: list[str]) -> float | None:
+    raw = _text(ds.get("PatientAge"))
+    if raw:
+        age = _age_from_as(raw)
+        if age is not None:
+            return round(age, 4)
+        warnings.append(f"Patient's Age {raw!r} is not a DICOM age string; ignored")
+    for o in obs:
+        if o.concept.key == SUBJECT_AGE and o.value is not None and o.unit is not None:
+            factor = AGE_UNITS.get(o.unit.value)
+            if factor is not None:
+                return round(o.value * factor, 4)
+    birth = _parse_date(_text(ds.get("PatientBirthDate")))
+    study = _parse_date(_text(ds.get("StudyDate")) or _text(ds.get("ContentDate")))
+    if birth is not None and study is not None and study >= birth:
+        return round((study - birth).days / 365.25, 4)
+    return None
+
+
+def _datetime(date: str, time: str) -> str:
+    if not re.fullmatch(r"\d{8}", date):
+        return ""
+    t = re.sub(r"[^0-9.]", "", time)
+    whole, _, frac = t.partition(".")
+    whole = (whole + "000000")[:6] if whole else "000000"
+    frac = (frac + "000000")[:6]
+    return f"{date}{whole}.{frac}"
+
+
+def _created(ds: Dataset) -> str:
+    for d, t in (("ContentDate", "ContentTime"), ("InstanceCreationDate", "InstanceCreationTime")):
+        value = _datetime(_text(ds.get(d)), _text(ds.get(t)))
+        if value:
+            return value
+    return ""
+
+
+def _template(ds: Dataset, title: Code | None, top: list[Dataset]) -> str | None:
+    try:
+        seq = ds.get("ContentTemplateSequence")
+        if seq:
+            tid = _text(seq[0].get("TemplateIdentifier"))
+            if tid:
+                return tid
+    except Exception:
+        pass
+    names = set()
+    for child in top:
+        c = read_code(child.get("ConceptNameCodeSequence")) if isinstance(child, Dataset) else None
+        if c is not None:
+            names.add(c.key)
+    if names & {("DCM", "125301"), ("DCM", "125302"), ("DCM", "125303")}:
+        return "5300"
+    if title is not None and title.key == ("DCM", "125200"):
+        return "5200"
+    return None
+
+
+def read_document(ds: Dataset) -> SourceDocument:
+    """Observations, coded items and identity of one SR dataset.
+
+    Raises :class:`RejectedInput` when the object is not a supported SR or has no content."""
+    if not isinstance(ds, Dataset):
+        raise RejectedInput("not a DICOM dataset")
+    try:
+        return _read(ds)
+    except RejectedInput:
+        raise
+    except Exception as exc:  # anything unexpected in a malformed object
+        raise RejectedInput(f"malformed SR object ({type(exc).__name__}: {exc})") from None
+
+
+def _read(ds: Dataset) -> SourceDocument:
+    sop_class = _text(ds.get("SOPClassUID"))
+    if not sop_class:
+        raise RejectedInput("no SOP Class UID: not a DICOM composite object")
+    if sop_class not in SUPPORTED_SR_SOP_CLASSES:
+        name = pydicom.uid.UID(sop_class).name if pydicom.uid.UID(sop_class).is_valid else ""
+        shown = f"{name} ({sop_class})" if name and name != sop_class else sop_class
+        raise RejectedInput(f"not a structured report: SOP class {shown} is not an SR class")
+    uid = _text(ds.get("SOPInstanceUID"))
+    if not uid:
+        raise RejectedInput("no SOP Instance UID")
+    if _text(ds.get("ValueType")) not in ("", "CONTAINER"):
+        raise RejectedInput("root content item is not a CONTAINER")
+    top = ds.get("ContentSequence")
+    if top is None or len(top) == 0:
+        raise RejectedInput(f"{SUPPORTED_SR_SOP_CLASSES[sop_class]} has no content tree")
+    w = _Walk(uid=uid)
+    top_items = [c for c in top if isinstance(c, Dataset)]
+    title = read_code(ds.get("ConceptNameCodeSequence"))
+    root_mods = [
+        Modifier(name=m.name, value=m.value, inherited=True)
+        for m in _own_modifiers(ds, "1", w)
+        if m.name.key not in NOT_INHERITED and _rel_of(ds, m) in INHERITED_RELATIONSHIPS
+    ]
+    _walk(top_items, root_mods, "1", w, 1)
+    warnings = list(w.warnings)
+    age = _patient_age(ds, w.observations, warnings)
+    return SourceDocument(
+        sop_instance_uid=uid,
+        sop_class_uid=sop_class,
+        study_instance_uid=_text(ds.get("StudyInstanceUID")),
+        series_instance_uid=_text(ds.get("SeriesInstanceUID")),
+        created=_created(ds),
+        template=_template(ds, title, top_items),
+        document_title=title,
+        patient_age_years=age,
+        observations=tuple(w.observations),
+        coded_items=tuple(w.coded),
+        by_reference_items=w.by_reference,
+        warnings=tuple(warnings),
+    )
+
+
+def read_path(path: str | os.PathLike[str]) -> tuple[Dataset, SourceDocument]:
+    """Read an SR file; RejectedInput for a missing, non-DICOM or unreadable file."""
+    p = os.fspath(path)
+    if not os.path.exists(p):
+        raise RejectedInput(f"file not found: {p}")
+    if os.path.isdir(p):
+        raise RejectedInput(f"is a directory, not a file: {p}")
+    try:
+        ds = pydicom.dcmread(p)
+    except InvalidDicomError:
+        raise RejectedInput(f"not a DICOM file: {p}") from None
+    except Exception as exc:
+        raise RejectedInput(
+            f"unreadable or truncated DICOM file: {p} ({type(exc).__name__})"
+        ) from None
+    try:
+        # force every element to be parsed now (a truncated file fails here, not later)
+        for _ in ds.iterall():
+            pass
+    except Exception as exc:
+        raise RejectedInput(
+            f"unreadable or truncated DICOM file: {p} ({type(exc).__name__})"
+        ) from None
+    return ds, read_document(ds)

@@ -15,7 +15,7 @@ from service import SOFTWARE_NAME, __version__
 from service.errors import UserError
 
 #: sub-command modules, in the order shown by --help
-COMMAND_MODULES = ("grade", "demo")
+COMMAND_MODULES = ("grade", "demo", "serve", "queue")
 
 
 def build_parser() -> argparse.ArgumentParser:

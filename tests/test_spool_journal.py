@@ -1,0 +1,235 @@
+"""Spool (durable files) and journal (SQLite WAL): states, idempotency, back-off, recovery."""
+
+from __future__ import annotations
+
+import sqlite3
+from pathlib import Path
+
+import pytest
+
+from service.store.journal import (
+    FOLDER_DESTINATION,
+    DeliveryState,
+    Journal,
+    NewResult,
+)
+from service.store.spool import Spool, durable_write, safe_name
+
+STUDY = "1.2.826.0.1.3680043.10.999.1"
+
+
+def _result(uid: str, sources: tuple[str, ...], path: Path) -> NewResult:
+    return NewResult(
+        result_uid=uid,
+        series_uid="2.25.77",
+        sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
+        path=path,
+        status="graded",
+        guideline="ase-eacvi-2016",
+        grade="grade-1",
+        filling_pressure="normal",
+        sources=sources,
+        predecessors=(),
+    )
+
+
+@pytest.fixture
+def journal(tmp_path):
+    j = Journal(tmp_path / "journal.sqlite3")
+    yield j
+    j.close()
+
+
+def _receive(j: Journal, sop: str, *, study: str = STUDY, now: float = 1000.0, settle=5.0):
+    j.record_object(
+        sop_instance_uid=sop,
+        study_uid=study,
+        sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
+        transfer_syntax="1.2.840.10008.1.2.1",
+        calling_ae="ECHO1",
+        path=Path(f"/spool/{sop}.dcm"),
+        settle_seconds=settle,
+        now=now,
+    )
+
+
+# -- spool ------------------------------------------------------------------------------------
+
+
+def test_durable_write_replaces_atomically_and_leaves_no_temporaries(tmp_path):
+    target = tmp_path / "a" / "b" / "file.dcm"
+    durable_write(target, b"first")
+    durable_write(target, b"second")
+    assert target.read_bytes() == b"second"
+    assert [p.name for p in target.parent.iterdir()] == ["file.dcm"]
+
+
+def test_spool_layout_and_crash_leftovers_are_cleaned(tmp_path):
+    spool = Spool(tmp_path / "spool")
+    p = spool.write_object(STUDY, "1.2.3.4", b"DICM")
+    assert p == tmp_path / "spool" / "objects" / STUDY / "1.2.3.4.dcm"
+    leftover = p.parent / ".tmp-abc.part"
+    leftover.write_bytes(b"half")
+    assert Spool(tmp_path / "spool").clean_temporaries() == 0  # constructor already cleaned
+    assert not leftover.exists()
+
+
+def test_malformed_uid_never_becomes_a_path():
+    assert safe_name("1.2.3") == "1.2.3"
+    for bad in ("../../etc/passwd", "1.2/3", "", ".", "1.2.3."):
+        name = safe_name(bad)
+        assert "/" not in name and name.startswith("x") and len(name) == 41
+
+
+# -- journal ----------------------------------------------------------------------------------
+
+
+def test_journal_uses_wal_with_full_sync(journal):
+    # sqlite docs (https://sqlite.org/pragma.html): synchronous FULL = 2
+    assert journal._db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+    assert journal._db.execute("PRAGMA synchronous").fetchone()[0] == 2
+
+
+def test_settle_window_then_claim_then_graded_then_delivered(journal, tmp_path):
+    _receive(journal, "1.1", now=1000.0)
+    _receive(journal, "1.2", now=1002.0)  # window restarts at the last object
+    assert journal.claim_due(now=1006.9) == []
+    [claim] = journal.claim_due(now=1007.0)
+    assert claim.object_uids == ("1.1", "1.2")
+    assert journal.study(STUDY)["state"] == "assembled"
+    assert {o["state"] for o in journal.objects(STUDY)} == {"assembled"}
+    queued = journal.finish_grading(
+        claim,
+        result=_result("2.25.1", claim.object_uids, tmp_path / "r.dcm"),
+        destinations=[("PACS", "PACS@127.0.0.1:104"), (FOLDER_DESTINATION, "/out")],
+        now=1008.0,
+    )
+    assert queued
+    assert journal.study(STUDY)["state"] == "graded"
+    assert {o["state"] for o in journal.objects(STUDY)} == {"graded"}
+    due = journal.due_deliveries(now=1008.0)
+    assert sorted(d.destination for d in due) == [FOLDER_DESTINATION, "PACS"]
+    journal.mark_delivered(due[0].id, now=1009.0)
+    assert journal.study(STUDY)["state"] == "graded"  # one still pending
+    journal.mark_delivered(due[1].id, now=1009.0)
+    assert journal.study(STUDY)["state"] == "delivered"
+    assert journal.pending_work() == 0
+
+
+def test_object_arriving_during_grading_reopens_the_study(journal, tmp_path):
+    _receive(journal, "1.1", now=1000.0, settle=0)
+    [claim] = journal.claim_due(now=1000.0)
+    _receive(journal, "1.2", now=1000.5, settle=0)  # while the first grading runs
+    journal.finish_grading(
+        claim,
+        result=_result("2.25.1", claim.object_uids, tmp_path / "r.dcm"),
+        destinations=[("PACS", "x")],
+        now=1001.0,
+    )
+    study = journal.study(STUDY)
+    assert study["state"] == "received", "the late object must trigger a re-grade"
+    [again] = journal.claim_due(now=1001.0)
+    assert again.object_uids == ("1.1", "1.2")
+    assert [r["result_uid"] for r in again.earlier_results] == ["2.25.1"]
+
+
+def test_same_result_uid_is_not_delivered_twice(journal, tmp_path):
+    _receive(journal, "1.1", now=1000.0, settle=0)
+    [claim] = journal.claim_due(now=1000.0)
+    r = _result("2.25.1", ("1.1",), tmp_path / "r.dcm")
+    assert journal.finish_grading(claim, result=r, destinations=[("PACS", "x")], now=1000.0)
+    [d] = journal.due_deliveries(now=1000.0)
+    journal.mark_delivered(d.id, now=1000.0)
+    # the archive re-sends the same study: same sources, same rules -> same result UID
+    _receive(journal, "1.1", now=2000.0, settle=0)
+    [claim2] = journal.claim_due(now=2000.0)
+    assert not journal.finish_grading(claim2, result=r, destinations=[("PACS", "x")], now=2000)
+    assert journal.due_deliveries(now=3000.0) == []
+    assert len(journal.results()) == 1
+    assert journal.study(STUDY)["state"] == "delivered"
+    assert journal.objects(STUDY)[0]["times_received"] == 2
+
+
+def test_backoff_doubles_up_to_the_cap_then_fails_with_reason(journal, tmp_path):
+    _receive(journal, "1.1", now=0.0, settle=0)
+    [claim] = journal.claim_due(now=0.0)
+    journal.finish_grading(
+        claim, result=_result("2.25.1", ("1.1",), tmp_path / "r"), destinations=[("P", "x")], now=0
+    )
+    now = 0.0
+    delays = []
+    for _ in range(4):
+        [d] = journal.due_deliveries(now=now)
+        state = journal.mark_attempt_failed(
+            d.id,
+            "connection refused",
+            max_attempts=5,
+            backoff_initial=1.0,
+            backoff_max=5.0,
+            now=now,
+        )
+        assert state is DeliveryState.pending
+        nxt = journal.next_delivery_at()
+        delays.append(nxt - now)
+        assert journal.due_deliveries(now=nxt - 0.01) == []
+        now = nxt
+    assert delays == [1.0, 2.0, 4.0, 5.0]  # 1 * 2^(n-1), capped at 5
+    [d] = journal.due_deliveries(now=now)
+    state = journal.mark_attempt_failed(
+        d.id, "connection refused", max_attempts=5, backoff_initial=1.0, backoff_max=5.0, now=now
+    )
+    assert state is DeliveryState.failed
+    [failed] = journal.deliveries(states=["failed"])
+    assert failed["last_error"] == "gave up after 5 attempts: connection refused"
+    study = journal.study(STUDY)
+    assert study["state"] == "failed" and "connection refused" in study["reason"]
+    # never dropped: re-queue puts it back with fresh attempts
+    assert journal.requeue_failed(now=now) == 1
+    [again] = journal.due_deliveries(now=now)
+    assert again.attempts == 0
+    assert journal.study(STUDY)["state"] == "graded"
+
+
+def test_grading_failure_is_recorded_with_reason(journal):
+    _receive(journal, "1.1", now=0.0, settle=0)
+    [claim] = journal.claim_due(now=0.0)
+    journal.finish_grading(claim, result=None, failure="rejected: no echo measurement", now=1)
+    study = journal.study(STUDY)
+    assert (study["state"], study["reason"]) == ("failed", "rejected: no echo measurement")
+    # a later SR of the same study opens it again
+    _receive(journal, "1.2", now=2.0, settle=0)
+    assert journal.study(STUDY)["state"] == "received"
+
+
+def test_recover_after_crash_mid_grading_and_state_survives_reopen(tmp_path):
+    path = tmp_path / "j.sqlite3"
+    j = Journal(path)
+    _receive(j, "1.1", now=0.0, settle=0)
+    _receive(j, "2.1", study="1.2.9", now=0.0, settle=100)
+    j.claim_due(now=0.0)  # then the process dies (no finish_grading)
+    j._db.close()  # no clean close of the journal object
+    j2 = Journal(path)
+    counts = j2.recover(now=50.0)
+    assert counts["resumed_grading"] == 1
+    assert j2.study(STUDY)["state"] == "received"
+    [claim] = j2.claim_due(now=50.0)  # due again at once
+    assert claim.study_uid == STUDY
+    assert j2.study("1.2.9")["state"] == "received"  # its window is still running
+    j2.close()
+
+
+def test_regrade_request_from_another_connection(tmp_path, journal):
+    _receive(journal, "1.1", now=0.0, settle=0)
+    [claim] = journal.claim_due(now=0.0)
+    journal.finish_grading(claim, result=None, failure="x", now=0.0)
+    other = Journal(journal.path)  # e.g. the queue command while the node runs
+    assert other.request_regrade(STUDY, now=10.0)
+    assert not other.request_regrade("9.9.9")
+    other.close()
+    [again] = journal.claim_due(now=10.0)
+    assert again.generation == claim.generation + 1
+
+
+def test_incomplete_study_rows_are_refused_by_the_schema(journal):
+    with pytest.raises(sqlite3.Error):
+        journal._db.execute("INSERT INTO studies (study_uid) VALUES ('x')")

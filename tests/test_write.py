@@ -186,7 +186,9 @@ def measurements() -> Measurements:
             Measure.lvef: MeasureValue(
                 measure=Measure.lvef, value=62.0, unit="%", origin=Origin.device_mean, n=2
             ),
-            Measure.age: MeasureValue(measure=Measure.age, value=67, unit="a", origin=Origin.patient),
+            Measure.age: MeasureValue(
+                measure=Measure.age, value=67, unit="a", origin=Origin.patient
+            ),
         },
         notes=("Reported E/e′ differs from its components by 12 %; components used.",),
     )  # fmt: skip

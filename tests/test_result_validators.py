@@ -38,9 +38,8 @@ TIMEOUT = 120  # seconds; bound for each external process
 
 
 def _tool(name: str) -> str:
+    """Path of an external tool (PATH, then the venv's bin); fail in CI, skip elsewhere."""
     found = shutil.which(name) or shutil.which(name, path=str(Path(sys.executable).parent))
-    if name.startswith("/"):
-        found = name if os.access(name, os.X_OK) else None
     if found:
         return found
     message = f"{name} not found (dicom3tools / DCMTK are required test dependencies)"
@@ -150,3 +149,14 @@ def test_dsrdump_negative_control(tmp_path):
     rc, _, err = dsrdump(save(ds, tmp_path / "bad.dcm"))
     assert rc != 0
     assert _dsrdump_problems(err)
+
+
+def test_missing_tool_fails_in_ci(monkeypatch):
+    # the validators are hard dependencies in CI: a missing one must fail, never skip
+    monkeypatch.setattr(shutil, "which", lambda *a, **k: None)
+    monkeypatch.setenv("CI", "1")
+    with pytest.raises(pytest.fail.Exception, match="required test dependencies"):
+        _tool("dciodvfy")
+    monkeypatch.delenv("CI")
+    with pytest.raises(pytest.skip.Exception, match="not found"):
+        _tool("dciodvfy")

@@ -212,10 +212,20 @@ FILLING_PRESSURE_VALUES: dict[FillingPressure, CodeDef] = {
 
 GUIDELINE_VALUES: dict[Guideline, CodeDef] = {
     Guideline.ase_eacvi_2016: _p(
-        "GL-ASEEACVI2016", "ASE/EACVI 2016 diastolic function recommendations", "Nagueh 2016"
+        "GL-ASEEACVI2016",
+        "ASE/EACVI 2016 diastolic function recommendations",
+        "Nagueh et al. J Am Soc Echocardiogr 2016;29:277-314",
     ),
-    Guideline.ase_2025: _p("GL-ASE2025", "ASE 2025 diastolic function recommendations", "2025"),
-    Guideline.bse_2024: _p("GL-BSE2024", "BSE 2024 diastolic function guidance", "2024"),
+    Guideline.ase_2025: _p(
+        "GL-ASE2025",
+        "ASE 2025 diastolic function recommendations",
+        "Nagueh et al. J Am Soc Echocardiogr 2025;38(7)",
+    ),
+    Guideline.bse_2024: _p(
+        "GL-BSE2024",
+        "BSE 2024 diastolic function guidance",
+        "Robinson et al. Echo Res Pract 2024;11:16",
+    ),
 }
 
 #: short names used in plain-language text

@@ -279,3 +279,99 @@ def run_storescu(
 
 def which(name: str) -> str | None:
     return shutil.which(name)
+
+
+# ---------------------------------------------------------------------------------------------
+# Echo measurement SRs (the real pipeline grades these)
+# ---------------------------------------------------------------------------------------------
+
+
+def echo_sr(
+    seed: str,
+    *,
+    instance: int = 1,
+    study_uid: str | None = None,
+    content_time: str = "101500",
+    values: dict[str, float] | None = None,
+    patient_name: str = "Harbourvale^Test",
+    patient_id: str = "HV-T-0001",
+) -> Dataset:
+    """An invented TID 5300 echo SR (Harbour Vale Cardiac Centre) built by the project's
+    echo SR builder.  ``values``: canonical measure name -> value in its canonical unit;
+    the default is a complete normal-LVEF set."""
+    from service.model import Measure
+    from service.sr.echo_builder import EchoItem, Patient, Study, build_echo_sr
+
+    values = values or {
+        "mitral_e": 80.0,
+        "mitral_a": 60.0,
+        "e_prime_septal": 6.0,
+        "e_prime_lateral": 8.0,
+        "tr_peak_velocity": 3.0,
+        "lavi": 40.0,
+        "lvef": 60.0,
+    }
+    items = [EchoItem(measure=Measure(k), value=v) for k, v in values.items()]
+    return build_echo_sr(
+        items,
+        patient=Patient(name=patient_name, id=patient_id),
+        study=Study(study_uid=study_uid, seed=seed, content_time=content_time),
+        instance_number=instance,
+    )
+
+
+def evidence_uids(result: Dataset) -> set[str]:
+    """SOP Instance UIDs in the result's Current Requested Procedure Evidence Sequence
+    (PS3.3 C.17.2: the instances the document was made from)."""
+    out = set()
+    for study in result.get("CurrentRequestedProcedureEvidenceSequence", []):
+        for series in study.get("ReferencedSeriesSequence", []):
+            for item in series.get("ReferencedSOPSequence", []):
+                out.add(str(item.ReferencedSOPInstanceUID))
+    return out
+
+
+def predecessor_uids(result: Dataset) -> set[str]:
+    out = set()
+    for study in result.get("PredecessorDocumentsSequence", []):
+        for series in study.get("ReferencedSeriesSequence", []):
+            for item in series.get("ReferencedSOPSequence", []):
+                out.add(str(item.ReferencedSOPInstanceUID))
+    return out
+
+
+def send(
+    datasets: Sequence[Dataset],
+    port: int,
+    *,
+    calling: str = "SCANNER1",
+    called: str = NODE_AE,
+    transfer_syntaxes: Sequence[str] | None = None,
+) -> list[int]:
+    """C-STORE over one pynetdicom association; the status of each object."""
+    from pydicom.uid import (
+        DeflatedExplicitVRLittleEndian,
+        ExplicitVRLittleEndian,
+        ImplicitVRLittleEndian,
+    )
+    from pynetdicom import AE
+
+    ts = list(
+        transfer_syntaxes
+        or [ExplicitVRLittleEndian, ImplicitVRLittleEndian, DeflatedExplicitVRLittleEndian]
+    )
+    ae = AE(ae_title=calling)
+    ae.acse_timeout = ae.dimse_timeout = ae.network_timeout = 20
+    for uid in sorted({str(ds.SOPClassUID) for ds in datasets}):
+        ae.add_requested_context(uid, ts)
+    assoc = ae.associate(LOOPBACK, port, ae_title=called)
+    assert assoc.is_established, "association refused"
+    out = []
+    try:
+        for ds in datasets:
+            status = assoc.send_c_store(ds)
+            out.append(int(status.Status) if "Status" in status else -1)
+    finally:
+        if assoc.is_established:
+            assoc.release()
+    return out

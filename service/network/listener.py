@@ -174,10 +174,11 @@ class Listener:
 
     def _on_rejected(self, event: Any) -> None:
         req = event.assoc.requestor
+        called = getattr(getattr(req, "primitive", None), "called_ae_title", None)
         log.warning(
             "association rejected: calling AE %r, called AE %r, from %s:%s",
             req.ae_title,
-            event.assoc.acceptor.ae_title,
+            str(called).strip() if called is not None else "?",
             req.address,
             req.port,
         )

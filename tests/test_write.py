@@ -351,6 +351,8 @@ def test_reasoning_notes_caution_summary_in_order():
     ds = build("indeterminate")
     a = CASES["indeterminate"].primary
     assert [i.TextValue for i in find(ds, C.REASONING)] == list(a.reasoning)
+    # TEXT content items hold UT (PS3.3 C.17.3.2.1, Text Value)
+    assert all(i["TextValue"].VR == "UT" for _, i in walk(ds) if i.ValueType == "TEXT")
     assert [i.TextValue for i in find(ds, C.NOTE)] == list(a.notes)
     # the exact caution string, in the Impressions container (19005-8 LN, PS3.16 CID 7001)
     (impressions,) = find(ds, C.IMPRESSIONS)
@@ -549,3 +551,57 @@ def test_source_without_uid_is_a_clear_error():
     del src.SOPInstanceUID
     with pytest.raises(UserError, match="no SOPInstanceUID"):
         build("normal", sources=[src])
+
+
+def test_excluded_observations_listed_with_reason():
+    from service.model import Code, Exclusion
+
+    m = measurements().model_copy(
+        update={
+            "excluded": (
+                Exclusion(
+                    path="1.3.2",
+                    concept=Code(value="80070-6", scheme="LN", meaning="Mitral valve E-wave Vmax"),
+                    measure=Measure.mitral_e,
+                    value=3000.0,
+                    unit="cm/s",
+                    reason="physiologically impossible (unit error?)",
+                ),
+            )
+        }
+    )
+    ds = build_result_sr(
+        [make_source()],
+        CASES["normal"],
+        m,
+        sop_instance_uid=derive_uid("x"),
+        series_instance_uid=derive_uid("y"),
+        content_datetime=WHEN,
+    )
+    (item,) = find(ds, C.EXCLUDED_OBSERVATION)
+    assert item.TextValue == (
+        "Mitral valve E-wave Vmax (80070-6, LN) = 3000 cm/s: "
+        "physiologically impossible (unit error?)"
+    )
+
+
+def test_timezone_aware_content_time_sets_offset():
+    from datetime import timedelta, timezone
+
+    when = datetime(2026, 3, 14, 9, 26, 53, tzinfo=timezone(timedelta(hours=-3, minutes=-30)))
+    ds = build("normal", when=when)
+    # Timezone Offset From UTC, "&ZZXX" form (PS3.3 C.12.1)
+    assert ds.TimezoneOffsetFromUTC == "-0330"
+    assert str(ds.ContentTime) == "092653"
+
+
+def test_source_from_another_study_is_other_evidence():
+    # a source outside the study of sources[0] goes to Pertinent Other Evidence (PS3.3 C.17.2)
+    first = make_source(1)
+    other = make_source(2, study=derive_uid("another study"))
+    ds = build("normal", sources=[first, other])
+    (current,) = ds.CurrentRequestedProcedureEvidenceSequence
+    (pertinent,) = ds.PertinentOtherEvidenceSequence
+    assert current.StudyInstanceUID == first.StudyInstanceUID
+    assert pertinent.StudyInstanceUID == other.StudyInstanceUID
+    assert ds.StudyInstanceUID == first.StudyInstanceUID

@@ -123,9 +123,13 @@ def _num(item: Dataset, path: str, w: _Walk) -> tuple[float | None, Code | None]
     mv = seq[0]
     unit = read_code(mv.get("MeasurementUnitsCodeSequence"))
     value: float | None = None
-    raw = mv.get("FloatingPointValue")
-    if raw is None or (hasattr(raw, "__len__") and not isinstance(raw, str) and len(raw) == 0):
-        raw = mv.get("NumericValue")
+    try:
+        raw = mv.get("FloatingPointValue")
+        if raw is None or (hasattr(raw, "__len__") and not isinstance(raw, str) and len(raw) == 0):
+            raw = mv.get("NumericValue")
+    except Exception as exc:  # e.g. a DS element that is not a number
+        w.warnings.append(f"{path}: unreadable measured value ({exc}); value ignored")
+        return None, unit
     if raw is not None:
         if not isinstance(raw, str | bytes) and hasattr(raw, "__len__"):
             raw = raw[0] if len(raw) else None
@@ -169,8 +173,7 @@ def _visit(item: Dataset, inherited: list[Modifier], p: str, w: _Walk, depth: in
             w.coded.append(CodedItem(path=p, concept=concept, value=value, source_uid=w.uid))
         return
     own = _own_modifiers(item, p, w)
-    own_keys = {m.name.key for m in own}
-    mods = own + [m for m in inherited if m.name.key not in own_keys]
+    mods = own + list(inherited)  # own first: Observation.modifier() returns the nearest
     if vt == "NUM":
         concept = read_code(item.get("ConceptNameCodeSequence"))
         if concept is None:

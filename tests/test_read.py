@@ -1,0 +1,220 @@
+"""SR reader: SOP classes, tree walking, modifiers, identity, defensive reading."""
+
+import copy
+
+import pydicom
+import pytest
+from pydicom.dataelem import RawDataElement
+from pydicom.dataset import Dataset
+from pydicom.sequence import Sequence as DicomSequence
+from pydicom.tag import Tag
+
+from service.errors import RejectedInput
+from service.model import Code, Measure
+from service.sr.echo_builder import (
+    EchoItem,
+    Encoding,
+    Patient,
+    SopClass,
+    Study,
+    Template,
+    build_echo_sr,
+    code_item,
+    container,
+    num_item,
+)
+from service.sr.read import SUPPORTED_SR_SOP_CLASSES, read_document, read_path
+from service.vocabulary.standard import code
+
+M = Measure
+E = [EchoItem(measure=M.mitral_e, value=80)]
+
+
+def test_supported_sop_classes_are_sr_classes_known_to_pydicom():
+    # source: PS3.4 / PS3.6 UID registry as bundled in pydicom
+    for uid, name in SUPPORTED_SR_SOP_CLASSES.items():
+        assert "SR" in pydicom.uid.UID(uid).name or "Structured" in pydicom.uid.UID(uid).name
+        assert name
+    assert "1.2.840.10008.5.1.4.1.1.88.72" in SUPPORTED_SR_SOP_CLASSES
+
+
+@pytest.mark.parametrize("sop_class", list(SopClass))
+def test_every_sr_class_is_read(sop_class):
+    doc = read_document(build_echo_sr(E, sop_class=sop_class))
+    assert doc.sop_class_uid == sop_class.value
+    assert doc.observations[0].value == 80
+
+
+def test_non_sr_class_is_rejected_by_name():
+    ds = build_echo_sr(E)
+    ds.SOPClassUID = "1.2.840.10008.5.1.4.1.1.6.1"  # Ultrasound Image Storage
+    with pytest.raises(RejectedInput, match="Ultrasound Image Storage"):
+        read_document(ds)
+
+
+@pytest.mark.parametrize(
+    ("mutate", "reason"),
+    [
+        (lambda ds: delattr(ds, "ContentSequence"), "no content tree"),
+        (lambda ds: setattr(ds, "ContentSequence", DicomSequence([])), "no content tree"),
+        (lambda ds: delattr(ds, "SOPInstanceUID"), "no SOP Instance UID"),
+        (lambda ds: delattr(ds, "SOPClassUID"), "no SOP Class UID"),
+    ],
+)
+def test_unusable_objects_are_rejected(mutate, reason):
+    ds = build_echo_sr(E)
+    mutate(ds)
+    with pytest.raises(RejectedInput, match=reason):
+        read_document(ds)
+
+
+def test_identity_age_created_template_and_rhythm():
+    af = Code(value="49436004", scheme="SCT", meaning="Atrial Fibrillation")
+    ds = build_echo_sr(
+        E,
+        study=Study(study_uid="1.2.3.4", content_date="20260302", content_time="0815"),
+        rhythm=af,
+    )
+    doc = read_document(ds)
+    assert doc.study_instance_uid == "1.2.3.4"
+    assert doc.created == "20260302081500.000000"
+    assert doc.template == "5300"
+    assert doc.patient_age_years == 66
+    assert doc.document_title.value == "125200"
+    (rhythm,) = doc.coded_items
+    assert rhythm.concept.value == "8884-9" and rhythm.value == af
+
+
+@pytest.mark.parametrize(
+    ("age", "subject_age", "expected"),
+    [
+        ("030M", None, 2.5),
+        ("012W", None, 12 * 7 / 365.25),
+        (None, (70, "a"), 70),
+        (None, (18, "mo"), 1.5),
+        (None, None, 65.97),  # birth 1960-03-15, study 2026-03-01
+    ],
+)
+def test_patient_age_sources(age, subject_age, expected):
+    raw = []
+    if subject_age is not None:
+        raw.append(num_item(code("subject_age"), subject_age[0], subject_age[1]))
+    ds = build_echo_sr(E, patient=Patient(age=age), raw_content=raw)
+    doc = read_document(ds)
+    assert doc.patient_age_years == pytest.approx(expected, abs=0.01)
+
+
+def test_created_falls_back_to_instance_creation():
+    ds = build_echo_sr(E)
+    del ds.ContentDate
+    del ds.ContentTime
+    ds.InstanceCreationDate, ds.InstanceCreationTime = "20250101", "101010.5"
+    assert read_document(ds).created == "20250101101010.500000"
+
+
+def test_nested_containers_inherit_and_item_modifiers_override():
+    doc = read_document(
+        build_echo_sr(
+            [EchoItem(measure=M.e_prime_septal, value=6, encoding=Encoding.tid5200)],
+            template=Template.tid5200,
+        )
+    )
+    (obs,) = doc.observations
+    site = obs.modifier(code("finding_site"))
+    assert site == code("medial_annulus")  # own beats the section's Left Ventricle
+    inherited = {(m.name, m.value) for m in obs.modifiers if m.inherited}
+    assert inherited == {
+        (code("image_mode"), code("tdi")),
+        (code("finding_site"), code("left_ventricle")),  # kept, but after the own site
+    }
+    own = [m for m in obs.modifiers if not m.inherited]
+    assert own[0].value == code("medial_annulus")
+    assert obs.modifiers[0] == own[0]
+    assert obs.path == "1.1.2.2"  # root 1 > section 1 > group 2 (after Finding Site) > item 2
+
+
+def test_selection_and_derivation_are_modifiers_not_inherited():
+    item = EchoItem(
+        measure=M.mitral_e, value=80, selection="user", derivation_mean=True, encoding="tid5200"
+    )
+    doc = read_document(build_echo_sr([item], template=Template.tid5200))
+    (obs,) = doc.observations
+    assert obs.modifier(code("selection_status")) == code("user_chosen")
+    assert obs.modifier(code("derivation")) == code("mean")
+
+
+def test_floating_point_value_is_preferred():
+    ds = build_echo_sr([EchoItem(measure=M.mitral_e, value=80, float_value=True)])
+    mv = ds.ContentSequence[0].ContentSequence[0].MeasuredValueSequence[0]
+    mv.FloatingPointValue = 80.123456789
+    assert read_document(ds).observations[0].value == 80.123456789
+
+
+def test_qualifier_and_empty_value():
+    q = Code(value="114007", scheme="DCM", meaning="Measurement not attempted")
+    doc = read_document(build_echo_sr([EchoItem(measure=M.mitral_e, value=None, qualifier=q)]))
+    (obs,) = doc.observations
+    assert obs.value is None and obs.qualifier == q
+
+
+def test_by_reference_items_are_counted_not_followed():
+    ref = Dataset()
+    ref.RelationshipType = "INFERRED FROM"
+    ref.ReferencedContentItemIdentifier = [1, 1, 1]
+    num = num_item(code("mv_e_vmax"), 80, "cm/s", [ref])
+    doc = read_document(build_echo_sr([], raw_content=[container(code("mv_e_vmax"), [num])]))
+    assert doc.by_reference_items == 1
+    assert len(doc.observations) == 1
+
+
+def test_malformed_items_become_warnings():
+    good = num_item(code("mv_e_vmax"), 80, "cm/s")
+    bad_value = num_item(code("mv_a_vmax"), 60, "cm/s")
+    # as read from a file: a raw DS element whose text is not a number
+    bad_value.MeasuredValueSequence[0][0x0040A30A] = RawDataElement(
+        Tag(0x0040A30A), "DS", 3, b"abc", 0, True, True
+    )
+    no_concept = num_item(code("mv_a_vmax"), 60, "cm/s")
+    no_concept.ConceptNameCodeSequence = DicomSequence([])
+    no_type = Dataset()
+    no_type.RelationshipType = "CONTAINS"
+    bad_modifier = num_item(
+        code("tr_vmax"), 2.5, "m/s", [code_item(code("finding_site"), code("left_atrium"))]
+    )
+    del bad_modifier.ContentSequence[0].ConceptCodeSequence
+    ds = build_echo_sr([], raw_content=[good, bad_value, no_concept, no_type, bad_modifier])
+    doc = read_document(ds)
+    assert [o.concept.value for o in doc.observations] == ["80070-6", "80066-4", "79921-3"]
+    assert doc.observations[1].value is None
+    assert len(doc.warnings) == 4
+    assert any("measured value" in w for w in doc.warnings)
+
+
+def test_wrong_python_types_never_escape_as_other_exceptions():
+    ds = build_echo_sr(E)
+    broken = copy.deepcopy(ds)
+    broken.ContentSequence[0].ContentSequence[0].MeasuredValueSequence = DicomSequence([Dataset()])
+    doc = read_document(broken)
+    assert doc.observations[0].value is None
+    with pytest.raises(RejectedInput):
+        read_document("not a dataset")  # type: ignore[arg-type]
+
+
+def test_read_path_errors(tmp_path):
+    with pytest.raises(RejectedInput, match="file not found"):
+        read_path(tmp_path / "missing.dcm")
+    text = tmp_path / "notes.txt"
+    text.write_text("hello")
+    with pytest.raises(RejectedInput, match="not a DICOM file"):
+        read_path(text)
+    good = tmp_path / "good.dcm"
+    build_echo_sr(E).save_as(good, enforce_file_format=True)
+    _, doc = read_path(good)
+    assert doc.observations[0].value == 80
+    truncated = tmp_path / "truncated.dcm"
+    data = good.read_bytes()
+    truncated.write_bytes(data[: len(data) // 2])
+    with pytest.raises(RejectedInput, match="truncated"):
+        read_path(truncated)
+    with pytest.raises(RejectedInput, match="directory"):
+        read_path(tmp_path)

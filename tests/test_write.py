@@ -249,6 +249,31 @@ CASES: dict[str, AssessmentSet] = {
                    pathway=Pathway.sinus_general, criteria=criteria_a(12, 6, 2.5, 33)),
         disagreements=("2016: grade 1; 2025: grade 2 — the 2025 e′ cut-off differs.",),
     ),
+    # empty strings wherever the model allows them: no empty TEXT item may be written
+    "sparse": _set(
+        Assessment(
+            guideline=Guideline.ase_eacvi_2016, guideline_citation="", rule_set_version="",
+            pathway=Pathway.normal_lvef, pathway_reason="", grade=Grade.indeterminate,
+            filling_pressure=FillingPressure.indeterminate,
+            criteria=(Criterion(
+                id="", step="", label="", measure=Measure.lavi, value=None, unit="mL/m2",
+                comparison=Comparison.gt, threshold=34, verdict=Verdict.unavailable, source="",
+            ),),
+            reasoning=("", "Only one criterion."), notes=("",),
+            borderline=(BorderlineFlag(
+                criterion_id="", measure=Measure.lavi, value=33.0, threshold=34,
+                alternative_grade=Grade.grade_2,
+                alternative_filling_pressure=FillingPressure.elevated, text="",
+            ),),
+            supporting=(SupportingFinding(name="", text=""),),
+        ),
+        Assessment(
+            guideline=Guideline.ase_2025, guideline_citation="", rule_set_version="",
+            pathway=Pathway.sinus_general, pathway_reason="", grade=Grade.indeterminate,
+            filling_pressure=FillingPressure.unknown,
+        ),
+        disagreements=("",),
+    ),
     "af": _set(
         assessment(Grade.not_gradable, FillingPressure.elevated, rhythm=Rhythm.af,
                    pathway=Pathway.atrial_fibrillation, criteria=criteria_a(12, 6, 3.1, 40))
@@ -605,3 +630,13 @@ def test_source_from_another_study_is_other_evidence():
     assert current.StudyInstanceUID == first.StudyInstanceUID
     assert pertinent.StudyInstanceUID == other.StudyInstanceUID
     assert ds.StudyInstanceUID == first.StudyInstanceUID
+
+
+def test_no_empty_text_items():
+    # Text Value is Type 1 (PS3.3 C.17.3.2.1): empty model strings are left out or replaced
+    ds = build("sparse")
+    texts = [i.TextValue for _, i in walk(ds) if i.ValueType == "TEXT"]
+    assert texts and all(t.strip() for t in texts)
+    assert [i.TextValue for i in find(ds, C.REASONING)] == ["Only one criterion."]
+    assert find(ds, C.CRITERION_RULE)[0].TextValue == "lavi > 34 mL/m2"
+    assert find(ds, C.DISAGREEMENT)[0].TextValue.startswith("The guidelines evaluated agree")

@@ -166,16 +166,24 @@ def _num(name: C.CodeDef, value: float, unit: str, rel: Rel) -> NumContentItem:
     )
 
 
-def _container(name: C.CodeDef, children: list[Dataset], rel: Rel | None = Rel.CONTAINS):
+def _container(
+    name: C.CodeDef, children: Sequence[Dataset | None], rel: Rel | None = Rel.CONTAINS
+) -> Dataset:
     item = ContainerContentItem(name=name.code, relationship_type=rel)
-    item.ContentSequence = children
+    item.ContentSequence = [c for c in children if c is not None]
     return item
 
 
-def _with(item: Dataset, children: list[Dataset]) -> Dataset:
-    if children:
-        item.ContentSequence = children
+def _with(item: Dataset, children: Sequence[Dataset | None]) -> Dataset:
+    kept = [c for c in children if c is not None]
+    if kept:
+        item.ContentSequence = kept
     return item
+
+
+def _opt_text(name: C.CodeDef, value: str, rel: Rel) -> TextContentItem | None:
+    """TEXT item, or None for an empty value (Text Value is Type 1, PS3.3 C.17.3.2.1)."""
+    return _text(name, value, rel) if value and value.strip() else None
 
 
 def _finite(value: float | None) -> bool:
@@ -193,22 +201,23 @@ def criterion_item(c: Criterion) -> Dataset:
     """A criterion as INFERRED FROM evidence: NUM with the value used (TEXT "not available"
     when there is none), and its verdict, rule, cut-off, step and source as properties."""
     concept = C.MEASURE_CONCEPTS[c.measure]
-    props = [
+    rule = c.label or f"{c.measure.value} {c.comparison.value} {c.threshold:g} {c.unit}"
+    props: list[Dataset | None] = [
         _code(C.CRITERION_VERDICT, _VERDICTS[c.verdict], Rel.HAS_PROPERTIES),
-        _text(C.CRITERION_RULE, c.label, Rel.HAS_PROPERTIES),
+        _text(C.CRITERION_RULE, rule, Rel.HAS_PROPERTIES),
     ]
     if _finite(c.threshold):
         props.append(_num(C.CUTOFF, c.threshold, c.unit, Rel.HAS_PROPERTIES))
     props += [
-        _text(C.ALGORITHM_STEP, c.step, Rel.HAS_PROPERTIES),
-        _text(C.CUTOFF_SOURCE, c.source, Rel.HAS_PROPERTIES),
-        _text(C.CRITERION_ID, c.id, Rel.HAS_PROPERTIES),
+        _opt_text(C.ALGORITHM_STEP, c.step, Rel.HAS_PROPERTIES),
+        _opt_text(C.CUTOFF_SOURCE, c.source, Rel.HAS_PROPERTIES),
+        _opt_text(C.CRITERION_ID, c.id, Rel.HAS_PROPERTIES),
     ]
     if _finite(c.value):
         item: Dataset = _num(concept, c.value, c.unit, Rel.INFERRED_FROM)  # type: ignore[arg-type]
     else:
         item = _text(concept, C.NOT_AVAILABLE_TEXT, Rel.INFERRED_FROM)
-    return _with(item, [p for p in props if p is not None])
+    return _with(item, props)
 
 
 def _borderline_items(flags: Sequence[BorderlineFlag]) -> Dataset:
@@ -216,9 +225,13 @@ def _borderline_items(flags: Sequence[BorderlineFlag]) -> Dataset:
     for f in flags:
         evidence.append(
             _with(
-                _text(C.BORDERLINE_CRITERION, f.text, Rel.INFERRED_FROM),
+                _text(
+                    C.BORDERLINE_CRITERION,
+                    f.text or f"{f.measure.value} {f.value:g} is near its cut-off {f.threshold:g}",
+                    Rel.INFERRED_FROM,
+                ),
                 [
-                    _text(C.CRITERION_ID, f.criterion_id, Rel.HAS_PROPERTIES),
+                    _opt_text(C.CRITERION_ID, f.criterion_id, Rel.HAS_PROPERTIES),
                     _code(
                         C.ALTERNATIVE_GRADE,
                         C.GRADE_VALUES[f.alternative_grade],
@@ -249,19 +262,22 @@ def _supporting_item(s: SupportingFinding) -> Dataset:
         props.append(
             _code(C.AGREES_WITH_RESULT, C.YES if s.agrees_with_result else C.NO, Rel.HAS_PROPERTIES)
         )
-    return _with(_text(C.SUPPORTING_FINDING, f"{s.name}: {s.text}", Rel.CONTAINS), props)
+    text = ": ".join(t for t in (s.name, s.text) if t) or "supporting finding"
+    return _with(_text(C.SUPPORTING_FINDING, text, Rel.CONTAINS), props)
 
 
 def assessment_container(a: Assessment, *, primary: bool) -> Dataset:
-    items: list[Dataset] = [
+    items: list[Dataset | None] = [
         _code(C.ASSESSMENT_ROLE, C.PRIMARY if primary else C.COMPARISON, Rel.CONTAINS),
         _code(C.GUIDELINE, C.GUIDELINE_VALUES[a.guideline], Rel.CONTAINS),
-        _text(C.GUIDELINE_CITATION, a.guideline_citation or a.guideline.value, Rel.CONTAINS),
+        _text(
+            C.GUIDELINE_CITATION, a.guideline_citation.strip() or a.guideline.value, Rel.CONTAINS
+        ),
         _text(C.ALGORITHM_NAME, f"{service.SOFTWARE_NAME} {a.guideline.value}", Rel.CONTAINS),
-        _text(C.ALGORITHM_VERSION, a.rule_set_version or "unspecified", Rel.CONTAINS),
+        _text(C.ALGORITHM_VERSION, a.rule_set_version.strip() or "unspecified", Rel.CONTAINS),
     ]
     pathway = _code(C.PATHWAY, C.PATHWAY_VALUES[a.pathway], Rel.CONTAINS)
-    if a.pathway_reason:
+    if a.pathway_reason.strip():
         pathway.ContentSequence = [_text(C.PATHWAY_REASON, a.pathway_reason, Rel.INFERRED_FROM)]
     items.append(pathway)
     items.append(_code(C.CARDIAC_RHYTHM, C.RHYTHM_VALUES[a.rhythm], Rel.CONTAINS))
@@ -280,8 +296,8 @@ def assessment_container(a: Assessment, *, primary: bool) -> Dataset:
         )
     )
     items.append(_borderline_items(a.borderline))
-    items += [_text(C.REASONING, r, Rel.CONTAINS) for r in a.reasoning if r]
-    items += [_text(C.NOTE, n, Rel.CONTAINS) for n in a.notes if n]
+    items += [_opt_text(C.REASONING, r, Rel.CONTAINS) for r in a.reasoning]
+    items += [_opt_text(C.NOTE, n, Rel.CONTAINS) for n in a.notes]
     items += [_supporting_item(s) for s in a.supporting]
     return _container(C.ASSESSMENT, items)
 
@@ -291,7 +307,7 @@ def measurements_container(m: Measurements) -> Dataset:
     for measure, mv in m.values.items():
         if not _finite(mv.value):
             continue
-        children: list[Dataset] = []
+        children: list[Dataset | None] = []
         if mv.origin in (Origin.device_mean, Origin.mean_of_repeats):
             children.append(_code(C.DERIVATION, C.MEAN, Rel.HAS_CONCEPT_MOD))
         elif mv.origin is Origin.derived:
@@ -302,7 +318,8 @@ def measurements_container(m: Measurements) -> Dataset:
         num = _num(C.MEASURE_CONCEPTS[measure], mv.value, mv.unit, Rel.CONTAINS)
         items.append(_with(num, children))
     for note in m.notes:
-        items.append(_text(C.MEASUREMENT_NOTE, note, Rel.CONTAINS))
+        if note.strip():
+            items.append(_text(C.MEASUREMENT_NOTE, note, Rel.CONTAINS))
     for ex in m.excluded:
         what = f"{ex.concept.meaning or ex.concept.value} ({ex.concept.value}, {ex.concept.scheme})"
         if ex.value is not None:
@@ -329,7 +346,7 @@ def content_tree(
     body: list[Dataset] = [assessment_container(assessments.primary, primary=True)]
     body += [assessment_container(o, primary=False) for o in assessments.others]
     if assessments.others:
-        sentences = list(assessments.disagreements) or [
+        sentences = [d for d in assessments.disagreements if d.strip()] or [
             "The guidelines evaluated agree on grade and filling pressure."
         ]
         body.append(
@@ -344,7 +361,7 @@ def content_tree(
             C.IMPRESSIONS,
             [
                 _text(C.IMPRESSION, summary_text(assessments), Rel.CONTAINS),
-                _text(C.CAUTION, assessments.primary.caution or CAUTION, Rel.CONTAINS),
+                _text(C.CAUTION, CAUTION, Rel.CONTAINS),
             ],
         )
     )

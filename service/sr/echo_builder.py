@@ -400,13 +400,15 @@ def _num_for(item: EchoItem, concept: Code, children: list[Dataset]) -> Dataset:
     )
 
 
-def _stage_mod() -> Dataset:
-    return code_item(STAGE, code("valsalva"), "HAS ACQ CONTEXT")
+def _stage_mod(relationship: str = "HAS ACQ CONTEXT") -> Dataset:
+    """Stage = Valsalva; on a NUM of TID 5300 content as a concept modifier (the Simplified
+    Adult Echo SR IOD allows no HAS ACQ CONTEXT below a NUM, DCMTK dsrdump)."""
+    return code_item(STAGE, code("valsalva"), relationship)
 
 
 def _item_flat(item: EchoItem) -> tuple[str, Dataset]:
     """Item for the TID 5300 containers: returns (container key, NUM)."""
-    stage = [_stage_mod()] if item.stage_valsalva else []
+    stage = [_stage_mod("HAS CONCEPT MOD")] if item.stage_valsalva else []
     if item.encoding is Encoding.pre:
         if item.measure not in PRE:
             raise ValueError(f"no pre-coordinated CID 12300 code for {item.measure}")

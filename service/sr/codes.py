@@ -14,6 +14,15 @@ meaning never changes; new meanings get new codes; code values are at most 16 ch
 Design choice for the grade: all six grade values are private, one closed value set, because
 "normal diastolic function" is a narrower statement than SNOMED CT 17621005 "Normal" and a
 reader of the coded value should never have to mix two schemes to interpret one concept.
+Filling pressure values are standard (PS3.16 CID 3642 Elevated / Normal Range; CID 222
+Normality Undetermined for "indeterminate"; CID 230 Undetermined for "unknown", i.e. not
+estimated); only the concept name is private.
+
+Criterion verdicts are private (met / not met / not evaluable) rather than (121402, DCM,
+"Normality") with CID 222 values: a criterion being met is not always an abnormality (E/A <= 0.8
+selects grade I; LVEF < 50 % selects a pathway).  For the same reason a criterion's threshold is
+written as a private "Criterion cut-off value" NUM, not as a TID 312 normal-range limit: it is
+a decision cut-off whose direction is stated by the rule text, not a reference-range bound.
 """
 
 from __future__ import annotations

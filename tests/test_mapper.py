@@ -310,6 +310,50 @@ def test_preferred_encoding_of_lvef():
     accounted([doc], m)
 
 
+def test_lvef_by_us_prefers_biplane_method_of_disks():
+    teichholz = Code(value="125209", scheme="DCM", meaning="Teichholz")
+    items = [
+        EchoItem(
+            measure=M.lvef,
+            value=66,
+            encoding=Encoding.tid5200,
+            extra_modifiers=((code("measurement_method"), teichholz),),
+        ),
+        EchoItem(measure=M.lvef, value=57, encoding=Encoding.tid5200),  # biplane MOD
+    ]
+    # the builder adds its biplane method too; the Teichholz item's own method comes first
+    doc, m = run(items, template=Template.tid5200)
+    assert m.get(M.lvef) == 57
+    accounted([doc], m)
+
+
+def test_tid5200_deceleration_time_and_reported_pv_s_d():
+    items = [
+        EchoItem(measure=M.deceleration_time, value=0.19, unit="s", encoding=Encoding.tid5200),
+        EchoItem(measure=M.pv_s_d_ratio, value=1.3, encoding=Encoding.tid5200),
+        EchoItem(measure=Component.pv_s_velocity, value=52, encoding=Encoding.tid5200),
+        EchoItem(measure=Component.pv_d_velocity, value=40, encoding=Encoding.tid5200),
+    ]
+    doc, m = run(items, template=Template.tid5200)
+    assert m.get(M.deceleration_time) == 190
+    assert m.values[M.deceleration_time].codes == ("399354002 SCT",)
+    assert m.get(M.pv_s_d_ratio) == 1.3  # reported 1.3 agrees with 52 / 40 = 1.3
+    assert m.values[M.pv_s_d_ratio].origin is Origin.measured
+    accounted([doc], m)
+
+
+def test_pulmonary_vein_great_vessel_code_in_tid5302():
+    # TID 5302 uses (430757002, SCT, "Pulmonary Vein"); TID 5200 sections 122972007
+    items = [
+        EchoItem(measure=Component.pv_s_velocity, value=40, encoding=Encoding.post),
+        EchoItem(measure=Component.pv_d_velocity, value=50, encoding=Encoding.post),
+    ]
+    doc, m = run(items)
+    assert m.get(M.pv_s_d_ratio) == 0.8
+    assert m.values[M.pv_s_d_ratio].origin is Origin.derived
+    accounted([doc], m)
+
+
 # --- Valsalva ---------------------------------------------------------------------------------
 
 
@@ -470,39 +514,46 @@ def test_unrecognised_items_keep_their_modifiers():
 
 # --- property: any mix is accounted for, never an exception ------------------------------------
 
-MEASURES_WITH_PRE = [
-    M.mitral_e,
-    M.mitral_a,
-    M.e_a_ratio,
-    M.deceleration_time,
-    M.e_prime_septal,
-    M.e_prime_lateral,
-    M.tr_peak_velocity,
-    M.lavi,
-    M.lvef,
-    M.ivrt,
-]
-item_strategy = st.builds(
-    EchoItem,
-    measure=st.sampled_from(MEASURES_WITH_PRE),
-    value=st.one_of(
-        st.none(),
-        st.floats(min_value=-500, max_value=5000, allow_nan=False, allow_infinity=False),
-    ),
-    unit=st.sampled_from(["canonical", None, "m/s", "cm/s", "ms", "s", "%", "1", "mL/m2", "xyz"]),
-    selection=st.one_of(st.none(), st.sampled_from(list(Selection))),
-    derivation_mean=st.booleans(),
-    stage_valsalva=st.booleans(),
-    float_value=st.booleans(),
-)
+
+def _pairs(flat_only: bool) -> list[tuple[object, Encoding]]:
+    from service.sr.echo_builder import GENERIC_5200, POST_5302, PRE, PRIVATE_CODES, SECTION_5200
+
+    pairs = [(q, Encoding.pre) for q in PRE]
+    pairs += [(q, Encoding.post) for q in POST_5302]
+    pairs += [(q, Encoding.private) for q in PRIVATE_CODES]
+    if not flat_only:
+        pairs += [(q, Encoding.tid5200) for q in SECTION_5200]
+        pairs += [(q, Encoding.generic) for q in GENERIC_5200]
+    return pairs
+
+
+def _items(flat_only: bool):
+    return st.builds(
+        lambda pair, **kw: EchoItem(measure=pair[0], encoding=pair[1], **kw),
+        st.sampled_from(_pairs(flat_only)),
+        value=st.one_of(
+            st.none(),
+            st.floats(min_value=-500, max_value=5000, allow_nan=False, allow_infinity=False),
+        ),
+        unit=st.sampled_from(
+            ["canonical", None, "m/s", "cm/s", "ms", "s", "%", "1", "mL/m2", "mL", "mmHg", "xyz"]
+        ),
+        selection=st.one_of(st.none(), st.sampled_from(list(Selection))),
+        derivation_mean=st.booleans(),
+        stage_valsalva=st.booleans(),
+        float_value=st.booleans(),
+    )
 
 
 @settings(
     max_examples=60, deadline=None, derandomize=True, suppress_health_check=[HealthCheck.too_slow]
 )
-@given(st.lists(item_strategy, min_size=1, max_size=12), st.lists(item_strategy, max_size=4))
+@given(st.lists(_items(False), min_size=1, max_size=14), st.lists(_items(True), max_size=5))
 def test_any_mix_yields_measurements_and_accounts_for_every_num(items_a, items_b):
-    docs = [read_document(build_echo_sr(items_a, study=Study(seed="a", content_time="090000")))]
+    first = build_echo_sr(
+        items_a, template=Template.tid5200, study=Study(seed="a", content_time="090000")
+    )
+    docs = [read_document(first)]
     if items_b:
         docs.append(
             read_document(

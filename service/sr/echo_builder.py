@@ -375,9 +375,9 @@ def _unit_of(item: EchoItem) -> str | None:
 
 
 def _mods(item: EchoItem, pairs: Sequence[tuple[str, str]] = ()) -> list[Dataset]:
-    out = [code_item(code(n), code(v)) for n, v in pairs]
-    for name, value in item.extra_modifiers:
-        out.append(code_item(name, value))
+    # extra modifiers first: the reader takes the first modifier of a name as the nearest
+    out = [code_item(name, value) for name, value in item.extra_modifiers]
+    out += [code_item(code(n), code(v)) for n, v in pairs]
     if item.derivation_mean:
         out.append(code_item(code("derivation"), code("mean")))
     if item.selection is not None:

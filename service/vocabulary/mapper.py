@@ -3,14 +3,15 @@ the site and standard mapping rules, converts units, checks plausibility, resolv
 derives ratios and averages, and accounts for every observation (used, excluded with a
 reason, or unrecognised).
 
-Policies (see also the reference notes on selection, dicom-echo-sr §3.1):
+Policies (selection vocabulary: DICOM PS3.16 TID 5301 / CID 224 / CID 3627):
 
 * A site rule beats a standard rule; within each, a rule naming the concept beats a rule on
   "any concept", then the rule with more conditions wins, then table order.
 * Several documents: for each quantity the most recently created SR (``created``, then SOP
   Instance UID for a stable order) that has a usable value wins; the others are excluded.
 * Several encodings of one quantity in one SR (e.g. LVEF biplane and single-plane): the
-  preferred rule (site first, then lowest ``priority``) wins; the others are excluded.
+  preferred rule (site first, then lowest ``priority``, then biplane method of disks or no
+  Measurement Method before other methods) wins; the others are excluded.
 * Repeats: one value with Selection Status -> that value; else the device's mean (Derivation =
   Mean); else the mean of the unmarked repeats ("mean of N unmarked repeats").
 * Derived: average e' = (septal + lateral) / 2; E/A; E/e' septal, lateral and average
@@ -329,7 +330,8 @@ def _select(state: _State, q: Quantity, cands: list[_Cand]) -> _Picked:
     groups: dict[tuple[int, int, str, str], list[_Cand]] = defaultdict(list)
     for c in cands:
         groups[variant(c)].append(c)
-    keys = sorted(groups, key=lambda k: (k[0], k[1], _path_key(groups[k][0].obs.path)))
+    # site rules first, then rule priority, then biplane / unspecified method, then tree order
+    keys = sorted(groups, key=lambda k: (k[0], k[1], k[3] != "", _path_key(groups[k][0].obs.path)))
     chosen_key = keys[0]
     group = groups[chosen_key]
     for k in keys[1:]:

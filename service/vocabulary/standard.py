@@ -186,7 +186,6 @@ S_PHASE = where("cardiac_phase", "s_wave_phase")
 D_PHASE = where("cardiac_phase", "d_wave_phase")
 REGURGITANT = where("flow_direction", "regurgitant_flow")
 CW_OR_NONE = where("image_mode", "cw_doppler", absent=True)
-INDEXED_PROPERTY = where("measured_property", "peak_tissue_velocity")
 
 
 def _rule(

@@ -440,7 +440,8 @@ def test_pacs_down_then_up_every_result_is_delivered(start_node, tmp_path):
         return len(pending) == 3 and all(d["attempts"] >= 2 for d in pending)
 
     wait_for(retried, 30)  # the PACS is down: attempts are counted, nothing is dropped
-    assert "association" in node.journal.deliveries(states=["pending"])[0]["last_error"]
+    pending = node.journal.deliveries(states=["pending"])[0]
+    assert "cannot connect to PACS@127.0.0.1" in pending["last_error"]
     with storescp(pacs_dir, pacs_port):
         wait_for(_done(node, *uids), 30)
         expected = {node.journal.study(u)["result_uid"] for u in uids}

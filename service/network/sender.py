@@ -11,6 +11,7 @@ the journal, so the outbox survives restarts.
 from __future__ import annotations
 
 import logging
+import socket
 import threading
 import time
 from collections import defaultdict
@@ -30,6 +31,16 @@ log = logging.getLogger("diastolic_sr.sender")
 #: and the warnings "coercion of data elements", "elements discarded", "data set does not
 #: match SOP class")
 _STORED = {0x0000, 0xB000, 0xB006, 0xB007}
+
+
+def _unreachable_reason(host: str, port: int, where: str) -> str:
+    """Why an association could not be set up when the peer did not reject it."""
+    try:
+        with socket.create_connection((host, port), timeout=3):
+            pass
+    except OSError as exc:
+        return f"cannot connect to {where}: {exc.strerror or exc}"
+    return f"association with {where} aborted or timed out"
 
 
 class Sender:
@@ -150,11 +161,13 @@ class Sender:
                 self._failed(d, f"cannot associate with {where}: {exc}")
             return
         if not assoc.is_established:
-            why = "association rejected" if assoc.is_rejected else "association failed"
-            if assoc.is_aborted:
-                why = "association aborted"
+            why = (
+                f"association rejected by {where}"
+                if assoc.is_rejected
+                else _unreachable_reason(dest.host, dest.port, where)
+            )
             for d, _ in datasets:
-                self._failed(d, f"{why} by {where}")
+                self._failed(d, why)
             return
         try:
             for d, ds in datasets:

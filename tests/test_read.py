@@ -4,6 +4,8 @@ import copy
 
 import pydicom
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from pydicom.dataelem import RawDataElement
 from pydicom.dataset import Dataset
 from pydicom.sequence import Sequence as DicomSequence
@@ -24,9 +26,11 @@ from service.sr.echo_builder import (
     num_item,
 )
 from service.sr.read import SUPPORTED_SR_SOP_CLASSES, read_document, read_path
+from service.vocabulary.mapper import build_measurements, load_mapping_table
 from service.vocabulary.standard import code
 
 M = Measure
+TABLE = load_mapping_table()
 E = [EchoItem(measure=M.mitral_e, value=80)]
 
 
@@ -218,3 +222,55 @@ def test_read_path_errors(tmp_path):
         read_path(truncated)
     with pytest.raises(RejectedInput, match="directory"):
         read_path(tmp_path)
+
+
+# --- fuzz: any damage to the tree yields a document or RejectedInput, nothing else -------------
+
+
+def _elements(ds: Dataset, out: list) -> list:
+    for elem in ds:
+        out.append((ds, elem.tag, elem.VR))
+        if elem.VR == "SQ":
+            for item in elem.value:
+                _elements(item, out)
+    return out
+
+
+@settings(max_examples=80, deadline=None, derandomize=True)
+@given(
+    st.lists(
+        st.tuples(
+            st.integers(min_value=0, max_value=10_000),
+            st.sampled_from(["delete", "garbage", "empty"]),
+            st.binary(max_size=12),
+        ),
+        min_size=1,
+        max_size=6,
+    )
+)
+def test_damaged_objects_never_raise_other_errors(damage):
+    ds = build_echo_sr(
+        [
+            EchoItem(measure=M.mitral_e, value=80, encoding=Encoding.tid5200, selection="user"),
+            EchoItem(measure=M.e_prime_septal, value=6, encoding=Encoding.tid5200),
+            EchoItem(measure=M.tr_peak_velocity, value=2.5, encoding=Encoding.post),
+        ],
+        template=Template.tid5200,
+    )
+    for index, action, data in damage:
+        elements = _elements(ds, [])
+        owner, tag, vr = elements[index % len(elements)]
+        if tag not in owner:
+            continue
+        if action == "delete":
+            del owner[tag]
+        elif action == "empty" or vr == "SQ":
+            owner[tag] = RawDataElement(Tag(tag), vr, 0, b"", 0, True, True)
+        else:
+            owner[tag] = RawDataElement(Tag(tag), vr, len(data), data, 0, True, True)
+    try:
+        doc = read_document(ds)
+    except RejectedInput:
+        return
+    assert all(isinstance(o.path, str) for o in doc.observations)
+    build_measurements([doc], TABLE)  # and the mapper copes with whatever was read

@@ -340,13 +340,22 @@ def _read(ds: Dataset) -> SourceDocument:
     ]
     _walk(top_items, root_mods, "1", w, 1)
     warnings = list(w.warnings)
-    age = _patient_age(ds, w.observations, warnings)
+    try:
+        age = _patient_age(ds, w.observations, warnings)
+    except Exception as exc:  # malformed patient attributes: no age, not a rejection
+        warnings.append(f"patient age unreadable ({type(exc).__name__}); ignored")
+        age = None
+    try:
+        created = _created(ds)
+    except Exception as exc:
+        warnings.append(f"content date/time unreadable ({type(exc).__name__}); ignored")
+        created = ""
     return SourceDocument(
         sop_instance_uid=uid,
         sop_class_uid=sop_class,
         study_instance_uid=_text(ds.get("StudyInstanceUID")),
         series_instance_uid=_text(ds.get("SeriesInstanceUID")),
-        created=_created(ds),
+        created=created,
         template=_template(ds, title, top_items),
         document_title=title,
         patient_age_years=age,

@@ -11,14 +11,15 @@ from pathlib import Path
 
 import pytest
 from netutil import (
+    DCMTK_REASON,
     LOOPBACK,
     NODE_AE,
     REPO,
+    SKIP_WITHOUT_DCMTK,
     NodeProcess,
     echo_ok,
     echo_sr,
     free_port,
-    have_dcmtk,
     pacs_uids,
     storescp,
     wait_for,
@@ -30,7 +31,8 @@ from service.store.journal import Journal
 
 pytestmark = [
     pytest.mark.network,
-    pytest.mark.skipif(not have_dcmtk(), reason="DCMTK (storescp/echoscu) missing"),
+    pytest.mark.external,
+    pytest.mark.skipif(SKIP_WITHOUT_DCMTK, reason=DCMTK_REASON),
 ]
 
 CONFIG = """
@@ -93,10 +95,13 @@ def _all_settled(data_dir: Path, study_uids):
 
 
 def test_serve_with_flags_only_answers_echo_and_stops_on_sigterm(tmp_path):
-    node = NodeProcess(tmp_path / "data", ["--port", "0", "--settle-seconds", "0.2"])
+    node = NodeProcess(
+        tmp_path / "data", ["--port", "0", "--settle-seconds", "0.2", "--ae-title", "HV_NODE"]
+    )
     try:
         port = node.start()
-        assert echo_ok(port, NODE_AE)
+        assert echo_ok(port, "HV_NODE")
+        assert not echo_ok(port, NODE_AE)  # the called AE title must match ours
         assert node.terminate() == 0  # SIGTERM: clean exit 0
         log = node.log()
         assert "signal SIGTERM received" in log and "stopped; journal" in log

@@ -13,14 +13,15 @@ from pathlib import Path
 import pydicom
 import pytest
 from netutil import (
+    DCMTK_REASON,
     LOOPBACK,
     NODE_AE,
+    SKIP_WITHOUT_DCMTK,
     echo_ok,
     echo_sr,
     evidence_uids,
     fake_grade,
     free_port,
-    have_dcmtk,
     pacs_uids,
     predecessor_uids,
     run_storescu,
@@ -46,7 +47,12 @@ from service.network.demo_loop import ResultReceiver, run_network_demo
 from service.network.service import Node
 
 pytestmark = pytest.mark.network
-needs_dcmtk = pytest.mark.skipif(not have_dcmtk(), reason="DCMTK (storescu/storescp) missing")
+
+
+def needs_dcmtk(test):
+    """DCMTK peer tests: marked external; skipped without DCMTK except in CI."""
+    return pytest.mark.external(pytest.mark.skipif(SKIP_WITHOUT_DCMTK, reason=DCMTK_REASON)(test))
+
 
 CT_IMAGE = "1.2.840.10008.5.1.4.1.1.2"  # CT Image Storage (PS3.4 Annex B.5)
 ENHANCED_SR = "1.2.840.10008.5.1.4.1.1.88.22"  # Enhanced SR Storage (PS3.4 Annex B.5)

@@ -152,7 +152,7 @@ def run_network_demo(
     node = Node(cfg, grade_fn=grade_fn, poll_seconds=0.1)
     studies: dict[str, Dataset] = {}
     for ds in datasets:
-        studies.setdefault(str(ds.StudyInstanceUID), ds)
+        studies.setdefault(str(ds.get("StudyInstanceUID", "")), ds)
     try:
         port = node.start()
         statuses = send_datasets(datasets, port, called_ae=cfg.node.ae_title)

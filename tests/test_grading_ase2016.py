@@ -485,10 +485,14 @@ def test_routing_unknown_lvef_assumes_normal():
 
 
 def test_atrial_fibrillation_not_graded_by_sinus_algorithm():
+    # Nagueh 2016 JASE 29:277, §V.E: AF has its own criteria (filling pressure, no grade); the
+    # sinus criteria of Fig 8A are not used.  None of the AF criteria is present here.
     a = assess(measurements(lvef=60, **ALL_ABNORMAL_A), Context(rhythm=Rhythm.af))
     assert (a.grade, a.filling_pressure) == NOT_GRADABLE
-    assert a.pathway is Pathway.not_applicable
-    assert a.pathway_reason == "atrial fibrillation: the sinus-rhythm algorithm does not apply"
+    assert a.pathway is Pathway.atrial_fibrillation
+    assert a.pathway_reason.startswith("atrial fibrillation")
+    assert "no grade is given" in a.pathway_reason
+    assert not any(c.step == "algorithm A" for c in a.criteria)
     assert a.rhythm is Rhythm.af
 
 

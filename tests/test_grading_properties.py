@@ -3,22 +3,30 @@ context, yields one of the allowed outcomes with a consistent criteria trace, ne
 
 Allowed outcomes: issue contract (grade in {normal, grade-1..3, indeterminate, not-gradable},
 filling pressure in {normal, elevated, indeterminate, unknown}); grade-to-pressure pairing from
-Nagueh 2016 JASE 29:277, Fig 8B (grade I normal LAP, grades II/III elevated LAP).
-All values are invented.
+Nagueh 2016 JASE 29:277, Fig 8B (grade I normal LAP, grades II/III elevated LAP) and Nagueh 2025
+JASE 38(7), Fig 3 (grade 1 normal LAP, grades 2/3 raised LAP; raised LAP without E/A and normal LAP
+without e′ leave the grade indeterminate, I-25-7, I-25-8).  Atrial fibrillation and special
+situations never give a standard grade (issue contract).  All values are invented.
 """
 
 from __future__ import annotations
 
+import math
+
+import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from service.errors import UserError
 from service.grading import IMPLEMENTED_GUIDELINES, assess
+from service.grading.compare import assess_all
 from service.model import (
     CANONICAL_UNITS,
     CAUTION,
     Context,
     FillingPressure,
     Grade,
+    Guideline,
     Measure,
     Measurements,
     MeasureValue,
@@ -53,6 +61,16 @@ RANGES: dict[Measure, tuple[float, float]] = {
     Measure.pv_s_d_ratio: (0.3, 2.5),
     Measure.deceleration_time: (100.0, 300.0),
     Measure.age: (18.0, 95.0),
+    Measure.pasp: (15.0, 70.0),
+    Measure.ivrt: (30.0, 130.0),
+    Measure.la_reservoir_strain: (5.0, 50.0),
+    Measure.e_acceleration_rate: (500.0, 3000.0),
+    Measure.bmi: (16.0, 45.0),
+    Measure.heart_rate: (40.0, 150.0),
+    Measure.ar_a_duration: (-40.0, 60.0),
+    Measure.mitral_e_valsalva: (20.0, 150.0),
+    Measure.mitral_a_valsalva: (20.0, 120.0),
+    Measure.e_a_ratio_valsalva: (0.3, 3.5),
 }
 EXTREMES = st.sampled_from([0.0, -1.0, 1e-300, 1e300, -1e300, 1e9, 5e-324])
 
@@ -98,6 +116,30 @@ PRESSURE_FOR_GRADE = {
     Grade.indeterminate: {FillingPressure.indeterminate},
     Grade.not_gradable: {FillingPressure.unknown},
 }
+# Nagueh 2025 JASE 38(7), Fig 3: as above, plus "normal LAP, grade not assignable" (I-25-7) and
+# "raised LAP, grade 2 or 3" (I-25-8) shown as an indeterminate grade with a known pressure
+PRESSURE_FOR_GRADE_2025 = {
+    **PRESSURE_FOR_GRADE,
+    Grade.indeterminate: {
+        FillingPressure.indeterminate,
+        FillingPressure.normal,
+        FillingPressure.elevated,
+    },
+}
+SINUS_PATHWAYS = {
+    Guideline.ase_eacvi_2016: {Pathway.normal_lvef, Pathway.reduced_lvef_or_myocardial_disease},
+    Guideline.ase_2025: {Pathway.sinus_general},
+}
+NO_STANDARD_GRADE = {Pathway.atrial_fibrillation, Pathway.special_situation, Pathway.not_applicable}
+
+
+def a_wave_missing(m: Measurements) -> bool:
+    usable = {k for k, v in m.values.items() if math.isfinite(v.value)}
+    return (
+        Measure.mitral_e in usable
+        and Measure.mitral_a not in usable
+        and Measure.e_a_ratio not in usable
+    )
 
 
 @SETTINGS
@@ -105,16 +147,28 @@ PRESSURE_FOR_GRADE = {
 def test_any_input_gives_a_consistent_assessment(m: Measurements, ctx: Context):
     for guideline in IMPLEMENTED_GUIDELINES:
         a = assess(m, ctx, guideline)
+        assert a.guideline is guideline
         assert a.grade in set(Grade)
-        assert a.filling_pressure in PRESSURE_FOR_GRADE[a.grade]
         assert a.caution == CAUTION
         assert a.pathway_reason
         assert a.reasoning
-        if ctx.rhythm is Rhythm.af or ctx.special_situations:
+        if ctx.special_situations:
+            # issue contract: alternative criteria or a stated "not applicable", never a grade
+            assert a.pathway in {Pathway.special_situation, Pathway.not_applicable}
+        elif ctx.rhythm is Rhythm.af:
+            # AF: filling pressure only (Nagueh 2016 §V.E; Nagueh 2025 AF algorithm)
+            assert a.pathway is Pathway.atrial_fibrillation
+        elif ctx.rhythm is Rhythm.unknown and a_wave_missing(m):
+            # issue contract: A wave missing and nothing says AF -> no standard grade
             assert a.pathway is Pathway.not_applicable
-            assert a.grade is Grade.not_gradable
         else:
-            assert a.pathway in {Pathway.normal_lvef, Pathway.reduced_lvef_or_myocardial_disease}
+            assert a.pathway in SINUS_PATHWAYS[guideline]
+        if a.pathway in NO_STANDARD_GRADE:
+            assert a.grade is Grade.not_gradable
+        elif guideline is Guideline.ase_2025:
+            assert a.filling_pressure in PRESSURE_FOR_GRADE_2025[a.grade]
+        else:
+            assert a.filling_pressure in PRESSURE_FOR_GRADE[a.grade]
         for c in a.criteria:
             # unavailable iff no value; otherwise the verdict is the comparison as published
             assert (c.verdict is Verdict.unavailable) == (c.value is None)
@@ -131,10 +185,34 @@ def test_any_input_gives_a_consistent_assessment(m: Measurements, ctx: Context):
             )
         if ctx.borderline_fraction == 0:
             assert not a.borderline
+        for finding in a.supporting:
+            # supporting evidence only: it never changes the result (issue contract)
+            assert finding.text
+            if finding.agrees_with_result is not None:
+                assert finding.supports_elevated_pressure is not None
+    with pytest.raises(UserError):
+        assess(m, ctx, Guideline.bse_2024)
+
+
+@SETTINGS
+@given(m=measurement_sets(), ctx=contexts)
+def test_comparison_is_consistent(m: Measurements, ctx: Context):
+    for primary in IMPLEMENTED_GUIDELINES:
+        result = assess_all(m, ctx, primary)
+        assert result.primary == assess(m, ctx, primary)
+        assert {a.guideline for a in result.others} | {primary} == set(IMPLEMENTED_GUIDELINES)
+        differing = [
+            o
+            for o in result.others
+            if (o.grade, o.filling_pressure)
+            != (result.primary.grade, result.primary.filling_pressure)
+        ]
+        assert len(result.disagreements) == len(differing)
 
 
 @SETTINGS
 @given(m=measurement_sets(), ctx=contexts)
 def test_assessment_is_deterministic(m: Measurements, ctx: Context):
     # pure function: the same input gives the same output (common practice)
-    assert assess(m, ctx) == assess(m, ctx)
+    for guideline in IMPLEMENTED_GUIDELINES:
+        assert assess(m, ctx, guideline) == assess(m, ctx, guideline)

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+from service.grading import atrial_fibrillation, special_situations, valsalva
 from service.grading import thresholds_ase2016 as T
 from service.grading.criteria import (
     Threshold,
@@ -85,25 +86,38 @@ class _Trace:
             self.notes.append(text)
 
 
-def assess(measurements: Measurements, context: Context) -> Assessment:
-    """Grade by ASE/EACVI 2016, with the borderline check of every near-cut-off criterion."""
-    result = _assess(measurements, context)
-    flags = borderline_flags(result, measurements, context, _assess, T.NAMES)
+def assess(
+    measurements: Measurements,
+    context: Context,
+    af_options: atrial_fibrillation.Ase2016AfOptions | None = None,
+) -> Assessment:
+    """Grade by ASE/EACVI 2016, with the borderline check of every near-cut-off criterion and
+    the Valsalva finding beside the result."""
+
+    def regrade(m: Measurements, ctx: Context) -> Assessment:
+        return _assess(m, ctx, af_options)
+
+    result = _assess(measurements, context, af_options)
+    flags = borderline_flags(result, measurements, context, regrade, NAMES)
     if flags:
         result = result.model_copy(update={"borderline": flags})
-    return result
+    return valsalva.attach(result, measurements)
+
+
+#: plain names of every measure a criterion of this rule set may use (sinus, AF, special)
+NAMES = {**special_situations.NAMES, **atrial_fibrillation.NAMES, **T.NAMES}
 
 
 # ---------------------------------------------------------------------------------------------
-# Top level: rhythm, special situations, routing
+# Top level: special situations, rhythm, routing
 # ---------------------------------------------------------------------------------------------
 
 
-def _situation_words(context: Context) -> str:
-    return ", ".join(sorted(s.value.replace("-", " ") for s in context.special_situations))
-
-
-def _assess(measurements: Measurements, context: Context) -> Assessment:
+def _assess(
+    measurements: Measurements,
+    context: Context,
+    af_options: atrial_fibrillation.Ase2016AfOptions | None = None,
+) -> Assessment:
     trace = _Trace(measurements)
     base = {
         "guideline": Guideline.ase_eacvi_2016,
@@ -114,26 +128,20 @@ def _assess(measurements: Measurements, context: Context) -> Assessment:
         "caution": CAUTION,
     }
 
-    if context.rhythm is Rhythm.af:
-        reason = "atrial fibrillation: the sinus-rhythm algorithm does not apply"
-        if context.special_situations:
-            reason += f"; special situations also present: {_situation_words(context)}"
-        return Assessment(
-            **base,
-            pathway=Pathway.not_applicable,
-            pathway_reason=reason,
-            grade=Grade.not_gradable,
-            filling_pressure=FillingPressure.unknown,
-            reasoning=(f"Not graded: {reason}.",),
-            notes=(
-                "ASE/EACVI 2016 assesses filling pressure in atrial fibrillation with separate "
-                "criteria; they are not applied in this version.",
-            ),
+    # special populations take precedence over the rhythm (shared reference §1.4)
+    if context.special_situations:
+        return special_situations.assess(
+            measurements, context, Guideline.ase_eacvi_2016, CITATION, RULE_SET_VERSION
         )
-
-    e = value_of(measurements, Measure.mitral_e)
-    a = value_of(measurements, Measure.mitral_a)
-    if e is not None and a is None and value_of(measurements, Measure.e_a_ratio) is None:
+    if context.rhythm is Rhythm.af:
+        return atrial_fibrillation.assess_2016(
+            measurements, context, CITATION, RULE_SET_VERSION, af_options
+        )
+    if special_situations.a_wave_missing(measurements):
+        if context.rhythm is Rhythm.unknown:
+            return special_situations.possible_af(
+                measurements, context, Guideline.ase_eacvi_2016, CITATION, RULE_SET_VERSION
+            )
         trace.note(
             "The mitral A wave is missing although E was measured: atrial fibrillation "
             "(or E-A fusion) may be present; check the rhythm."
@@ -142,19 +150,6 @@ def _assess(measurements: Measurements, context: Context) -> Assessment:
         trace.note(
             "Cardiac rhythm was not stated; sinus rhythm was assumed for the algorithm"
             + (f" ({context.rhythm_source})." if context.rhythm_source else ".")
-        )
-
-    if context.special_situations:
-        words = _situation_words(context)
-        reason = f"special situation present ({words}): the standard algorithm does not apply as is"
-        return Assessment(
-            **base,
-            pathway=Pathway.not_applicable,
-            pathway_reason=reason,
-            grade=Grade.not_gradable,
-            filling_pressure=FillingPressure.unknown,
-            reasoning=(f"Not graded: {reason}.",),
-            notes=tuple(trace.notes),
         )
 
     lvef = value_of(measurements, Measure.lvef)

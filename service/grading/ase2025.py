@@ -1,0 +1,380 @@
+"""ASE 2025 grading of LV diastolic function: the general sinus-rhythm algorithm (Figure 3), with
+the AF rule and the special populations of the same update.
+
+Nagueh SF, Sanborn DY, Oh JK, et al., J Am Soc Echocardiogr 2025;38(7),
+doi 10.1016/j.echo.2025.03.011.  Pure functions: Measurements and Context in, Assessment out.
+Cut-offs come from :mod:`service.grading.thresholds_ase2025`.
+
+Step 1 classifies left atrial pressure (LAP) from three core indices (e′, E/e′, TR velocity or
+PASP) when they are concordant; step 2 adjudicates discordant or incomplete cases with the
+supplementary markers (LA reservoir strain, PV S/D, LAVI, IVRT).  Raised LAP is grade 3 with
+E/A ≥ 2, else grade 2; normal LAP with reduced e′ is grade 1.  Every point where the published
+rule is ambiguous carries its I-25-x identifier and, where the project's reference offers an
+alternative reading, a switch in :class:`Ase2025Options` (defaults = the reference's reading).
+"""
+
+from __future__ import annotations
+
+from typing import Literal
+
+from pydantic import BaseModel, ConfigDict, Field
+
+from service.grading import atrial_fibrillation, special_situations, valsalva
+from service.grading import thresholds_ase2025 as T
+from service.grading.criteria import Threshold, any_of, borderline_flags, tally, value_of
+from service.grading.trace import Trace, base_fields
+from service.model import (
+    Assessment,
+    Context,
+    FillingPressure,
+    Grade,
+    Guideline,
+    Measure,
+    Measurements,
+    Pathway,
+    Rhythm,
+    Verdict,
+)
+
+RULE_SET_VERSION = "ase-2025/1"
+CITATION = (
+    "Nagueh SF, Sanborn DY, Oh JK, et al. Recommendations for the Evaluation of Left Ventricular "
+    "Diastolic Function by Echocardiography and for Heart Failure With Preserved Ejection "
+    "Fraction Diagnosis: An Update From the American Society of Echocardiography. "
+    "J Am Soc Echocardiogr 2025;38(7). doi:10.1016/j.echo.2025.03.011."
+)
+
+STEP_1 = "step 1"
+STEP_2 = "step 2"
+STEP_GRADE = "grading"
+
+SitesRule = Literal["average-preferred", "any-site"]
+
+
+class Ase2025Options(BaseModel):
+    """Readings of the ambiguous points of ASE 2025; defaults are the project reference's."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    #: I-25-1: e′ with both sites: "average-preferred" (average ≤ 6.5; site cut-offs only as a
+    #: fallback) or "any-site" (any of average ≤ 6.5, septal ≤ 6, lateral ≤ 7)
+    e_prime_sites: SitesRule = "average-preferred"
+    #: I-25-2: E/e′, same choice (average ≥ 14 preferred; septal ≥ 15 / lateral ≥ 13 fallback)
+    e_e_prime_sites: SitesRule = "average-preferred"
+    #: I-25-3: TR velocity and PASP both present: "either" abnormal counts, or "tr-preferred"
+    tr_or_pasp: Literal["either", "tr-preferred"] = "either"
+    #: I-25-4 with docs/guideline-verification.md A25-9: reduced e′ with normal E/e′ and TR is
+    #: normal LAP ("normal-lap", reference) or needs E/A ≤ 0.8 first, else step 2 ("needs-low-e-a")
+    reduced_e_prime_alone: Literal["normal-lap", "needs-low-e-a"] = "normal-lap"
+    #: I-25-6: an incomplete step 1 goes to step 2 ("step-2", reference) or is decided when at
+    #: least two available indices are concordant ("accept-concordant-available")
+    incomplete_step_1: Literal["step-2", "accept-concordant-available"] = "step-2"
+    #: I-25-5: supplementary markers: "any" abnormal → raised (reference), "majority", or
+    #: "hierarchy" (first available of LA strain, PV S/D, LAVI, IVRT decides)
+    supplementary: Literal["any", "majority", "hierarchy"] = "any"
+    #: docs/guideline-verification.md A25-7: IVRT as an "equal-marker" (reference) or used
+    #: "only-when-others-missing" (LA strain, PV S/D and LAVI all unavailable)
+    ivrt: Literal["equal-marker", "only-when-others-missing"] = "equal-marker"
+    #: the AF algorithm's switches (I-25-9)
+    af: atrial_fibrillation.Ase2025AfOptions = Field(
+        default_factory=atrial_fibrillation.Ase2025AfOptions
+    )
+
+
+#: the options used when none are passed
+DEFAULT_OPTIONS = Ase2025Options()
+
+NAMES: dict[Measure, tuple[str, str]] = {
+    **special_situations.NAMES,
+    **atrial_fibrillation.NAMES,
+    **T.NAMES,
+}
+
+_Result = tuple[Grade, FillingPressure]
+
+
+def assess(
+    measurements: Measurements, context: Context, options: Ase2025Options | None = None
+) -> Assessment:
+    """Grade by ASE 2025, with the borderline check and the Valsalva finding."""
+    opts = options or DEFAULT_OPTIONS
+
+    def regrade(m: Measurements, ctx: Context) -> Assessment:
+        return _assess(m, ctx, opts)
+
+    result = _assess(measurements, context, opts)
+    flags = borderline_flags(result, measurements, context, regrade, NAMES)
+    if flags:
+        result = result.model_copy(update={"borderline": flags})
+    return valsalva.attach(result, measurements)
+
+
+def _assess(measurements: Measurements, context: Context, opts: Ase2025Options) -> Assessment:
+    if context.special_situations:
+        return special_situations.assess(
+            measurements, context, Guideline.ase_2025, CITATION, RULE_SET_VERSION
+        )
+    if context.rhythm is Rhythm.af:
+        return atrial_fibrillation.assess_2025(
+            measurements, context, CITATION, RULE_SET_VERSION, opts.af
+        )
+    if context.rhythm is Rhythm.unknown and special_situations.a_wave_missing(measurements):
+        return special_situations.possible_af(
+            measurements, context, Guideline.ase_2025, CITATION, RULE_SET_VERSION
+        )
+
+    trace = Trace(measurements)
+    if special_situations.a_wave_missing(measurements):
+        trace.note(
+            "The mitral A wave is missing although E was measured in sinus rhythm (E-A fusion?): "
+            "E/A is unavailable for the grade."
+        )
+    if context.rhythm is Rhythm.unknown:
+        trace.note(
+            "Cardiac rhythm was not stated; sinus rhythm was assumed for the algorithm"
+            + (f" ({context.rhythm_source})." if context.rhythm_source else ".")
+        )
+    reason = (
+        "sinus rhythm without a special situation: the ASE 2025 general algorithm (Figure 3) "
+        "applies at any LVEF"
+    )
+    trace.say(f"{reason[0].upper()}{reason[1:]}.")
+    grade, pressure = _general(trace, opts)
+    return Assessment(
+        **base_fields(Guideline.ase_2025, CITATION, RULE_SET_VERSION, context),
+        pathway=Pathway.sinus_general,
+        pathway_reason=reason,
+        grade=grade,
+        filling_pressure=pressure,
+        criteria=tuple(trace.criteria),
+        reasoning=tuple(trace.reasoning),
+        notes=tuple(trace.notes),
+    )
+
+
+# ---------------------------------------------------------------------------------------------
+# Step 1 indices
+# ---------------------------------------------------------------------------------------------
+
+
+def _sites(
+    trace: Trace,
+    average: Threshold,
+    septal: Threshold,
+    lateral: Threshold,
+    rule: SitesRule,
+    prefix: str,
+    ambiguity: str,
+) -> Verdict:
+    """Average preferred (site cut-offs as fallback, either site counting) or any site."""
+    m = trace.measurements
+    rows = (average, septal, lateral)
+    if rule == "any-site":
+        present = [row for row in rows if value_of(m, row.measure) is not None] or [average]
+        return any_of(trace.check(row, f"{prefix}.{row.key}", STEP_1).verdict for row in present)
+    if value_of(m, average.measure) is not None:
+        return trace.check(average, f"{prefix}.{average.key}", STEP_1).verdict
+    singles = [row for row in (septal, lateral) if value_of(m, row.measure) is not None]
+    if not singles:
+        return trace.check(average, f"{prefix}.{average.key}", STEP_1).verdict
+    names = " and ".join(row.name for row in singles)
+    trace.note(
+        f"{average.name} was not available; {names} used with the site cut-off "
+        f"{'(either site counts) ' if len(singles) == 2 else ''}({ambiguity})."
+    )
+    return any_of(trace.check(row, f"{prefix}.{row.key}", STEP_1).verdict for row in singles)
+
+
+def _tr_or_pasp(trace: Trace, rule: str, prefix: str) -> Verdict:
+    m = trace.measurements
+    if rule == "tr-preferred" and value_of(m, Measure.tr_peak_velocity) is not None:
+        return trace.check(T.TR_VELOCITY, f"{prefix}.tr_peak_velocity", STEP_1).verdict
+    return any_of(
+        (
+            trace.check(T.TR_VELOCITY, f"{prefix}.tr_peak_velocity", STEP_1).verdict,
+            trace.check(T.PASP, f"{prefix}.pasp", STEP_1).verdict,
+        )
+    )
+
+
+# ---------------------------------------------------------------------------------------------
+# General algorithm
+# ---------------------------------------------------------------------------------------------
+
+
+def _general(trace: Trace, opts: Ase2025Options) -> _Result:
+    p = "ase25.s1"
+    e = _sites(
+        trace,
+        T.E_PRIME_AVERAGE,
+        T.E_PRIME_SEPTAL,
+        T.E_PRIME_LATERAL,
+        opts.e_prime_sites,
+        p,
+        "I-25-1",
+    )
+    r = _sites(
+        trace,
+        T.E_E_PRIME_AVERAGE,
+        T.E_E_PRIME_SEPTAL,
+        T.E_E_PRIME_LATERAL,
+        opts.e_e_prime_sites,
+        p,
+        "I-25-2",
+    )
+    t = _tr_or_pasp(trace, opts.tr_or_pasp, p)
+    lap = _step_1(trace, opts, e, r, t)
+    if lap is None:
+        lap = _step_2(trace, opts)
+        if lap is None:
+            return Grade.not_gradable, FillingPressure.unknown
+    return _grade(trace, lap, e)
+
+
+def _words(v: Verdict, abnormal: str, normal: str) -> str:
+    return {Verdict.met: abnormal, Verdict.not_met: normal, Verdict.unavailable: "not available"}[v]
+
+
+def _step_1(
+    trace: Trace, opts: Ase2025Options, e: Verdict, r: Verdict, t: Verdict
+) -> FillingPressure | None:
+    """LAP from concordant step-1 indices, or None when step 2 must decide (I-25-4, I-25-6)."""
+    pattern = (
+        f"e′ {_words(e, 'reduced', 'normal')}, E/e′ {_words(r, 'raised', 'normal')}, "
+        f"TR velocity/PASP {_words(t, 'raised', 'normal')}"
+    )
+    known = [v for v in (e, r, t) if v is not Verdict.unavailable]
+    if len(known) == 3:
+        if (e, r, t) == (Verdict.not_met,) * 3:
+            trace.say(f"Step 1: {pattern}: concordant, normal LAP.")
+            return FillingPressure.normal
+        if (e, r, t) == (Verdict.met,) * 3:
+            trace.say(f"Step 1: {pattern}: concordant, raised LAP.")
+            return FillingPressure.elevated
+        if (e, r, t) == (Verdict.met, Verdict.not_met, Verdict.not_met):
+            return _reduced_e_prime_alone(trace, opts, pattern)
+        trace.say(f"Step 1: {pattern}: discordant; step 2 decides (I-25-4).")
+        return None
+    if opts.incomplete_step_1 == "accept-concordant-available" and len(known) >= 2:
+        pressure_markers = [v for v in (r, t) if v is not Verdict.unavailable]
+        if pressure_markers and all(v is Verdict.not_met for v in pressure_markers):
+            if e is Verdict.met:
+                return _reduced_e_prime_alone(trace, opts, pattern)
+            trace.say(
+                f"Step 1: {pattern}: incomplete but the available indices are concordant "
+                "(normal LAP; I-25-6 switch)."
+            )
+            return FillingPressure.normal
+        if pressure_markers and all(v is Verdict.met for v in known):
+            trace.say(
+                f"Step 1: {pattern}: incomplete but the available indices are concordant "
+                "(raised LAP; I-25-6 switch)."
+            )
+            return FillingPressure.elevated
+    trace.say(f"Step 1: {pattern}: incomplete; step 2 decides (I-25-6).")
+    missing = [
+        name
+        for name, v in zip(("e′", "E/e′", "TR velocity/PASP"), (e, r, t), strict=True)
+        if v is Verdict.unavailable
+    ]
+    trace.note(f"Step 1 indices not available: {', '.join(missing)}.")
+    return None
+
+
+def _reduced_e_prime_alone(
+    trace: Trace, opts: Ase2025Options, pattern: str
+) -> FillingPressure | None:
+    if opts.reduced_e_prime_alone == "normal-lap":
+        trace.say(f"Step 1: {pattern}: impaired relaxation with normal LAP markers, normal LAP.")
+        return FillingPressure.normal
+    c = trace.check(T.E_A_LOW, "ase25.s1.e_a_ratio_low", STEP_1)
+    if c.verdict is Verdict.met:
+        trace.say(
+            f"Step 1: {pattern} and E/A ≤ 0.8: normal LAP (switch: reduced e′ alone needs low E/A)."
+        )
+        return FillingPressure.normal
+    trace.say(
+        f"Step 1: {pattern} but E/A is not ≤ 0.8 or not available: step 2 decides "
+        "(switch: reduced e′ alone needs low E/A)."
+    )
+    return None
+
+
+def _step_2(trace: Trace, opts: Ase2025Options) -> FillingPressure | None:
+    """Supplementary markers (I-25-5).  None when no index of either step is available."""
+    p = "ase25.s2"
+    m = trace.measurements
+    rows = [T.LA_RESERVOIR_STRAIN, T.PV_S_D, T.LAVI]
+    use_ivrt = opts.ivrt == "equal-marker" or all(value_of(m, r.measure) is None for r in rows)
+    if use_ivrt:
+        rows.append(T.IVRT)
+    elif value_of(m, Measure.ivrt) is not None:
+        trace.note("IVRT was not used: it counts only when LA strain, PV S/D and LAVI are missing.")
+    checked = [(row, trace.check(row, f"{p}.{row.key}", STEP_2)) for row in rows]
+    votes = [c.verdict for _, c in checked]
+    t = tally(votes)
+    counted = f"{t.met} of {t.available} available supplementary markers abnormal"
+    if t.available == 0:
+        if not any(c.verdict is not Verdict.unavailable for c in trace.criteria):
+            trace.say("No index of step 1 or step 2 is available: not gradable.")
+            trace.note("Not gradable: e′, E/e′, TR velocity, PASP and all step-2 markers missing.")
+            return None
+        trace.say("Step 2: no supplementary marker is available: LAP indeterminate.")
+        trace.note(
+            "Step 2 needs LA reservoir strain, PV S/D, LAVI or IVRT; ASE 2025 suggests exercise "
+            "echocardiography or other tests in symptomatic patients."
+        )
+        return FillingPressure.indeterminate
+    if opts.supplementary == "hierarchy":
+        row, first = next((row, c) for row, c in checked if c.verdict is not Verdict.unavailable)
+        lap = FillingPressure.elevated if first.verdict is Verdict.met else FillingPressure.normal
+        trace.say(
+            f"Step 2: {row.name} is the first available marker and decides: "
+            f"{'raised' if lap is FillingPressure.elevated else 'normal'} LAP (I-25-5 switch)."
+        )
+        return lap
+    if opts.supplementary == "majority":
+        if 2 * t.met > t.available:
+            trace.say(f"Step 2: {counted} (more than half): raised LAP (I-25-5 switch).")
+            return FillingPressure.elevated
+        if 2 * t.met < t.available:
+            trace.say(f"Step 2: {counted} (less than half): normal LAP (I-25-5 switch).")
+            return FillingPressure.normal
+        trace.say(f"Step 2: {counted} (exactly half): LAP indeterminate (I-25-5 switch).")
+        return FillingPressure.indeterminate
+    if t.met >= 1:
+        trace.say(f"Step 2: {counted} (any one suffices): raised LAP (I-25-5).")
+        return FillingPressure.elevated
+    trace.say(f"Step 2: {counted}: normal LAP (I-25-5).")
+    return FillingPressure.normal
+
+
+def _grade(trace: Trace, lap: FillingPressure, e: Verdict) -> _Result:
+    if lap is FillingPressure.indeterminate:
+        trace.say("LAP indeterminate: no grade.")
+        return Grade.indeterminate, FillingPressure.indeterminate
+    if lap is FillingPressure.normal:
+        if e is Verdict.met:
+            trace.say("Normal LAP with reduced e′: grade 1 (impaired relaxation).")
+            return Grade.grade_1, FillingPressure.normal
+        if e is Verdict.not_met:
+            trace.say("Normal LAP with normal e′: normal diastolic function.")
+            return Grade.normal, FillingPressure.normal
+        trace.say("Normal LAP but e′ is not available: the grade cannot be assigned (I-25-7).")
+        trace.note("Normal LAP; grade not assignable without e′ (normal or grade 1).")
+        return Grade.indeterminate, FillingPressure.normal
+    c = trace.check(T.E_A_HIGH, "ase25.grade.e_a_ratio_high", STEP_GRADE)
+    if e is Verdict.not_met:
+        trace.note(
+            "Raised LAP with normal e′: consider constriction, mitral regurgitation or a "
+            "high-output state (I-25-7)."
+        )
+    if c.verdict is Verdict.unavailable:
+        trace.say("Raised LAP but E/A is not available: grade 2 or 3 (I-25-8).")
+        trace.note("Raised LAP; E/A needed to tell grade 2 from grade 3.")
+        return Grade.indeterminate, FillingPressure.elevated
+    if c.verdict is Verdict.met:
+        trace.say("Raised LAP with E/A ≥ 2: grade 3.")
+        return Grade.grade_3, FillingPressure.elevated
+    trace.say("Raised LAP with E/A < 2: grade 2.")
+    return Grade.grade_2, FillingPressure.elevated

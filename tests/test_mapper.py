@@ -30,6 +30,7 @@ from service.vocabulary.standard import code
 EXAMPLE = Path(__file__).resolve().parents[1] / "config" / "mappings" / "example-site.toml"
 TABLE = load_mapping_table([EXAMPLE])
 M = Measure
+E_ONLY = [EchoItem(measure=Measure.mitral_e, value=80)]
 
 
 def run(items, template=Template.tid5300, **kw):
@@ -40,11 +41,11 @@ def run(items, template=Template.tid5300, **kw):
 def accounted(docs, m):
     """Every NUM is used, excluded or unrecognised; excluded/unrecognised exactly once."""
     all_nums = {(o.source_uid, o.path) for d in docs for o in d.observations}
-    # paths[i] lies in source_uids[i]; the patient-module age has no content-item path
+    # paths[i] lies in source_uids[i]; an age from the patient module has no path
     used = {
         (u, p)
         for v in m.values.values()
-        if v.origin is not Origin.patient
+        if v.paths
         for u, p in zip(v.source_uids, v.paths, strict=True)
     }
     excluded = [(e.source_uid, e.path) for e in m.excluded]
@@ -497,6 +498,25 @@ def test_age_from_the_patient_module():
     _, m = run([EchoItem(measure=M.mitral_e, value=80)])
     v = m.values[M.age]
     assert v.value == 66 and v.origin is Origin.patient and v.unit == "a"
+
+
+def test_subject_age_num_agrees_with_or_yields_to_the_patient_module():
+    from service.sr.echo_builder import Patient
+
+    agreeing = num_item(code("subject_age"), 66, "a")
+    doc, m = run(E_ONLY, raw_content=[agreeing])
+    assert m.values[M.age].origin is Origin.patient and m.get(M.age) == 66
+    assert m.values[M.age].paths == (doc.observations[-1].path,)
+    accounted([doc], m)
+    disagreeing = num_item(code("subject_age"), 50, "a")
+    doc, m = run(E_ONLY, raw_content=[disagreeing])
+    assert m.get(M.age) == 66 and "differs" in m.excluded[0].reason
+    accounted([doc], m)
+    # no Patient's Age: the reader takes Subject Age (18 months = 1.5 years)
+    months = num_item(code("subject_age"), 18, "mo")
+    doc, m = run(E_ONLY, raw_content=[months], patient=Patient(age=None, birth_date=""))
+    assert m.get(M.age) == 1.5 and m.values[M.age].origin is Origin.patient
+    accounted([doc], m)
 
 
 def test_unrecognised_items_keep_their_modifiers():

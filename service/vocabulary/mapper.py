@@ -218,6 +218,7 @@ class _State:
     unrecognised: list[Unrecognised] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
     picked: dict[Quantity, _Picked] = field(default_factory=dict)
+    picked_age: _Picked | None = None
 
     def exclude(self, obs: Observation, quantity: Quantity | None, reason: str) -> None:
         self.excluded.append(
@@ -514,6 +515,43 @@ def _value_of(state: _State, q: Measure, p: _Picked) -> MeasureValue:
     )
 
 
+def _age(state: _State) -> MeasureValue | None:
+    """Age in years, Origin.patient: Patient's Age (else Subject Age, else birth and study
+    dates, as read) of the most recent SR that has one.  A Subject Age NUM that agrees (within
+    a year) is listed as used; one that disagrees is excluded."""
+    spec = SPECS[Measure.age]
+    aged = [d for d in state.docs if d.patient_age_years is not None]
+    doc = max(aged, key=lambda d: (d.created, d.sop_instance_uid)) if aged else None
+    doc_age = None if doc is None else float(doc.patient_age_years)  # type: ignore[arg-type]
+    if doc_age is not None and not (spec.low <= doc_age <= spec.high):
+        state.notes.append(f"patient age {doc_age:g} years is implausible; not used")
+        doc_age = None
+    picked = state.picked_age
+    if picked is not None:
+        if doc_age is None or abs(picked.value - doc_age) < 1.0:
+            mv = _value_of(state, Measure.age, picked)
+            return mv.model_copy(
+                update={"origin": Origin.patient, "detail": "Subject Age in the SR content"}
+            )
+        for c in picked.cands:
+            state.exclude(
+                c.obs,
+                Measure.age,
+                f"Subject Age {picked.value:g} years differs from the patient module's age "
+                f"{doc_age:g} years; the patient module is used",
+            )
+    if doc_age is None or doc is None:
+        return None
+    return MeasureValue(
+        measure=Measure.age,
+        value=round2(doc_age),
+        unit=spec.unit,
+        origin=Origin.patient,
+        detail="from the patient module of the SR",
+        source_uids=(doc.sop_instance_uid,),
+    )
+
+
 def build_measurements(documents: Sequence[SourceDocument], table: MappingTable) -> Measurements:
     """Map the observations of one study's documents to canonical measures.
 
@@ -540,30 +578,14 @@ def build_measurements(documents: Sequence[SourceDocument], table: MappingTable)
                     + (f", which also needs {needs} (not found)" if needs else ", not derived"),
                 )
     values: dict[Measure, MeasureValue] = {}
+    age_picked = state.picked.pop(Measure.age, None)
+    state.picked_age = age_picked
     for q, p in state.picked.items():
         if isinstance(q, Measure):
             values[q] = _value_of(state, q, p)
-    if Measure.age not in values:
-        aged = [
-            (d.created, d.sop_instance_uid, d)
-            for d in state.docs
-            if d.patient_age_years is not None
-        ]
-        if aged:
-            doc = max(aged, key=lambda t: (t[0], t[1]))[2]
-            age = float(doc.patient_age_years)  # type: ignore[arg-type]
-            spec = SPECS[Measure.age]
-            if spec.low <= age <= spec.high:
-                values[Measure.age] = MeasureValue(
-                    measure=Measure.age,
-                    value=round2(age),
-                    unit=spec.unit,
-                    origin=Origin.patient,
-                    detail="from the patient module of the SR",
-                    source_uids=(doc.sop_instance_uid,),
-                )
-            else:
-                state.notes.append(f"patient age {age:g} years is implausible; not used")
+    age = _age(state)
+    if age is not None:
+        values[Measure.age] = age
     ordered = {m: values[m] for m in Measure if m in values}
     return Measurements(
         values=ordered,

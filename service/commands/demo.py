@@ -1,0 +1,86 @@
+"""``diastolic-sr demo`` and ``diastolic-sr demo-data``.
+
+``demo`` runs the whole job on loopback with embedded defaults: a diastolic-sr node, a result
+receiver standing in for the PACS, and the invented demo SRs sent as a scanner would send
+them.  ``demo-data`` only writes the demo SRs to a folder (for ``grade`` or a real peer).
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import tempfile
+from pathlib import Path
+
+from service.model import CAUTION
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "demo",
+        help="run the service end to end on loopback with invented demo studies",
+        description="Start a diastolic-sr node on loopback (embedded defaults) and a loopback "
+        "result receiver, send the invented demo SRs to the node as a scanner would, wait for "
+        "the graded results, print a summary and exit.",
+    )
+    p.add_argument("--workdir", type=Path, help="keep the node's data here (default: temporary)")
+    p.add_argument("--timeout", type=float, default=90.0, help="seconds to wait for all results")
+    p.set_defaults(func=run_demo)
+
+    d = sub.add_parser(
+        "demo-data",
+        help="write the invented demo SRs to a folder",
+        description="Write the invented demo echo SRs (fictional Harbour Vale Cardiac Centre) "
+        "to DIR: normal function, each grade, indeterminate, not gradable, borderline, atrial "
+        "fibrillation, and a study sent as two SRs; both encodings and mixed units.",
+    )
+    d.add_argument("out", type=Path, metavar="DIR")
+    d.set_defaults(func=run_demo_data)
+
+
+def run_demo_data(args: argparse.Namespace) -> int:
+    from service.demo.scenario import write_demo_files
+
+    for path in write_demo_files(args.out):
+        print(path)
+    return 0
+
+
+def run_demo(args: argparse.Namespace) -> int:
+    from service.demo.scenario import demo_datasets
+    from service.network.demo_loop import run_network_demo
+
+    logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
+    datasets = demo_datasets()
+    print(f"Sending {len(datasets)} demo SRs to a diastolic-sr node on loopback ...", flush=True)
+    if args.workdir:
+        args.workdir.mkdir(parents=True, exist_ok=True)
+        rows = run_network_demo(datasets, args.workdir, timeout=args.timeout)
+    else:
+        with tempfile.TemporaryDirectory(prefix="diastolic-sr-demo-") as tmp:
+            rows = run_network_demo(datasets, Path(tmp), timeout=args.timeout)
+    print_rows(rows)
+    delivered = sum(1 for r in rows if r["delivered"])
+    print(f"\n{delivered} of {len(rows)} studies: result SR delivered to the loopback PACS.")
+    print(CAUTION)
+    return 0 if delivered == len(rows) else 1
+
+
+def print_rows(rows: list[dict]) -> None:
+    headers = ("patient", "study", "guideline", "grade", "filling pressure", "result instance")
+    table = [
+        (
+            f"{r['patient_name'].replace('^', ', ')} ({r['patient_id']})",
+            "…" + r["study_uid"][-12:],
+            r["guideline"] or "-",
+            r["grade"] or r["status"],
+            r["filling_pressure"] or "-",
+            r["result_uid"] or (r.get("reason") or "-"),
+        )
+        for r in rows
+    ]
+    widths = [max(len(h), *(len(t[i]) for t in table)) for i, h in enumerate(headers)]
+    print("  ".join(h.ljust(w) for h, w in zip(headers, widths, strict=True)).rstrip())
+    print("  ".join("-" * w for w in widths))
+    for t in table:
+        print("  ".join(v.ljust(w) for v, w in zip(t, widths, strict=True)).rstrip())

@@ -319,6 +319,25 @@ def test_no_configuration_writes_results_to_the_folder(start_node, tmp_path):
     assert evidence_uids(result) == {ds.SOPInstanceUID}
 
 
+def test_object_that_is_no_echo_sr_is_set_aside_with_a_note(start_node):
+    node = start_node()  # real pipeline
+    echo = echo_sr("mixed")
+    empty = simple_sr(str(echo.StudyInstanceUID))  # an SR without a content tree
+    assert send([echo, empty], node.port) == [0, 0]
+    wait_for(_done(node, echo.StudyInstanceUID), 30)
+    assert _study_state(node, echo.StudyInstanceUID) == "delivered"
+    [row] = node.journal.results()
+    assert row["sources"] == [echo.SOPInstanceUID]
+    notes = {o["sop_instance_uid"]: o["note"] for o in node.journal.objects()}
+    assert notes[echo.SOPInstanceUID] == ""
+    assert notes[empty.SOPInstanceUID].startswith("set aside: ")
+    alone = simple_sr()
+    assert send([alone], node.port) == [0]
+    wait_for(_done(node, alone.StudyInstanceUID), 30)
+    study = node.journal.study(alone.StudyInstanceUID)
+    assert study["state"] == "failed" and study["reason"].startswith("no usable source")
+
+
 def test_study_with_two_srs_gives_one_merged_result_naming_both(start_node):
     receiver = ResultReceiver("RESULTS")
     port = receiver.start()

@@ -51,6 +51,18 @@ def default_grade_fn() -> GradeFunction:
     return grade_study
 
 
+def screen_with_reader(ds: Dataset) -> str | None:
+    """Why the SR reader refuses ``ds`` as a source, or None when it reads it."""
+    from service.errors import RejectedInput
+    from service.sr.read import read_document
+
+    try:
+        read_document(ds)
+    except RejectedInput as exc:
+        return str(exc)
+    return None
+
+
 def grade_options(config: Config, calling_ae: str) -> Any:
     from service.pipeline import GradeOptions
 
@@ -97,8 +109,15 @@ class Assembler:
         grade_fn: GradeFunction | None = None,
         on_result: Callable[[], None] = lambda: None,
         poll_seconds: float = 0.5,
+        screen: Callable[[Dataset], str | None] | str | None = "default",
     ) -> None:
         self.config = config
+        #: says why an object cannot be a source (or None); with the real pipeline, objects
+        #: that are not readable echo SRs (e.g. an empty SR sent along) are set aside, with a
+        #: note in the journal, instead of failing the whole study
+        if screen == "default":
+            screen = screen_with_reader if grade_fn is None else None
+        self.screen: Callable[[Dataset], str | None] | None = screen  # type: ignore[assignment]
         self.journal = journal
         self.spool = spool
         self._grade_fn = grade_fn
@@ -191,6 +210,25 @@ class Assembler:
                 )
                 log.error("study %s: spooled object unreadable: %s", claim.study_uid, exc)
                 return
+        notes: dict[str, str] = {}
+        usable = []
+        for uid, ds in zip(claim.object_uids, datasets, strict=True):
+            problem = self.screen(ds) if self.screen is not None else None
+            if problem:
+                notes[uid] = f"set aside: {problem}"
+                log.warning("study %s: object %s set aside: %s", claim.study_uid, uid, problem)
+            else:
+                usable.append((uid, ds))
+        if not usable:
+            self.journal.finish_grading(
+                claim,
+                result=None,
+                failure="no usable source: " + "; ".join(notes.values()),
+                object_notes=notes,
+            )
+            log.info("study %s not graded: no usable source", claim.study_uid)
+            return
+        datasets = [ds for _, ds in usable]
         predecessors = [
             InstanceRef(
                 study_instance_uid=r["study_uid"],
@@ -209,7 +247,9 @@ class Assembler:
         status = str(getattr(outcome.status, "value", outcome.status))
         if outcome.result is None:
             reason = outcome.reason or status
-            self.journal.finish_grading(claim, result=None, failure=f"{status}: {reason}")
+            self.journal.finish_grading(
+                claim, result=None, failure=f"{status}: {reason}", object_notes=notes
+            )
             log.info("study %s not graded (%s): %s", claim.study_uid, status, reason)
             return
         ds: Dataset = outcome.result
@@ -230,7 +270,7 @@ class Assembler:
             filling_pressure=(
                 None if assessment is None else str(assessment.filling_pressure.value)
             ),
-            sources=tuple(claim.object_uids),
+            sources=tuple(uid for uid, _ in usable),
             predecessors=tuple(
                 p.sop_instance_uid for p in predecessors if p.sop_instance_uid != result_uid
             ),
@@ -239,6 +279,7 @@ class Assembler:
             claim,
             result=new,
             destinations=destination_targets(self.config, claim.calling_ae),
+            object_notes=notes,
         )
         log.info(
             "study %s %s from %d object(s): result %s%s",

@@ -66,7 +66,8 @@ CREATE TABLE IF NOT EXISTS objects (
     path TEXT NOT NULL,
     state TEXT NOT NULL,
     received_at REAL NOT NULL,
-    times_received INTEGER NOT NULL DEFAULT 1
+    times_received INTEGER NOT NULL DEFAULT 1,
+    note TEXT NOT NULL DEFAULT ''  -- why the grading set it aside, if it did
 );
 CREATE INDEX IF NOT EXISTS objects_study ON objects (study_uid);
 CREATE TABLE IF NOT EXISTS studies (
@@ -218,7 +219,7 @@ class Journal:
                        transfer_syntax = excluded.transfer_syntax,
                        calling_ae = excluded.calling_ae, path = excluded.path,
                        state = 'received', received_at = excluded.received_at,
-                       times_received = times_received + 1""",
+                       times_received = times_received + 1, note = ''""",
                 (
                     sop_instance_uid,
                     study_uid,
@@ -295,6 +296,7 @@ class Journal:
         result: NewResult | None,
         destinations: Sequence[tuple[str, str]] = (),
         failure: str = "",
+        object_notes: dict[str, str] | None = None,
         now: float | None = None,
     ) -> bool:
         """Record the outcome of grading ``claim``.
@@ -317,6 +319,8 @@ class Journal:
                     "AND state = 'assembled'",
                     claim.object_uids,
                 )
+            for uid, note in (object_notes or {}).items():
+                db.execute("UPDATE objects SET note = ? WHERE sop_instance_uid = ?", (note, uid))
             if result is not None:
                 db.execute(
                     """INSERT OR IGNORE INTO results (result_uid, study_uid, series_uid,

@@ -571,7 +571,10 @@ def test_scale_widens_to_hold_value_and_cutoff() -> None:
         (14.0, 0, "14"),
         (0.8, 0, "0.8"),
         (2.85, 0, "2.85"),
-        (182.4, 0, "182"),
+        (182.4, 0, "182.4"),
+        (238.0, 0, "238"),
+        (14.96, 0, "14.96"),
+        (14.999, 0, "15"),
         (-0.001, 0, "0"),
         (3.0, 1, "3.0"),
         (2.85, 1, "2.85"),
@@ -630,3 +633,46 @@ def test_age_from_birth_and_study_date_when_absent(tmp_path: Path) -> None:
     pdf.write_bytes(render_summary_pdf(s, m, ident))
     # born 1958-03-12, study 2026-11-30: 68 full years
     assert re.search(r"1958-03-12 · 68 years", pdf_text(pdf))
+
+
+def write_doc_pictures(folder: Path, dpi: int = 70) -> list[Path]:
+    """Render every case to ``folder/summary-<case>.png`` (for reviewers; see
+    docs/pdf-summary.md)."""
+    folder.mkdir(parents=True, exist_ok=True)
+    written = []
+    for name in CASES:
+        pdf = folder / f"summary-{name}.pdf"
+        pdf.write_bytes(render(name))
+        try:
+            subprocess.run(
+                [
+                    tool("pdftoppm"),
+                    "-r",
+                    str(dpi),
+                    "-f",
+                    "1",
+                    "-l",
+                    "1",
+                    "-png",
+                    "-singlefile",
+                    str(pdf),
+                    str(folder / f"summary-{name}"),
+                ],
+                check=True,
+                timeout=60,
+            )
+        finally:
+            pdf.unlink()
+        png = folder / f"summary-{name}.png"
+        with Image.open(png) as img:  # a 64-colour palette keeps the pictures small
+            small = img.convert("RGB").quantize(colors=64, method=Image.Quantize.MEDIANCUT)
+        small.save(png, optimize=True)
+        written.append(png)
+    return written
+
+
+if __name__ == "__main__":  # python tests/test_summary_pdf.py docs
+    import sys
+
+    for p in write_doc_pictures(Path(sys.argv[1] if len(sys.argv) > 1 else "docs")):
+        print(p)

@@ -284,12 +284,13 @@ _MIN_DECIMALS = {"m/s": 1}
 
 
 def format_number(value: float, min_decimals: int = 0) -> str:
-    """Three significant figures at most, trailing zeros dropped down to ``min_decimals``:
-    14.0 → "14", 0.80 → "0.8", 2.85 → "2.85", 182.4 → "182"; 3.0 with one decimal → "3.0"."""
+    """Two decimals at most (one from 100 up), trailing zeros dropped down to ``min_decimals``:
+    14.0 → "14", 0.80 → "0.8", 14.96 → "14.96", 182.44 → "182.4"; 3.0 with one decimal → "3.0".
+    Values are not rounded further, so a value just beside a cut-off never prints as the
+    cut-off itself (at instrument precision)."""
     if not math.isfinite(value):
         return "—"
-    magnitude = abs(value)
-    decimals = 0 if magnitude >= 100 else 1 if magnitude >= 10 else 2
+    decimals = 1 if abs(value) >= 100 else 2
     decimals = max(decimals, min_decimals)
     text = f"{value:.{decimals}f}"
     if "." in text:
@@ -809,15 +810,8 @@ class _Summary:
         width = self.inner - bar - 2 * pad
         lines = wrap(conclusion_text(self.a), width, t.conclusion, bold=True)
         flags: list[str] = []
-        for f in self.a.borderline:
+        for f in self.a.borderline:  # the flag's text names the other side's outcome
             text = f.text.strip()
-            if (f.alternative_grade, f.alternative_filling_pressure) != (
-                self.a.grade,
-                self.a.filling_pressure,
-            ):
-                other = GRADE_WORDING[f.alternative_grade].lower()
-                other += f", {PRESSURE_WORDING[f.alternative_filling_pressure].lower()}"
-                text += f" On the other side of the cut-off: {other}."
             flags += wrap(f"Borderline: {text}", width, t.body)
         height = pad * 2 + len(lines) * t.lead(t.conclusion) + len(flags) * t.lead(t.body)
         height -= (t.lead(t.conclusion) - t.conclusion) * 0.6

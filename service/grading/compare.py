@@ -20,6 +20,7 @@ from service.model import (
     FillingPressure,
     Grade,
     Guideline,
+    Measure,
     Measurements,
     Pathway,
     Verdict,
@@ -91,15 +92,42 @@ def _because(primary: Assessment, other: Assessment) -> str:
         primary.pathway in _OUTSIDE_STANDARD or other.pathway in _OUTSIDE_STANDARD
     ):
         return f"{p}: {primary.pathway_reason}; {o}: {other.pathway_reason}"
-    reasons = _differing_cut_offs(primary, other)
+    reasons = [r for a in (primary, other) if (r := _why_undecided(a))]
+    reasons += _differing_groups(primary, other)
+    if len(reasons) < _MAX_REASONS:
+        only = _used_by_one(primary, other) + _used_by_one(other, primary)
+        only.sort(key=lambda pair: not pair[0])  # abnormal findings first
+        reasons += [text for _, text in only]
     if reasons:
         return "; ".join(reasons[:_MAX_REASONS])
-    only = _used_by_one(primary, other) + _used_by_one(other, primary)
-    if only:
-        return "; ".join(only[:_MAX_REASONS])
     return (
         f"the two rule sets combine the same findings differently ({p}: {primary.pathway_reason})"
     )
+
+
+#: measures that play the same part in every rule set, compared as one finding
+GROUPS: dict[Measure, str] = {
+    Measure.e_prime_septal: "e′",
+    Measure.e_prime_lateral: "e′",
+    Measure.e_prime_average: "e′",
+    Measure.e_e_prime_septal: "E/e′",
+    Measure.e_e_prime_lateral: "E/e′",
+    Measure.e_e_prime_average: "E/e′",
+    Measure.tr_peak_velocity: "TR velocity or PASP",
+    Measure.pasp: "TR velocity or PASP",
+}
+
+
+def _why_undecided(a: Assessment) -> str | None:
+    """The reasoning sentence that left an indeterminate result undecided, if any."""
+    if a.filling_pressure not in (FillingPressure.indeterminate, FillingPressure.unknown):
+        return None
+    for sentence in reversed(a.reasoning):
+        low = sentence.lower()
+        if any(k in low for k in ("indeterminate", "not estimated", "not gradable", "unknown")):
+            text = sentence.rstrip(".")
+            return f"{LABELS[a.guideline]}: {text[:1].lower()}{text[1:]}"
+    return None
 
 
 def _side(c: Criterion) -> bool:
@@ -124,46 +152,66 @@ def _name_and_unit(c: Criterion) -> tuple[str, str]:
     return c.measure.value, ""  # pragma: no cover - labels always carry a symbol
 
 
-def _differing_cut_offs(primary: Assessment, other: Assessment) -> list[str]:
-    """Criteria on the same measure, same direction, same value, with different verdicts."""
-    p, o = LABELS[primary.guideline], LABELS[other.guideline]
-    out: list[str] = []
-    seen: set[str] = set()
-    for cp in primary.criteria:
-        if cp.value is None or cp.measure.value in seen:
+def _finding(c: Criterion) -> str:
+    """E.g. "septal e′ 6.5 cm/s against < 7 cm/s"."""
+    name, unit = _name_and_unit(c)
+    u = f" {unit}" if unit else ""
+    return f"{name} {fmt(c.value or 0.0)}{u} against {_cut(c, unit)}"
+
+
+def _grouped(a: Assessment) -> dict[tuple[str, bool], list[Criterion]]:
+    out: dict[tuple[str, bool], list[Criterion]] = {}
+    for c in a.criteria:
+        if c.value is None or c.step == "routing":
             continue
-        for co in other.criteria:
-            if co.measure != cp.measure or co.value is None or _side(co) != _side(cp):
-                continue
-            if co.verdict == cp.verdict:
-                break
-            seen.add(cp.measure.value)
-            name, unit = _name_and_unit(co)
-            u = f" {unit}" if unit else ""
-            met, not_met = (cp, co) if cp.verdict is Verdict.met else (co, cp)
-            met_by, not_by = (p, o) if met is cp else (o, p)
-            out.append(
-                f"{name} {fmt(cp.value)}{u} meets the {met_by} cut-off ({_cut(met, unit)}) "
-                f"but not the {not_by} cut-off ({_cut(not_met, unit)})"
-            )
-            break
+        key = (GROUPS.get(c.measure, c.measure.value), _side(c))
+        out.setdefault(key, []).append(c)
     return out
 
 
-def _used_by_one(a: Assessment, b: Assessment) -> list[str]:
-    """Available criteria of ``a`` on measures that ``b`` did not evaluate with a value."""
-    used_by_b = {c.measure for c in b.criteria if c.value is not None}
+def _differing_groups(primary: Assessment, other: Assessment) -> list[str]:
+    """Findings (e′, E/e′, TR/PASP, or one measure) that one rule set counts as abnormal and the
+    other, with a value available, does not."""
+    gp, go = _grouped(primary), _grouped(other)
     out: list[str] = []
-    seen: set[str] = set()
-    for c in a.criteria:
-        if c.value is None or c.measure in used_by_b or c.measure.value in seen:
+    for key, cps in gp.items():
+        cos = go.get(key)
+        if not cos:
             continue
-        seen.add(c.measure.value)
-        name, unit = _name_and_unit(c)
-        u = f" {unit}" if unit else ""
-        verdict = "abnormal" if c.verdict is Verdict.met else "normal"
+        met_p = any(c.verdict is Verdict.met for c in cps)
+        met_o = any(c.verdict is Verdict.met for c in cos)
+        if met_p == met_o:
+            continue
+        (yes, yes_c), (no, no_c) = (
+            ((primary, cps), (other, cos)) if met_p else ((other, cos), (primary, cps))
+        )
+        shown_yes = "; ".join(_finding(c) for c in yes_c if c.verdict is Verdict.met)
+        shown_no = "; ".join(_finding(c) for c in no_c)
+        group = GROUPS.get(cps[0].measure) or _name_and_unit(cps[0])[0]
         out.append(
-            f"only {LABELS[a.guideline]} uses {name} ({fmt(c.value)}{u}, {verdict} against "
-            f"{_cut(c, unit)})"
+            f"{group} is abnormal by the {LABELS[yes.guideline]} cut-off ({shown_yes}) but not "
+            f"by the {LABELS[no.guideline]} cut-off ({shown_no})"
+        )
+    return out
+
+
+def _used_by_one(a: Assessment, b: Assessment) -> list[tuple[bool, str]]:
+    """Available criteria of ``a`` on findings that ``b`` did not evaluate with a value, each
+    with whether it is abnormal."""
+    used_by_b = {key[0] for key in _grouped(b)}
+    out: list[tuple[bool, str]] = []
+    seen: set[str] = set()
+    for (group, _), cs in _grouped(a).items():
+        if group in used_by_b or group in seen:
+            continue
+        seen.add(group)
+        c = next((x for x in cs if x.verdict is Verdict.met), cs[0])
+        abnormal = c.verdict is Verdict.met
+        out.append(
+            (
+                abnormal,
+                f"only {LABELS[a.guideline]} uses {_finding(c)} "
+                f"({'abnormal' if abnormal else 'normal'})",
+            )
         )
     return out

@@ -12,7 +12,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from service.grading.criteria import fmt, value_of
+from service.grading.criteria import value_of
 from service.model import Assessment, FillingPressure, Measure, Measurements, SupportingFinding
 
 NAME = "Valsalva manoeuvre"
@@ -34,7 +34,11 @@ class Change:
 
     def words(self, name: str, unit: str = "") -> str:
         u = f" {unit}" if unit else ""
-        return f"{name} {fmt(self.rest)} → {fmt(self.strain)}{u} ({_pct(self.fraction)})"
+        return f"{name} {_short(self.rest)} → {_short(self.strain)}{u} ({_pct(self.fraction)})"
+
+
+def _short(value: float) -> str:
+    return f"{value:.3g}"
 
 
 def _pct(fraction: float) -> str:
@@ -71,10 +75,16 @@ def finding(measurements: Measurements) -> SupportingFinding | None:
     )
     if all(value_of(m, x) is None for x in valsalva_measures):
         return None
-    rest = _ratio(m, Measure.e_a_ratio, Measure.mitral_e, Measure.mitral_a)
-    strain = _ratio(
-        m, Measure.e_a_ratio_valsalva, Measure.mitral_e_valsalva, Measure.mitral_a_valsalva
-    )
+    e = _change(m, Measure.mitral_e, Measure.mitral_e_valsalva)
+    a = _change(m, Measure.mitral_a, Measure.mitral_a_valsalva)
+    if e is not None and a is not None:
+        # all four waves known: both ratios from the waves, so rest and strain are alike
+        rest, strain = _positive(e.rest / a.rest), _positive(e.strain / a.strain)
+    else:
+        rest = _ratio(m, Measure.e_a_ratio, Measure.mitral_e, Measure.mitral_a)
+        strain = _ratio(
+            m, Measure.e_a_ratio_valsalva, Measure.mitral_e_valsalva, Measure.mitral_a_valsalva
+        )
     if rest is None or strain is None:
         return SupportingFinding(
             name=NAME,
@@ -84,8 +94,6 @@ def finding(measurements: Measurements) -> SupportingFinding | None:
             ),
         )
     ratio = Change(rest, strain)
-    e = _change(m, Measure.mitral_e, Measure.mitral_e_valsalva)
-    a = _change(m, Measure.mitral_a, Measure.mitral_a_valsalva)
     parts = [ratio.words("E/A")]
     if e is not None:
         parts.append(e.words("E", "cm/s"))
@@ -116,8 +124,8 @@ def finding(measurements: Measurements) -> SupportingFinding | None:
     elif e is not None and a is not None and e.strain < e.rest and a.strain < a.rest:
         supports = False
         meaning = (
-            f"E and A both fell and E/A fell by less than 50 %: the normal response, which does "
-            f"not support raised filling pressure ({SOURCE})"
+            "E and A both fell and E/A did not fall by 50 % or more: the normal response, which "
+            f"does not support raised filling pressure ({SOURCE})"
         )
     else:
         supports = None

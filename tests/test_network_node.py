@@ -475,6 +475,37 @@ def test_pacs_down_then_up_every_result_is_delivered(start_node, tmp_path):
     assert all(_study_state(node, u) == "delivered" for u in uids)
 
 
+def test_results_follow_the_routing_table_of_the_calling_ae(start_node):
+    echo1_pacs, default_pacs = ResultReceiver("PACS_A"), ResultReceiver("PACS_B")
+    port_a, port_b = echo1_pacs.start(), default_pacs.start()
+    try:
+        node = start_node(
+            {
+                "destinations": {
+                    "A": {"ae_title": "PACS_A", "host": LOOPBACK, "port": port_a},
+                    "B": {"ae_title": "PACS_B", "host": LOOPBACK, "port": port_b},
+                },
+                "routes": [
+                    {"calling_ae": "ECHO1", "destinations": ["A", "B"]},
+                    {"calling_ae": "*", "destinations": ["B"]},
+                ],
+                "delivery": {"results_folder": ""},
+            },
+            grade_fn=fake_grade,
+        )
+        from_echo1, from_other = simple_sr(), simple_sr()
+        assert send([from_echo1], node.port, calling="ECHO1") == [0]
+        assert send([from_other], node.port, calling="ECHO7") == [0]
+        wait_for(_done(node, from_echo1.StudyInstanceUID, from_other.StudyInstanceUID), 30)
+        r1 = node.journal.study(from_echo1.StudyInstanceUID)["result_uid"]
+        r2 = node.journal.study(from_other.StudyInstanceUID)["result_uid"]
+        assert echo1_pacs.uids() == [r1]
+        assert sorted(default_pacs.uids()) == sorted([r1, r2])
+    finally:
+        echo1_pacs.stop()
+        default_pacs.stop()
+
+
 def test_attempt_limit_marks_failed_with_reason_then_requeue(start_node, tmp_path, capsys):
     pacs_port = free_port()
     node = start_node(

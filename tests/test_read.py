@@ -236,6 +236,7 @@ def _elements(ds: Dataset, out: list) -> list:
     return out
 
 
+@pytest.mark.filterwarnings("ignore::UserWarning")  # pydicom warns about the garbage values
 @settings(max_examples=80, deadline=None, derandomize=True)
 @given(
     st.lists(

@@ -1,0 +1,66 @@
+"""The demo scenario grades as designed under ASE/EACVI 2016, and the README's run command
+(``diastolic-sr demo``) works end to end on loopback."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import pytest
+
+from service.demo.scenario import CASES, case_datasets
+from service.model import CAUTION, Grade, Measure
+from service.pipeline import GradeOptions, GradeStatus, grade_study
+
+
+@pytest.mark.parametrize("case", CASES, ids=lambda c: c.key)
+def test_each_demo_case_gets_its_designed_grade(case):
+    # Values chosen against Nagueh 2016 JASE 29:277 Fig 8A/8B (see each case's title).
+    outcome = grade_study(case_datasets(case), GradeOptions())
+    assert outcome.assessment is not None
+    assert outcome.assessment.grade is case.expected_2016
+    assert outcome.result is not None
+    assert outcome.assessment.caution == CAUTION
+
+
+def test_demo_covers_every_outcome():
+    assert {c.expected_2016 for c in CASES} == set(Grade)
+
+
+def test_two_reports_of_one_study_are_merged():
+    case = next(c for c in CASES if c.follow_up)
+    first, later = case_datasets(case)
+    assert first.StudyInstanceUID == later.StudyInstanceUID
+    alone = grade_study([first], GradeOptions())
+    merged = grade_study([first, later], GradeOptions())
+    assert alone.assessment.grade is Grade.indeterminate  # TR and LAVI missing: 2 of 4
+    assert merged.status is GradeStatus.graded
+    assert merged.assessment.grade is Grade.grade_2
+    tr = merged.measurements.values[Measure.tr_peak_velocity]
+    assert tr.source_uids == (str(later.SOPInstanceUID),)
+    # the result references both sources
+    refs = {
+        item.ReferencedSOPInstanceUID
+        for series in merged.result.CurrentRequestedProcedureEvidenceSequence[
+            0
+        ].ReferencedSeriesSequence
+        for item in series.ReferencedSOPSequence
+    }
+    assert refs == {str(first.SOPInstanceUID), str(later.SOPInstanceUID)}
+
+
+@pytest.mark.network
+def test_demo_command_runs_end_to_end():
+    proc = subprocess.run(
+        [sys.executable, "-m", "service.cli", "demo", "--timeout", "60"],
+        capture_output=True,
+        text=True,
+        timeout=150,
+    )
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert "Traceback" not in proc.stderr
+    studies = len({c.key for c in CASES})
+    assert f"{studies} of {studies} studies: result SR delivered" in proc.stdout
+    for case in CASES:
+        assert case.patient.id in proc.stdout
+    assert CAUTION in proc.stdout

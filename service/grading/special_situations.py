@@ -472,7 +472,7 @@ def _hcm16(trace: Trace, context: Context) -> _Outcome:
 def _lateral_ph(
     trace: Trace, high: Threshold, low: Threshold, prefix: str, ambiguity: str
 ) -> _Outcome:
-    step = "special situation: pulmonary hypertension of non-cardiac cause"
+    step = "special situation: pulmonary hypertension non cardiac"
     hi = trace.check(high, f"{prefix}.{high.key}", step)
     lo = trace.check(low, f"{prefix}.{low.key}", step)
     name = "Pulmonary hypertension"

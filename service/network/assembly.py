@@ -154,31 +154,30 @@ class Assembler:
 
     def _run(self) -> None:
         while not self._stop.is_set():
+            self._wake.clear()
+            wait = self._poll
             try:
-                self._schedule()
+                if self._schedule():  # a worker is free: sleep until the next window ends
+                    due = self.journal.next_due_at()
+                    if due is not None:
+                        wait = max(0.01, min(wait, due - time.time()))
             except Exception:
                 log.exception("assembly scheduler error; retrying")
-            wait = self._poll
-            due = None
-            try:
-                due = self.journal.next_due_at()
-            except Exception:
-                log.exception("journal read failed")
-            if due is not None:
-                wait = max(0.01, min(wait, due - time.time()))
             self._wake.wait(wait)
-            self._wake.clear()
 
-    def _schedule(self) -> None:
+    def _schedule(self) -> bool:
+        """Claim due studies for free workers; True when a worker is still free."""
         with self._inflight_lock:
             free = self._workers - len(self._inflight)
         if free <= 0 or self._stop.is_set():
-            return
-        for claim in self.journal.claim_due(limit=free):
+            return False
+        claims = self.journal.claim_due(limit=free)
+        for claim in claims:
             fut = self._pool.submit(self._grade_claim, claim)
             with self._inflight_lock:
                 self._inflight.add(fut)
             fut.add_done_callback(self._done)
+        return len(claims) < free
 
     def _done(self, fut: Future[None]) -> None:
         with self._inflight_lock:
@@ -195,25 +194,23 @@ class Assembler:
             self.grade(claim)
         except Exception as exc:
             log.exception("grading study %s failed", claim.study_uid)
-            self.journal.finish_grading(
-                claim, result=None, failure=f"internal error while grading: {exc}"
-            )
+            try:
+                self.journal.finish_grading(
+                    claim, result=None, failure=f"internal error while grading: {exc}"
+                )
+            except Exception:  # the journal itself failed: the claim resumes on restart
+                log.exception("cannot record the failure of study %s", claim.study_uid)
 
     def grade(self, claim: StudyClaim) -> None:
-        datasets = []
-        for path in claim.object_paths:
-            try:
-                datasets.append(pydicom.dcmread(path))
-            except Exception as exc:  # spooled file unreadable: say so, do not guess
-                self.journal.finish_grading(
-                    claim, result=None, failure=f"spooled object {path.name} unreadable: {exc}"
-                )
-                log.error("study %s: spooled object unreadable: %s", claim.study_uid, exc)
-                return
         notes: dict[str, str] = {}
         usable = []
-        for uid, ds in zip(claim.object_uids, datasets, strict=True):
-            problem = self.screen(ds) if self.screen is not None else None
+        for uid, path in zip(claim.object_uids, claim.object_paths, strict=True):
+            try:
+                ds = pydicom.dcmread(path)
+            except Exception as exc:  # spooled file unreadable: say so, do not guess
+                problem: str | None = f"spooled file unreadable ({type(exc).__name__}: {exc})"
+            else:
+                problem = self.screen(ds) if self.screen is not None else None
             if problem:
                 notes[uid] = f"set aside: {problem}"
                 log.warning("study %s: object %s set aside: %s", claim.study_uid, uid, problem)

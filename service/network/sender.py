@@ -72,19 +72,16 @@ class Sender:
 
     def _run(self) -> None:
         while not self._stop.is_set():
-            try:
-                self.deliver_due()
-            except Exception:
-                log.exception("delivery loop error; retrying")
+            self._wake.clear()
             wait = self._poll
             try:
+                self.deliver_due()
                 nxt = self.journal.next_delivery_at()
+                if nxt is not None:
+                    wait = max(0.05, min(wait, nxt - time.time()))
             except Exception:
-                nxt = None
-            if nxt is not None:
-                wait = max(0.01, min(wait, nxt - time.time()))
+                log.exception("delivery loop error; retrying")
             self._wake.wait(wait)
-            self._wake.clear()
 
     def deliver_due(self) -> int:
         """Send every delivery that is due now; returns how many were attempted."""

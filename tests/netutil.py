@@ -252,6 +252,23 @@ def echo_ok(port: int, called: str, calling: str = "ECHOSCU") -> bool:
     return r.returncode == 0
 
 
+def pynetdicom_echo(port: int, called: str = NODE_AE, calling: str = "ECHOER") -> int | None:
+    """C-ECHO with pynetdicom; the status, or None when no association."""
+    from pynetdicom import AE
+
+    ae = AE(ae_title=calling)
+    ae.acse_timeout = ae.dimse_timeout = ae.network_timeout = 10
+    ae.add_requested_context("1.2.840.10008.1.1")
+    assoc = ae.associate(LOOPBACK, port, ae_title=called)
+    if not assoc.is_established:
+        return None
+    try:
+        status = assoc.send_c_echo()
+        return int(status.Status) if "Status" in status else None
+    finally:
+        assoc.release()
+
+
 def pacs_uids(out_dir: Path) -> list[str]:
     """SOP Instance UIDs of the files storescp wrote (one per received object)."""
     out = []

@@ -24,6 +24,7 @@ from netutil import (
     free_port,
     pacs_uids,
     predecessor_uids,
+    pynetdicom_echo,
     run_storescu,
     send,
     simple_sr,
@@ -158,6 +159,31 @@ def test_at_least_eight_simultaneous_associations(start_node):
         for a in assocs:
             if a.is_established:
                 a.release()
+
+
+def test_grading_runs_off_the_network_threads(start_node):
+    entered, release = threading.Event(), threading.Event()
+    threads: list[str] = []
+
+    def slow_grade(datasets, options, **kwargs):
+        threads.append(threading.current_thread().name)
+        entered.set()
+        release.wait(20)
+        return fake_grade(datasets, options, **kwargs)
+
+    node = start_node(grade_fn=slow_grade, settle=0)
+    first, second = simple_sr(), simple_sr()
+    try:
+        assert send([first], node.port) == [0]
+        assert entered.wait(20)
+        # the grader is busy: the node still acknowledges objects and answers echoes
+        assert send([second], node.port) == [0]
+        assert pynetdicom_echo(node.port) == 0
+        assert _study_state(node, second.StudyInstanceUID) == "received"
+    finally:
+        release.set()
+    wait_for(_done(node, first.StudyInstanceUID, second.StudyInstanceUID), 30)
+    assert threads and all(name.startswith("grade") for name in threads)
 
 
 # -- receiving: durability and failure statuses ------------------------------------------------

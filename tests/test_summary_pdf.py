@@ -17,6 +17,8 @@ from pathlib import Path
 
 import pydicom
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from PIL import Image
 
 from service import SOFTWARE_NAME, __version__
@@ -48,6 +50,7 @@ from service.report.summary_pdf import (
     SourceDescription,
     format_number,
     marker_for,
+    printable,
     scale_for,
 )
 
@@ -534,12 +537,69 @@ def test_overflowing_content_stays_on_one_page(tmp_path: Path) -> None:
 
 
 @pytest.mark.external
+def test_many_criteria_and_long_texts_stay_on_one_page(tmp_path: Path) -> None:
+    s, m = build("indeterminate")
+    many = tuple(crit(f"x.{i}", f"step {i // 5}", M.lavi, C.gt, 34, 20.0 + i) for i in range(60))
+    long = "a very long pathway reason " * 40
+    crowded = s.primary.model_copy(
+        update={
+            "criteria": many,
+            "pathway_reason": long,
+            "guideline_citation": long,
+            "reasoning": tuple(f"Sentence {i}." for i in range(40)),
+        }
+    )
+    pdf = tmp_path / "summary.pdf"
+    pdf.write_bytes(render_summary_pdf(AssessmentSet(primary=crowded), m, IDENTITY))
+    assert pdf_info(pdf)["Pages"] == "1"
+    text = pdf_text(pdf)
+    assert "more criteria: see the result SR" in text
+    assert " ".join(CAUTION.split()) in text  # never cut
+    assert RESULT_UID not in text and "not yet assigned" in text
+
+
+@pytest.mark.external
+def test_non_finite_numbers_do_not_break_the_page(tmp_path: Path) -> None:
+    s, m = build("normal")
+    odd = (
+        crit("x.nan_value", A, M.lavi, C.gt, 34, float("nan")),
+        crit("x.inf_cut", A, M.lavi, C.gt, float("inf"), 40),
+        crit("x.huge", A, M.e_e_prime_average, C.gt, 14, 1e9),
+    )
+    a = s.primary.model_copy(update={"criteria": odd})
+    pdf = tmp_path / "summary.pdf"
+    pdf.write_bytes(render_summary_pdf(AssessmentSet(primary=a), m, IDENTITY))
+    assert pdf_info(pdf)["Pages"] == "1"
+    assert "not available" in pdf_text(pdf)  # the NaN value is not drawn
+
+
+@pytest.mark.external
 def test_text_is_not_parsed_as_markup(tmp_path: Path) -> None:
     s, m = build("normal")
     odd = s.primary.model_copy(update={"reasoning": ("Cost $5$ and 10% _x_ ^y^ {z}.",)})
     pdf = tmp_path / "summary.pdf"
     pdf.write_bytes(render_summary_pdf(AssessmentSet(primary=odd), m, IDENTITY))
     assert "Cost $5$ and 10% _x_ ^y^ {z}." in pdf_text(pdf)
+
+
+@settings(max_examples=8, deadline=None, derandomize=True)
+@given(
+    words=st.lists(st.text(max_size=120), min_size=1, max_size=4),
+    name=st.text(max_size=80),
+)
+def test_any_text_renders(words: list[str], name: str) -> None:
+    # control characters, scripts outside the font, emoji, "$" and newlines all print
+    s, m = build("grade-2")
+    a = s.primary.model_copy(
+        update={"reasoning": tuple(words), "notes": tuple(words), "pathway_reason": words[0]}
+    )
+    ident = IDENTITY.model_copy(update={"patient_name": name, "institution": name})
+    pdf = render_summary_pdf(AssessmentSet(primary=a), m, ident)
+    assert pdf.startswith(b"%PDF-") and pdf.rstrip().endswith(b"%%EOF")
+
+
+def test_characters_outside_the_font_print_as_question_marks() -> None:
+    assert printable("Øyen 山田 e′ ≤ 😀\n") == "Øyen ?? e′ ≤ ??"
 
 
 # ---------------------------------------------------------------------------------------------

@@ -313,11 +313,14 @@ def scale_for(criterion: Criterion) -> tuple[float, float]:
     """Track range of a criterion row: the measure's physiological range, widened to hold the
     cut-off and the value when either falls outside it."""
     lo, hi = SCALES.get(criterion.measure, (0.0, 0.0))
-    points = [criterion.threshold]
-    if criterion.value is not None and math.isfinite(criterion.value):
-        points.append(criterion.value)
-    if hi <= lo:  # unknown measure: centre the cut-off
-        lo, hi = min(0.0, criterion.threshold), max(criterion.threshold * 2, 1.0)
+    points = [
+        p for p in (criterion.threshold, criterion.value) if p is not None and math.isfinite(p)
+    ]
+    if hi <= lo:  # unknown measure: from 0 to twice the cut-off
+        cut = criterion.threshold if math.isfinite(criterion.threshold) else 1.0
+        lo, hi = min(0.0, cut), max(cut * 2, 1.0)
+    if not points:
+        return float(lo), float(hi)
     span = hi - lo
     if min(points) < lo:
         lo = min(points) - 0.05 * span
@@ -564,6 +567,13 @@ def wrap(s: str, width: float, size: float, bold: bool = False) -> list[str]:
     return lines
 
 
+def clip(lines: list[str], n: int, width: float, size: float, bold: bool = False) -> list[str]:
+    """At most ``n`` lines; the last one kept ends with "…" when lines were dropped."""
+    if len(lines) <= n:
+        return lines
+    return [*lines[: n - 1], ellipsize(lines[n - 1] + " …", width, size, bold)]
+
+
 def ellipsize(s: str, width: float, size: float, bold: bool = False) -> str:
     if text_width(s, size, bold) <= width:
         return s
@@ -794,7 +804,7 @@ class _Summary:
         )
         y += lead
         for label, value in (("Guideline", guideline + citation), ("Pathway", pathway + reason)):
-            lines = wrap(value, self.inner - label_w, t.body)
+            lines = clip(wrap(value, self.inner - label_w, t.body), 3, self.inner - label_w, t.body)
             for j, line in enumerate(lines):
                 base = y + t.body
                 if j == 0:
@@ -808,11 +818,14 @@ class _Summary:
         bar = 4 * t.k
         text_x = self.left + bar + pad
         width = self.inner - bar - 2 * pad
-        lines = wrap(conclusion_text(self.a), width, t.conclusion, bold=True)
+        lines = clip(
+            wrap(conclusion_text(self.a), width, t.conclusion, True), 3, width, t.conclusion, True
+        )
         flags: list[str] = []
         for f in self.a.borderline:  # the flag's text names the other side's outcome
             text = f.text.strip()
             flags += wrap(f"Borderline: {text}", width, t.body)
+        flags = clip(flags, 6, width, t.body)
         height = pad * 2 + len(lines) * t.lead(t.conclusion) + len(flags) * t.lead(t.body)
         height -= (t.lead(t.conclusion) - t.conclusion) * 0.6
         c.rect(self.left, y, self.inner, height, facecolor="#eef4f9", edgecolor="none", zorder=0)
@@ -857,7 +870,8 @@ class _Summary:
             )
         return y + height + t.body * 1.2
 
-    def criteria(self, c: _Canvas, t: _Type, y: float) -> float:
+    def criteria(self, c: _Canvas, t: _Type, y: float, limit: float | None = None) -> float:
+        """The chart; with ``limit``, rows that would pass it are left out and counted."""
         heading_base = y + t.heading
         c.text(
             self.left,
@@ -905,7 +919,18 @@ class _Summary:
         row_h = 25 * t.k
         step = None
         y += t.small * 0.6
-        for cr in crit:
+        for i, cr in enumerate(crit):
+            need = row_h + (t.lead(t.small) + 2 * t.k if cr.step != step else 0)
+            if limit is not None and y + need + t.lead(t.body) > limit:
+                c.text(
+                    self.left,
+                    y + t.body,
+                    f"… {len(crit) - i} more criteria: see the result SR",
+                    t.body,
+                    colour=GREY,
+                )
+                y += t.lead(t.body)
+                break
             if cr.step != step:
                 step = cr.step
                 c.text(
@@ -959,21 +984,23 @@ class _Summary:
             ha="right",
         )
         # the side where the criterion is met, lightly shaded, then the cut-off line
-        tx = px(cr.threshold)
-        met_to = x1 if cr.comparison in (Comparison.gt, Comparison.ge) else x0
-        c.rect(
-            min(tx, met_to),
-            mid - 4.5 * t.k,
-            abs(met_to - tx),
-            9 * t.k,
-            facecolor=OKABE_ITO["vermillion"],
-            alpha=0.13,
-            edgecolor="none",
-            zorder=1,
-        )
-        c.line([tx, tx], [mid - 7 * t.k, mid + 6 * t.k], color=INK, linewidth=1.1, zorder=3)
-        cut = f"{_COMPARISON_SYMBOL[cr.comparison]} {format_number(cr.threshold)}"
-        c.text(tx, mid - 8.5 * t.k, cut, t.tiny, colour=INK, ha="center")
+        finite_cut = math.isfinite(cr.threshold)
+        tx = px(cr.threshold) if finite_cut else (x0 + x1) / 2
+        if finite_cut:
+            met_to = x1 if cr.comparison in (Comparison.gt, Comparison.ge) else x0
+            c.rect(
+                min(tx, met_to),
+                mid - 4.5 * t.k,
+                abs(met_to - tx),
+                9 * t.k,
+                facecolor=OKABE_ITO["vermillion"],
+                alpha=0.13,
+                edgecolor="none",
+                zorder=1,
+            )
+            c.line([tx, tx], [mid - 7 * t.k, mid + 6 * t.k], color=INK, linewidth=1.1, zorder=3)
+            cut = f"{_COMPARISON_SYMBOL[cr.comparison]} {format_number(cr.threshold)}"
+            c.text(tx, mid - 8.5 * t.k, cut, t.tiny, colour=INK, ha="center")
         # value
         vx = self.right
         if available:
@@ -1221,8 +1248,10 @@ class _Summary:
         y = self.header(c, t, y)
         y = self.conclusion(c, t, y)
         y = self.caution(c, t, y)
-        y = self.criteria(c, t, y)
         bottom = self.footer(c, t)
+        # when drawing, keep room for the columns' headings and a few lines
+        limit = bottom - 70 * t.k if c.drawing else None
+        y = self.criteria(c, t, y, limit)
         overflow = y + self.natural_columns_height(t) - bottom
         if c.drawing:
             self.columns(c, t, y, bottom)

@@ -455,7 +455,7 @@ def test_text_has_conclusion_guideline_caution_and_footer(name: str, tmp_path: P
 
 
 @pytest.mark.external
-@pytest.mark.parametrize("name", ["grade-2", "atrial-fibrillation"])
+@pytest.mark.parametrize("name", list(CASES))
 def test_all_fonts_embedded(name: str, tmp_path: Path) -> None:
     pdf = tmp_path / "summary.pdf"
     pdf.write_bytes(render(name))

@@ -48,6 +48,8 @@ from service.report import SummaryIdentity, identity_from_dataset, render_summar
 from service.report.summary_pdf import (
     OKABE_ITO,
     SourceDescription,
+    _reduced_copies,
+    font_files,
     format_number,
     marker_for,
     printable,
@@ -596,6 +598,25 @@ def test_any_text_renders(words: list[str], name: str) -> None:
     ident = IDENTITY.model_copy(update={"patient_name": name, "institution": name})
     pdf = render_summary_pdf(AssessmentSet(primary=a), m, ident)
     assert pdf.startswith(b"%PDF-") and pdf.rstrip().endswith(b"%%EOF")
+
+
+def test_reduced_font_is_made_once_and_keeps_the_needed_characters(tmp_path: Path) -> None:
+    from matplotlib import ft2font
+
+    regular = Path(font_files()[0])
+    source = tmp_path / "src" / "Face.ttf"
+    source.parent.mkdir()
+    # start from the page's own reduced face (small, so the test is quick)
+    source.write_bytes(regular.read_bytes())
+    (made,) = _reduced_copies((source,), tmp_path / "cache")
+    stamp = os.stat(made).st_mtime_ns
+    assert _reduced_copies((source,), tmp_path / "cache") == (made,)
+    assert os.stat(made).st_mtime_ns == stamp  # reused, not rebuilt
+    assert not list((tmp_path / "cache").glob("*.part"))
+    charmap = ft2font.FT2Font(made).get_charmap()
+    for ch in "Ae′≤≥²·—Øμж":  # the page's own symbols, Latin-1, Greek, Cyrillic
+        assert ord(ch) in charmap, ch
+    assert ord("山") not in charmap
 
 
 def test_characters_outside_the_font_print_as_question_marks() -> None:

@@ -18,8 +18,10 @@ greyscale and for colour-blind readers (colours from the Okabe-Ito palette).
 from __future__ import annotations
 
 import atexit
+import hashlib
 import io
 import math
+import os
 import re
 import shutil
 import tempfile
@@ -481,23 +483,59 @@ def _reduce_font(source: Path, target: Path) -> None:
         font.save(target)
 
 
+#: sub-folder of matplotlib's cache folder that holds the reduced fonts
+_FONT_CACHE = "diastolic-sr-fonts"
+#: bump when :func:`_reduce_font` changes, so cached copies are rebuilt
+_FONT_RECIPE = "1"
+
+
+def _reduced_copies(originals: tuple[Path, ...], folder: Path) -> tuple[str, ...]:
+    """Reduced copies of ``originals`` in ``folder``, made once and reused: the file name
+    carries a digest of the source font, the ranges, the recipe and the fontTools version, and
+    files are written under a temporary name then renamed, so concurrent processes never see a
+    half-written font."""
+    import fontTools
+
+    copies = []
+    for source in originals:
+        h = hashlib.sha256(source.read_bytes())
+        h.update(repr((FONT_RANGES, _FONT_RECIPE, fontTools.version)).encode())
+        target = folder / f"{source.stem}-{h.hexdigest()[:16]}.ttf"
+        if not target.exists():
+            folder.mkdir(parents=True, exist_ok=True)
+            fd, tmp = tempfile.mkstemp(dir=folder, suffix=".part")
+            os.close(fd)
+            try:
+                _reduce_font(source, Path(tmp))
+                os.replace(tmp, target)
+            finally:
+                if os.path.exists(tmp):
+                    os.unlink(tmp)
+        copies.append(str(target))
+    return tuple(copies)
+
+
 @cache
 def font_files() -> tuple[str, str]:
     """Paths of the regular and bold faces used for the page: matplotlib's bundled DejaVu Sans,
-    reduced by :func:`_reduce_font` once per process into a temporary folder (the originals
-    when the copies cannot be written)."""
+    reduced by :func:`_reduce_font`.  The copies are kept in matplotlib's cache folder and
+    reused by later processes; failing that, made in a temporary folder for this process;
+    failing that, the originals are used (slower, same look)."""
     import matplotlib
 
     folder = Path(matplotlib.get_data_path()) / "fonts" / "ttf"
     originals = (folder / "DejaVuSans.ttf", folder / "DejaVuSans-Bold.ttf")
     try:
+        regular, bold = _reduced_copies(originals, Path(matplotlib.get_cachedir()) / _FONT_CACHE)
+        return (regular, bold)
+    except Exception:  # cache folder not writable
+        pass
+    try:
         tmp = Path(tempfile.mkdtemp(prefix="diastolic-sr-fonts-"))
         atexit.register(shutil.rmtree, tmp, ignore_errors=True)
-        copies = (tmp / originals[0].name, tmp / originals[1].name)
-        for source, target in zip(originals, copies, strict=True):
-            _reduce_font(source, target)
-        return (str(copies[0]), str(copies[1]))
-    except Exception:  # e.g. no writable temporary folder: slower, same look
+        regular, bold = _reduced_copies(originals, tmp)
+        return (regular, bold)
+    except Exception:  # no writable temporary folder either
         return (str(originals[0]), str(originals[1]))
 
 

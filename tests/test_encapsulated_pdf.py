@@ -31,7 +31,7 @@ from service.model import (
     Pathway,
 )
 from service.report import identity_from_dataset, render_summary_pdf
-from service.sr.encapsulated_pdf import MIME_TYPE, build_encapsulated_pdf
+from service.sr.encapsulated_pdf import MIME_TYPE, build_encapsulated_pdf, summary_uids
 
 STUDY = "2.25.93017245113340561273890144528216644521"
 SOURCE_SERIES = "2.25.210552094815306183347212853902446703311"
@@ -280,3 +280,15 @@ def test_result_sr_of_another_study_is_refused() -> None:
 def test_source_without_study_uid_is_refused() -> None:
     with pytest.raises(UserError, match="Study Instance UID"):
         build(source=source_sr(StudyInstanceUID=None))
+
+
+def test_summary_uids_are_deterministic_and_distinct() -> None:
+    sop, series = summary_uids(RESULT_SOP, STUDY)
+    assert (sop, series) == summary_uids(RESULT_SOP, STUDY)
+    assert len({sop, series, RESULT_SOP, RESULT_SERIES, STUDY}) == 5
+    other_sop, other_series = summary_uids("2.25.7", STUDY)
+    assert other_sop != sop and other_series == series  # one summary series per study
+    rooted, _ = summary_uids(RESULT_SOP, STUDY, root="1.2.826.0.1.3680043.10.999")
+    assert rooted.startswith("1.2.826.0.1.3680043.10.999.") and len(rooted) <= 64
+    with pytest.raises(UserError):
+        summary_uids("not-a-uid", STUDY)

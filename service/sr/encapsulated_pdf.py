@@ -27,6 +27,7 @@ from service.errors import UserError
 from service.sr.write import MANUFACTURER, MODEL_NAME
 
 MIME_TYPE = "application/pdf"
+DOCUMENT_TITLE = "Diastolic function summary (decision support)"
 SERIES_DESCRIPTION = "Diastolic function summary (automated, PDF)"
 #: default series number: after the scanner's series and the result SR's (9901)
 SERIES_NUMBER = 9902
@@ -58,6 +59,21 @@ _OPTIONAL_IDENTITY = (
     "PatientSize",
     "PatientWeight",
 )
+
+
+def summary_uids(
+    result_sr_uid: str, study_instance_uid: str, *, root: str | None = None
+) -> tuple[str, str]:
+    """(SOP Instance UID, Series Instance UID) of the summary of one result SR: derived from
+    the result's UID (and the study, for the series), so re-grading the same sources under the
+    same rules gives the same summary instance, and every summary of a study shares a series."""
+    from service.sr.identity import derive_uid
+
+    _check_uid(result_sr_uid, "result SR SOP Instance UID")
+    _check_uid(study_instance_uid, "Study Instance UID")
+    instance = derive_uid(SOFTWARE_NAME, "summary pdf", result_sr_uid, root=root)
+    series = derive_uid(SOFTWARE_NAME, "summary pdf series", study_instance_uid, root=root)
+    return instance, series
 
 
 def _check_uid(value: object, what: str) -> str:

@@ -6,6 +6,7 @@ resources, 0xA900 data set does not match SOP class, 0xCxxx cannot understand) a
 
 from __future__ import annotations
 
+import json
 import logging
 import threading
 from pathlib import Path
@@ -345,7 +346,7 @@ def test_no_configuration_writes_results_to_the_folder(start_node, tmp_path):
     assert evidence_uids(result) == {ds.SOPInstanceUID}
 
 
-def test_object_that_is_no_echo_sr_is_set_aside_with_a_note(start_node):
+def test_object_that_is_no_echo_sr_is_set_aside_with_a_note(start_node, tmp_path, capsys):
     node = start_node()  # real pipeline
     echo = echo_sr("mixed")
     empty = simple_sr(str(echo.StudyInstanceUID))  # an SR without a content tree
@@ -357,6 +358,11 @@ def test_object_that_is_no_echo_sr_is_set_aside_with_a_note(start_node):
     notes = {o["sop_instance_uid"]: o["note"] for o in node.journal.objects()}
     assert notes[echo.SOPInstanceUID] == ""
     assert notes[empty.SOPInstanceUID].startswith("set aside: ")
+    assert cli_main(["queue", "--data-dir", str(tmp_path / "node"), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    [aside] = report["objects_set_aside"]
+    assert aside["sop_instance_uid"] == empty.SOPInstanceUID
+    assert report["recent"][0]["grade"]  # the echo SR was graded
     alone = simple_sr()
     assert send([alone], node.port) == [0]
     wait_for(_done(node, alone.StudyInstanceUID), 30)
@@ -578,8 +584,6 @@ def test_queue_regrade_and_json_listing(start_node, tmp_path, capsys):
     assert len(node.journal.deliveries()) == 1  # same result: not written twice
     capsys.readouterr()
     assert cli_main(["queue", "--data-dir", data_dir, "--json"]) == 0
-    import json
-
     report = json.loads(capsys.readouterr().out)
     assert report["recent"][0]["study_uid"] == ds.StudyInstanceUID
     assert report["recent"][0]["state"] == "delivered"

@@ -118,17 +118,29 @@ def build_report(journal: Any, *, recent: int) -> dict[str, Any]:
             }
             for d in failed
         ],
-        "recent": [
+        "objects_set_aside": [
             {
-                "study_uid": s["study_uid"],
-                "state": s["state"],
-                "calling_ae": s["calling_ae"],
-                "result_uid": s["result_uid"],
-                "updated": _when(s["updated_at"]),
-                "reason": s["reason"],
+                "sop_instance_uid": o["sop_instance_uid"],
+                "study_uid": o["study_uid"],
+                "note": o["note"],
             }
-            for s in journal.studies(limit=recent)
+            for o in journal.objects_set_aside()
         ],
+        "recent": [_recent(journal, s) for s in journal.studies(limit=recent)],
+    }
+
+
+def _recent(journal: Any, s: dict[str, Any]) -> dict[str, Any]:
+    result = journal.result(s["result_uid"]) if s["result_uid"] else None
+    return {
+        "study_uid": s["study_uid"],
+        "state": s["state"],
+        "calling_ae": s["calling_ae"],
+        "grade": (result or {}).get("grade"),
+        "filling_pressure": (result or {}).get("filling_pressure"),
+        "result_uid": s["result_uid"],
+        "updated": _when(s["updated_at"]),
+        "reason": s["reason"],
     }
 
 
@@ -140,6 +152,7 @@ def print_report(report: dict[str, Any]) -> None:
         ("deliveries pending", report["deliveries_pending"]),
         ("failed studies", report["failed"]),
         ("failed deliveries", report["deliveries_failed"]),
+        ("objects set aside", report["objects_set_aside"]),
         ("recent studies", report["recent"]),
     ]
     for title, rows in sections:

@@ -84,7 +84,8 @@ def run(args: argparse.Namespace) -> int:
         level=getattr(logging, args.log_level),
         format="%(asctime)s %(levelname)s %(name)s: %(message)s",
     )
-    logging.getLogger("pynetdicom").setLevel(logging.WARNING)
+    for noisy in ("pynetdicom", "highdicom"):
+        logging.getLogger(noisy).setLevel(logging.WARNING)
     cfg = config_from_args(args)
     check_guideline(cfg)
     stop = threading.Event()

@@ -598,8 +598,19 @@ class Journal:
         return out
 
     def result(self, result_uid: str) -> dict[str, Any] | None:
-        rows = [r for r in self.results() if r["result_uid"] == result_uid]
-        return rows[0] if rows else None
+        rows = self._query("SELECT * FROM results WHERE result_uid = ?", (result_uid,))
+        if not rows:
+            return None
+        d = dict(rows[0])
+        d["sources"] = json.loads(d["sources"])
+        d["predecessors"] = json.loads(d["predecessors"])
+        return d
+
+    def objects_set_aside(self, limit: int = 100) -> list[dict[str, Any]]:
+        rows = self._query(
+            "SELECT * FROM objects WHERE note != '' ORDER BY received_at DESC LIMIT ?", (limit,)
+        )
+        return [dict(r) for r in rows]
 
     def deliveries(
         self, *, states: Sequence[str] = (), result_uid: str | None = None

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import logging
+import sqlite3
 import threading
 from pathlib import Path
 
@@ -45,6 +46,7 @@ from pynetdicom import AE, _config
 
 from service.cli import main as cli_main
 from service.config import apply_overrides, config_from_dict
+from service.errors import UserError
 from service.network.demo_loop import ResultReceiver, run_network_demo
 from service.network.service import Node
 
@@ -268,9 +270,37 @@ def test_store_failure_answers_out_of_resources_and_nothing_is_acknowledged(
     first, second = simple_sr(), simple_sr()
     assert send([first], node.port) == [0xA700]  # PS3.4 B.2.3: Out of Resources
     assert node.journal.objects() == []
+    real_record = node.journal.record_object
+
+    def journal_broken(**kwargs):
+        raise sqlite3.OperationalError("disk I/O error")
+
     monkeypatch.setattr(node.spool, "write_object", real_write)
+    monkeypatch.setattr(node.journal, "record_object", journal_broken)
+    assert send([first], node.port) == [0xA700]
+    monkeypatch.setattr(node.journal, "record_object", real_record)
     assert send([second], node.port) == [0x0000]
     assert [o["sop_instance_uid"] for o in node.journal.objects()] == [second.SOPInstanceUID]
+
+
+def test_one_node_per_data_directory(start_node, tmp_path):
+    start_node(grade_fn=fake_grade)
+    with pytest.raises(UserError, match="in use by another running node"):
+        start_node(grade_fn=fake_grade)
+
+
+def test_stop_waits_for_open_associations_then_aborts_them(start_node):
+    node = start_node({"limits": {"shutdown_grace_seconds": 0.5}}, grade_fn=fake_grade)
+    ae = AE(ae_title="LINGERER")
+    ae.add_requested_context("1.2.840.10008.1.1")
+    assoc = ae.associate(LOOPBACK, node.port, ae_title=NODE_AE)
+    assert assoc.is_established
+    stopper = threading.Thread(target=node.stop)
+    stopper.start()
+    stopper.join(30)
+    assert not stopper.is_alive()
+    wait_for(lambda: not assoc.is_established, 10)  # aborted after the grace period
+    assert pynetdicom_echo(node.port) is None  # and no longer listening
 
 
 def test_acknowledged_object_is_on_disk_as_received_in_every_transfer_syntax(start_node):

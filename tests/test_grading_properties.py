@@ -18,7 +18,14 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from service.errors import UserError
-from service.grading import IMPLEMENTED_GUIDELINES, assess
+from service.grading import (
+    IMPLEMENTED_GUIDELINES,
+    Ase2016AfOptions,
+    Ase2025AfOptions,
+    Ase2025Options,
+    RuleSwitches,
+    assess,
+)
 from service.grading.compare import assess_all
 from service.model import (
     CANONICAL_UNITS,
@@ -107,6 +114,28 @@ contexts = st.builds(
     borderline_fraction=st.sampled_from([0.0, 0.05, 0.10, 0.25]),
 )
 
+# every documented reading of an ambiguous rule (I-16-11, I-25-x) must give an allowed outcome
+switch_sets = st.builds(
+    RuleSwitches,
+    ase2016_af=st.builds(Ase2016AfOptions, summary=st.sampled_from(["flags-only", "majority"])),
+    ase2025=st.builds(
+        Ase2025Options,
+        e_prime_sites=st.sampled_from(["average-preferred", "any-site"]),
+        e_e_prime_sites=st.sampled_from(["average-preferred", "any-site"]),
+        tr_or_pasp=st.sampled_from(["either", "tr-preferred"]),
+        reduced_e_prime_alone=st.sampled_from(["normal-lap", "needs-low-e-a"]),
+        incomplete_step_1=st.sampled_from(["step-2", "accept-concordant-available"]),
+        supplementary=st.sampled_from(["any", "majority", "hierarchy"]),
+        ivrt=st.sampled_from(["equal-marker", "only-when-others-missing"]),
+        af=st.builds(
+            Ase2025AfOptions,
+            secondary_raised=st.sampled_from(["two-of-three", "any-one"]),
+            secondary_normal=st.sampled_from(["two-negative", "all-negative"]),
+            min_primary_for_normal=st.integers(min_value=0, max_value=4),
+        ),
+    ),
+)
+
 # Nagueh 2016 JASE 29:277, Fig 8A/8B: which filling pressure goes with which grade
 PRESSURE_FOR_GRADE = {
     Grade.normal: {FillingPressure.normal},
@@ -143,10 +172,12 @@ def a_wave_missing(m: Measurements) -> bool:
 
 
 @SETTINGS
-@given(m=measurement_sets(), ctx=contexts)
-def test_any_input_gives_a_consistent_assessment(m: Measurements, ctx: Context):
+@given(m=measurement_sets(), ctx=contexts, switches=switch_sets)
+def test_any_input_gives_a_consistent_assessment(
+    m: Measurements, ctx: Context, switches: RuleSwitches
+):
     for guideline in IMPLEMENTED_GUIDELINES:
-        a = assess(m, ctx, guideline)
+        a = assess(m, ctx, guideline, switches)
         assert a.guideline is guideline
         assert a.grade in set(Grade)
         assert a.caution == CAUTION

@@ -298,7 +298,8 @@ def case_indeterminate():
         ),
         notes=("TR peak velocity was not measured.",),
     )
-    return a, measurements_of(c)
+    m = measurements_of(c).model_copy(update={"notes": ("E/A reported 0.9, computed 1.2.",)})
+    return a, m
 
 
 def case_not_gradable():
@@ -488,6 +489,8 @@ def test_missing_value_is_shown_as_not_available(tmp_path: Path) -> None:
     text = pdf_text(pdf)
     assert "not available" in text
     assert "Measurements" in text and "15.2" in text
+    assert "TR peak velocity was not measured." in text  # the assessment's note
+    assert "E/A reported 0.9, computed 1.2." in text  # the measurements' note
 
 
 @pytest.mark.external

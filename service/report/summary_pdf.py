@@ -1103,9 +1103,10 @@ class _Summary:
             items(self.a.reasoning, numbered=True)
         else:
             items(["No reasoning was recorded."], numbered=False, colour=GREY)
-        if self.a.notes:
+        notes = list(dict.fromkeys((*self.a.notes, *self.m.notes)))  # grading, then data
+        if notes:
             heading("Notes")
-            items(self.a.notes, numbered=False)
+            items(notes, numbered=False)
         if self.a.supporting:
             heading("Supporting findings (not part of the algorithm)")
             items([f"{s.name}: {s.text}" for s in self.a.supporting], numbered=False)

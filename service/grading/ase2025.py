@@ -134,9 +134,12 @@ def _assess(measurements: Measurements, context: Context, opts: Ase2025Options) 
             "Cardiac rhythm was not stated; sinus rhythm was assumed for the algorithm"
             + (f" ({context.rhythm_source})." if context.rhythm_source else ".")
         )
+    rhythm = "sinus rhythm" if context.rhythm is Rhythm.sinus else "sinus rhythm assumed"
+    if context.rhythm_source:
+        rhythm += f" ({context.rhythm_source})"
     reason = (
-        "sinus rhythm without a special situation: the ASE 2025 general algorithm (Figure 3) "
-        "applies at any LVEF"
+        f"{rhythm}, no special situation: the ASE 2025 general algorithm (Figure 3) applies at "
+        "any LVEF"
     )
     trace.say(f"{reason[0].upper()}{reason[1:]}.")
     grade, pressure = _general(trace, opts)

@@ -7,7 +7,7 @@ A special situation never yields a standard grade (grade "not-gradable").
 ASE/EACVI 2016 (Nagueh SF et al., J Am Soc Echocardiogr 2016;29:277-314, section V, specific
 diseases) lists parameters with cut-offs for most situations but, except where noted, no rule to
 combine them; such situations report each criterion and leave the filling pressure indeterminate
-(I-16-11 reasoning applied to every list without a stated rule).  The ASE 2025 rows live in
+(as I-16-11 does for atrial fibrillation).  The ASE 2025 rows live in
 :mod:`service.grading.thresholds_ase2025`; the ASE/EACVI 2016 rows of this module are its own
 cited table (special populations only, the sinus algorithm's table is
 :mod:`service.grading.thresholds_ase2016`).
@@ -366,8 +366,8 @@ def _combine(trace: Trace, outcomes: list[_Outcome]) -> FillingPressure:
             trace.say("No criterion is available: filling pressure unknown.")
             return FillingPressure.unknown
         trace.say(
-            "The guideline states no rule combining these criteria: filling pressure is not "
-            "estimated; each criterion met supports elevated filling pressure (I-16-11)."
+            "The guideline lists these criteria without a rule combining them: filling pressure "
+            "is not estimated; each criterion met supports elevated filling pressure."
         )
         return FillingPressure.indeterminate
     pressures = {o.pressure for o in stated}

@@ -676,6 +676,20 @@ def test_same_inputs_same_bytes() -> None:
     assert first != render_summary_pdf(s, m, IDENTITY, result_sr_uid=RESULT_UID + "1")
 
 
+def test_pages_rendered_in_threads_equal_pages_rendered_alone() -> None:
+    from concurrent.futures import ThreadPoolExecutor
+
+    names = ["normal", "grade-3", "atrial-fibrillation", "special-situation"]
+    alone = [render(n) for n in names]
+
+    def fresh(name: str) -> bytes:
+        s, m = build(name)
+        return render_summary_pdf(s, m, IDENTITY, result_sr_uid=RESULT_UID)
+
+    with ThreadPoolExecutor(max_workers=4) as pool:
+        assert list(pool.map(fresh, names)) == alone
+
+
 def test_unknown_page_size_is_a_user_error() -> None:
     s, m = build("normal")
     with pytest.raises(UserError, match="page size"):

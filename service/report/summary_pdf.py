@@ -435,6 +435,7 @@ _SEX = {"M": "male", "F": "female", "O": "other"}
 # ---------------------------------------------------------------------------------------------
 
 _font_lock = threading.Lock()
+_render_lock = threading.Lock()
 _font_dir: list[str] = []
 
 
@@ -1337,7 +1338,8 @@ def render_summary_pdf(
         "axes.unicode_minus": True,
         "path.simplify": True,
     }
-    with matplotlib.rc_context(rc):
+    # rc_context changes matplotlib's global settings: one page at a time per process
+    with _render_lock, matplotlib.rc_context(rc):
         fig = Figure(figsize=(width / 72, height / 72), dpi=72)
         ax = fig.add_axes((0, 0, 1, 1))
         ax.set_xlim(0, width)

@@ -321,6 +321,29 @@ def test_acknowledged_object_is_on_disk_as_received_in_every_transfer_syntax(sta
         assert str(stored.PatientName) == "Syntax^Case"
 
 
+def test_every_sr_storage_class_is_accepted_and_kept(start_node):
+    # PS3.4 Table B.5-1: Basic Text, Enhanced, Comprehensive, Comprehensive 3D, Extensible and
+    # Simplified Adult Echo SR Storage (the last is not in pynetdicom's default list)
+    classes = [
+        "1.2.840.10008.5.1.4.1.1.88.11",
+        "1.2.840.10008.5.1.4.1.1.88.22",
+        "1.2.840.10008.5.1.4.1.1.88.33",
+        "1.2.840.10008.5.1.4.1.1.88.34",
+        "1.2.840.10008.5.1.4.1.1.88.35",
+        "1.2.840.10008.5.1.4.1.1.88.72",
+    ]
+    for uid in classes:
+        assert uid in pydicom.uid.UID_dictionary  # pydicom's PS3.6 UID registry
+    node = start_node(grade_fn=fake_grade, settle=60)
+    datasets = []
+    for uid in classes:
+        ds = simple_sr()
+        ds.SOPClassUID = ds.file_meta.MediaStorageSOPClassUID = uid
+        datasets.append(ds)
+    assert send(datasets, node.port) == [0] * len(classes)
+    assert sorted(o["sop_class_uid"] for o in node.journal.objects()) == sorted(classes)
+
+
 def _ct_image() -> Dataset:
     ds = Dataset()
     ds.SOPClassUID = CT_IMAGE

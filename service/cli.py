@@ -15,7 +15,7 @@ from service import SOFTWARE_NAME, __version__
 from service.errors import UserError
 
 #: sub-command modules, in the order shown by --help
-COMMAND_MODULES = ("grade", "demo", "serve", "queue")
+COMMAND_MODULES = ("grade", "inspect", "codes", "demo", "serve", "queue")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -45,6 +45,11 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:  # e.g. piped into `head`: not an error of ours
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     except Exception as exc:  # last line of defence: one line, not a traceback
         if args.debug:
             raise

@@ -212,3 +212,47 @@ def _disagreements(primary: Assessment, others: Sequence[Assessment]) -> tuple[s
                 f"{other.grade.value}, filling pressure {other.filling_pressure.value}."
             )
     return tuple(out)
+
+
+def build_summary(
+    outcome: StudyOutcome,
+    datasets: Sequence[Dataset],
+    *,
+    page_size: str = "A4",
+    uid_root: str | None = None,
+) -> Dataset | None:
+    """The one-page summary of a graded study as a DICOM Encapsulated PDF in the same study,
+    referencing the result SR; None when there is no result to summarise."""
+    if outcome.result is None or outcome.assessments is None or outcome.measurements is None:
+        return None
+    from service.report.summary_pdf import identity_from_dataset, render_summary_pdf
+    from service.sr.encapsulated_pdf import (
+        DOCUMENT_TITLE,
+        build_encapsulated_pdf,
+        summary_uids,
+    )
+
+    result = outcome.result
+    identity = identity_from_dataset(*datasets)
+    pdf = render_summary_pdf(
+        outcome.assessments,
+        outcome.measurements,
+        identity,
+        page_size=page_size,  # type: ignore[arg-type]
+        result_sr_uid=str(result.SOPInstanceUID),
+    )
+    instance_uid, series_uid = summary_uids(
+        str(result.SOPInstanceUID), str(result.StudyInstanceUID), root=uid_root
+    )
+    created = datetime.strptime(
+        f"{result.ContentDate}{str(result.ContentTime).split('.')[0]:0<6}", "%Y%m%d%H%M%S"
+    )
+    return build_encapsulated_pdf(
+        pdf,
+        datasets[0],
+        result_sr=result,
+        sop_instance_uid=instance_uid,
+        series_instance_uid=series_uid,
+        document_title=DOCUMENT_TITLE,
+        content_datetime=created,
+    )

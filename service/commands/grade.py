@@ -26,6 +26,12 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("paths", nargs="+", metavar="PATH", help="SR file or folder")
     p.add_argument("--out", type=Path, metavar="DIR", help="write result SRs into DIR")
     p.add_argument("--json", action="store_true", help="one JSON object per input, per line")
+    p.add_argument(
+        "--pdf",
+        action="store_true",
+        help="also write a one-page summary (DICOM Encapsulated PDF) beside each result SR",
+    )
+    p.add_argument("--page-size", choices=("A4", "Letter"), default="A4", help="summary page")
     add_grading_arguments(p)
     p.set_defaults(func=run)
 
@@ -44,17 +50,20 @@ def iter_inputs(paths: list[str]) -> Iterator[Path]:
 
 
 def run(args: argparse.Namespace) -> int:
+    from service.errors import UserError
     from service.sr.read import read_path
     from service.vocabulary.mapper import load_mapping_table
 
     options = grade_options_from_args(args)
+    if args.pdf and not args.out:
+        raise UserError("--pdf writes files: give --out DIR as well")
     table = load_mapping_table(args.mapping or ())
     if args.out:
         args.out.mkdir(parents=True, exist_ok=True)
     rows: list[dict[str, Any]] = []
     any_rejected = False
     for path in iter_inputs(args.paths):
-        row = grade_one(path, options, table, args.out, read_path)
+        row = grade_one(path, options, table, args.out, read_path, args)
         any_rejected |= row["status"] == GradeStatus.rejected.value
         rows.append(row)
         if args.json:
@@ -67,7 +76,9 @@ def run(args: argparse.Namespace) -> int:
     return 1 if any_rejected else 0
 
 
-def grade_one(path: Path, options: GradeOptions, table, out_dir: Path | None, read_path) -> dict:
+def grade_one(
+    path: Path, options: GradeOptions, table, out_dir: Path | None, read_path, args
+) -> dict:
     from service.errors import RejectedInput
 
     try:
@@ -82,7 +93,16 @@ def grade_one(path: Path, options: GradeOptions, table, out_dir: Path | None, re
         target = out_dir / f"{path.stem}.result.dcm"
         outcome.result.save_as(target, enforce_file_format=True)
         output = str(target)
-    return outcome_row(path, options, outcome, output)
+    row = outcome_row(path, options, outcome, output)
+    if getattr(args, "pdf", False) and out_dir is not None:
+        from service.pipeline import build_summary
+
+        summary = build_summary(outcome, [ds], page_size=args.page_size, uid_root=options.uid_root)
+        if summary is not None:
+            target = out_dir / f"{path.stem}.summary.dcm"
+            summary.save_as(target, enforce_file_format=True)
+            row["summary"] = str(target)
+    return row
 
 
 def rejected_row(

@@ -284,6 +284,7 @@ def run_storescu(
     return subprocess.run(
         [
             STORESCU,
+            "-R",  # propose the SOP classes of the files (88.72 is not in its default list)
             "-aet",
             calling,
             "-aec",
@@ -318,6 +319,7 @@ def echo_sr(
     values: dict[str, float] | None = None,
     patient_name: str = "Harbourvale^Test",
     patient_id: str = "HV-T-0001",
+    sop_class: str = COMPREHENSIVE_SR,
 ) -> Dataset:
     """An invented TID 5300 echo SR (Harbour Vale Cardiac Centre) built by the project's
     echo SR builder.  ``values``: canonical measure name -> value in its canonical unit;
@@ -340,6 +342,7 @@ def echo_sr(
         patient=Patient(name=patient_name, id=patient_id),
         study=Study(study_uid=study_uid, seed=seed, content_time=content_time),
         instance_number=instance,
+        sop_class=sop_class,
     )
 
 

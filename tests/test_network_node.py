@@ -60,6 +60,8 @@ def needs_dcmtk(test):
 
 CT_IMAGE = "1.2.840.10008.5.1.4.1.1.2"  # CT Image Storage (PS3.4 Annex B.5)
 ENHANCED_SR = "1.2.840.10008.5.1.4.1.1.88.22"  # Enhanced SR Storage (PS3.4 Annex B.5)
+COMPREHENSIVE_SR = "1.2.840.10008.5.1.4.1.1.88.33"  # PS3.4 Annex B.5
+SIMPLIFIED_ECHO_SR = "1.2.840.10008.5.1.4.1.1.88.72"  # PS3.4 Annex B.5
 
 
 @pytest.fixture
@@ -486,7 +488,15 @@ def test_many_studies_in_parallel_associations_dcmtk_scanner_and_pacs(start_node
     pacs_port, pacs_dir = free_port(), tmp_path / "pacs"
     with storescp(pacs_dir, pacs_port):
         node = start_node(forward=[f"PACS@{LOOPBACK}:{pacs_port}"], settle=0.3)
-        studies = [echo_sr(f"parallel-{i}", patient_id=f"HV-P-{i:03d}") for i in range(8)]
+        # half of them in the Simplified Adult Echo SR class (PS3.4 B.5)
+        studies = [
+            echo_sr(
+                f"parallel-{i}",
+                patient_id=f"HV-P-{i:03d}",
+                sop_class=SIMPLIFIED_ECHO_SR if i % 2 else COMPREHENSIVE_SR,
+            )
+            for i in range(8)
+        ]
         files = [write_files([ds], tmp_path / f"scanner{i}")[0] for i, ds in enumerate(studies)]
         results: list = [None] * len(files)
 

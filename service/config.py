@@ -10,6 +10,7 @@ Command-line flags of ``serve`` override the file through :func:`apply_overrides
 from __future__ import annotations
 
 import hashlib
+import ipaddress
 import json
 import re
 import tomllib
@@ -17,18 +18,23 @@ import types
 import typing
 from collections.abc import Iterable, Sequence
 from pathlib import Path
-from typing import Annotated, Any
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 
 from service.errors import UserError
-from service.model import Context, Guideline, Rhythm
+from service.grading import IMPLEMENTED_GUIDELINES, NOT_AVAILABLE, RuleSwitches
+from service.model import Context, Guideline, Rhythm, SpecialSituation
 
 #: the route that applies to a calling AE with no route of its own
 DEFAULT_ROUTE = "*"
 DEFAULT_AE_TITLE = "DIASTOLIC_SR"
 DEFAULT_PORT = 11112
 DEFAULT_DATA_DIR = "diastolic-sr-data"
+#: health and metrics endpoint port (an unregistered port; common practice: pick a free one)
+DEFAULT_HTTP_PORT = 11180
+#: what check-config prints instead of a secret
+MASK = "********"
 
 _AE_CHARS = re.compile(r"^[\x20-\x5b\x5d-\x7e]{1,16}$")  # PS3.5 6.2 AE: no backslash, no control
 _UID = re.compile(r"^(0|[1-9][0-9]*)(\.(0|[1-9][0-9]*))*$")  # PS3.5 9.1
@@ -85,11 +91,70 @@ class AccessConfig(Section):
     #: accept image storage SOP classes and discard the objects (so a rule that forwards a
     #: whole study does not fail); SR objects are always kept
     accept_images: bool = False
+    #: address pinning: calling AE title -> addresses or networks (CIDR) it must come from;
+    #: a pinned AE calling from anywhere else is rejected like an unknown AE
+    calling_ae_addresses: dict[str, list[str]] = Field(default_factory=dict)
 
     @field_validator("allowed_calling_aes")
     @classmethod
     def _aes(cls, v: list[str]) -> list[str]:
         return [check_ae_title(x) for x in v]
+
+    @field_validator("calling_ae_addresses")
+    @classmethod
+    def _pins(cls, v: dict[str, list[str]]) -> dict[str, list[str]]:
+        out: dict[str, list[str]] = {}
+        for aet, addresses in v.items():
+            try:
+                name = check_ae_title(aet)
+            except ValueError as exc:
+                raise ValueError(f'"{aet}": {exc}') from None
+            if not addresses:
+                raise ValueError(f'"{aet}": give at least one address, e.g. ["10.0.0.5"]')
+            for a in addresses:
+                try:
+                    ipaddress.ip_network(a, strict=False)
+                except ValueError:
+                    raise ValueError(
+                        f'"{aet}": "{a}" is not an IP address or network (e.g. 10.0.0.5, '
+                        "10.0.0.0/24, ::1)"
+                    ) from None
+            out[name] = list(addresses)
+        return out
+
+    def address_allowed(self, calling_ae: str, address: str) -> bool:
+        """False when ``calling_ae`` is pinned and ``address`` is not one of its addresses."""
+        pins = self.calling_ae_addresses.get(calling_ae.strip())
+        if not pins:
+            return True
+        try:
+            ip = ipaddress.ip_address(address)
+        except ValueError:
+            return False
+        return any(ip in ipaddress.ip_network(p, strict=False) for p in pins)
+
+    def calling_ae_allowed(self, calling_ae: str) -> bool:
+        return not self.allowed_calling_aes or calling_ae.strip() in self.allowed_calling_aes
+
+
+class TlsConfig(Section):
+    """TLS for the listener, and the certificates used when calling destinations with TLS.
+    Paths are relative to the configuration file's folder."""
+
+    #: the listener accepts TLS connections only (plain TCP is refused)
+    enabled: bool = False
+    #: our certificate chain (PEM); presented by the listener, and to TLS destinations
+    certificate: str = ""
+    #: our private key (PEM)
+    private_key: str = ""
+    #: password of an encrypted private key (masked by check-config)
+    private_key_password: str = Field(default="", repr=False)
+    #: CA certificates (PEM) trusted for peers: client certificates and TLS destinations;
+    #: "" uses the system's default CAs for destinations
+    ca_bundle: str = ""
+    #: the listener demands a client certificate signed by ca_bundle
+    require_client_certificate: bool = False
+    minimum_version: Literal["1.2", "1.3"] = "1.2"
 
 
 class AssemblyConfig(Section):
@@ -104,6 +169,8 @@ class SenderDefaults(Section):
 
     rhythm: Rhythm = Rhythm.unknown
     myocardial_disease: bool = False
+    #: special situations (valve disease, transplant, ...) that always apply to this sender
+    special_situations: list[SpecialSituation] = Field(default_factory=list)
 
 
 class GradingConfig(Section):
@@ -118,6 +185,8 @@ class GradingConfig(Section):
     mapping_files: list[str] = Field(default_factory=list)
     #: defaults for every sender, overridden per calling AE in [senders.AET]
     defaults: SenderDefaults = Field(default_factory=SenderDefaults)
+    #: the documented readings of ambiguous published rules, per guideline (never thresholds)
+    switches: RuleSwitches = Field(default_factory=RuleSwitches)
 
     @field_validator("uid_root")
     @classmethod
@@ -134,6 +203,11 @@ class DestinationConfig(Section):
     ae_title: AETitle
     host: str = Field(min_length=1)
     port: int = Field(ge=1, le=65535)
+    #: call this peer over TLS (verified against tls.ca_bundle; our tls.certificate, when
+    #: set, is presented as client certificate)
+    tls: bool = False
+    #: also send the one-page summary (Encapsulated PDF) right after each result SR
+    summary_pdf: bool = False
 
     @field_validator("ae_title")
     @classmethod
@@ -159,6 +233,41 @@ class DeliveryConfig(Section):
     backoff_max_seconds: float = Field(default=600.0, gt=0)
     #: also write every result into this folder (relative to data_dir); "" disables
     results_folder: str = "results"
+    #: write the one-page summary (Encapsulated PDF) into the results folder too, also when
+    #: no destination asks for it (it always goes there when one does)
+    summary_pdf_in_results_folder: bool = False
+    #: paper size of the summary
+    summary_page_size: Literal["A4", "Letter"] = "A4"
+
+
+class RetentionConfig(Section):
+    """Purge of finished work from the spool and journal (never pending work)."""
+
+    #: delete spooled sources and results of studies finished this many days ago (delivered,
+    #: or not gradable with nothing left to deliver); 0 keeps everything
+    days: float = Field(default=0, ge=0, le=36500)
+    #: how often the purge runs, hours
+    interval_hours: float = Field(default=6, gt=0, le=168)
+
+
+class LoggingConfig(Section):
+    #: "json": one JSON object per line (for log collectors); "text": human-readable lines
+    format: Literal["json", "text"] = "json"
+    level: Literal["DEBUG", "INFO", "WARNING", "ERROR"] = "INFO"
+    #: add patient name and ID to "object received" events (off: UIDs only)
+    include_patient_identifiers: bool = False
+
+
+class HttpConfig(Section):
+    """The health and metrics endpoint (/healthz, /metrics)."""
+
+    enabled: bool = True
+    #: loopback by default: expose it deliberately (e.g. "0.0.0.0" in a container)
+    bind: str = "127.0.0.1"
+    #: 0 lets the system pick a free port (written to run/listener.json)
+    port: int = Field(default=DEFAULT_HTTP_PORT, ge=0, le=65535)
+    #: /healthz fails below this much free space in the data directory, megabytes
+    min_free_disk_mb: int = Field(default=500, ge=0)
 
 
 class Config(Section):
@@ -171,6 +280,10 @@ class Config(Section):
     destinations: dict[str, DestinationConfig] = Field(default_factory=dict)
     routes: list[RouteConfig] = Field(default_factory=list)
     delivery: DeliveryConfig = Field(default_factory=DeliveryConfig)
+    tls: TlsConfig = Field(default_factory=TlsConfig)
+    retention: RetentionConfig = Field(default_factory=RetentionConfig)
+    logging: LoggingConfig = Field(default_factory=LoggingConfig)
+    http: HttpConfig = Field(default_factory=HttpConfig)
     #: folder of the configuration file (relative paths are resolved from it); not a TOML key
     base_dir: str = Field(default="", exclude=True)
 
@@ -202,6 +315,13 @@ class Config(Section):
             return list(self.destinations)
         return []
 
+    def tls_path(self, value: str) -> Path | None:
+        return _resolve(self.base_dir, value) if value else None
+
+    def summary_destinations(self, calling_ae: str) -> list[str]:
+        """Destinations of ``calling_ae``'s results that also want the summary PDF."""
+        return [n for n in self.destinations_for(calling_ae) if self.destinations[n].summary_pdf]
+
     def sender_defaults(self, calling_ae: str) -> SenderDefaults:
         return self.senders.get(calling_ae.strip(), self.grading.defaults)
 
@@ -211,12 +331,35 @@ class Config(Section):
             rhythm=d.rhythm,
             myocardial_disease=d.myocardial_disease,
             lvef_reduced_below=self.grading.lvef_reduced_below,
+            special_situations=frozenset(d.special_situations),
         )
 
     def digest(self) -> str:
         """Short digest of the effective configuration (for logs and status)."""
         text = json.dumps(self.model_dump(mode="json"), sort_keys=True)
         return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+    def masked(self) -> dict[str, Any]:
+        """The effective configuration as plain data, secrets replaced by :data:`MASK`."""
+        data = self.model_dump(mode="json")
+        for section, key in SECRET_KEYS:
+            if data.get(section, {}).get(key):
+                data[section][key] = MASK
+        return data
+
+
+#: (section, key) of every secret: never printed or logged
+SECRET_KEYS: tuple[tuple[str, str], ...] = (("tls", "private_key_password"),)
+
+#: sections and keys that only take effect on a restart (a reload keeps the running values)
+RESTART_ONLY: tuple[str, ...] = (
+    "node",
+    "limits",
+    "tls",
+    "http",
+    "assembly.workers",
+    "logging.format",
+)
 
 
 def _resolve(base: str, path: str) -> Path:
@@ -298,6 +441,42 @@ def _cross_check(cfg: Config) -> Iterable[str]:
                     f'routes[{i}].destinations[{j}]: unknown destination "{dest}"; '
                     f"defined: {defined}"
                 )
+    if cfg.grading.guideline not in IMPLEMENTED_GUIDELINES:
+        why = NOT_AVAILABLE.get(cfg.grading.guideline, "not implemented in full")
+        yield (
+            f'grading.guideline: "{cfg.grading.guideline.value}" is not available ({why}); '
+            "allowed: " + ", ".join(g.value for g in IMPLEMENTED_GUIDELINES)
+        )
+    allowed = cfg.access.allowed_calling_aes
+    for aet in cfg.access.calling_ae_addresses:
+        if allowed and aet not in allowed:
+            yield (
+                f'access.calling_ae_addresses."{aet}": not in access.allowed_calling_aes; '
+                f"allowed: {', '.join(allowed)}"
+            )
+    tls = cfg.tls
+    if tls.enabled:
+        for key in ("certificate", "private_key"):
+            if not getattr(tls, key):
+                yield f'tls.{key}: required when tls.enabled = true (a PEM file path); got ""'
+    if tls.require_client_certificate and not tls.ca_bundle:
+        yield (
+            'tls.ca_bundle: required when tls.require_client_certificate = true; got "" '
+            "(the CA certificates that sign the client certificates)"
+        )
+    if tls.require_client_certificate and not tls.enabled:
+        yield "tls.require_client_certificate: true needs tls.enabled = true"
+    if bool(tls.certificate) != bool(tls.private_key):
+        yield "tls.certificate and tls.private_key: give both or neither"
+    for key in ("certificate", "private_key", "ca_bundle"):
+        value = getattr(tls, key)
+        if value:
+            path = _resolve(cfg.base_dir, value)
+            if not path.is_file():
+                yield f'tls.{key}: "{value}" is not a readable file ({path})'
+    same_port = cfg.http.enabled and cfg.http.port and cfg.http.port == cfg.node.port
+    if same_port and (cfg.http.bind in (cfg.node.bind, "", "0.0.0.0") or cfg.node.bind == ""):
+        yield f"http.port: {cfg.http.port} is the DICOM port (node.port); choose another"
     if cfg.delivery.backoff_max_seconds < cfg.delivery.backoff_initial_seconds:
         yield (
             f"delivery.backoff_max_seconds: {cfg.delivery.backoff_max_seconds} is below "
@@ -392,6 +571,7 @@ def apply_overrides(
     data_dir: str | None = None,
     settle_seconds: float | None = None,
     bind: str | None = None,
+    http_port: int | None = None,
 ) -> Config:
     """The configuration with command-line flags applied (each flag beats the file).
 
@@ -409,6 +589,8 @@ def apply_overrides(
         data["node"]["data_dir"] = str(Path(data_dir).expanduser().resolve())
     if settle_seconds is not None:
         data["assembly"]["settle_seconds"] = settle_seconds
+    if http_port is not None:
+        data["http"]["port"] = http_port
     names = []
     for i, text in enumerate(forward, start=1):
         dest = parse_forward(text)

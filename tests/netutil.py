@@ -174,6 +174,8 @@ class NodeProcess:
                     LOOPBACK,
                     "--data-dir",
                     str(self.data_dir),
+                    "--http-port",
+                    "0",
                     *self.args,
                 ],
                 cwd=REPO,

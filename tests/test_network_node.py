@@ -81,6 +81,7 @@ def start_node(tmp_path):
         data = {
             "delivery": {"backoff_initial_seconds": 0.1, "backoff_max_seconds": 0.4},
             "limits": {"shutdown_grace_seconds": 2},
+            "http": {"port": 0},
         }
         for key, value in (extra or {}).items():
             data[key] = {**data.get(key, {}), **value} if isinstance(value, dict) else value

@@ -1,4 +1,5 @@
-"""``diastolic-sr serve``: run the DICOM node until SIGTERM/SIGINT."""
+"""``diastolic-sr serve``: run the DICOM node until SIGTERM/SIGINT; SIGHUP reloads the
+configuration file (a bad file is refused and the running configuration stays in force)."""
 
 from __future__ import annotations
 
@@ -9,6 +10,8 @@ import threading
 from types import FrameType
 
 from service.config import Config, apply_overrides, load_config
+from service.errors import UserError
+from service.observability.logs import configure_logging, event
 
 log = logging.getLogger("diastolic_sr.serve")
 
@@ -20,14 +23,25 @@ def register(sub: argparse._SubParsersAction) -> None:
         description="Run the DICOM node: accept echo measurement SRs by C-STORE, grade each "
         "study after its settle window and send the result SR to the configured destinations. "
         "Flags override the configuration file; with neither, embedded defaults are used and "
-        "results are written to a folder under the data directory. SIGTERM stops cleanly.",
+        "results are written to a folder under the data directory. SIGTERM stops cleanly; "
+        "SIGHUP reloads the configuration file without dropping open associations.",
     )
     add_node_arguments(p)
     p.add_argument(
         "--log-level",
-        default="INFO",
         choices=["DEBUG", "INFO", "WARNING", "ERROR"],
-        help="log level (default: %(default)s)",
+        help="log level (default: logging.level of the configuration, INFO)",
+    )
+    p.add_argument(
+        "--log-format",
+        choices=["json", "text"],
+        help="json: one JSON object per line; text: readable lines (default: logging.format, json)",
+    )
+    p.add_argument(
+        "--http-port",
+        type=int,
+        metavar="N",
+        help="port of the /healthz and /metrics endpoint (0: any free; default 11180)",
     )
     p.set_defaults(func=run)
 
@@ -63,50 +77,80 @@ def config_from_args(args: argparse.Namespace) -> Config:
         data_dir=args.data_dir,
         settle_seconds=args.settle_seconds,
         bind=args.bind,
+        http_port=getattr(args, "http_port", None),
     )
 
 
-def check_guideline(cfg: Config) -> None:
-    from service.errors import UserError
-    from service.grading import IMPLEMENTED_GUIDELINES
+def reload_config(node: object, args: argparse.Namespace) -> bool:
+    """Read the configuration again and put it in force; False (old one kept) on any error."""
+    from service.network.preflight import preflight
 
-    if cfg.grading.guideline not in IMPLEMENTED_GUIDELINES:
-        raise UserError(
-            f'grading.guideline: "{cfg.grading.guideline.value}" is not implemented in full; '
-            "available: " + ", ".join(g.value for g in IMPLEMENTED_GUIDELINES)
+    try:
+        new = config_from_args(args)
+        preflight(new)
+    except UserError as exc:
+        event(
+            "config_reload_refused",
+            f"configuration reload refused, the running configuration stays in force: {exc}",
+            level=logging.ERROR,
+            reason=str(exc),
         )
+        return False
+    kept = node.reload(new)  # type: ignore[attr-defined]
+    event(
+        "config_reloaded",
+        f"configuration reloaded (digest {new.digest()})"
+        + (f"; needs a restart to change: {', '.join(kept)}" if kept else ""),
+        digest=node.config.digest(),  # type: ignore[attr-defined]
+        restart_needed=kept,
+    )
+    return True
 
 
 def run(args: argparse.Namespace) -> int:
+    from service.network.preflight import preflight
     from service.network.service import Node
 
-    logging.basicConfig(
-        level=getattr(logging, args.log_level),
-        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
-    )
-    for noisy in ("pynetdicom", "highdicom"):
-        logging.getLogger(noisy).setLevel(logging.WARNING)
     cfg = config_from_args(args)
-    check_guideline(cfg)
+    configure_logging(args.log_format or cfg.logging.format, args.log_level or cfg.logging.level)
+    preflight(cfg)
     stop = threading.Event()
+    wake = threading.Event()
+    hup = threading.Event()
+    received: list[str] = []
 
     def on_signal(signum: int, _frame: FrameType | None) -> None:
-        log.info("signal %s received", signal.Signals(signum).name)
-        stop.set()
+        if signum == signal.SIGHUP:
+            hup.set()
+        else:
+            received.append(signal.Signals(signum).name)
+            stop.set()
+        wake.set()
 
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
+    signal.signal(signal.SIGHUP, on_signal)
     node = Node(cfg)
     try:
         node.start()
-        log.info(
-            "node %s ready (data directory %s, configuration digest %s)",
-            cfg.node.ae_title,
-            node.data_dir,
-            cfg.digest(),
+        event(
+            "node_ready",
+            f"node {cfg.node.ae_title} ready (data directory {node.data_dir}, configuration "
+            f"digest {cfg.digest()})",
+            ae_title=cfg.node.ae_title,
+            port=node.port,
+            http_port=node.http_port,
+            digest=cfg.digest(),
         )
-        while not stop.wait(0.5):
-            pass
+        while not stop.is_set():
+            wake.wait(0.5)
+            wake.clear()
+            if hup.is_set() and not stop.is_set():
+                hup.clear()
+                event("signal", "SIGHUP received: reloading the configuration", signal="SIGHUP")
+                reload_config(node, args)
+        name = received[0] if received else "?"
+        event("signal", f"signal {name} received: stopping", signal=name)
     finally:
         node.stop()
     return 0

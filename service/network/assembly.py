@@ -5,7 +5,10 @@ each to a small pool of grading threads.  Grading reads every spooled object of 
 (also those graded before: a late SR triggers a re-grade of the whole study, so the merged
 result uses all sources, the more recently created SR winning per measure), calls the grading
 function, stores the result SR durably in the spool and records it with its deliveries in the
-journal in one transaction.  The network threads never do any of this.
+journal in one transaction.  When a destination of the study asks for it (``summary_pdf``), the
+one-page summary (Encapsulated PDF) is built too and recorded as a companion of the result: it
+is delivered right after the result SR to those destinations and to the results folder.  The
+network threads never do any of this.
 """
 
 from __future__ import annotations
@@ -26,7 +29,9 @@ from pydicom.uid import PYDICOM_IMPLEMENTATION_UID, ExplicitVRLittleEndian
 
 from service.config import Config
 from service.model import InstanceRef
-from service.store.journal import FOLDER_DESTINATION, Journal, NewResult, StudyClaim
+from service.observability.logs import event
+from service.observability.metrics import Metrics
+from service.store.journal import FOLDER_DESTINATION, Companion, Journal, NewResult, StudyClaim
 from service.store.spool import Spool
 
 log = logging.getLogger("diastolic_sr.assembly")
@@ -66,12 +71,29 @@ def screen_with_reader(ds: Dataset) -> str | None:
 def grade_options(config: Config, calling_ae: str) -> Any:
     from service.pipeline import GradeOptions
 
+    extra: dict[str, Any] = {}
+    if "switches" in GradeOptions.model_fields:  # the documented rule switches ([grading])
+        extra["switches"] = config.grading.switches
     return GradeOptions(
         guideline=config.grading.guideline,
         context=config.grading_context(calling_ae),
         compare=config.grading.compare,
         uid_root=config.grading.uid_root or None,
+        **extra,
     )
+
+
+def summary_targets(config: Config, calling_ae: str) -> list[tuple[str, str]]:
+    """Where the summary PDF of ``calling_ae``'s study goes: the destinations that ask for it,
+    and the results folder (when it is configured and a destination asks for the summary, or
+    ``delivery.summary_pdf_in_results_folder`` is set).  Empty: no summary is built."""
+    out = [t for t in destination_targets(config, calling_ae) if t[0] != FOLDER_DESTINATION]
+    wanted = set(config.summary_destinations(calling_ae))
+    out = [t for t in out if t[0] in wanted]
+    folder = config.results_dir
+    if folder is not None and (out or config.delivery.summary_pdf_in_results_folder):
+        out.append((FOLDER_DESTINATION, str(folder)))
+    return out
 
 
 def destination_targets(config: Config, calling_ae: str) -> list[tuple[str, str]]:
@@ -110,8 +132,10 @@ class Assembler:
         on_result: Callable[[], None] = lambda: None,
         poll_seconds: float = 0.5,
         screen: Callable[[Dataset], str | None] | str | None = "default",
+        metrics: Metrics | None = None,
     ) -> None:
         self.config = config
+        self.metrics = metrics or Metrics()
         #: says why an object cannot be a source (or None); with the real pipeline, objects
         #: that are not readable echo SRs (e.g. an empty SR sent along) are set aside, with a
         #: note in the journal, instead of failing the whole study
@@ -190,9 +214,12 @@ class Assembler:
         if self._stop.is_set():
             self.journal.release_claim(claim)
             return
+        started = time.monotonic()
         try:
             self.grade(claim)
+            self.metrics.processing.observe(time.monotonic() - started)
         except Exception as exc:
+            self.metrics.studies.labels(outcome="error").inc()
             log.exception("grading study %s failed", claim.study_uid)
             try:
                 self.journal.finish_grading(
@@ -223,7 +250,7 @@ class Assembler:
                 failure="no usable source: " + "; ".join(notes.values()),
                 object_notes=notes,
             )
-            log.info("study %s not graded: no usable source", claim.study_uid)
+            self._graded(claim, "rejected", reason="no usable source")
             return
         datasets = [ds for _, ds in usable]
         predecessors = [
@@ -247,7 +274,7 @@ class Assembler:
             self.journal.finish_grading(
                 claim, result=None, failure=f"{status}: {reason}", object_notes=notes
             )
-            log.info("study %s not graded (%s): %s", claim.study_uid, status, reason)
+            self._graded(claim, status, reason=reason)
             return
         ds: Dataset = outcome.result
         result_uid = str(ds.SOPInstanceUID)
@@ -272,19 +299,83 @@ class Assembler:
                 p.sop_instance_uid for p in predecessors if p.sop_instance_uid != result_uid
             ),
         )
+        companions = self._summary(claim, outcome, datasets)
         queued = self.journal.finish_grading(
             claim,
             result=new,
             destinations=destination_targets(self.config, claim.calling_ae),
             object_notes=notes,
+            companions=companions,
         )
-        log.info(
-            "study %s %s from %d object(s): result %s%s",
-            claim.study_uid,
+        self._graded(
+            claim,
             status,
-            len(datasets),
-            result_uid,
-            "" if queued else " (already delivered or no destination: nothing new to send)",
+            result_uid=result_uid,
+            objects=len(datasets),
+            grade=new.grade,
+            filling_pressure=new.filling_pressure,
+            guideline=new.guideline,
+            summary_uid=companions[0].result.result_uid if companions else None,
+            note="" if queued else "already delivered or no destination: nothing new to send",
         )
         if queued:
             self._on_result()
+
+    def _graded(self, claim: StudyClaim, outcome: str, **fields: Any) -> None:
+        self.metrics.studies.labels(outcome=outcome).inc()
+        detail = fields.get("reason") or fields.get("result_uid") or ""
+        event(
+            "study_graded",
+            f"study {claim.study_uid}: {outcome}" + (f" ({detail})" if detail else ""),
+            study_uid=claim.study_uid,
+            calling_ae=claim.calling_ae,
+            outcome=outcome,
+            **{k: v for k, v in fields.items() if v not in (None, "")},
+        )
+
+    def _summary(self, claim: StudyClaim, outcome: Any, datasets: list[Dataset]) -> list[Companion]:
+        """The summary PDF as a companion of the result, when anyone wants it.  A summary that
+        cannot be built is logged and skipped: the result SR goes out regardless."""
+        targets = summary_targets(self.config, claim.calling_ae)
+        if not targets:
+            return []
+        from service.pipeline import build_summary
+
+        try:
+            pdf = build_summary(
+                outcome,
+                datasets,
+                page_size=self.config.delivery.summary_page_size,
+                uid_root=self.config.grading.uid_root or None,
+            )
+        except Exception as exc:
+            log.error(
+                "study %s: summary PDF not built (%s: %s); the result SR is sent without it",
+                claim.study_uid,
+                type(exc).__name__,
+                exc,
+            )
+            return []
+        if pdf is None:
+            return []
+        uid = str(pdf.SOPInstanceUID)
+        path = self.spool.result_path(claim.study_uid, uid)
+        if not path.exists():
+            path = self.spool.write_result(claim.study_uid, uid, encode_part10(pdf))
+        return [
+            Companion(
+                result=NewResult(
+                    result_uid=uid,
+                    series_uid=str(pdf.SeriesInstanceUID),
+                    sop_class_uid=str(pdf.SOPClassUID),
+                    path=path,
+                    status="summary",
+                    guideline=None,
+                    grade=None,
+                    filling_pressure=None,
+                    sources=(str(outcome.result.SOPInstanceUID),),
+                    predecessors=(),
+                ),
+                destinations=tuple(targets),
+            )
+        ]

@@ -148,6 +148,7 @@ def run_network_demo(
     )
     data = cfg.model_dump(mode="json")
     data["delivery"].update(backoff_initial_seconds=0.2, backoff_max_seconds=1.0)
+    data["http"]["enabled"] = False  # a short-lived demo node needs no health endpoint
     cfg = cfg.model_validate({**data, "base_dir": cfg.base_dir})
     node = Node(cfg, grade_fn=grade_fn, poll_seconds=0.1)
     studies: dict[str, Dataset] = {}

@@ -3,8 +3,11 @@
 * Verification (C-ECHO) and C-STORE of the SR storage SOP classes, in implicit and explicit VR
   little endian and deflated explicit VR little endian.
 * Optionally every image storage class too, accepted and discarded (``access.accept_images``).
-* The called AE title must match ours; calling AE titles may be limited to an allow-list
-  (pynetdicom rejects others; the rejection is logged with the peer's address).
+* The called AE title must match ours (pynetdicom rejects others); calling AE titles may be
+  limited to an allow-list, and an AE title may be pinned to addresses: both are checked on the
+  association request against the configuration in force, so a reload (SIGHUP) applies to the
+  next association and never drops open ones.  Rejections are logged with the peer's address.
+* TLS when configured (Python ``ssl`` context from :mod:`service.network.tls`).
 * A C-STORE answers success only after the object is durable in the spool and committed in the
   journal.  A store failure answers 0xA700 (Out of Resources) so the sender keeps the object; an
   object that cannot be decoded answers 0xC000 (Cannot understand), one that does not match the
@@ -34,6 +37,8 @@ from pynetdicom.presentation import StoragePresentationContexts
 from pynetdicom.transport import ThreadedAssociationServer
 
 from service.config import Config
+from service.observability.logs import event
+from service.observability.metrics import Metrics
 from service.store.journal import Journal
 from service.store.spool import Spool
 
@@ -100,8 +105,10 @@ class Listener:
         spool: Spool,
         *,
         on_received: Callable[[str], None] = lambda study_uid: None,
+        metrics: Metrics | None = None,
     ) -> None:
         self.config = config
+        self.metrics = metrics or Metrics()
         self.journal = journal
         self.spool = spool
         self.on_received = on_received
@@ -119,8 +126,7 @@ class Listener:
         ae.dimse_timeout = cfg.limits.dimse_timeout
         ae.network_timeout = cfg.limits.network_timeout
         ae.require_called_aet = True
-        if cfg.access.allowed_calling_aes:
-            ae.require_calling_aet = list(cfg.access.allowed_calling_aes)
+        # the calling AE allow-list and address pinning are checked in _on_requested
         ae.add_supported_context(VERIFICATION, SR_TRANSFER_SYNTAXES)
         for uid in SR_STORAGE_CLASSES:
             ae.add_supported_context(uid, SR_TRANSFER_SYNTAXES)
@@ -136,18 +142,40 @@ class Listener:
             (evt.EVT_C_STORE, self._on_store),
             (evt.EVT_REJECTED, self._on_rejected),
             (evt.EVT_ACCEPTED, self._on_accepted),
+            (evt.EVT_REQUESTED, self._on_requested),
         ]
+        from service.network.tls import server_context
+
+        ssl_context = server_context(self.config)
         self.server = self.ae.start_server(
-            (self.config.node.bind, self.config.node.port), block=False, evt_handlers=handlers
+            (self.config.node.bind, self.config.node.port),
+            block=False,
+            evt_handlers=handlers,
+            ssl_context=ssl_context,
         )
         port = int(self.server.server_address[1])
-        log.info(
-            "listening as %s on %s:%d",
-            self.config.node.ae_title,
-            self.config.node.bind or "*",
-            port,
+        event(
+            "listening",
+            f"listening as {self.config.node.ae_title} on {self.config.node.bind or '*'}:{port}"
+            + (" (TLS)" if ssl_context else ""),
+            ae_title=self.config.node.ae_title,
+            bind=self.config.node.bind,
+            port=port,
+            tls=ssl_context is not None,
         )
         return port
+
+    def is_up(self) -> bool:
+        """The listening socket is open and its server thread runs."""
+        server = self.server
+        if server is None:
+            return False
+        try:
+            open_socket = server.socket.fileno() >= 0
+        except OSError:
+            return False
+        threads = [t for t in getattr(self.ae, "_servers", []) if t is server]
+        return open_socket and bool(threads)
 
     @property
     def port(self) -> int:
@@ -168,46 +196,95 @@ class Listener:
 
     # -- handlers (network threads: no clinical work here) ---------------------------------------
 
-    def _on_accepted(self, event: Any) -> None:
-        req = event.assoc.requestor
-        log.info("association accepted from %s (%s)", req.ae_title, req.address)
+    def _on_requested(self, ev: Any) -> None:
+        """Allow-list and address pinning, against the configuration in force now."""
+        req = ev.assoc.requestor
+        primitive = getattr(req, "primitive", None)
+        calling = str(getattr(primitive, "calling_ae_title", "") or "").strip()
+        access = self.config.access
+        why = ""
+        if not access.calling_ae_allowed(calling):
+            why = "calling AE title not allowed"
+        elif not access.address_allowed(calling, str(req.address)):
+            why = "calling AE title pinned to other addresses"
+        if why:
+            # PS3.8 9.3.4: rejected-permanent, service user, calling AE title not recognised
+            ev.assoc.acse.send_reject(0x01, 0x01, 0x03)
+            self._log_rejection(ev, why)
+            ev.assoc.kill()  # as pynetdicom does after its own rejections: the PDU goes out first
 
-    def _on_rejected(self, event: Any) -> None:
-        req = event.assoc.requestor
-        called = getattr(getattr(req, "primitive", None), "called_ae_title", None)
-        log.warning(
-            "association rejected: calling AE %r, called AE %r, from %s:%s",
-            req.ae_title,
-            str(called).strip() if called is not None else "?",
-            req.address,
-            req.port,
+    def _on_accepted(self, ev: Any) -> None:
+        req = ev.assoc.requestor
+        self.metrics.associations.labels(outcome="accepted").inc()
+        event(
+            "association_opened",
+            f"association accepted from {str(req.ae_title).strip()} ({req.address})",
+            calling_ae=str(req.ae_title).strip(),
+            address=req.address,
+            port=req.port,
         )
 
-    def _on_echo(self, event: Any) -> int:
+    def _on_rejected(self, ev: Any) -> None:
+        self._log_rejection(ev, "called AE title not ours")
+
+    def _log_rejection(self, ev: Any, why: str) -> None:
+        req = ev.assoc.requestor
+        primitive = getattr(req, "primitive", None)
+        calling = str(getattr(primitive, "calling_ae_title", req.ae_title) or "").strip()
+        called = getattr(primitive, "called_ae_title", None)
+        called_text = str(called).strip() if called is not None else "?"
+        self.metrics.associations.labels(outcome="rejected").inc()
+        event(
+            "association_rejected",
+            f"association rejected: calling AE {calling!r}, called AE {called_text!r}, "
+            f"from {req.address}:{req.port} ({why})",
+            level=logging.WARNING,
+            calling_ae=calling,
+            called_ae=called_text,
+            address=req.address,
+            port=req.port,
+            reason=why,
+        )
+
+    def _object_rejected(
+        self, calling: str, uid: str, status: int, reason: str, study_uid: str = ""
+    ) -> int:
+        self.metrics.objects.labels(outcome="rejected").inc()
+        event(
+            "object_rejected",
+            f"C-STORE from {calling}: object {uid} rejected: {reason}; answered 0x{status:04X}",
+            level=logging.WARNING if status != OUT_OF_RESOURCES else logging.ERROR,
+            calling_ae=calling,
+            sop_instance_uid=uid,
+            study_uid=study_uid,
+            status=f"0x{status:04X}",
+            reason=reason,
+        )
+        return status
+
+    def _on_echo(self, ev: Any) -> int:
         return SUCCESS
 
-    def _on_store(self, event: Any) -> int:
-        calling = str(event.assoc.requestor.ae_title).strip()
-        context_class = str(event.context.abstract_syntax)
-        affected = str(event.request.AffectedSOPInstanceUID or "")
+    def _on_store(self, ev: Any) -> int:
+        calling = str(ev.assoc.requestor.ae_title).strip()
+        context_class = str(ev.context.abstract_syntax)
+        affected = str(ev.request.AffectedSOPInstanceUID or "")
         if context_class not in SR_STORAGE_CLASSES:
             # accept_images: the object is acknowledged and discarded, by design
+            self.metrics.objects.labels(outcome="discarded").inc()
             log.info("discarded non-SR object of class %s from %s", context_class, calling)
             return SUCCESS
         try:
-            ds = event.dataset
+            ds = ev.dataset
             for _ in ds.iterall():  # decode every element now, not later in the grader
                 pass
         except Exception as exc:
-            log.warning(
-                "C-STORE from %s: object %s cannot be decoded (%s: %s); answered 0x%04X",
+            return self._object_rejected(
                 calling,
                 affected,
-                type(exc).__name__,
-                exc,
                 CANNOT_UNDERSTAND,
+                f"cannot be decoded ({type(exc).__name__}: {exc})",
             )
-            return CANNOT_UNDERSTAND
         sop_class = str(ds.get("SOPClassUID", "") or "")
         sop_uid = str(ds.get("SOPInstanceUID", "") or "")
         study_uid = str(ds.get("StudyInstanceUID", "") or "")
@@ -221,37 +298,44 @@ class Listener:
         elif not valid_uid(study_uid):
             problem = "Study Instance UID missing or malformed"
         if problem:
-            log.warning(
-                "C-STORE from %s: object %s rejected: %s; answered 0x%04X",
-                calling,
-                affected,
-                problem,
-                DOES_NOT_MATCH_SOP_CLASS,
-            )
-            return DOES_NOT_MATCH_SOP_CLASS
+            return self._object_rejected(calling, affected, DOES_NOT_MATCH_SOP_CLASS, problem)
         try:
-            data = part10_bytes(event)
+            data = part10_bytes(ev)
             path = self.spool.write_object(study_uid, sop_uid, data)
             self.journal.record_object(
                 sop_instance_uid=sop_uid,
                 study_uid=study_uid,
                 sop_class_uid=sop_class,
-                transfer_syntax=str(event.context.transfer_syntax),
+                transfer_syntax=str(ev.context.transfer_syntax),
                 calling_ae=calling,
                 path=path,
                 settle_seconds=self.config.assembly.settle_seconds,
             )
         except Exception as exc:
-            log.error(
-                "C-STORE from %s: object %s could not be stored (%s: %s); answered 0x%04X",
+            return self._object_rejected(
                 calling,
                 sop_uid,
-                type(exc).__name__,
-                exc,
                 OUT_OF_RESOURCES,
+                f"could not be stored ({type(exc).__name__}: {exc})",
+                study_uid,
             )
-            return OUT_OF_RESOURCES
-        log.info("received %s of study %s from %s", sop_uid, study_uid, calling)
+        self.metrics.objects.labels(outcome="stored").inc()
+        extra: dict[str, Any] = {}
+        if self.config.logging.include_patient_identifiers:
+            extra = {
+                "patient_name": str(ds.get("PatientName", "") or ""),
+                "patient_id": str(ds.get("PatientID", "") or ""),
+            }
+        event(
+            "object_received",
+            f"received {sop_uid} of study {study_uid} from {calling}",
+            calling_ae=calling,
+            sop_instance_uid=sop_uid,
+            sop_class_uid=sop_class,
+            study_uid=study_uid,
+            transfer_syntax=str(ev.context.transfer_syntax),
+            **extra,
+        )
         try:
             self.on_received(study_uid)
         except Exception:  # waking the assembler must never fail the store

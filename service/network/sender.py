@@ -1,4 +1,5 @@
-"""Delivery of result SRs: C-STORE (SCU) to the configured destinations, and the results folder.
+"""Delivery of result SRs (and their summary PDFs): C-STORE (SCU) to the configured
+destinations, over TLS where a destination asks for it, and the results folder.
 
 One thread takes due deliveries from the journal's outbox, groups them by destination, opens
 one association per destination and sends each result.  A failed attempt (destination down,
@@ -22,6 +23,8 @@ from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
 from pynetdicom import AE
 
 from service.config import Config, DestinationConfig
+from service.observability.logs import event
+from service.observability.metrics import Metrics
 from service.store.journal import FOLDER_DESTINATION, DueDelivery, Journal
 from service.store.spool import durable_write, safe_name
 
@@ -31,6 +34,9 @@ log = logging.getLogger("diastolic_sr.sender")
 #: and the warnings "coercion of data elements", "elements discarded", "data set does not
 #: match SOP class")
 _STORED = {0x0000, 0xB000, 0xB006, 0xB007}
+
+#: Encapsulated PDF Storage (PS3.4 Annex B.5): the summary
+ENCAPSULATED_PDF = "1.2.840.10008.5.1.4.1.1.104.1"
 
 
 def _unreachable_reason(host: str, port: int, where: str) -> str:
@@ -50,8 +56,10 @@ class Sender:
         journal: Journal,
         *,
         poll_seconds: float = 0.5,
+        metrics: Metrics | None = None,
     ) -> None:
         self.config = config
+        self.metrics = metrics or Metrics()
         self.journal = journal
         self._poll = poll_seconds
         self._wake = threading.Event()
@@ -102,7 +110,7 @@ class Sender:
                     log.error("result %s: destination %s not configured", d.result_uid, name)
         return len(due)
 
-    def _failed(self, d: DueDelivery, error: str) -> None:
+    def _failed(self, d: DueDelivery, error: str, kind: str = "result") -> None:
         cfg = self.config.delivery
         state = self.journal.mark_attempt_failed(
             d.id,
@@ -111,13 +119,31 @@ class Sender:
             backoff_initial=cfg.backoff_initial_seconds,
             backoff_max=cfg.backoff_max_seconds,
         )
-        log.warning(
-            "result %s to %s: attempt %d failed (%s)%s",
-            d.result_uid,
-            d.destination,
-            d.attempts + 1,
-            error,
-            "; giving up" if state == "failed" else "; will retry",
+        final = state == "failed"
+        self.metrics.deliveries.labels(outcome="failed" if final else "retry", kind=kind).inc()
+        event(
+            "result_failed" if final else "result_retry",
+            f"{kind} {d.result_uid} to {d.destination}: attempt {d.attempts + 1} failed "
+            f"({error}){'; giving up' if final else '; will retry'}",
+            level=logging.ERROR if final else logging.WARNING,
+            result_uid=d.result_uid,
+            study_uid=d.study_uid,
+            destination=d.destination,
+            kind=kind,
+            attempt=d.attempts + 1,
+            reason=error,
+        )
+
+    def _delivered(self, d: DueDelivery, where: str, kind: str) -> None:
+        self.journal.mark_delivered(d.id)
+        self.metrics.deliveries.labels(outcome="delivered", kind=kind).inc()
+        event(
+            "result_delivered",
+            f"{kind} {d.result_uid} delivered to {where}",
+            result_uid=d.result_uid,
+            study_uid=d.study_uid,
+            destination=d.destination,
+            kind=kind,
         )
 
     def _to_folder(self, items: list[DueDelivery]) -> None:
@@ -131,8 +157,7 @@ class Sender:
             except OSError as exc:
                 self._failed(d, f"cannot write to results folder: {exc}")
                 continue
-            self.journal.mark_delivered(d.id)
-            log.info("result %s written to the results folder", d.result_uid)
+            self._delivered(d, "the results folder", "file")
 
     def _to_peer(self, dest: DestinationConfig, items: list[DueDelivery]) -> None:
         datasets = []
@@ -141,8 +166,13 @@ class Sender:
                 datasets.append((d, pydicom.dcmread(d.path)))
             except Exception as exc:
                 self.journal.mark_failed(d.id, f"spooled result unreadable: {exc}")
+                self.metrics.deliveries.labels(outcome="failed", kind="result").inc()
         if not datasets:
             return
+
+        def kind(ds: pydicom.Dataset) -> str:
+            return "summary" if str(ds.SOPClassUID) == ENCAPSULATED_PDF else "result"
+
         limits = self.config.limits
         ae = AE(ae_title=self.config.node.ae_title)
         ae.acse_timeout = limits.acse_timeout
@@ -150,12 +180,17 @@ class Sender:
         ae.network_timeout = limits.network_timeout
         for sop_class in sorted({str(ds.SOPClassUID) for _, ds in datasets}):
             ae.add_requested_context(sop_class, [ExplicitVRLittleEndian, ImplicitVRLittleEndian])
-        where = f"{dest.ae_title}@{dest.host}:{dest.port}"
+        where = f"{dest.ae_title}@{dest.host}:{dest.port}" + (" (TLS)" if dest.tls else "")
         try:
-            assoc = ae.associate(dest.host, dest.port, ae_title=dest.ae_title)
-        except Exception as exc:  # bad host name and the like
-            for d, _ in datasets:
-                self._failed(d, f"cannot associate with {where}: {exc}")
+            tls_args = None
+            if dest.tls:
+                from service.network.tls import client_context
+
+                tls_args = (client_context(self.config), dest.host)
+            assoc = ae.associate(dest.host, dest.port, ae_title=dest.ae_title, tls_args=tls_args)
+        except Exception as exc:  # bad host name, TLS set-up and the like
+            for d, ds in datasets:
+                self._failed(d, f"cannot associate with {where}: {exc}", kind(ds))
             return
         if not assoc.is_established:
             why = (
@@ -163,8 +198,8 @@ class Sender:
                 if assoc.is_rejected
                 else _unreachable_reason(dest.host, dest.port, where)
             )
-            for d, _ in datasets:
-                self._failed(d, why)
+            for d, ds in datasets:
+                self._failed(d, why, kind(ds))
             return
         try:
             for d, ds in datasets:
@@ -173,16 +208,17 @@ class Sender:
                 try:
                     status = assoc.send_c_store(ds)
                 except Exception as exc:
-                    self._failed(d, f"C-STORE to {where} raised {type(exc).__name__}: {exc}")
+                    self._failed(
+                        d, f"C-STORE to {where} raised {type(exc).__name__}: {exc}", kind(ds)
+                    )
                     continue
                 code = getattr(status, "Status", None)
                 if code is None:
-                    self._failed(d, f"no C-STORE response from {where}")
+                    self._failed(d, f"no C-STORE response from {where}", kind(ds))
                 elif int(code) in _STORED:
-                    self.journal.mark_delivered(d.id)
-                    log.info("result %s delivered to %s", d.result_uid, where)
+                    self._delivered(d, where, kind(ds))
                 else:
-                    self._failed(d, f"C-STORE status 0x{int(code):04X} from {where}")
+                    self._failed(d, f"C-STORE status 0x{int(code):04X} from {where}", kind(ds))
         finally:
             if assoc.is_established:
                 assoc.release()

@@ -113,6 +113,13 @@ CREATE TABLE IF NOT EXISTS deliveries (
     UNIQUE (result_uid, destination)
 );
 CREATE INDEX IF NOT EXISTS deliveries_due ON deliveries (state, next_attempt_at);
+-- objects that go with a result SR (the one-page summary PDF): delivered like it, and part of
+-- its study's delivery state
+CREATE TABLE IF NOT EXISTS companions (
+    result_uid TEXT NOT NULL,
+    companion_uid TEXT NOT NULL,
+    PRIMARY KEY (result_uid, companion_uid)
+);
 """
 
 
@@ -140,6 +147,22 @@ class NewResult:
     filling_pressure: str | None
     sources: tuple[str, ...]
     predecessors: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class Companion:
+    """An object delivered with a result SR (e.g. its summary PDF), to its own destinations."""
+
+    result: NewResult
+    destinations: tuple[tuple[str, str], ...]
+
+
+@dataclass(frozen=True)
+class Purged:
+    """What a retention purge removed from the journal; the caller deletes the files."""
+
+    studies: tuple[str, ...]
+    paths: tuple[Path, ...]
 
 
 @dataclass(frozen=True)
@@ -297,14 +320,16 @@ class Journal:
         destinations: Sequence[tuple[str, str]] = (),
         failure: str = "",
         object_notes: dict[str, str] | None = None,
+        companions: Sequence[Companion] = (),
         now: float | None = None,
     ) -> bool:
         """Record the outcome of grading ``claim``.
 
         With a result: the result row (kept as is when this UID exists already: a re-sent
         identical study), and one pending delivery per ``(destination, target)`` unless that
-        destination already has this result UID.  Without: the study fails with ``failure``.
-        Returns True when new deliveries were queued."""
+        destination already has this result UID; the same for each companion object, queued
+        after the result so that it follows the result on the same association.  Without: the
+        study fails with ``failure``.  Returns True when new deliveries were queued."""
         now = time.time() if now is None else now
         queued = False
         with self._tx() as db:
@@ -322,34 +347,18 @@ class Journal:
             for uid, note in (object_notes or {}).items():
                 db.execute("UPDATE objects SET note = ? WHERE sop_instance_uid = ?", (note, uid))
             if result is not None:
-                db.execute(
-                    """INSERT OR IGNORE INTO results (result_uid, study_uid, series_uid,
-                           sop_class_uid, path, status, guideline, grade, filling_pressure,
-                           sources, predecessors, created_at)
-                       VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""",
-                    (
-                        result.result_uid,
-                        claim.study_uid,
-                        result.series_uid,
-                        result.sop_class_uid,
-                        str(result.path),
-                        result.status,
-                        result.guideline,
-                        result.grade,
-                        result.filling_pressure,
-                        json.dumps(list(result.sources)),
-                        json.dumps(list(result.predecessors)),
-                        now,
-                    ),
-                )
-                for name, target in destinations:
-                    cur = db.execute(
-                        """INSERT OR IGNORE INTO deliveries (result_uid, destination, target,
-                               state, next_attempt_at, created_at, updated_at)
-                           VALUES (?, ?, ?, 'pending', ?, ?, ?)""",
-                        (result.result_uid, name, target, now, now, now),
+                queued = self._insert_result(db, claim.study_uid, result, destinations, now)
+                for comp in companions:
+                    queued = (
+                        self._insert_result(
+                            db, claim.study_uid, comp.result, comp.destinations, now
+                        )
+                        or queued
                     )
-                    queued = queued or cur.rowcount > 0
+                    db.execute(
+                        "INSERT OR IGNORE INTO companions VALUES (?, ?)",
+                        (result.result_uid, comp.result.result_uid),
+                    )
                 db.execute(
                     "UPDATE studies SET result_uid = ?, updated_at = ? WHERE study_uid = ?",
                     (result.result_uid, now, claim.study_uid),
@@ -369,6 +378,45 @@ class Journal:
                     )
                     self._settle_study_state(db, claim.study_uid, now)
             # else: a newer object arrived while grading; the study is 'received' again
+        return queued
+
+    @staticmethod
+    def _insert_result(
+        db: sqlite3.Connection,
+        study_uid: str,
+        result: NewResult,
+        destinations: Sequence[tuple[str, str]],
+        now: float,
+    ) -> bool:
+        db.execute(
+            """INSERT OR IGNORE INTO results (result_uid, study_uid, series_uid,
+                   sop_class_uid, path, status, guideline, grade, filling_pressure,
+                   sources, predecessors, created_at)
+               VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""",
+            (
+                result.result_uid,
+                study_uid,
+                result.series_uid,
+                result.sop_class_uid,
+                str(result.path),
+                result.status,
+                result.guideline,
+                result.grade,
+                result.filling_pressure,
+                json.dumps(list(result.sources)),
+                json.dumps(list(result.predecessors)),
+                now,
+            ),
+        )
+        queued = False
+        for name, target in destinations:
+            cur = db.execute(
+                """INSERT OR IGNORE INTO deliveries (result_uid, destination, target,
+                       state, next_attempt_at, created_at, updated_at)
+                   VALUES (?, ?, ?, 'pending', ?, ?, ?)""",
+                (result.result_uid, name, target, now, now, now),
+            )
+            queued = queued or cur.rowcount > 0
         return queued
 
     def release_claim(self, claim: StudyClaim, *, now: float | None = None) -> None:
@@ -531,8 +579,9 @@ class Journal:
         if study["result_uid"] is None:
             return
         rows = db.execute(
-            "SELECT destination, state, last_error FROM deliveries WHERE result_uid = ?",
-            (study["result_uid"],),
+            "SELECT destination, state, last_error FROM deliveries WHERE result_uid = ? "
+            "OR result_uid IN (SELECT companion_uid FROM companions WHERE result_uid = ?)",
+            (study["result_uid"], study["result_uid"]),
         ).fetchall()
         failed = [r for r in rows if r["state"] == "failed"]
         pending = [r for r in rows if r["state"] == "pending"]
@@ -627,6 +676,74 @@ class Journal:
             sql += " AND d.result_uid = ?"
             params.append(result_uid)
         return [dict(r) for r in self._query(sql + " ORDER BY d.id", params)]
+
+    def queue_depth(self) -> dict[str, int]:
+        """Work waiting: studies not yet graded, deliveries pending and failed."""
+        studies = self._query(
+            "SELECT COUNT(*) FROM studies WHERE state IN ('received', 'assembled')"
+        )[0][0]
+        rows = self._query(
+            "SELECT state, COUNT(*) FROM deliveries WHERE state IN ('pending', 'failed') "
+            "GROUP BY state"
+        )
+        by_state = {r[0]: int(r[1]) for r in rows}
+        return {
+            "studies_waiting": int(studies),
+            "deliveries_pending": by_state.get("pending", 0),
+            "deliveries_failed": by_state.get("failed", 0),
+        }
+
+    def check_writable(self, *, now: float | None = None) -> None:
+        """One committed write (raises sqlite3.Error when the journal cannot take writes)."""
+        now = time.time() if now is None else now
+        with self._tx() as db:
+            db.execute("INSERT OR REPLACE INTO meta VALUES ('health_checked_at', ?)", (str(now),))
+
+    # -- retention ---------------------------------------------------------------------------
+
+    def purge_finished(self, older_than: float) -> Purged:
+        """Remove studies finished before ``older_than`` (epoch seconds) with their objects,
+        results and deliveries; returns the spool files to delete.
+
+        Finished: ``delivered`` (every delivery done), or ``failed`` with nothing pending or
+        failed to deliver (a study that could not be graded).  Studies waiting to be graded,
+        results waiting to be delivered and failed deliveries (which an administrator may
+        re-queue) are never purged."""
+        with self._tx() as db:
+            rows = db.execute(
+                """SELECT s.study_uid FROM studies s
+                   WHERE s.updated_at < ? AND (s.state = 'delivered' OR (s.state = 'failed'
+                     AND NOT EXISTS (SELECT 1 FROM deliveries d JOIN results r
+                         ON r.result_uid = d.result_uid
+                         WHERE r.study_uid = s.study_uid AND d.state IN ('pending', 'failed'))))
+                   AND NOT EXISTS (SELECT 1 FROM objects o WHERE o.study_uid = s.study_uid
+                         AND o.state IN ('received', 'assembled'))""",
+                (older_than,),
+            ).fetchall()
+            studies = tuple(r[0] for r in rows)
+            paths: list[Path] = []
+            for study in studies:
+                paths += [
+                    Path(r[0])
+                    for r in db.execute("SELECT path FROM objects WHERE study_uid = ?", (study,))
+                ]
+                results = [
+                    (r[0], r[1])
+                    for r in db.execute(
+                        "SELECT result_uid, path FROM results WHERE study_uid = ?", (study,)
+                    )
+                ]
+                paths += [Path(p) for _, p in results]
+                for uid, _ in results:
+                    db.execute("DELETE FROM deliveries WHERE result_uid = ?", (uid,))
+                    db.execute(
+                        "DELETE FROM companions WHERE result_uid = ? OR companion_uid = ?",
+                        (uid, uid),
+                    )
+                db.execute("DELETE FROM results WHERE study_uid = ?", (study,))
+                db.execute("DELETE FROM objects WHERE study_uid = ?", (study,))
+                db.execute("DELETE FROM studies WHERE study_uid = ?", (study,))
+        return Purged(studies=studies, paths=tuple(paths))
 
     def pending_work(self) -> int:
         """Studies not yet graded plus deliveries not yet done."""

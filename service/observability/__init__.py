@@ -1,0 +1,1 @@
+"""Operations: structured logs (JSON lines), Prometheus metrics and the health endpoint."""

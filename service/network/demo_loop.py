@@ -40,15 +40,23 @@ RECEIVER_AE = "DEMO_PACS"
 class ResultReceiver:
     """A minimal storage SCP on loopback that keeps every dataset it receives (the PACS)."""
 
-    def __init__(self, ae_title: str = RECEIVER_AE, *, port: int = 0) -> None:
+    def __init__(
+        self,
+        ae_title: str = RECEIVER_AE,
+        *,
+        port: int = 0,
+        extra_classes: Sequence[str] = (),
+        ssl_context: Any = None,
+    ) -> None:
         self.ae_title = ae_title
         self.received: list[Dataset] = []
         self._lock = threading.Lock()
         self._ae = AE(ae_title=ae_title)
         self._ae.add_supported_context(VERIFICATION)
-        for uid in SR_STORAGE_CLASSES:
+        for uid in [*SR_STORAGE_CLASSES, *extra_classes]:
             self._ae.add_supported_context(uid, [ExplicitVRLittleEndian, ImplicitVRLittleEndian])
         self._port = port
+        self._ssl = ssl_context
         self._server: Any = None
 
     def _on_store(self, event: Any) -> int:
@@ -63,6 +71,7 @@ class ResultReceiver:
             (LOOPBACK, self._port),
             block=False,
             evt_handlers=[(evt.EVT_C_STORE, self._on_store)],
+            ssl_context=self._ssl,
         )
         self._port = int(self._server.server_address[1])
         return self._port

@@ -113,6 +113,7 @@ class Listener:
         self.spool = spool
         self.on_received = on_received
         self.server: ThreadedAssociationServer | None = None
+        self._closed = False
         self.ae = self._build_ae()
 
     # -- set-up -------------------------------------------------------------------------------
@@ -168,7 +169,7 @@ class Listener:
     def is_up(self) -> bool:
         """The listening socket is open and its server thread runs."""
         server = self.server
-        if server is None:
+        if server is None or self._closed:
             return False
         try:
             open_socket = server.socket.fileno() >= 0
@@ -183,8 +184,9 @@ class Listener:
         return int(self.server.server_address[1])
 
     def stop_accepting(self) -> None:
-        """Close the listening socket; associations already open go on."""
-        if self.server is not None:
+        """Close the listening socket; associations already open go on.  Idempotent."""
+        if self.server is not None and not self._closed:
+            self._closed = True
             self.server.shutdown()
 
     def active_associations(self) -> int:

@@ -1,0 +1,184 @@
+"""Retention: spooled sources and results of studies finished more than N days ago are purged;
+pending work (studies waiting to be graded, results waiting to be delivered) and failed
+deliveries never are.  The journal and spool are driven directly with explicit times."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from service.store.journal import Journal, NewResult
+from service.store.retention import DAY, purge
+from service.store.spool import Spool
+
+T0 = 1_900_000_000.0  # an arbitrary fixed epoch time
+
+
+@pytest.fixture
+def store(tmp_path):
+    journal = Journal(tmp_path / "journal.sqlite3")
+    spool = Spool(tmp_path / "spool")
+    yield journal, spool
+    journal.close()
+
+
+def _receive(journal: Journal, spool: Spool, study: str, sop: str, now: float) -> Path:
+    path = spool.write_object(study, sop, b"object " + sop.encode())
+    journal.record_object(
+        sop_instance_uid=sop,
+        study_uid=study,
+        sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
+        transfer_syntax="1.2.840.10008.1.2.1",
+        calling_ae="HV_ECHO1",
+        path=path,
+        settle_seconds=0,
+        now=now,
+    )
+    return path
+
+
+def _grade(journal: Journal, spool: Spool, study: str, now: float, dests=("PACS",)) -> Path:
+    (claim,) = journal.claim_due(now=now)
+    result_uid = f"{study}.9"
+    path = spool.write_result(study, result_uid, b"result")
+    journal.finish_grading(
+        claim,
+        result=NewResult(
+            result_uid=result_uid,
+            series_uid=f"{study}.8",
+            sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
+            path=path,
+            status="graded",
+            guideline="ase-eacvi-2016",
+            grade="normal",
+            filling_pressure="normal",
+            sources=claim.object_uids,
+            predecessors=(),
+        ),
+        destinations=[(d, "X@127.0.0.1:104") for d in dests],
+        now=now,
+    )
+    return path
+
+
+def _deliver_all(journal: Journal, study: str, now: float) -> None:
+    for d in journal.due_deliveries(now=now):
+        if d.study_uid == study:
+            journal.mark_delivered(d.id, now=now)
+
+
+def test_purges_finished_studies_and_never_pending_work(store):
+    journal, spool = store
+    old = T0 - 40 * DAY
+    # 1. delivered 40 days ago: purged
+    src1 = _receive(journal, spool, "1.2.1", "1.2.1.1", old)
+    res1 = _grade(journal, spool, "1.2.1", old)
+    _deliver_all(journal, "1.2.1", old)
+    # 2. not gradable 40 days ago, nothing to deliver: purged
+    src2 = _receive(journal, spool, "1.2.2", "1.2.2.1", old)
+    (claim,) = journal.claim_due(now=old)
+    journal.finish_grading(claim, result=None, failure="rejected: no echo measurement", now=old)
+    # 3. graded 40 days ago, delivery still pending: kept
+    src3 = _receive(journal, spool, "1.2.3", "1.2.3.1", old)
+    _grade(journal, spool, "1.2.3", old)
+    # 4. received 40 days ago, never graded (settle window far ahead): kept
+    journal.record_object(
+        sop_instance_uid="1.2.4.1",
+        study_uid="1.2.4",
+        sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
+        transfer_syntax="1.2.840.10008.1.2.1",
+        calling_ae="HV_ECHO1",
+        path=spool.write_object("1.2.4", "1.2.4.1", b"x"),
+        settle_seconds=10 * 365 * DAY,
+        now=old,
+    )
+    # 5. delivery failed for good 40 days ago: kept (an administrator may re-queue it)
+    _receive(journal, spool, "1.2.5", "1.2.5.1", old)
+    _grade(journal, spool, "1.2.5", old)
+    (d,) = [x for x in journal.due_deliveries(now=old) if x.study_uid == "1.2.5"]
+    journal.mark_attempt_failed(
+        d.id, "refused", max_attempts=1, backoff_initial=1, backoff_max=1, now=old
+    )
+    # 6. delivered 2 days ago: kept (younger than the retention)
+    recent = T0 - 2 * DAY
+    src6 = _receive(journal, spool, "1.2.6", "1.2.6.1", recent)
+    _grade(journal, spool, "1.2.6", recent)
+    _deliver_all(journal, "1.2.6", recent)
+    assert journal.study("1.2.3")["state"] == "graded"  # its delivery was never attempted
+
+    report = purge(journal, spool.root, 30, now=T0)
+
+    assert report.studies == 2
+    assert not src1.exists() and not res1.exists() and not src2.exists()
+    assert journal.study("1.2.1") is None and journal.study("1.2.2") is None
+    for study in ("1.2.3", "1.2.4", "1.2.5", "1.2.6"):
+        assert journal.study(study) is not None, study
+    assert src3.exists() and src6.exists()
+    assert journal.deliveries(states=["failed"])  # the failed delivery is still there
+    assert journal.deliveries(states=["pending"])  # and the pending one
+    assert report.files == 3  # two sources and one result
+
+
+def test_zero_days_keeps_everything(store):
+    journal, spool = store
+    old = T0 - 400 * DAY
+    src = _receive(journal, spool, "1.3.1", "1.3.1.1", old)
+    _grade(journal, spool, "1.3.1", old, dests=())
+    assert journal.study("1.3.1")["state"] == "graded"
+    assert purge(journal, spool.root, 0, now=T0).studies == 0
+    assert src.exists()
+
+
+def test_a_late_object_reopens_the_study_and_protects_it(store):
+    journal, spool = store
+    old = T0 - 40 * DAY
+    _receive(journal, spool, "1.4.1", "1.4.1.1", old)
+    _grade(journal, spool, "1.4.1", old)
+    _deliver_all(journal, "1.4.1", old)
+    late = _receive(journal, spool, "1.4.1", "1.4.1.2", T0 - 40 * DAY + 1)
+    journal.record_object(  # a re-send today: the study is pending again
+        sop_instance_uid="1.4.1.2",
+        study_uid="1.4.1",
+        sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
+        transfer_syntax="1.2.840.10008.1.2.1",
+        calling_ae="HV_ECHO1",
+        path=late,
+        settle_seconds=60,
+        now=T0,
+    )
+    assert purge(journal, spool.root, 30, now=T0).studies == 0
+    assert late.exists()
+
+
+@pytest.mark.network
+def test_node_purges_with_its_configured_retention(tmp_path):
+    import time
+
+    from netutil import LOOPBACK, fake_grade, send, simple_sr, wait_for
+
+    from service.config import apply_overrides, config_from_dict
+    from service.network.service import Node
+
+    cfg = apply_overrides(
+        config_from_dict({"retention": {"days": 1}, "http": {"enabled": False}}),
+        port=0,
+        bind=LOOPBACK,
+        data_dir=str(tmp_path / "node"),
+        settle_seconds=0,
+    )
+    node = Node(cfg, grade_fn=fake_grade, poll_seconds=0.05)
+    node.start()
+    try:
+        ds = simple_sr()
+        study = str(ds.StudyInstanceUID)
+        assert send([ds], node.port) == [0]
+        wait_for(lambda: (node.journal.study(study) or {}).get("state") == "delivered")
+        source = Path(node.journal.objects(study)[0]["path"])
+        assert source.exists()
+        assert node.purge_now() == 0  # finished less than a day ago
+        assert node.purge_now(now=time.time() + 2 * DAY) == 1
+        assert not source.exists() and node.journal.study(study) is None
+        assert any(node.config.results_dir.glob("*.dcm"))  # the results folder is left alone
+    finally:
+        node.stop()

@@ -182,3 +182,27 @@ def test_node_purges_with_its_configured_retention(tmp_path):
         assert any(node.config.results_dir.glob("*.dcm"))  # the results folder is left alone
     finally:
         node.stop()
+
+
+def test_queue_purge_command(tmp_path, capsys):
+    from service.cli import main as cli_main
+
+    data = tmp_path / "data"
+    journal = Journal(data / "journal.sqlite3")
+    spool = Spool(data / "spool")
+    import time
+
+    old = time.time() - 40 * DAY  # the command purges relative to the real clock
+    src = _receive(journal, spool, "1.5.1", "1.5.1.1", old)
+    _grade(journal, spool, "1.5.1", old)
+    _deliver_all(journal, "1.5.1", old)
+    journal.close()
+    cfg = tmp_path / "node.toml"
+    cfg.write_text(f'[node]\ndata_dir = "{data}"\n')
+    assert cli_main(["queue", "--config", str(cfg), "--purge"]) == 2
+    assert "retention.days is 0" in capsys.readouterr().err
+    cfg.write_text(f'[node]\ndata_dir = "{data}"\n[retention]\ndays = 30\n')
+    assert src.exists()
+    assert cli_main(["queue", "--config", str(cfg), "--purge"]) == 0
+    assert "1 finished study older than 30 days purged (2 spooled files)" in capsys.readouterr().out
+    assert not src.exists()

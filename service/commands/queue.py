@@ -1,5 +1,6 @@
 """``diastolic-sr queue``: pending, failed and recent work from the node's journal; re-queue
-failed deliveries; re-grade a study.  Works while the node runs (the journal is shared)."""
+failed deliveries; re-grade a study; purge finished work now.  Works while the node runs (the
+journal is shared)."""
 
 from __future__ import annotations
 
@@ -34,6 +35,12 @@ def register(sub: argparse._SubParsersAction) -> None:
         metavar="STUDY_UID",
         help="grade this study again from its spooled objects (repeatable)",
     )
+    p.add_argument(
+        "--purge",
+        action="store_true",
+        help="delete now the spooled files of studies finished more than retention.days ago "
+        "(never pending work or failed deliveries; needs --config with retention.days > 0)",
+    )
     p.add_argument("--recent", type=int, default=20, metavar="N", help="recent studies shown")
     p.add_argument("--json", action="store_true", help="print one JSON document")
     p.set_defaults(func=run)
@@ -63,6 +70,20 @@ def run(args: argparse.Namespace) -> int:
         if args.requeue_failed:
             n = journal.requeue_failed()
             actions.append(f"{n} failed deliver{'y' if n == 1 else 'ies'} re-queued")
+        if args.purge:
+            from service.store.retention import purge
+
+            days = cfg.retention.days
+            if days <= 0:
+                raise UserError(
+                    "retention.days is 0 (keep everything): nothing to purge; set it in the "
+                    "configuration and pass --config"
+                )
+            done = purge(journal, cfg.data_dir / "spool", days)
+            actions.append(
+                f"{done.studies} finished stud{'y' if done.studies == 1 else 'ies'} older than "
+                f"{days:g} days purged ({done.files} spooled files)"
+            )
         report = build_report(journal, recent=args.recent)
     finally:
         journal.close()

@@ -143,3 +143,44 @@ def test_a_failed_summary_delivery_fails_the_study_with_its_reason(tmp_path):
         if node is not None:
             node.stop()
         pacs.stop()
+
+
+class _RefusesSR(ResultReceiver):
+    """A peer that answers 0xA700 (out of resources, PS3.4 Annex B.2.3) to SR objects."""
+
+    def _on_store(self, event):
+        if str(event.context.abstract_syntax) == COMPREHENSIVE_SR:
+            return 0xA700
+        return super()._on_store(event)
+
+
+def test_the_summary_never_goes_where_its_result_sr_did_not_arrive(tmp_path):
+    pacs = _RefusesSR("HV_PACS", extra_classes=[ENCAPSULATED_PDF])
+    pacs.start()
+    node = None
+    try:
+        node = _node(
+            tmp_path,
+            {
+                "PACS_MAIN": {
+                    "ae_title": "HV_PACS",
+                    "host": LOOPBACK,
+                    "port": pacs.port,
+                    "summary_pdf": True,
+                }
+            },
+            max_attempts=2,
+        )
+        source = echo_sr("summary-orphan")
+        assert send([source], node.port) == [0]
+        study = str(source.StudyInstanceUID)
+        wait_for(lambda: (node.journal.study(study) or {}).get("state") == "failed", 60)
+        assert pacs.received == []  # no summary without its SR
+        failed = node.journal.deliveries(states=["failed"])
+        assert len(failed) == 2  # the SR and its summary, both with reasons
+        assert any("is not delivered there yet" in d["last_error"] for d in failed)
+        assert any("0xA700" in d["last_error"] for d in failed)
+    finally:
+        if node is not None:
+            node.stop()
+        pacs.stop()

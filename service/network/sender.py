@@ -146,9 +146,18 @@ class Sender:
             kind=kind,
         )
 
+    def _waits_for_parent(self, d: DueDelivery, kind: str) -> bool:
+        """A summary goes only where its result SR has arrived (it references the SR)."""
+        if d.parent_uid is None or self.journal.delivered_to(d.parent_uid, d.destination):
+            return False
+        self._failed(d, f"its result SR {d.parent_uid} is not delivered there yet", kind)
+        return True
+
     def _to_folder(self, items: list[DueDelivery]) -> None:
         folder = self.config.results_dir
         for d in items:
+            if self._waits_for_parent(d, "file"):
+                continue
             try:
                 if folder is None:
                     raise OSError("no results folder configured")
@@ -205,6 +214,8 @@ class Sender:
             for d, ds in datasets:
                 if self._stop.is_set() or not assoc.is_established:
                     break
+                if self._waits_for_parent(d, kind(ds)):
+                    continue
                 try:
                     status = assoc.send_c_store(ds)
                 except Exception as exc:

@@ -173,6 +173,8 @@ class DueDelivery:
     destination: str
     attempts: int
     path: Path
+    #: for a companion (the summary PDF): the result SR it goes with
+    parent_uid: str | None = None
 
 
 class Journal:
@@ -462,7 +464,9 @@ class Journal:
     def due_deliveries(self, *, now: float | None = None, limit: int = 100) -> list[DueDelivery]:
         now = time.time() if now is None else now
         rows = self._query(
-            """SELECT d.id, d.result_uid, r.study_uid, d.destination, d.attempts, r.path
+            """SELECT d.id, d.result_uid, r.study_uid, d.destination, d.attempts, r.path,
+                      (SELECT c.result_uid FROM companions c
+                       WHERE c.companion_uid = d.result_uid LIMIT 1) AS parent_uid
                FROM deliveries d JOIN results r ON r.result_uid = d.result_uid
                WHERE d.state = 'pending' AND d.next_attempt_at <= ?
                ORDER BY d.next_attempt_at, d.id LIMIT ?""",
@@ -476,9 +480,18 @@ class Journal:
                 destination=r["destination"],
                 attempts=r["attempts"],
                 path=Path(r["path"]),
+                parent_uid=r["parent_uid"],
             )
             for r in rows
         ]
+
+    def delivered_to(self, result_uid: str, destination: str) -> bool:
+        rows = self._query(
+            "SELECT 1 FROM deliveries WHERE result_uid = ? AND destination = ? "
+            "AND state = 'delivered'",
+            (result_uid, destination),
+        )
+        return bool(rows)
 
     def next_delivery_at(self) -> float | None:
         rows = self._query("SELECT MIN(next_attempt_at) FROM deliveries WHERE state = 'pending'")

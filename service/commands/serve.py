@@ -99,7 +99,7 @@ def reload_config(node: object, args: argparse.Namespace) -> bool:
     kept = node.reload(new)  # type: ignore[attr-defined]
     event(
         "config_reloaded",
-        f"configuration reloaded (digest {new.digest()})"
+        f"configuration reloaded (digest {node.config.digest()})"  # type: ignore[attr-defined]
         + (f"; needs a restart to change: {', '.join(kept)}" if kept else ""),
         digest=node.config.digest(),  # type: ignore[attr-defined]
         restart_needed=kept,

@@ -13,6 +13,7 @@ import datetime as dt
 import math
 import os
 import re
+import struct
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -366,6 +367,113 @@ def _read(ds: Dataset) -> SourceDocument:
     )
 
 
+# -- structure check ---------------------------------------------------------------------------
+
+#: explicit VR little endian VRs with a 2-byte reserved field and a 4-byte length (PS3.5 7.1.2)
+_LONG_VRS = frozenset(
+    {b"OB", b"OD", b"OF", b"OL", b"OV", b"OW", b"SQ", b"SV", b"UC", b"UN", b"UR", b"UT", b"UV"}
+)
+_UNDEFINED = 0xFFFFFFFF
+_ITEM, _ITEM_END, _SEQ_END = 0xE000, 0xE00D, 0xE0DD
+_MAX_NESTING = 256
+IMPLICIT_VR_LE = "1.2.840.10008.1.2"
+EXPLICIT_VR_LE = "1.2.840.10008.1.2.1"
+
+
+class _Broken(Exception):
+    pass
+
+
+def _dataset_end(buf: bytes, pos: int, end: int, implicit: bool, depth: int, *, item: bool) -> int:
+    """Walk the elements from ``pos``; return where they stop.  ``item``: an undefined-length
+    item, ended by an Item Delimitation Item; otherwise the elements fill ``pos..end``."""
+    if depth > _MAX_NESTING:
+        raise _Broken(f"sequences nested deeper than {_MAX_NESTING}")
+    while item or pos < end:
+        if pos + 8 > end:
+            raise _Broken(f"element header cut at byte {pos}")
+        group, elem = struct.unpack_from("<HH", buf, pos)
+        if group == 0xFFFE:
+            if item and elem == _ITEM_END:
+                return pos + 8
+            raise _Broken(f"unexpected delimiter (FFFE,{elem:04X}) at byte {pos}")
+        if implicit:
+            (length,) = struct.unpack_from("<I", buf, pos + 4)
+            pos += 8
+        elif buf[pos + 4 : pos + 6] in _LONG_VRS:
+            if pos + 12 > end:
+                raise _Broken(f"element header cut at byte {pos}")
+            (length,) = struct.unpack_from("<I", buf, pos + 8)
+            pos += 12
+        else:
+            (length,) = struct.unpack_from("<H", buf, pos + 6)
+            pos += 8
+        if length == _UNDEFINED:
+            pos = _sequence_end(buf, pos, end, implicit, depth + 1)
+        elif pos + length > end:
+            raise _Broken(
+                f"element ({group:04X},{elem:04X}) needs {length} bytes, {end - pos} left"
+            )
+        else:
+            pos += length
+    return pos
+
+
+def _sequence_end(buf: bytes, pos: int, end: int, implicit: bool, depth: int) -> int:
+    """Items of an undefined-length sequence from ``pos``; where its delimiter ends."""
+    while True:
+        if pos + 8 > end:
+            raise _Broken("sequence without its end (Sequence Delimitation Item)")
+        group, elem, length = struct.unpack_from("<HHI", buf, pos)
+        pos += 8
+        if group == 0xFFFE and elem == _SEQ_END:
+            return pos
+        if group != 0xFFFE or elem != _ITEM:
+            raise _Broken(f"({group:04X},{elem:04X}) where a sequence item was expected")
+        if length == _UNDEFINED:
+            pos = _dataset_end(buf, pos, end, implicit, depth + 1, item=True)
+        elif pos + length > end:
+            raise _Broken(f"sequence item needs {length} bytes, {end - pos} left")
+        else:
+            pos += length
+
+
+def structure_problem(data: bytes, transfer_syntax: str, start: int = 0) -> str | None:
+    """Why the encoded data set ``data[start:]`` is cut short or damaged, or None when every
+    element, sequence and item length fits what is there (PS3.5 7.1, 7.5).
+
+    pydicom reads a file that ends inside a sequence without complaint and returns the items
+    it found: a truncated measurement SR would then be graded from part of its content.
+    Checked for (implicit and explicit) VR little endian; other transfer syntaxes: None."""
+    if transfer_syntax not in (IMPLICIT_VR_LE, EXPLICIT_VR_LE):
+        return None
+    try:
+        _dataset_end(data, start, len(data), transfer_syntax == IMPLICIT_VR_LE, 0, item=False)
+    except (_Broken, struct.error) as exc:
+        return str(exc) or "damaged"
+    return None
+
+
+def file_structure_problem(data: bytes, transfer_syntax: str) -> str | None:
+    """:func:`structure_problem` for a Part 10 file (preamble, "DICM", file meta group)."""
+    if data[128:132] != b"DICM":
+        return None
+    pos = 132
+    try:
+        while pos + 8 <= len(data) and struct.unpack_from("<H", data, pos)[0] == 0x0002:
+            if data[pos + 4 : pos + 6] in _LONG_VRS:
+                (length,) = struct.unpack_from("<I", data, pos + 8)
+                pos += 12 + length
+            else:
+                (length,) = struct.unpack_from("<H", data, pos + 6)
+                pos += 8 + length
+    except struct.error:
+        return "file meta information cut short"
+    if pos > len(data):
+        return "file meta information cut short"
+    return structure_problem(data, transfer_syntax, pos)
+
+
 def read_path(path: str | os.PathLike[str]) -> tuple[Dataset, SourceDocument]:
     """Read an SR file; RejectedInput for a missing, non-DICOM or unreadable file."""
     p = os.fspath(path)
@@ -389,4 +497,10 @@ def read_path(path: str | os.PathLike[str]) -> tuple[Dataset, SourceDocument]:
         raise RejectedInput(
             f"unreadable or truncated DICOM file: {p} ({type(exc).__name__})"
         ) from None
+    meta = getattr(ds, "file_meta", None)
+    syntax = str(meta.get("TransferSyntaxUID", "")) if meta is not None else ""
+    with open(p, "rb") as fh:
+        problem = file_structure_problem(fh.read(), syntax)
+    if problem:
+        raise RejectedInput(f"unreadable or truncated DICOM file: {p} ({problem})")
     return ds, read_document(ds)

@@ -1,0 +1,694 @@
+"""diastolic-sr benchmarks: prints figures, asserts nothing about time.
+
+Run from the repository root (the venv active, DCMTK in /usr/bin)::
+
+    python tests/bench/bench.py                       # every section, N = 300
+    python tests/bench/bench.py --n 1000 --sections receivers,offline
+    python tests/bench/bench.py --sections memory --memory-at 1000,10000
+    python tests/bench/bench.py --json figures.json   # also write the figures as JSON
+
+Sections
+--------
+receivers  the same N studies (one SR each) sent by DCMTK ``storescu`` (TCP_NODELAY=1) to:
+           pynetdicom's ``storescp`` app writing to disk, DCMTK ``storescp`` writing to disk,
+           and diastolic-sr end to end (receive -> journal -> grade -> result SR -> delivered to
+           a DCMTK ``storescp`` acting as the PACS; settle window 0).  Objects/s and ratios.
+latency    a steady offered load (default 10 studies/s, one ``storescu`` per study) through
+           diastolic-sr; p50/p95/p99 from receipt (journal ``received_at``) to the result
+           delivered to the PACS (journal ``delivered_at``).
+offline    ``diastolic-sr grade`` on a folder of N files against a bare pydicom read-and-write
+           of the same files (files/s).
+memory     resident memory (VmRSS) of the node after 1 000 and 10 000 studies streamed.
+journal    the journal's query times as it grows, and SQLite's query plan for each statement
+           the service runs (is it indexed?).
+
+Everything runs on loopback (127.0.0.1) in a temporary folder, removed afterwards unless
+``--keep`` is given.  The load is invented (fictional "Harbour Vale Cardiac Centre").
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import io
+import json
+import math
+import os
+import shutil
+import sqlite3
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from collections.abc import Callable, Iterator, Sequence
+from pathlib import Path
+from typing import Any
+
+HERE = Path(__file__).resolve().parent
+REPO = HERE.parents[1]
+sys.path[:0] = [str(HERE), str(REPO / "tests"), str(REPO)]
+
+from load import write_studies  # noqa: E402
+
+LOOPBACK = "127.0.0.1"
+STORESCU = "/usr/bin/storescu"
+STORESCP = "/usr/bin/storescp"
+ECHOSCU = "/usr/bin/echoscu"
+NODE_AE = "DIASTOLIC_SR"
+PACS_AE = "PACS"
+SECTIONS = ("receivers", "latency", "offline", "memory", "journal")
+
+
+# ---------------------------------------------------------------------------------------------
+# helpers
+# ---------------------------------------------------------------------------------------------
+
+
+def say(*parts: Any) -> None:
+    print(*parts, flush=True)
+
+
+def free_port() -> int:
+    import socket
+
+    with socket.socket() as s:
+        s.bind((LOOPBACK, 0))
+        return int(s.getsockname()[1])
+
+
+def wait_for(cond: Callable[[], Any], timeout: float, interval: float = 0.02) -> Any:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        value = cond()
+        if value:
+            return value
+        time.sleep(interval)
+    raise TimeoutError(f"not reached within {timeout} s")
+
+
+def echo_ok(port: int, called: str) -> bool:
+    r = subprocess.run(
+        [ECHOSCU, "-aec", called, "-to", "5", LOOPBACK, str(port)],
+        capture_output=True,
+        timeout=20,
+    )
+    return r.returncode == 0
+
+
+def count_files(folder: Path) -> int:
+    try:
+        return sum(1 for p in folder.iterdir() if p.is_file() and not p.name.startswith("."))
+    except FileNotFoundError:
+        return 0
+
+
+def percentile(values: Sequence[float], q: float) -> float:
+    """Nearest-rank percentile (common practice)."""
+    ordered = sorted(values)
+    if not ordered:
+        return float("nan")
+    k = max(0, min(len(ordered) - 1, math.ceil(q / 100 * len(ordered)) - 1))
+    return ordered[k]
+
+
+def storescu_cmd(port: int, called: str, files: Sequence[Path]) -> list[str]:
+    # -R: propose only the SOP classes of the files (storescu's default list lacks 88.72)
+    return [
+        STORESCU,
+        "-R",
+        "-aet",
+        "SCANNER1",
+        "-aec",
+        called,
+        "-to",
+        "30",
+        LOOPBACK,
+        str(port),
+        *map(str, files),
+    ]
+
+
+def storescu_env() -> dict[str, str]:
+    return {**os.environ, "TCP_NODELAY": "1"}
+
+
+def run_storescu(port: int, called: str, files: Sequence[Path]) -> float:
+    """Send ``files`` over one association; the wall time in seconds."""
+    t0 = time.perf_counter()
+    r = subprocess.run(
+        storescu_cmd(port, called, files),
+        env=storescu_env(),
+        capture_output=True,
+        text=True,
+        timeout=3600,
+    )
+    elapsed = time.perf_counter() - t0
+    if r.returncode != 0:
+        raise RuntimeError(f"storescu failed ({r.returncode}): {r.stderr[-2000:]}")
+    return elapsed
+
+
+@contextlib.contextmanager
+def process(cmd: Sequence[str], log: Path, **kw: Any) -> Iterator[subprocess.Popen[bytes]]:
+    with open(log, "ab") as fh:
+        proc = subprocess.Popen(list(cmd), stdout=fh, stderr=subprocess.STDOUT, **kw)
+    try:
+        yield proc
+    finally:
+        if proc.poll() is None:
+            proc.terminate()
+            try:
+                proc.wait(30)
+            except subprocess.TimeoutExpired:
+                proc.kill()
+                proc.wait(10)
+
+
+@contextlib.contextmanager
+def dcmtk_storescp(out: Path, port: int, log: Path, ae: str = PACS_AE) -> Iterator[Path]:
+    out.mkdir(parents=True, exist_ok=True)
+    # TCP_NODELAY=1: DCMTK reads it on both sides; without it Nagle's algorithm and delayed
+    # acknowledgements hold every small response ~40 ms (then storescp would measure the kernel)
+    cmd = [STORESCP, "-aet", ae, "-od", str(out), "+uf", str(port)]
+    with process(cmd, log, env=storescu_env()) as proc:
+        wait_for(lambda: proc.poll() is not None or echo_ok(port, ae), 20)
+        if proc.poll() is not None:
+            raise RuntimeError(f"DCMTK storescp exited early; see {log}")
+        yield out
+
+
+@contextlib.contextmanager
+def pynetdicom_storescp(out: Path, port: int, log: Path, ae: str = "BASE") -> Iterator[Path]:
+    out.mkdir(parents=True, exist_ok=True)
+    cmd = [
+        sys.executable,
+        "-m",
+        "pynetdicom",
+        "storescp",
+        str(port),
+        "-aet",
+        ae,
+        "-od",
+        str(out),
+        "-ba",
+        LOOPBACK,
+        "-q",
+    ]
+    with process(cmd, log) as proc:
+        wait_for(lambda: proc.poll() is not None or echo_ok(port, ae), 30)
+        if proc.poll() is not None:
+            raise RuntimeError(f"pynetdicom storescp exited early; see {log}")
+        yield out
+
+
+NODE_CONFIG = """
+[assembly]
+settle_seconds = 0
+workers = {workers}
+[delivery]
+results_folder = ""
+backoff_initial_seconds = 0.2
+backoff_max_seconds = 2
+"""
+
+
+class Node:
+    """``diastolic-sr serve`` as a subprocess, forwarding results to the PACS."""
+
+    def __init__(self, work: Path, pacs_port: int, *, workers: int, name: str) -> None:
+        self.data = work / f"{name}-data"
+        self.config = work / f"{name}.toml"
+        self.config.write_text(NODE_CONFIG.format(workers=workers))
+        self.log = work / f"{name}.log"
+        self.pacs_port = pacs_port
+        self.port = free_port()
+        self.proc: subprocess.Popen[bytes] | None = None
+
+    def __enter__(self) -> Node:
+        cmd = [
+            sys.executable,
+            "-m",
+            "service.cli",
+            "serve",
+            "--config",
+            str(self.config),
+            "--bind",
+            LOOPBACK,
+            "--port",
+            str(self.port),
+            "--data-dir",
+            str(self.data),
+            "--forward",
+            f"{PACS_AE}@{LOOPBACK}:{self.pacs_port}",
+            "--log-level",
+            "WARNING",
+        ]
+        with open(self.log, "ab") as fh:
+            self.proc = subprocess.Popen(cmd, cwd=REPO, stdout=fh, stderr=subprocess.STDOUT)
+        wait_for(lambda: self.proc.poll() is not None or echo_ok(self.port, NODE_AE), 60)
+        if self.proc.poll() is not None:
+            raise RuntimeError(f"node exited early; see {self.log}")
+        return self
+
+    def rss_kib(self) -> tuple[int, int]:
+        """(VmRSS, VmHWM) of the node process in KiB."""
+        assert self.proc is not None
+        rss = hwm = 0
+        for line in Path(f"/proc/{self.proc.pid}/status").read_text().splitlines():
+            if line.startswith("VmRSS:"):
+                rss = int(line.split()[1])
+            elif line.startswith("VmHWM:"):
+                hwm = int(line.split()[1])
+        return rss, hwm
+
+    def journal_rows(self, sql: str, params: Sequence[Any] = ()) -> list[tuple]:
+        db = sqlite3.connect(f"file:{self.data / 'journal.sqlite3'}?mode=ro", uri=True, timeout=30)
+        try:
+            return db.execute(sql, params).fetchall()
+        finally:
+            db.close()
+
+    def delivered(self) -> int:
+        try:
+            return int(
+                self.journal_rows("SELECT COUNT(*) FROM deliveries WHERE state = 'delivered'")[0][0]
+            )
+        except sqlite3.OperationalError:
+            return 0
+
+    def settled(self) -> int:
+        try:
+            return int(
+                self.journal_rows(
+                    "SELECT COUNT(*) FROM studies WHERE state IN ('delivered', 'failed')"
+                )[0][0]
+            )
+        except sqlite3.OperationalError:
+            return 0
+
+    def __exit__(self, *exc: object) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.terminate()
+            try:
+                self.proc.wait(60)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(10)
+
+
+# ---------------------------------------------------------------------------------------------
+# sections
+# ---------------------------------------------------------------------------------------------
+
+
+def bench_receivers(work: Path, n: int, workers: int) -> dict[str, Any]:
+    say(f"\n== receivers: {n} studies, one SR each, DCMTK storescu (TCP_NODELAY=1) ==")
+    files = write_studies(work / "load", n, run="receivers")
+    out: dict[str, Any] = {"n": n}
+
+    port = free_port()
+    with pynetdicom_storescp(work / "pyn-out", port, work / "pyn-storescp.log") as folder:
+        t = run_storescu(port, "BASE", files)
+        wait_for(lambda: count_files(folder) >= n, 60)
+    out["pynetdicom_storescp"] = n / t
+    say(f"pynetdicom storescp (to disk):     {n / t:8.1f} objects/s  ({t:.2f} s)")
+
+    port = free_port()
+    with dcmtk_storescp(work / "dcmtk-out", port, work / "dcmtk-storescp.log", "BASE") as folder:
+        t = run_storescu(port, "BASE", files)
+        wait_for(lambda: count_files(folder) >= n, 60)
+    out["dcmtk_storescp"] = n / t
+    say(f"DCMTK storescp (to disk):          {n / t:8.1f} objects/s  ({t:.2f} s)")
+
+    pacs_port = free_port()
+    pacs_dir = work / "pacs-throughput"
+    with (
+        dcmtk_storescp(pacs_dir, pacs_port, work / "pacs-throughput.log"),
+        Node(work, pacs_port, workers=workers, name="node-throughput") as node,
+    ):
+        t0 = time.perf_counter()
+        t_ack = run_storescu(node.port, NODE_AE, files)
+        wait_for(lambda: node.settled() >= n, 60 + n * 2, interval=0.05)
+        t_all = time.perf_counter() - t0
+        delivered = count_files(pacs_dir)
+        failed = node.journal_rows("SELECT COUNT(*) FROM studies WHERE state = 'failed'")[0][0]
+    out["diastolic_sr_acknowledged"] = n / t_ack
+    out["diastolic_sr_end_to_end"] = n / t_all
+    out["diastolic_sr_delivered"] = delivered
+    out["diastolic_sr_failed"] = failed
+    say(
+        f"diastolic-sr receive+journal:      {n / t_ack:8.1f} objects/s acknowledged "
+        f"({t_ack:.2f} s)"
+    )
+    say(
+        f"diastolic-sr end to end:           {n / t_all:8.1f} objects/s ({t_all:.2f} s; "
+        f"{delivered} results at the PACS, {failed} studies failed)"
+    )
+    out["ratio_to_pynetdicom"] = out["diastolic_sr_end_to_end"] / out["pynetdicom_storescp"]
+    out["ratio_to_dcmtk"] = out["diastolic_sr_end_to_end"] / out["dcmtk_storescp"]
+    say(
+        f"ratio end to end / pynetdicom storescp: {out['ratio_to_pynetdicom']:.2f}   "
+        f"/ DCMTK storescp: {out['ratio_to_dcmtk']:.2f}   (target >= 0.5 x pynetdicom)"
+    )
+    return out
+
+
+def bench_latency(work: Path, n: int, rate: float, workers: int) -> dict[str, Any]:
+    say(f"\n== latency: {n} studies offered at {rate:g} studies/s (one storescu per study) ==")
+    files = write_studies(work / "latency-load", n, run="latency")
+    pacs_port = free_port()
+    with (
+        dcmtk_storescp(work / "pacs-latency", pacs_port, work / "pacs-latency.log"),
+        Node(work, pacs_port, workers=workers, name="node-latency") as node,
+    ):
+        procs = []
+        t0 = time.perf_counter()
+        for i, f in enumerate(files):
+            delay = t0 + i / rate - time.perf_counter()
+            if delay > 0:
+                time.sleep(delay)
+            procs.append(
+                subprocess.Popen(
+                    storescu_cmd(node.port, NODE_AE, [f]),
+                    env=storescu_env(),
+                    stdout=subprocess.DEVNULL,
+                    stderr=subprocess.DEVNULL,
+                )
+            )
+        offered = n / (time.perf_counter() - t0)
+        bad = sum(1 for p in procs if p.wait(120) != 0)
+        wait_for(lambda: node.settled() >= n, 60 + n, interval=0.05)
+        rows = node.journal_rows(
+            """SELECT d.delivered_at - o.received_at FROM deliveries d
+               JOIN results r ON r.result_uid = d.result_uid
+               JOIN objects o ON o.study_uid = r.study_uid
+               WHERE d.state = 'delivered'"""
+        )
+    lat = [r[0] * 1000 for r in rows]
+    out = {
+        "n": n,
+        "offered_per_s": offered,
+        "storescu_failures": bad,
+        "delivered": len(lat),
+        "p50_ms": percentile(lat, 50),
+        "p95_ms": percentile(lat, 95),
+        "p99_ms": percentile(lat, 99),
+        "max_ms": max(lat) if lat else float("nan"),
+    }
+    say(
+        f"offered {offered:.1f} studies/s; {len(lat)} delivered; receipt -> delivered: "
+        f"p50 {out['p50_ms']:.0f} ms, p95 {out['p95_ms']:.0f} ms, p99 {out['p99_ms']:.0f} ms, "
+        f"max {out['max_ms']:.0f} ms   (target p95 < 250 ms)"
+    )
+    return out
+
+
+def bench_offline(work: Path, n: int) -> dict[str, Any]:
+    import pydicom
+
+    from service.cli import main
+
+    say(f"\n== offline: grade a folder of {n} files vs bare pydicom read+write ==")
+    src = work / "offline-in"
+    write_studies(src, n, run="offline")
+    files = sorted(src.iterdir())
+    bare_out = work / "offline-bare"
+    bare_out.mkdir()
+    # warm both paths once (imports, code tables), outside the timing
+    warm = work / "offline-warm"
+    warm.mkdir()
+    shutil.copy(files[0], warm / files[0].name)
+    with contextlib.redirect_stdout(io.StringIO()):
+        main(["grade", str(warm), "--out", str(work / "offline-warm-out"), "--json"])
+    t0 = time.perf_counter()
+    for f in files:
+        ds = pydicom.dcmread(f)
+        ds.save_as(bare_out / f.name, enforce_file_format=True)
+    t_bare = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    with contextlib.redirect_stdout(io.StringIO()):
+        code = main(["grade", str(src), "--out", str(work / "offline-out"), "--json"])
+    t_grade = time.perf_counter() - t0
+    out = {
+        "n": n,
+        "bare_pydicom_files_per_s": n / t_bare,
+        "grade_files_per_s": n / t_grade,
+        "grade_exit": code,
+        "ratio": t_bare / t_grade,
+    }
+    say(f"bare pydicom read+write:  {n / t_bare:8.1f} files/s")
+    say(f"diastolic-sr grade --out: {n / t_grade:8.1f} files/s (exit {code})")
+    say(f"ratio grade / bare: {out['ratio']:.2f}   (target >= 0.5)")
+    return out
+
+
+def bench_memory(work: Path, marks: Sequence[int], workers: int, batch: int) -> dict[str, Any]:
+    total = max(marks)
+    say(f"\n== memory: node RSS while {total} studies stream through ==")
+    pacs_port = free_port()
+    out: dict[str, Any] = {"marks": {}}
+    with (
+        dcmtk_storescp(work / "pacs-memory", pacs_port, work / "pacs-memory.log"),
+        Node(work, pacs_port, workers=workers, name="node-memory") as node,
+    ):
+        rss0, _ = node.rss_kib()
+        out["rss_start_kib"] = rss0
+        say(f"after start:           RSS {rss0 / 1024:7.1f} MiB")
+        sent = 0
+        t0 = time.perf_counter()
+        folder = work / "memory-load"
+        for mark in sorted(marks):
+            while sent < mark:
+                k = min(batch, mark - sent)
+                if folder.exists():
+                    shutil.rmtree(folder)
+                files = write_studies(folder, k, start=sent, run="memory")
+                run_storescu(node.port, NODE_AE, files)
+                sent += k
+            wait_for(lambda m=mark: node.settled() >= m, 120 + mark, interval=0.2)
+            rss, hwm = node.rss_kib()
+            out["marks"][mark] = {"rss_kib": rss, "hwm_kib": hwm}
+            say(
+                f"after {mark:6d} studies: RSS {rss / 1024:7.1f} MiB (peak {hwm / 1024:.1f} MiB), "
+                f"{mark / (time.perf_counter() - t0):.1f} studies/s so far"
+            )
+            # the PACS folder can grow large: keep disk use bounded
+            shutil.rmtree(work / "pacs-memory", ignore_errors=True)
+            (work / "pacs-memory").mkdir(exist_ok=True)
+    return out
+
+
+def bench_journal(work: Path, sizes: Sequence[int], repeats: int = 30) -> dict[str, Any]:
+    from service.store.journal import Journal
+
+    say(f"\n== journal: query times as it grows ({', '.join(map(str, sizes))} studies) ==")
+    path = work / "journal-bench.sqlite3"
+    j = Journal(path)
+    statements: dict[str, str] = {}
+
+    def trace(sql: str) -> None:
+        key = " ".join(sql.split())
+        if key.split(" ", 1)[0].upper() in ("SELECT", "UPDATE", "INSERT", "DELETE"):
+            statements.setdefault(_shape(key), key)
+
+    j._db.set_trace_callback(trace)  # capture every statement the service runs
+    out: dict[str, Any] = {"sizes": {}}
+    have = 0
+    for size in sorted(sizes):
+        _fill(j, have, size)
+        have = size
+        timings: dict[str, list[float]] = {}
+
+        def timed(name: str, fn: Callable[[], Any], timings: dict = timings) -> Any:
+            t = time.perf_counter()
+            r = fn()
+            timings.setdefault(name, []).append((time.perf_counter() - t) * 1000)
+            return r
+
+        for k in range(repeats):
+            uid = f"2.25.9{size}{k}"
+            timed(
+                "record_object",
+                lambda uid=uid: j.record_object(
+                    sop_instance_uid=uid + ".1",
+                    study_uid=uid,
+                    sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
+                    transfer_syntax="1.2.840.10008.1.2.1",
+                    calling_ae="SCANNER1",
+                    path=Path("/nonexistent"),
+                    settle_seconds=0,
+                    now=time.time() - 1,
+                ),
+            )
+            timed("next_due_at", j.next_due_at)
+            claims = timed("claim_due", lambda: j.claim_due(limit=1))
+            if claims:
+                from service.store.journal import NewResult
+
+                res = NewResult(
+                    result_uid=uid + ".9",
+                    series_uid=uid + ".8",
+                    sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
+                    path=Path("/nonexistent"),
+                    status="graded",
+                    guideline="ase-eacvi-2016",
+                    grade="normal",
+                    filling_pressure="normal",
+                    sources=(uid + ".1",),
+                    predecessors=(),
+                )
+                timed(
+                    "finish_grading",
+                    lambda c=claims[0], res=res: j.finish_grading(
+                        c, result=res, destinations=[("PACS", "PACS@127.0.0.1:1")]
+                    ),
+                )
+            due = timed("due_deliveries", j.due_deliveries)
+            timed("next_delivery_at", j.next_delivery_at)
+            for d in due:
+                timed("mark_delivered", lambda d=d: j.mark_delivered(d.id))
+            timed("pending_work", j.pending_work)
+        timed("counts (start/stop, queue)", j.counts)
+        timed("studies (queue)", lambda: j.studies(states=("failed",)))
+        timed("objects_set_aside (queue)", j.objects_set_aside)
+        med = {name: statistics.median(v) for name, v in timings.items()}
+        out["sizes"][size] = med
+        say(f"{size:>8d} studies: " + ", ".join(f"{k} {v:.2f} ms" for k, v in med.items()))
+    j._db.set_trace_callback(None)
+    plans: dict[str, list[str]] = {}
+    db = sqlite3.connect(path)
+    for key, sql in sorted(statements.items()):
+        try:
+            rows = db.execute("EXPLAIN QUERY PLAN " + sql).fetchall()
+        except sqlite3.Error as exc:
+            plans[key] = [f"(cannot explain: {exc})"]
+            continue
+        plans[key] = [r[-1] for r in rows]
+    db.close()
+    j.close()
+    say("\nquery plans (SCAN = reads the whole table; SEARCH ... USING INDEX = indexed):")
+    for key, plan in plans.items():
+        flag = "  SCAN" if any(p.startswith("SCAN") for p in plan) else "  ok  "
+        say(f"{flag} {key[:110]}")
+        for p in plan:
+            say(f"         {p}")
+    out["plans"] = plans
+    return out
+
+
+def _shape(sql: str) -> str:
+    """A statement with its literal values blanked (one entry per statement shape)."""
+    import re
+
+    sql = re.sub(r"'[^']*'", "?", sql)
+    sql = re.sub(r"\b\d+(\.\d+)?(e[+-]?\d+)?\b", "?", sql)
+    return sql
+
+
+def _fill(j: Any, start: int, stop: int) -> None:
+    """Add delivered studies ``start``..``stop`` straight into the tables (one transaction):
+    history as a long-running node accumulates it."""
+    now = time.time() - 86400
+    db = j._db
+    with j._lock:
+        db.execute("BEGIN")
+        for i in range(start, stop):
+            study = f"2.25.1{i:09d}"
+            sop = study + ".1"
+            res = study + ".9"
+            t = now + i * 0.01
+            db.execute(
+                "INSERT INTO objects (sop_instance_uid, study_uid, sop_class_uid, "
+                "transfer_syntax, calling_ae, path, state, received_at) "
+                "VALUES (?, ?, '1.2.840.10008.5.1.4.1.1.88.33', '1.2.840.10008.1.2.1', "
+                "'SCANNER1', '/x', 'graded', ?)",
+                (sop, study, t),
+            )
+            db.execute(
+                "INSERT INTO studies (study_uid, calling_ae, state, first_received_at, "
+                "last_received_at, due_at, result_uid, updated_at) "
+                "VALUES (?, 'SCANNER1', 'delivered', ?, ?, ?, ?, ?)",
+                (study, t, t, t, res, t),
+            )
+            db.execute(
+                "INSERT INTO results (result_uid, study_uid, series_uid, sop_class_uid, path, "
+                "status, sources, predecessors, created_at) VALUES (?, ?, ?, "
+                "'1.2.840.10008.5.1.4.1.1.88.33', '/x', 'graded', '[]', '[]', ?)",
+                (res, study, study + ".8", t),
+            )
+            db.execute(
+                "INSERT INTO deliveries (result_uid, destination, target, state, attempts, "
+                "next_attempt_at, created_at, updated_at, delivered_at) "
+                "VALUES (?, 'PACS', 'PACS@127.0.0.1:1', 'delivered', 1, ?, ?, ?, ?)",
+                (res, t, t, t, t),
+            )
+        db.execute("COMMIT")
+
+
+# ---------------------------------------------------------------------------------------------
+
+
+def parse(argv: list[str] | None) -> argparse.Namespace:
+    p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawTextHelpFormatter)
+    p.add_argument("--n", type=int, default=300, help="studies for throughput (default 300)")
+    p.add_argument("--offline-n", type=int, help="files for the offline section (default --n)")
+    p.add_argument("--latency-n", type=int, default=100, help="studies in the latency run")
+    p.add_argument("--rate", type=float, default=10.0, help="offered studies/s (latency)")
+    p.add_argument("--workers", type=int, default=2, help="node grading workers (default 2)")
+    p.add_argument(
+        "--memory-at",
+        default="1000,10000",
+        help="studies streamed at which RSS is read (default 1000,10000)",
+    )
+    p.add_argument("--memory-batch", type=int, default=500, help="studies per association")
+    p.add_argument("--journal-sizes", default="1000,10000,100000", help="journal sizes (studies)")
+    p.add_argument(
+        "--sections",
+        default="receivers,latency,offline,journal",
+        help=f"comma-separated, from {','.join(SECTIONS)} (memory is long: ask for it)",
+    )
+    p.add_argument("--json", type=Path, help="write the figures to this JSON file")
+    p.add_argument("--keep", action="store_true", help="keep the work folder")
+    p.add_argument("--work", type=Path, help="work folder (default: a new temporary one)")
+    return p.parse_args(argv)
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = parse(argv)
+    sections = [s.strip() for s in args.sections.split(",") if s.strip()]
+    unknown = set(sections) - set(SECTIONS)
+    if unknown:
+        print(f"unknown section(s): {', '.join(sorted(unknown))}", file=sys.stderr)
+        return 2
+    for tool in (STORESCU, STORESCP, ECHOSCU):
+        if not os.access(tool, os.X_OK) and set(sections) - {"offline", "journal"}:
+            print(f"{tool} missing (Debian package dcmtk)", file=sys.stderr)
+            return 2
+    work = args.work or Path(tempfile.mkdtemp(prefix="diastolic-sr-bench-"))
+    work.mkdir(parents=True, exist_ok=True)
+    say(f"diastolic-sr benchmarks; {os.cpu_count()} CPUs; work folder {work}")
+    figures: dict[str, Any] = {}
+    try:
+        if "receivers" in sections:
+            figures["receivers"] = bench_receivers(work, args.n, args.workers)
+        if "latency" in sections:
+            figures["latency"] = bench_latency(work, args.latency_n, args.rate, args.workers)
+        if "offline" in sections:
+            figures["offline"] = bench_offline(work, args.offline_n or args.n)
+        if "memory" in sections:
+            marks = [int(x) for x in args.memory_at.split(",") if x.strip()]
+            figures["memory"] = bench_memory(work, marks, args.workers, args.memory_batch)
+        if "journal" in sections:
+            sizes = [int(x) for x in args.journal_sizes.split(",") if x.strip()]
+            figures["journal"] = bench_journal(work, sizes)
+    finally:
+        if args.json:
+            args.json.write_text(json.dumps(figures, indent=2, default=str))
+        if not args.keep and args.work is None:
+            shutil.rmtree(work, ignore_errors=True)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -59,14 +59,13 @@ def add_grading_arguments(p: argparse.ArgumentParser) -> None:
 
 def grade_options_from_args(args: argparse.Namespace) -> GradeOptions:
     from service.errors import UserError
-    from service.grading import IMPLEMENTED_GUIDELINES
+    from service.grading import IMPLEMENTED_GUIDELINES, NOT_AVAILABLE
 
     guideline = Guideline(args.guideline)
     if guideline not in IMPLEMENTED_GUIDELINES:
-        raise UserError(
-            f"guideline {guideline.value!r} is not implemented in full; available: "
-            + ", ".join(g.value for g in IMPLEMENTED_GUIDELINES)
-        )
+        why = NOT_AVAILABLE.get(guideline, f"guideline {guideline.value} is not implemented")
+        available = ", ".join(g.value for g in IMPLEMENTED_GUIDELINES)
+        raise UserError(f"{why} (available: {available})")
     rhythm = Rhythm(args.rhythm)
     context = Context(
         rhythm=rhythm,

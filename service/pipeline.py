@@ -16,6 +16,7 @@ from pydicom import Dataset
 
 from service import SOFTWARE_NAME, __version__
 from service.errors import RejectedInput
+from service.grading import RuleSwitches
 from service.model import (
     Assessment,
     AssessmentSet,
@@ -36,6 +37,8 @@ class GradeOptions(Frozen):
     guideline: Guideline = Guideline.ase_eacvi_2016
     context: Context = Field(default_factory=Context)
     compare: bool = False  # evaluate every implemented guideline, primary first
+    #: documented readings of ambiguous published rules (defaults: the reference's readings)
+    switches: RuleSwitches = Field(default_factory=RuleSwitches)
     uid_root: str | None = None  # None: 2.25 UUID-derived UIDs
 
 
@@ -130,7 +133,8 @@ def grade_study(
 ) -> StudyOutcome:
     """Grade the SRs of one study together.  Never raises for bad input: returns a ``rejected``
     outcome with the reason instead."""
-    from service.grading import IMPLEMENTED_GUIDELINES, assess
+    from service.grading import assess
+    from service.grading.compare import assess_all
     from service.sr.read import read_document
     from service.sr.write import build_result_sr
     from service.vocabulary.mapper import build_measurements, load_mapping_table
@@ -166,17 +170,13 @@ def grade_study(
             measurements=measurements,
         )
     context = effective_context(documents, options.context)
-    primary = assess(measurements, context, options.guideline)
-    others: list[Assessment] = []
     if options.compare:
-        others = [
-            assess(measurements, context, g)
-            for g in IMPLEMENTED_GUIDELINES
-            if g != options.guideline
-        ]
-    assessments = AssessmentSet(
-        primary=primary, others=tuple(others), disagreements=_disagreements(primary, others)
-    )
+        assessments = assess_all(measurements, context, options.guideline, options.switches)
+    else:
+        assessments = AssessmentSet(
+            primary=assess(measurements, context, options.guideline, options.switches)
+        )
+    primary = assessments.primary
     instance_uid, series_uid = result_identity(
         documents, options, table.digest, primary.rule_set_version
     )
@@ -200,18 +200,6 @@ def grade_study(
         assessments=assessments,
         result=result,
     )
-
-
-def _disagreements(primary: Assessment, others: Sequence[Assessment]) -> tuple[str, ...]:
-    out = []
-    for other in others:
-        if (other.grade, other.filling_pressure) != (primary.grade, primary.filling_pressure):
-            out.append(
-                f"{primary.guideline.value}: {primary.grade.value}, filling pressure "
-                f"{primary.filling_pressure.value}; {other.guideline.value}: "
-                f"{other.grade.value}, filling pressure {other.filling_pressure.value}."
-            )
-    return tuple(out)
 
 
 def build_summary(

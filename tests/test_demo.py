@@ -64,3 +64,22 @@ def test_demo_command_runs_end_to_end():
     for case in CASES:
         assert case.patient.id in proc.stdout
     assert CAUTION in proc.stdout
+
+
+def test_compare_carries_every_implemented_guideline_primary_first():
+    from service.grading import IMPLEMENTED_GUIDELINES
+    from service.model import Guideline
+
+    case = next(c for c in CASES if c.key == "indeterminate")
+    outcome = grade_study(case_datasets(case), GradeOptions(compare=True))
+    sets = outcome.assessments
+    assert sets.primary.guideline is Guideline.ase_eacvi_2016
+    assert {a.guideline for a in sets.others} == set(IMPLEMENTED_GUIDELINES) - {
+        Guideline.ase_eacvi_2016
+    }
+    # 2016 (Fig 8A: 2 of 4 met -> indeterminate) and 2025 disagree here: a sentence says why
+    if any(o.grade != sets.primary.grade for o in sets.others):
+        assert sets.disagreements
+    # comparing changes the options, so the result is a different instance
+    plain = grade_study(case_datasets(case), GradeOptions())
+    assert plain.result_uid != outcome.result_uid

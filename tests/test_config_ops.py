@@ -232,3 +232,30 @@ def test_check_config_refuses_a_key_that_does_not_match_its_certificate(tmp_path
     assert cli_main(["check-config", str(f)]) == 2
     err = capsys.readouterr().err
     assert "tls.certificate / tls.private_key: cannot load" in err
+
+
+def test_configured_switches_and_sender_rhythm_reach_the_grading():
+    from netutil import echo_sr
+
+    from service.network.assembly import grade_options
+    from service.pipeline import grade_study
+
+    # E/septal e' 16.7 and IVRT 60 ms in AF (Nagueh 2016 JASE 29:277, AF section: E/septal
+    # e' >= 11 and IVRT <= 65 ms suggest raised filling pressure; from memory)
+    ds = echo_sr("switches", values={"mitral_e": 100.0, "e_prime_septal": 6.0, "ivrt": 60.0})
+    outcomes = {}
+    for mode in ("flags-only", "majority"):
+        cfg = config_from_dict(
+            {
+                "senders": {"HV_AF": {"rhythm": "af"}},
+                "grading": {"switches": {"ase2016_af": {"summary": mode}}},
+            }
+        )
+        outcome = grade_study([ds], grade_options(cfg, "HV_AF"))
+        assert outcome.assessment.pathway.value == "atrial-fibrillation"  # the sender's rhythm
+        outcomes[mode] = outcome
+    # flags-only: no combination rule stated, filling pressure left indeterminate (I-16-11)
+    assert outcomes["flags-only"].assessment.filling_pressure.value == "indeterminate"
+    assert outcomes["majority"].assessment.filling_pressure.value == "elevated"
+    # a different rule reading is a different result instance
+    assert outcomes["flags-only"].result_uid != outcomes["majority"].result_uid

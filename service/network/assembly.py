@@ -71,15 +71,12 @@ def screen_with_reader(ds: Dataset) -> str | None:
 def grade_options(config: Config, calling_ae: str) -> Any:
     from service.pipeline import GradeOptions
 
-    extra: dict[str, Any] = {}
-    if "switches" in GradeOptions.model_fields:  # the documented rule switches ([grading])
-        extra["switches"] = config.grading.switches
     return GradeOptions(
         guideline=config.grading.guideline,
         context=config.grading_context(calling_ae),
         compare=config.grading.compare,
         uid_root=config.grading.uid_root or None,
-        **extra,
+        switches=config.grading.switches,  # the documented rule switches ([grading.switches])
     )
 
 

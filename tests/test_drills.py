@@ -215,6 +215,7 @@ def test_kill9_at_random_moments_during_a_stream_of_200_studies(tmp_path):
                 ok, _ = acknowledged(out)
                 acked |= ok
                 assert integrity(data_dir) == "ok", f"journal damaged after kill {round_ + 1}"
+            assert len(acked) < len(files), "the kills did not fall inside the stream"
             port = node.start(timeout=60)
             scu = storescu([f for f in files if str(f) not in acked], port)
             out, _ = scu.communicate(timeout=600)

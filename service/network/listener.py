@@ -39,6 +39,7 @@ from pynetdicom.transport import ThreadedAssociationServer
 from service.config import Config
 from service.observability.logs import event
 from service.observability.metrics import Metrics
+from service.sr.read import structure_problem
 from service.store.journal import Journal
 from service.store.spool import Spool
 
@@ -70,6 +71,7 @@ DOES_NOT_MATCH_SOP_CLASS = 0xA900
 CANNOT_UNDERSTAND = 0xC000
 
 _UID = re.compile(r"^[0-9]+(\.[0-9]+)*$")
+_LE_SYNTAXES = (ExplicitVRLittleEndian, ImplicitVRLittleEndian)
 
 
 def image_storage_classes() -> list[str]:
@@ -86,15 +88,22 @@ def valid_uid(value: Any) -> bool:
     return 0 < len(text) <= 64 and bool(_UID.match(text))
 
 
+def _body(event: Any) -> bytes:
+    """The data set bytes exactly as received."""
+    raw = event.request.DataSet
+    if isinstance(raw, BytesIO):
+        return raw.getvalue()
+    raw.seek(0)
+    return bytes(raw.read())
+
+
 def part10_bytes(event: Any) -> bytes:
     """The received dataset exactly as encoded on the wire, wrapped as a Part 10 file."""
     meta = DicomBytesIO()
     meta.is_little_endian = True
     meta.is_implicit_VR = False
     write_file_meta_info(meta, event.file_meta, enforce_standard=True)
-    raw = event.request.DataSet
-    body = raw.getvalue() if isinstance(raw, BytesIO) else bytes(raw.read())
-    return b"\x00" * 128 + b"DICM" + meta.getvalue() + body
+    return b"\x00" * 128 + b"DICM" + meta.getvalue() + _body(event)
 
 
 class Listener:
@@ -144,6 +153,7 @@ class Listener:
             (evt.EVT_REJECTED, self._on_rejected),
             (evt.EVT_ACCEPTED, self._on_accepted),
             (evt.EVT_REQUESTED, self._on_requested),
+            (evt.EVT_CONN_CLOSE, self._on_conn_close),
         ]
         from service.network.tls import server_context
 
@@ -197,6 +207,14 @@ class Listener:
             assoc.abort()
 
     # -- handlers (network threads: no clinical work here) ---------------------------------------
+
+    def _on_conn_close(self, ev: Any) -> None:
+        """A connection closed before its A-ASSOCIATE-RQ (a port probe, a TCP health check):
+        wake the association thread now instead of at the ACSE timeout, so that it does not
+        hold one of the limits.max_associations slots meanwhile."""
+        assoc = ev.assoc
+        if assoc.is_acceptor and getattr(assoc.requestor, "primitive", None) is None:
+            assoc.dul.to_user_queue.put(None)  # read as "no request": the thread ends
 
     def _on_requested(self, ev: Any) -> None:
         """Allow-list and address pinning, against the configuration in force now."""
@@ -280,6 +298,16 @@ class Listener:
             ds = ev.dataset
             for _ in ds.iterall():  # decode every element now, not later in the grader
                 pass
+            # pydicom returns the items it found in a data set cut short inside a sequence:
+            # check every length against the bytes that arrived
+            broken = None
+            if str(ev.context.transfer_syntax) in (ImplicitVRLittleEndian, ExplicitVRLittleEndian):
+                # as pydicom does, accept the other VR encoding when the data set is in it
+                body = _body(ev)
+                problems = [structure_problem(body, ts) for ts in _LE_SYNTAXES]
+                broken = problems[0] if all(problems) else None
+            if broken:
+                raise ValueError(f"data set cut short or damaged: {broken}")
         except Exception as exc:
             return self._object_rejected(
                 calling,

@@ -42,6 +42,7 @@ from highdicom.sr import (
 from highdicom.sr import RelationshipTypeValues as Rel
 from highdicom.sr.value_types import ContentSequence
 from pydicom import Dataset
+from pydicom.filewriter import correct_ambiguous_vr
 from pydicom.sr.coding import Code
 from pydicom.valuerep import DA, DT, TM
 
@@ -577,4 +578,24 @@ def build_result_sr(
     sr.CodingSchemeIdentificationSequence = [_coding_scheme_item()]
     if predecessors:
         sr.PredecessorDocumentsSequence = _predecessor_sequence(predecessors)
+    _resolve_vrs_once(sr)
     return sr
+
+
+def _resolve_vrs_once(ds: Dataset) -> None:
+    """Resolve ambiguous VRs once for the whole tree, for explicit VR little endian (the
+    transfer syntax of the document's file meta), and record that encoding on every dataset.
+
+    pydicom otherwise repeats the resolution over the whole subtree below every sequence
+    item of a dataset it did not read from a file: for a result tree of some 400 items that
+    was about a third of the time spent writing it.  The encoded bytes are the same; writing
+    with another transfer syntax still resolves ambiguous VRs as usual."""
+    correct_ambiguous_vr(ds, True)
+    ds.set_original_encoding(False, True, ds._character_set)
+    stack = [ds]
+    while stack:
+        for elem in stack.pop():
+            if elem.VR == "SQ":
+                for item in elem.value:
+                    item.set_original_encoding(False, True)
+                    stack.append(item)

@@ -66,6 +66,24 @@ from service.model import (
 from service.sr import codes as C
 from service.sr.identity import derive_uid
 
+
+def _memoise_pixel_data_lookup() -> None:
+    """highdicom asks, for every document it builds, whether the first evidence object's IOD
+    has pixel data (to name its acquisition equipment): a walk over every attribute of every
+    module of that IOD, tens of milliseconds, the same answer for the same SOP class every
+    time.  The lookup is a pure function of the SOP Class UID over highdicom's bundled
+    tables, so it is remembered per class (same answers, same documents)."""
+    import functools
+
+    import highdicom.base_content as base_content
+
+    lookup = getattr(base_content, "does_iod_have_pixel_data", None)
+    if lookup is not None and not hasattr(lookup, "cache_info"):
+        base_content.does_iod_have_pixel_data = functools.lru_cache(maxsize=256)(lookup)
+
+
+_memoise_pixel_data_lookup()
+
 MANUFACTURER = "diastolic-sr project"
 MODEL_NAME = "diastolic-sr"
 DEVICE_NAME = "diastolic-sr"

@@ -233,3 +233,15 @@ def test_regrade_request_from_another_connection(tmp_path, journal):
 def test_incomplete_study_rows_are_refused_by_the_schema(journal):
     with pytest.raises(sqlite3.Error):
         journal._db.execute("INSERT INTO studies (study_uid) VALUES ('x')")
+
+
+def test_claim_given_back_for_a_retry_is_not_due_before_its_time(journal):
+    _receive(journal, "1.2.3.1", now=1000.0, settle=0)
+    (claim,) = journal.claim_due(now=1000.0)
+    journal.release_claim(claim, retry_at=1010.0, now=1000.0)  # a storage error: retry later
+    assert journal.study(STUDY)["state"] == "received"
+    assert journal.claim_due(now=1009.0) == []
+    (again,) = journal.claim_due(now=1010.0)
+    assert again.object_uids == claim.object_uids
+    journal.release_claim(again, now=1011.0)  # shutdown: due as it was
+    assert journal.claim_due(now=1011.0)

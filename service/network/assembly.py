@@ -149,6 +149,8 @@ class Assembler:
         self._workers = config.assembly.workers
         self._pool = ThreadPoolExecutor(self._workers, thread_name_prefix="grade")
         self._inflight: set[Future[None]] = set()
+        #: storage-error retries per study (back-off as for deliveries)
+        self._io_retries: dict[str, int] = {}
         self._inflight_lock = threading.Lock()
         self._thread = threading.Thread(target=self._run, name="assembler", daemon=True)
 
@@ -215,6 +217,11 @@ class Assembler:
         try:
             self.grade(claim)
             self.metrics.processing.observe(time.monotonic() - started)
+            self._io_retries.pop(claim.study_uid, None)
+        except OSError as exc:
+            # the node's own storage failed (disk full, ...), not the input: give the study
+            # back and try again after a back-off, without anyone having to re-queue it
+            self._retry_later(claim, exc)
         except Exception as exc:
             self.metrics.studies.labels(outcome="error").inc()
             log.exception("grading study %s failed", claim.study_uid)
@@ -224,6 +231,27 @@ class Assembler:
                 )
             except Exception:  # the journal itself failed: the claim resumes on restart
                 log.exception("cannot record the failure of study %s", claim.study_uid)
+
+    def _retry_later(self, claim: StudyClaim, exc: OSError) -> None:
+        n = self._io_retries.get(claim.study_uid, 0) + 1
+        self._io_retries[claim.study_uid] = n
+        cfg = self.config.delivery
+        delay = min(cfg.backoff_initial_seconds * 2 ** (n - 1), cfg.backoff_max_seconds)
+        self.metrics.studies.labels(outcome="retry").inc()
+        event(
+            "study_retry",
+            f"study {claim.study_uid}: storage error while grading ({exc}); "
+            f"retry {n} in {delay:g} s",
+            level=logging.ERROR,
+            study_uid=claim.study_uid,
+            attempt=n,
+            retry_in_seconds=delay,
+            reason=f"{type(exc).__name__}: {exc}",
+        )
+        try:
+            self.journal.release_claim(claim, retry_at=time.time() + delay)
+        except Exception:  # the journal itself failed: the claim resumes on restart
+            log.exception("cannot give back study %s for a retry", claim.study_uid)
 
     def grade(self, claim: StudyClaim) -> None:
         notes: dict[str, str] = {}

@@ -421,14 +421,17 @@ class Journal:
             queued = queued or cur.rowcount > 0
         return queued
 
-    def release_claim(self, claim: StudyClaim, *, now: float | None = None) -> None:
-        """Give a claimed study back (e.g. on shutdown before it was graded)."""
+    def release_claim(
+        self, claim: StudyClaim, *, retry_at: float | None = None, now: float | None = None
+    ) -> None:
+        """Give a claimed study back (e.g. on shutdown before it was graded); with
+        ``retry_at`` it is not due before then (a retry after a write error)."""
         now = time.time() if now is None else now
         with self._tx() as db:
             db.execute(
-                "UPDATE studies SET state = 'received', updated_at = ? "
-                "WHERE study_uid = ? AND state = 'assembled'",
-                (now, claim.study_uid),
+                "UPDATE studies SET state = 'received', updated_at = ?, "
+                "due_at = COALESCE(?, due_at) WHERE study_uid = ? AND state = 'assembled'",
+                (now, retry_at, claim.study_uid),
             )
             db.execute(
                 "UPDATE objects SET state = 'received' WHERE study_uid = ? AND state = 'assembled'",

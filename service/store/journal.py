@@ -120,6 +120,7 @@ CREATE TABLE IF NOT EXISTS companions (
     companion_uid TEXT NOT NULL,
     PRIMARY KEY (result_uid, companion_uid)
 );
+CREATE INDEX IF NOT EXISTS companions_companion ON companions (companion_uid);
 """
 
 

@@ -11,7 +11,7 @@ from types import FrameType
 
 from service.config import Config, apply_overrides, load_config
 from service.errors import UserError
-from service.observability.logs import configure_logging, event
+from service.observability.logs import configure_logging, event, set_level
 
 log = logging.getLogger("diastolic_sr.serve")
 
@@ -97,6 +97,8 @@ def reload_config(node: object, args: argparse.Namespace) -> bool:
         )
         return False
     kept = node.reload(new)  # type: ignore[attr-defined]
+    if getattr(args, "log_level", None):  # the command line beats the file, also on reload
+        set_level(args.log_level)
     event(
         "config_reloaded",
         f"configuration reloaded (digest {node.config.digest()})"  # type: ignore[attr-defined]

@@ -83,3 +83,17 @@ def test_compare_carries_every_implemented_guideline_primary_first():
     # comparing changes the options, so the result is a different instance
     plain = grade_study(case_datasets(case), GradeOptions())
     assert plain.result_uid != outcome.result_uid
+
+
+def test_demo_site_mapping_teaches_the_fictional_scanners_private_codes():
+    from service.demo.scenario import SITE_MAPPING
+    from service.vocabulary.mapper import load_mapping_table
+
+    case = next(c for c in CASES if c.key == "grade-2")
+    without = grade_study(case_datasets(case), GradeOptions())
+    with_map = grade_study(
+        case_datasets(case), GradeOptions(), table=load_mapping_table([SITE_MAPPING])
+    )
+    assert Measure.lavi not in without.measurements.values
+    assert with_map.measurements.values[Measure.lavi].value == 41
+    assert with_map.assessment.grade is Grade.grade_2

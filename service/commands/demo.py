@@ -47,7 +47,8 @@ def run_demo_data(args: argparse.Namespace) -> int:
 
 
 def run_demo(args: argparse.Namespace) -> int:
-    from service.demo.scenario import demo_datasets
+    """The demo node knows the fictional scanner's private codes (its site mapping table)."""
+    from service.demo.scenario import SITE_MAPPING, demo_datasets
     from service.network.demo_loop import run_network_demo
 
     logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
@@ -55,10 +56,14 @@ def run_demo(args: argparse.Namespace) -> int:
     print(f"Sending {len(datasets)} demo SRs to a diastolic-sr node on loopback ...", flush=True)
     if args.workdir:
         args.workdir.mkdir(parents=True, exist_ok=True)
-        rows = run_network_demo(datasets, args.workdir, timeout=args.timeout)
+        rows = run_network_demo(
+            datasets, args.workdir, timeout=args.timeout, mapping_files=[SITE_MAPPING]
+        )
     else:
         with tempfile.TemporaryDirectory(prefix="diastolic-sr-demo-") as tmp:
-            rows = run_network_demo(datasets, Path(tmp), timeout=args.timeout)
+            rows = run_network_demo(
+                datasets, Path(tmp), timeout=args.timeout, mapping_files=[SITE_MAPPING]
+            )
     print_rows(rows)
     delivered = sum(1 for r in rows if r["delivered"])
     print(f"\n{delivered} of {len(rows)} studies: result SR delivered to the loopback PACS.")

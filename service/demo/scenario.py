@@ -27,6 +27,9 @@ from service.sr.echo_builder import (
 )
 
 M = Measure
+#: the site mapping table for the fictional scanner's private codes (also shipped as
+#: config/mappings/example-site.toml)
+SITE_MAPPING = Path(__file__).with_name("harbour-vale-mapping.toml")
 AF = Code(value="49436004", scheme="SCT", meaning="Atrial Fibrillation")
 
 

@@ -140,6 +140,7 @@ def run_network_demo(
     *,
     grade_fn: GradeFunction | None = None,
     settle_seconds: float = 0.3,
+    mapping_files: Sequence[Path] = (),
 ) -> list[dict[str, Any]]:
     """Send ``datasets`` through a loopback node to a loopback receiver; one row per study:
     patient_name, patient_id, study_uid, guideline, grade, filling_pressure, result_uid,
@@ -158,6 +159,7 @@ def run_network_demo(
     data = cfg.model_dump(mode="json")
     data["delivery"].update(backoff_initial_seconds=0.2, backoff_max_seconds=1.0)
     data["http"]["enabled"] = False  # a short-lived demo node needs no health endpoint
+    data["grading"]["mapping_files"] = [str(Path(p).resolve()) for p in mapping_files]
     cfg = cfg.model_validate({**data, "base_dir": cfg.base_dir})
     node = Node(cfg, grade_fn=grade_fn, poll_seconds=0.1)
     studies: dict[str, Dataset] = {}

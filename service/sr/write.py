@@ -615,5 +615,6 @@ def _resolve_vrs_once(ds: Dataset) -> None:
         for elem in stack.pop():
             if elem.VR == "SQ":
                 for item in elem.value:
-                    item.set_original_encoding(False, True)
+                    # the character set too: pydicom compares it with the one in force
+                    item.set_original_encoding(False, True, item._character_set)
                     stack.append(item)

@@ -123,14 +123,6 @@ def _hot_path_statements(tmp_path: Path) -> dict[str, str]:
     return plans
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="Journal.due_deliveries looks companions up by companion_uid, which no index "
-    "leads with: a full scan of companions per due delivery (11 ms per row at 100 000 "
-    "studies with a summary each, growing linearly; tests/bench/bench.py --sections journal). "
-    "Fix (service/store/journal.py _SCHEMA): CREATE INDEX IF NOT EXISTS companions_companion "
-    "ON companions (companion_uid)",
-)
 def test_every_lookup_on_a_studys_way_through_the_node_is_indexed(tmp_path):
     """No statement of the hot path reads a whole table (SQLite EXPLAIN QUERY PLAN 'SCAN'),
     so the journal's query times stay flat as it grows.  (Start, stop and the queue command

@@ -349,15 +349,6 @@ def test_disk_full_answers_out_of_resources_then_recovers(tmp_path):
                 node.kill()
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="a write error while grading (disk full when the result SR is spooled) marks the "
-    "study failed for good ('internal error while grading: [Errno 28] ...'): it needs a "
-    "manual 'queue' re-grade once space returns. Fix (service/network/assembly.py, "
-    "Assembler._grade_claim): on OSError give the claim back (journal.release_claim) with a "
-    "back-off delay instead of finish_grading(result=None); keep the failure for errors of "
-    "the input itself",
-)
 def test_disk_full_while_grading_recovers_without_manual_action(tmp_path, monkeypatch):
     """In-process node (the real pipeline); the result spool write fails twice with ENOSPC,
     then space returns: the study must end delivered without anyone re-queueing it."""

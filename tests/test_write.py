@@ -410,7 +410,9 @@ def test_borderline_flag_and_supporting_finding():
     assert props == {"ALTGRADE": "DFG-INDET", "ALTFILLPRESSURE": "371934000"}
     (finding,) = find(ds, C.SUPPORTING_FINDING)
     assert finding.TextValue.startswith("Valsalva:")
-    assert "Borderline: e_e_prime_average" in find(ds, C.IMPRESSION)[0].TextValue
+    impression = find(ds, C.IMPRESSION)[0].TextValue
+    assert "Borderline result: Average E/e′ 13.4 is within 10 %" in impression
+    assert "e_e_prime_average" not in impression  # plain words for the reader, no field names
     # a result without flags says No (373067005 SCT, PS3.16 CID 230)
     (no_flag,) = find(build("normal"), C.BORDERLINE)
     assert no_flag.ConceptCodeSequence[0].CodeValue == "373067005"

@@ -147,11 +147,12 @@ def summary_text(assessments: AssessmentSet) -> str:
         f"{name}: {_GRADE_WORDS[p.grade]}; estimated LV filling pressure "
         f"{_PRESSURE_WORDS[p.filling_pressure]}."
     )
-    if p.grade is Grade.not_gradable and p.pathway_reason:
-        text += f" Reason: {p.pathway_reason.rstrip('.')}."
+    if p.grade is Grade.not_gradable:
+        reason = p.reasoning[-1] if p.reasoning else p.pathway_reason
+        if reason:
+            text += f" Reason: {reason.rstrip('.')}."
     if p.borderline:
-        measures = ", ".join(dict.fromkeys(f.measure.value for f in p.borderline))
-        text += f" Borderline: {measures} near a cut-off could change the result."
+        text += " Borderline result: " + " ".join(f.text for f in p.borderline)
     for o in assessments.others:
         text += (
             f" For comparison, {C.GUIDELINE_NAMES[o.guideline]}: {_GRADE_WORDS[o.grade]}; "

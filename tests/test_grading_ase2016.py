@@ -124,6 +124,31 @@ def test_threshold_table_has_no_duplicate_keys():
     assert len(keys) == len(set(keys))
 
 
+def test_af_special_and_valsalva_rows_are_rows_of_the_one_2016_table():
+    # One cited table per guideline (common practice): the AF (§V.E), special-situation (§V)
+    # and Valsalva rows of Nagueh 2016 JASE 29:277 live in thresholds_ase2016 and the rule
+    # modules use those very rows.
+    from service.grading import atrial_fibrillation as AF
+    from service.grading import special_situations as SS
+    from service.grading import valsalva as V
+
+    assert AF.TABLE_2016 == T.AF_TABLE and AF.AF16_IVRT is T.AF16_IVRT
+    assert SS.TABLE_2016 == T.SPECIAL_TABLE and SS.HCM_LAVI is T.HCM_LAVI
+    # Nagueh 2016 JASE 29:277, mitral inflow with Valsalva: E/A fall >= 50 % (from memory)
+    assert T.VALSALVA_E_A_FALL.value == V.E_A_FALL
+    assert T.VALSALVA_E_A_FALL.citation == V.SOURCE
+    assert (T.VALSALVA_E_A_FALL.comparison, T.VALSALVA_E_A_FALL.value) == (Comparison.ge, 0.5)
+    rows = T.ALL_ROWS
+    assert len(rows) == len(T.TABLE) + len(T.AF_TABLE) + len(T.SPECIAL_TABLE) + 1
+    for row in (*T.AF_TABLE, *T.SPECIAL_TABLE, T.VALSALVA_E_A_FALL):
+        assert row.citation.startswith("Nagueh 2016 JASE 29:277, ")
+        # the reference's §2.5 marks every §V cut-off [R] (recalled): the tag must say so
+        assert "R" in row.evidence.split("+"), row.key
+    for table in (T.AF_TABLE, T.SPECIAL_TABLE):
+        keys = [row.key for row in table]
+        assert len(keys) == len(set(keys))
+
+
 # ---------------------------------------------------------------------------------------------
 # Algorithm A boundaries: each criterion alone (1 of 1 met = more than half -> dysfunction,
 # graded I by the inflow; 0 of 1 -> normal).  Nagueh 2016 JASE 29:277, Fig 8A.

@@ -13,8 +13,8 @@ pressure only.  The result therefore carries pathway "atrial-fibrillation", grad
   AF algorithm) is a two-step rule: four primary criteria, then LA reservoir strain, PV S/D and
   BMI when exactly two primary criteria are met (I-25-9, I-25-11).
 
-The ASE/EACVI 2016 AF rows are this module's own cited table; the ASE 2025 rows are in
-:mod:`service.grading.thresholds_ase2025`.
+The ASE/EACVI 2016 AF rows are in :mod:`service.grading.thresholds_ase2016` and the ASE 2025
+rows in :mod:`service.grading.thresholds_ase2025` (one cited table per guideline).
 """
 
 from __future__ import annotations
@@ -23,12 +23,18 @@ from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
+from service.grading import thresholds_ase2016 as T16
 from service.grading import thresholds_ase2025 as T25
 from service.grading.criteria import Threshold, any_of, tally, value_of
+from service.grading.thresholds_ase2016 import (
+    AF16_DECELERATION_TIME,
+    AF16_E_ACCELERATION,
+    AF16_E_E_PRIME_SEPTAL,
+    AF16_IVRT,
+)
 from service.grading.trace import Trace, base_fields
 from service.model import (
     Assessment,
-    Comparison,
     Context,
     FillingPressure,
     Grade,
@@ -40,9 +46,6 @@ from service.model import (
 )
 
 NO_GRADE = "AF: filling pressure estimated, no grade given."
-
-PAPER_2016 = "Nagueh 2016 JASE 29:277"
-_AF16 = "§V.E atrial fibrillation (p295)"
 
 
 class Ase2016AfOptions(BaseModel):
@@ -72,58 +75,9 @@ class Ase2025AfOptions(BaseModel):
     min_primary_for_normal: int = Field(default=3, ge=0, le=4)
 
 
-# --- ASE/EACVI 2016 AF table ------------------------------------------------------------------
+# --- ASE/EACVI 2016 AF rows (in :mod:`service.grading.thresholds_ase2016`) ---------------------
 
-AF16_E_ACCELERATION = Threshold(
-    key="af_e_acceleration_rate",
-    name="Peak acceleration rate of mitral E",
-    measure=Measure.e_acceleration_rate,
-    comparison=Comparison.ge,
-    value=1900.0,
-    unit="cm/s²",
-    citation=f"{PAPER_2016}, {_AF16}",
-    evidence="R",
-)
-AF16_IVRT = Threshold(
-    key="af_ivrt",
-    name="IVRT",
-    measure=Measure.ivrt,
-    comparison=Comparison.le,
-    value=65.0,
-    unit="ms",
-    citation=f"{PAPER_2016}, {_AF16}",
-    evidence="R",
-)
-AF16_E_E_PRIME_SEPTAL = Threshold(
-    key="af_e_e_prime_septal",
-    name="Septal E/e′",
-    measure=Measure.e_e_prime_septal,
-    comparison=Comparison.ge,
-    value=11.0,
-    unit="",
-    citation=(
-        f"{PAPER_2016}, {_AF16} (after Sohn DW et al., J Am Soc Echocardiogr 1999;12:927: "
-        "E/e′ ≥ 11 predicted LV diastolic pressure ≥ 15 mmHg)"
-    ),
-    evidence="R+V",
-)
-AF16_DECELERATION_TIME = Threshold(
-    key="af_deceleration_time",
-    name="Mitral E deceleration time",
-    measure=Measure.deceleration_time,
-    comparison=Comparison.le,
-    value=160.0,
-    unit="ms",
-    citation=f"{PAPER_2016}, {_AF16} (with reduced LVEF only)",
-    evidence="R",
-)
-
-TABLE_2016: tuple[Threshold, ...] = (
-    AF16_E_ACCELERATION,
-    AF16_IVRT,
-    AF16_E_E_PRIME_SEPTAL,
-    AF16_DECELERATION_TIME,
-)
+TABLE_2016: tuple[Threshold, ...] = T16.AF_TABLE
 
 #: ASE/EACVI 2016 AF criteria that no canonical measure carries
 UNREAD_2016 = (

@@ -7,10 +7,9 @@ A special situation never yields a standard grade (grade "not-gradable").
 ASE/EACVI 2016 (Nagueh SF et al., J Am Soc Echocardiogr 2016;29:277-314, section V, specific
 diseases) lists parameters with cut-offs for most situations but, except where noted, no rule to
 combine them; such situations report each criterion and leave the filling pressure indeterminate
-(as I-16-11 does for atrial fibrillation).  The ASE 2025 rows live in
-:mod:`service.grading.thresholds_ase2025`; the ASE/EACVI 2016 rows of this module are its own
-cited table (special populations only, the sinus algorithm's table is
-:mod:`service.grading.thresholds_ase2016`).
+(as I-16-11 does for atrial fibrillation).  The ASE/EACVI 2016 rows are
+in :mod:`service.grading.thresholds_ase2016` and the ASE 2025 rows in
+:mod:`service.grading.thresholds_ase2025` (one cited table per guideline).
 """
 
 from __future__ import annotations
@@ -18,12 +17,31 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass
 
+from service.grading import thresholds_ase2016 as T16
 from service.grading import thresholds_ase2025 as T25
-from service.grading.criteria import Threshold, tally, value_of
+from service.grading.criteria import Threshold, fmt, tally, value_of
+from service.grading.thresholds_ase2016 import (
+    HCM_AR_A,
+    HCM_E_E_PRIME_AVERAGE,
+    HCM_LAVI,
+    HCM_TR,
+    MR_AR_A,
+    MR_E_E_PRIME_AVERAGE,
+    MR_IVRT,
+    MS_IVRT,
+    MS_MITRAL_A,
+    PH_E_E_PRIME_LATERAL_HIGH,
+    PH_E_E_PRIME_LATERAL_LOW,
+    RCM_DT,
+    RCM_E_A,
+    RCM_E_E_PRIME_AVERAGE,
+    RCM_IVRT,
+    TACHY_E_E_PRIME_LATERAL,
+    TACHY_IVRT,
+)
 from service.grading.trace import Trace, base_fields, situation_words
 from service.model import (
     Assessment,
-    Comparison,
     Context,
     FillingPressure,
     Grade,
@@ -37,168 +55,11 @@ from service.model import (
 )
 
 S = SpecialSituation
-PAPER_2016 = "Nagueh 2016 JASE 29:277"
 
 
-def _row16(
-    key: str,
-    name: str,
-    measure: Measure,
-    comparison: Comparison,
-    value: float,
-    unit: str,
-    where: str,
-    evidence: str = "R",
-) -> Threshold:
-    return Threshold(
-        key=key,
-        name=name,
-        measure=measure,
-        comparison=comparison,
-        value=value,
-        unit=unit,
-        citation=f"{PAPER_2016}, {where}",
-        evidence=evidence,
-    )
+# --- ASE/EACVI 2016 special-situation rows (in :mod:`service.grading.thresholds_ase2016`) ------
 
-
-_TACHY = "§V specific diseases, sinus tachycardia"
-_MR = "§V.C valvular disease (p290), mitral regurgitation"
-_MS = "§V.C valvular disease (p290), mitral stenosis"
-_HCM = "§V.A hypertrophic cardiomyopathy (p289)"
-_RCM = "§V.B restrictive cardiomyopathy (p289)"
-_PH = "§V specific diseases, pulmonary hypertension of non-cardiac cause"
-
-# --- ASE/EACVI 2016 special-population table ----------------------------------------------------
-
-TACHY_IVRT = _row16("tachy_ivrt", "IVRT", Measure.ivrt, Comparison.le, 70.0, "ms", _TACHY)
-TACHY_E_E_PRIME_LATERAL = _row16(
-    "tachy_e_e_prime_lateral",
-    "Lateral E/e′",
-    Measure.e_e_prime_lateral,
-    Comparison.gt,
-    10.0,
-    "",
-    f"{_TACHY} (a ratio > 12 is the most specific)",
-)
-MR_AR_A = _row16(
-    "mr_ar_a_duration", "Ar-A duration", Measure.ar_a_duration, Comparison.ge, 30.0, "ms", _MR
-)
-MR_IVRT = _row16("mr_ivrt", "IVRT", Measure.ivrt, Comparison.lt, 60.0, "ms", _MR)
-MR_E_E_PRIME_AVERAGE = _row16(
-    "mr_e_e_prime_average",
-    "Average E/e′",
-    Measure.e_e_prime_average,
-    Comparison.gt,
-    14.0,
-    "",
-    f"{_MR} (usable only with depressed LVEF)",
-)
-MS_IVRT = _row16("ms_ivrt", "IVRT", Measure.ivrt, Comparison.lt, 60.0, "ms", _MS)
-MS_MITRAL_A = _row16(
-    "ms_mitral_a",
-    "Mitral A",
-    Measure.mitral_a,
-    Comparison.gt,
-    150.0,
-    "cm/s",
-    f"{_MS} (mitral A velocity > 1.5 m/s)",
-    evidence="R+V",
-)
-HCM_E_E_PRIME_AVERAGE = _row16(
-    "hcm_e_e_prime_average",
-    "Average E/e′",
-    Measure.e_e_prime_average,
-    Comparison.gt,
-    14.0,
-    "",
-    f"{_HCM} (majority of available criteria, I-16-12)",
-)
-HCM_AR_A = _row16(
-    "hcm_ar_a_duration",
-    "Ar-A duration",
-    Measure.ar_a_duration,
-    Comparison.ge,
-    30.0,
-    "ms",
-    f"{_HCM} (majority of available criteria, I-16-12)",
-)
-HCM_TR = _row16(
-    "hcm_tr_peak_velocity",
-    "TR peak velocity",
-    Measure.tr_peak_velocity,
-    Comparison.gt,
-    2.8,
-    "m/s",
-    f"{_HCM} (majority of available criteria, I-16-12)",
-)
-HCM_LAVI = _row16(
-    "hcm_lavi",
-    "LAVI",
-    Measure.lavi,
-    Comparison.gt,
-    34.0,
-    "mL/m²",
-    f"{_HCM} (majority of available criteria, I-16-12)",
-)
-RCM_DT = _row16(
-    "rcm_deceleration_time",
-    "Mitral E deceleration time",
-    Measure.deceleration_time,
-    Comparison.lt,
-    140.0,
-    "ms",
-    _RCM,
-)
-RCM_E_A = _row16("rcm_e_a_ratio", "E/A", Measure.e_a_ratio, Comparison.gt, 2.5, "", _RCM)
-RCM_IVRT = _row16("rcm_ivrt", "IVRT", Measure.ivrt, Comparison.lt, 50.0, "ms", _RCM)
-RCM_E_E_PRIME_AVERAGE = _row16(
-    "rcm_e_e_prime_average",
-    "Average E/e′",
-    Measure.e_e_prime_average,
-    Comparison.gt,
-    14.0,
-    "",
-    _RCM,
-)
-PH_E_E_PRIME_LATERAL_HIGH = _row16(
-    "ph_e_e_prime_lateral_high",
-    "Lateral E/e′",
-    Measure.e_e_prime_lateral,
-    Comparison.gt,
-    13.0,
-    "",
-    f"{_PH}: > 13 → cardiac cause with raised LAP",
-)
-PH_E_E_PRIME_LATERAL_LOW = _row16(
-    "ph_e_e_prime_lateral_low",
-    "Lateral E/e′",
-    Measure.e_e_prime_lateral,
-    Comparison.lt,
-    8.0,
-    "",
-    f"{_PH}: < 8 → non-cardiac cause (8-13 indeterminate, I-16-13)",
-)
-
-TABLE_2016: tuple[Threshold, ...] = (
-    TACHY_IVRT,
-    TACHY_E_E_PRIME_LATERAL,
-    MR_AR_A,
-    MR_IVRT,
-    MR_E_E_PRIME_AVERAGE,
-    MS_IVRT,
-    MS_MITRAL_A,
-    HCM_E_E_PRIME_AVERAGE,
-    HCM_AR_A,
-    HCM_TR,
-    HCM_LAVI,
-    RCM_DT,
-    RCM_E_A,
-    RCM_IVRT,
-    RCM_E_E_PRIME_AVERAGE,
-    PH_E_E_PRIME_LATERAL_HIGH,
-    PH_E_E_PRIME_LATERAL_LOW,
-)
+TABLE_2016: tuple[Threshold, ...] = T16.SPECIAL_TABLE
 
 #: plain name and display unit of every measure used here (for borderline flag text)
 NAMES: dict[Measure, tuple[str, str]] = {row.measure: (row.name, row.unit) for row in TABLE_2016}
@@ -476,6 +337,7 @@ def _lateral_ph(
     hi = trace.check(high, f"{prefix}.{high.key}", step)
     lo = trace.check(low, f"{prefix}.{low.key}", step)
     name = "Pulmonary hypertension"
+    lo_v, hi_v = fmt(low.value), fmt(high.value)
     if hi.verdict is Verdict.unavailable:
         return _Outcome(
             S.pulmonary_hypertension_non_cardiac,
@@ -486,18 +348,20 @@ def _lateral_ph(
         return _Outcome(
             S.pulmonary_hypertension_non_cardiac,
             FillingPressure.elevated,
-            f"{name}: lateral E/e′ > 13 points to a cardiac cause with raised filling pressure.",
+            f"{name}: lateral E/e′ > {hi_v} points to a cardiac cause with raised filling "
+            "pressure.",
         )
     if lo.verdict is Verdict.met:
         return _Outcome(
             S.pulmonary_hypertension_non_cardiac,
             FillingPressure.normal,
-            f"{name}: lateral E/e′ < 8 points to a non-cardiac cause (normal filling pressure).",
+            f"{name}: lateral E/e′ < {lo_v} points to a non-cardiac cause (normal filling "
+            "pressure).",
         )
     return _Outcome(
         S.pulmonary_hypertension_non_cardiac,
         FillingPressure.indeterminate,
-        f"{name}: lateral E/e′ between 8 and 13: cause and filling pressure indeterminate "
+        f"{name}: lateral E/e′ between {lo_v} and {hi_v}: cause and filling pressure indeterminate "
         f"({ambiguity}).",
     )
 
@@ -530,6 +394,8 @@ def _mac25(trace: Trace, context: Context) -> _Outcome:
     low = trace.check(T25.MAC_E_A_LOW, f"{p}.{T25.MAC_E_A_LOW.key}", step)
     high = trace.check(T25.MAC_E_A_HIGH, f"{p}.{T25.MAC_E_A_HIGH.key}", step)
     name = "Mitral annular calcification"
+    ea_lo, ea_hi = fmt(T25.MAC_E_A_LOW.value), fmt(T25.MAC_E_A_HIGH.value)
+    iv = fmt(T25.MAC_IVRT.value)
     if low.verdict is Verdict.unavailable:
         return _Outcome(
             S.mitral_annular_calcification,
@@ -540,32 +406,33 @@ def _mac25(trace: Trace, context: Context) -> _Outcome:
         return _Outcome(
             S.mitral_annular_calcification,
             FillingPressure.normal,
-            f"{name}: E/A < 0.8: normal filling pressure.",
+            f"{name}: E/A < {ea_lo}: normal filling pressure.",
         )
     if high.verdict is Verdict.met:
         return _Outcome(
             S.mitral_annular_calcification,
             FillingPressure.elevated,
-            f"{name}: E/A > 1.8: elevated filling pressure.",
+            f"{name}: E/A > {ea_hi}: elevated filling pressure.",
         )
     ivrt = trace.check(T25.MAC_IVRT, f"{p}.{T25.MAC_IVRT.key}", step)
     if ivrt.verdict is Verdict.unavailable:
         return _Outcome(
             S.mitral_annular_calcification,
             FillingPressure.indeterminate,
-            f"{name}: E/A between 0.8 and 1.8 and IVRT not available: filling pressure "
+            f"{name}: E/A between {ea_lo} and {ea_hi} and IVRT not available: filling pressure "
             "indeterminate.",
         )
     if ivrt.verdict is Verdict.met:
         return _Outcome(
             S.mitral_annular_calcification,
             FillingPressure.elevated,
-            f"{name}: E/A between 0.8 and 1.8 with IVRT < 80 ms: elevated filling pressure.",
+            f"{name}: E/A between {ea_lo} and {ea_hi} with IVRT < {iv} ms: elevated filling "
+            "pressure.",
         )
     return _Outcome(
         S.mitral_annular_calcification,
         FillingPressure.normal,
-        f"{name}: E/A between 0.8 and 1.8 with IVRT ≥ 80 ms: normal filling pressure.",
+        f"{name}: E/A between {ea_lo} and {ea_hi} with IVRT ≥ {iv} ms: normal filling pressure.",
     )
 
 

@@ -19,6 +19,8 @@ from service.model import Comparison, Measure
 
 PAPER = "Nagueh 2025 JASE 38(7), doi 10.1016/j.echo.2025.03.011"
 
+# === Main algorithm =========================================================================
+
 # --- Figure 3, step 1: e′ (impaired relaxation) ------------------------------------------------
 
 E_PRIME_AVERAGE = Threshold(
@@ -178,6 +180,8 @@ E_A_LOW = Threshold(
     evidence="V",
 )
 
+# === Atrial fibrillation ======================================================================
+
 # --- AF algorithm (two steps) ------------------------------------------------------------------
 
 AF_MITRAL_E = Threshold(
@@ -261,6 +265,8 @@ AF_BMI = Threshold(
     evidence="V",
 )
 
+# === Special situations =======================================================================
+
 # --- Special populations: moderate or severe mitral annular calcification ---------------------
 
 _MAC = (
@@ -322,7 +328,12 @@ PH_E_E_PRIME_LATERAL_LOW = Threshold(
     evidence="R",
 )
 
-#: the table, in the order the algorithms use the rows
+# === Valsalva =================================================================================
+# No ASE 2025 row: the Valsalva finding reported beside either guideline's result uses the
+# ASE/EACVI 2016 row (service.grading.thresholds_ase2016.VALSALVA_E_A_FALL).
+
+#: the table (main algorithm, atrial fibrillation, special situations), in the order the
+#: algorithms use the rows
 TABLE: tuple[Threshold, ...] = (
     E_PRIME_AVERAGE,
     E_PRIME_SEPTAL,

@@ -12,13 +12,16 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
+from service.grading import thresholds_ase2016 as T16
 from service.grading.criteria import value_of
 from service.model import Assessment, FillingPressure, Measure, Measurements, SupportingFinding
 
 NAME = "Valsalva manoeuvre"
-#: a fall in E/A of at least this fraction supports raised filling pressure (ASE/EACVI 2016)
-E_A_FALL = 0.5
-SOURCE = "Nagueh 2016 JASE 29:277, mitral inflow with Valsalva"
+#: a fall in E/A of at least this fraction supports raised filling pressure (ASE/EACVI 2016 row
+#: :data:`service.grading.thresholds_ase2016.VALSALVA_E_A_FALL`)
+E_A_FALL = T16.VALSALVA_E_A_FALL.value
+_FALL = f"{E_A_FALL * 100:.0f} %"  # the cut-off in words, "50 %"
+SOURCE = T16.VALSALVA_E_A_FALL.citation
 
 
 @dataclass(frozen=True)
@@ -106,31 +109,32 @@ def finding(measurements: Measurements) -> SupportingFinding | None:
         if a is None:
             supports = True
             meaning = (
-                f"E/A fell by 50 % or more, which supports raised filling pressure (pseudonormal "
-                f"filling; {SOURCE}); the change in A could not be checked"
+                f"E/A fell by {_FALL} or more, which supports raised filling pressure "
+                f"(pseudonormal filling; {SOURCE}); the change in A could not be checked"
             )
         elif a.strain >= a.rest:
             supports = True
             meaning = (
-                f"E/A fell by 50 % or more with A not falling, which supports raised filling "
+                f"E/A fell by {_FALL} or more with A not falling, which supports raised filling "
                 f"pressure (pseudonormal filling; {SOURCE})"
             )
         else:
             supports = None
             meaning = (
-                "E/A fell by 50 % or more but A fell too, which is not the pseudonormal pattern; "
-                "no conclusion"
+                f"E/A fell by {_FALL} or more but A fell too, which is not the pseudonormal "
+                "pattern; no conclusion"
             )
     elif e is not None and a is not None and e.strain < e.rest and a.strain < a.rest:
         supports = False
         meaning = (
-            "E and A both fell and E/A did not fall by 50 % or more: the normal response, which "
-            f"does not support raised filling pressure ({SOURCE})"
+            f"E and A both fell and E/A did not fall by {_FALL} or more: the normal response, "
+            f"which does not support raised filling pressure ({SOURCE})"
         )
     else:
         supports = None
         meaning = (
-            "E/A fell by less than 50 % without a proportional fall of both waves; no conclusion"
+            f"E/A fell by less than {_FALL} without a proportional fall of both waves; "
+            "no conclusion"
         )
     return SupportingFinding(
         name=NAME, text=f"{observed}: {meaning}.", supports_elevated_pressure=supports

@@ -9,25 +9,20 @@ reference notes (I-16-x).
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
-
 from service.grading import atrial_fibrillation, special_situations, valsalva
 from service.grading import thresholds_ase2016 as T
 from service.grading.criteria import (
-    Threshold,
     any_of,
     borderline_flags,
-    describe,
-    evaluate,
     fmt,
     tally,
     value_of,
 )
+from service.grading.trace import Trace
 from service.model import (
     CAUTION,
     Assessment,
     Context,
-    Criterion,
     FillingPressure,
     Grade,
     Guideline,
@@ -57,33 +52,6 @@ _INDETERMINATE: _Result = (Grade.indeterminate, FillingPressure.indeterminate)
 _GRADE_1: _Result = (Grade.grade_1, FillingPressure.normal)
 _GRADE_2: _Result = (Grade.grade_2, FillingPressure.elevated)
 _GRADE_3: _Result = (Grade.grade_3, FillingPressure.elevated)
-
-
-@dataclass
-class _Trace:
-    measurements: Measurements
-    criteria: list[Criterion] = field(default_factory=list)
-    reasoning: list[str] = field(default_factory=list)
-    notes: list[str] = field(default_factory=list)
-
-    def check(
-        self, row: Threshold, criterion_id: str, step: str, threshold: float | None = None
-    ) -> Criterion:
-        """Evaluate a row on its measure, record the criterion and a reasoning sentence."""
-        c = evaluate(
-            row,
-            value_of(self.measurements, row.measure),
-            criterion_id=criterion_id,
-            step=step,
-            threshold=threshold,
-        )
-        self.criteria.append(c)
-        self.reasoning.append(describe(c, row.name, row.unit))
-        return c
-
-    def note(self, text: str) -> None:
-        if text not in self.notes:
-            self.notes.append(text)
 
 
 def assess(
@@ -118,7 +86,7 @@ def _assess(
     context: Context,
     af_options: atrial_fibrillation.Ase2016AfOptions | None = None,
 ) -> Assessment:
-    trace = _Trace(measurements)
+    trace = Trace(measurements)
     base = {
         "guideline": Guideline.ase_eacvi_2016,
         "guideline_citation": CITATION,
@@ -231,7 +199,7 @@ def _has_any_b_input(m: Measurements) -> bool:
 # ---------------------------------------------------------------------------------------------
 
 
-def _e_over_e_prime(trace: _Trace, prefix: str, step: str) -> Verdict:
+def _e_over_e_prime(trace: Trace, prefix: str, step: str) -> Verdict:
     """Average E/e′ > 14; when the average is unavailable, the single-site cut-offs
     septal > 15 / lateral > 13 (I-16-3).  Both single-site ratios without an average: either
     site met counts (OR, as for e′ in I-16-2)."""
@@ -259,7 +227,7 @@ def _e_over_e_prime(trace: _Trace, prefix: str, step: str) -> Verdict:
 
 
 def _algorithm_a(
-    trace: _Trace, context: Context, lvef_depressed: bool
+    trace: Trace, context: Context, lvef_depressed: bool
 ) -> tuple[Grade, FillingPressure]:
     p = "ase16.a"
     votes = [
@@ -313,7 +281,7 @@ def _algorithm_a(
 # ---------------------------------------------------------------------------------------------
 
 
-def _algorithm_b(trace: _Trace, lvef_depressed: bool) -> _Result:
+def _algorithm_b(trace: Trace, lvef_depressed: bool) -> _Result:
     p = "ase16.b1"
     ea_low = trace.check(T.E_A_LOW, f"{p}.e_a_ratio_low", STEP_B1)
     e_low = trace.check(T.E_LOW, f"{p}.mitral_e_low", STEP_B1)
@@ -357,7 +325,7 @@ def _algorithm_b(trace: _Trace, lvef_depressed: bool) -> _Result:
     return _step_2(trace, lvef_depressed)
 
 
-def _step_2(trace: _Trace, lvef_depressed: bool) -> _Result:
+def _step_2(trace: Trace, lvef_depressed: bool) -> _Result:
     p = "ase16.b2"
     votes = [
         _e_over_e_prime(trace, p, STEP_B2),

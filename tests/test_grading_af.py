@@ -11,22 +11,19 @@ I-25-11 name the documented readings.  All measurement values are invented.
 from __future__ import annotations
 
 import pytest
+from grading_builders import measurements
 
 from service.grading import RuleSwitches, assess
 from service.grading import atrial_fibrillation as AF
 from service.grading.ase2025 import Ase2025Options
 from service.grading.atrial_fibrillation import Ase2016AfOptions, Ase2025AfOptions
 from service.model import (
-    CANONICAL_UNITS,
     Comparison,
     Context,
     FillingPressure,
     Grade,
     Guideline,
     Measure,
-    Measurements,
-    MeasureValue,
-    Origin,
     Pathway,
     Rhythm,
     Verdict,
@@ -36,18 +33,6 @@ ELEVATED = FillingPressure.elevated
 NORMAL = FillingPressure.normal
 INDET = FillingPressure.indeterminate
 UNKNOWN = FillingPressure.unknown
-
-
-def measurements(**values: float | None) -> Measurements:
-    out = {}
-    for name, value in values.items():
-        if value is None:
-            continue
-        measure = Measure(name)
-        out[measure] = MeasureValue(
-            measure=measure, value=value, unit=CANONICAL_UNITS[measure], origin=Origin.measured
-        )
-    return Measurements(values=out)
 
 
 def af(**kw: object) -> Context:

@@ -14,6 +14,7 @@ import subprocess
 import sys
 
 import pytest
+from grading_builders import measurements, sinus
 
 from service.errors import UserError
 from service.grading import IMPLEMENTED_GUIDELINES, assess
@@ -28,34 +29,11 @@ from service.model import (
     Grade,
     Guideline,
     Measure,
-    Measurements,
-    MeasureValue,
-    Origin,
     Pathway,
     Rhythm,
     SpecialSituation,
     Verdict,
 )
-
-
-def measurements(**values: float | None) -> Measurements:
-    """Measurements from canonical names; None = absent."""
-    out = {}
-    for name, value in values.items():
-        if value is None:
-            continue
-        measure = Measure(name)
-        out[measure] = MeasureValue(
-            measure=measure, value=value, unit=CANONICAL_UNITS[measure], origin=Origin.measured
-        )
-    return Measurements(values=out)
-
-
-def sinus(**kw: object) -> Context:
-    """Sinus-rhythm context; borderline check off unless a test asks for it."""
-    kw.setdefault("rhythm", Rhythm.sinus)
-    kw.setdefault("borderline_fraction", 0.0)
-    return Context(**kw)
 
 
 def grade_of(ctx: Context | None = None, **values: float | None) -> tuple[Grade, FillingPressure]:

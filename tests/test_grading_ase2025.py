@@ -10,6 +10,7 @@ the published rule is ambiguous.  All measurement values are invented.
 from __future__ import annotations
 
 import pytest
+from grading_builders import measurements, sinus
 
 from service.errors import UserError
 from service.grading import IMPLEMENTED_GUIDELINES, RuleSwitches, assess
@@ -24,31 +25,9 @@ from service.model import (
     Grade,
     Guideline,
     Measure,
-    Measurements,
-    MeasureValue,
-    Origin,
     Pathway,
-    Rhythm,
     Verdict,
 )
-
-
-def measurements(**values: float | None) -> Measurements:
-    out = {}
-    for name, value in values.items():
-        if value is None:
-            continue
-        measure = Measure(name)
-        out[measure] = MeasureValue(
-            measure=measure, value=value, unit=CANONICAL_UNITS[measure], origin=Origin.measured
-        )
-    return Measurements(values=out)
-
-
-def sinus(**kw: object) -> Context:
-    kw.setdefault("rhythm", Rhythm.sinus)
-    kw.setdefault("borderline_fraction", 0.0)
-    return Context(**kw)
 
 
 def run(ctx: Context | None = None, options: Ase2025Options | None = None, **values):

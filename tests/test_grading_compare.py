@@ -9,35 +9,18 @@ E/e′ ≥ 14; LA reservoir strain ≤ 18 % in step 2).  All measurement values 
 from __future__ import annotations
 
 import pytest
+from grading_builders import measurements
 
 from service.errors import UserError
 from service.grading import IMPLEMENTED_GUIDELINES, assess
 from service.grading.compare import assess_all, outcome_words
 from service.model import (
-    CANONICAL_UNITS,
     Context,
     FillingPressure,
     Grade,
     Guideline,
-    Measure,
-    Measurements,
-    MeasureValue,
-    Origin,
     Rhythm,
 )
-
-
-def measurements(**values: float | None) -> Measurements:
-    out = {}
-    for name, value in values.items():
-        if value is None:
-            continue
-        measure = Measure(name)
-        out[measure] = MeasureValue(
-            measure=measure, value=value, unit=CANONICAL_UNITS[measure], origin=Origin.measured
-        )
-    return Measurements(values=out)
-
 
 SINUS = Context(rhythm=Rhythm.sinus, borderline_fraction=0.0)
 

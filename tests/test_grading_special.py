@@ -13,21 +13,18 @@ All measurement values are invented.
 from __future__ import annotations
 
 import pytest
+from grading_builders import measurements
 
 from service.grading import assess
 from service.grading import special_situations as SS
 from service.grading import thresholds_ase2025 as T25
 from service.model import (
-    CANONICAL_UNITS,
     Comparison,
     Context,
     FillingPressure,
     Grade,
     Guideline,
     Measure,
-    Measurements,
-    MeasureValue,
-    Origin,
     Pathway,
     Rhythm,
     SpecialSituation,
@@ -51,18 +48,6 @@ ABNORMAL = {
     "mitral_e": 95,
     "mitral_a": 68,
 }
-
-
-def measurements(**values: float | None) -> Measurements:
-    out = {}
-    for name, value in values.items():
-        if value is None:
-            continue
-        measure = Measure(name)
-        out[measure] = MeasureValue(
-            measure=measure, value=value, unit=CANONICAL_UNITS[measure], origin=Origin.measured
-        )
-    return Measurements(values=out)
 
 
 def ctx(*situations: SpecialSituation, **kw: object) -> Context:

@@ -9,34 +9,17 @@ fall proportionally.  All measurement values are invented.
 from __future__ import annotations
 
 import pytest
+from grading_builders import measurements
 
 from service.grading import assess
 from service.grading import valsalva as V
 from service.model import (
-    CANONICAL_UNITS,
     Context,
     FillingPressure,
     Grade,
     Guideline,
-    Measure,
-    Measurements,
-    MeasureValue,
-    Origin,
     Rhythm,
 )
-
-
-def measurements(**values: float | None) -> Measurements:
-    out = {}
-    for name, value in values.items():
-        if value is None:
-            continue
-        measure = Measure(name)
-        out[measure] = MeasureValue(
-            measure=measure, value=value, unit=CANONICAL_UNITS[measure], origin=Origin.measured
-        )
-    return Measurements(values=out)
-
 
 SINUS = Context(rhythm=Rhythm.sinus, borderline_fraction=0.0)
 

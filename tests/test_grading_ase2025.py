@@ -272,21 +272,12 @@ def test_incomplete_step_1_switch_accepts_concordant_available():
     assert result(options=opts, **E_NORMAL, lavi=40, **MID_E_A) == G2
 
 
-@pytest.mark.parametrize(
-    ("e_a", "expected_default", "expected_switch"),
-    [
-        # verification A25-9: reduced e′ alone is grade 1 only with E/A ≤ 0.8 in the secondary
-        # reading; otherwise step 2 (here LAVI 40 -> raised LAP)
-        (0.8, G1, G1),
-        (0.81, G1, G2),
-        (None, G1, RAISED_LAP_2_OR_3),
-    ],
-)
-def test_reduced_e_prime_alone_switch(e_a, expected_default, expected_switch):
+@pytest.mark.parametrize("e_a", [0.8, 0.81, None])
+def test_reduced_e_prime_alone_is_grade_1_whatever_e_a(e_a):
+    # reference I-25-4: reduced e′ with normal E/e′ and TR -> normal LAP, grade 1; step 2 is
+    # not consulted (LAVI 40 would count as raised there)
     vals = {**E_REDUCED, **R_NORMAL, **T_NORMAL, "lavi": 40, "e_a_ratio": e_a}
-    assert result(**vals) == expected_default
-    opts = Ase2025Options(reduced_e_prime_alone="needs-low-e-a")
-    assert result(options=opts, **vals) == expected_switch
+    assert result(**vals) == G1
 
 
 # ---------------------------------------------------------------------------------------------
@@ -334,14 +325,10 @@ def test_step_2_combination_switch(markers, rule, expected):
     assert result(options=opts, **DISCORDANT, **markers) == expected
 
 
-def test_ivrt_only_when_others_missing_switch():
-    # verification A25-7: IVRT as "alternatively" -- used only without LARS, PV S/D and LAVI
-    opts = Ase2025Options(ivrt="only-when-others-missing")
-    assert result(**DISCORDANT, ivrt=60, lavi=25) == G2  # default: equal marker
-    a = run(options=opts, **DISCORDANT, ivrt=60, lavi=25)
-    assert (a.grade, a.filling_pressure) == NORMAL
-    assert any("IVRT was not used" in n for n in a.notes)
-    assert result(options=opts, **DISCORDANT, ivrt=60) == G2
+def test_ivrt_is_an_equal_supplementary_marker():
+    # reference §3.2 / I-25-5: IVRT ≤ 70 ms counts like LA strain, PV S/D and LAVI
+    assert result(**DISCORDANT, ivrt=60, lavi=25) == G2
+    assert result(**DISCORDANT, ivrt=60) == G2
 
 
 def test_step_2_without_markers_is_indeterminate():

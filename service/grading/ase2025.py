@@ -63,18 +63,12 @@ class Ase2025Options(BaseModel):
     e_e_prime_sites: SitesRule = "average-preferred"
     #: I-25-3: TR velocity and PASP both present: "either" abnormal counts, or "tr-preferred"
     tr_or_pasp: Literal["either", "tr-preferred"] = "either"
-    #: I-25-4 with docs/guideline-verification.md A25-9: reduced e′ with normal E/e′ and TR is
-    #: normal LAP ("normal-lap", reference) or needs E/A ≤ 0.8 first, else step 2 ("needs-low-e-a")
-    reduced_e_prime_alone: Literal["normal-lap", "needs-low-e-a"] = "normal-lap"
     #: I-25-6: an incomplete step 1 goes to step 2 ("step-2", reference) or is decided when at
     #: least two available indices are concordant ("accept-concordant-available")
     incomplete_step_1: Literal["step-2", "accept-concordant-available"] = "step-2"
     #: I-25-5: supplementary markers: "any" abnormal → raised (reference), "majority", or
     #: "hierarchy" (first available of LA strain, PV S/D, LAVI, IVRT decides)
     supplementary: Literal["any", "majority", "hierarchy"] = "any"
-    #: docs/guideline-verification.md A25-7: IVRT as an "equal-marker" (reference) or used
-    #: "only-when-others-missing" (LA strain, PV S/D and LAVI all unavailable)
-    ivrt: Literal["equal-marker", "only-when-others-missing"] = "equal-marker"
     #: the AF algorithm's switches (I-25-9)
     af: atrial_fibrillation.Ase2025AfOptions = Field(
         default_factory=atrial_fibrillation.Ase2025AfOptions
@@ -287,32 +281,15 @@ def _step_1(
 def _reduced_e_prime_alone(
     trace: Trace, opts: Ase2025Options, pattern: str
 ) -> FillingPressure | None:
-    if opts.reduced_e_prime_alone == "normal-lap":
-        trace.say(f"Step 1: {pattern}: impaired relaxation with normal LAP markers, normal LAP.")
-        return FillingPressure.normal
-    c = trace.check(T.E_A_LOW, "ase25.s1.e_a_ratio_low", STEP_1)
-    if c.verdict is Verdict.met:
-        trace.say(
-            f"Step 1: {pattern} and E/A ≤ 0.8: normal LAP (switch: reduced e′ alone needs low E/A)."
-        )
-        return FillingPressure.normal
-    trace.say(
-        f"Step 1: {pattern} but E/A is not ≤ 0.8 or not available: step 2 decides "
-        "(switch: reduced e′ alone needs low E/A)."
-    )
-    return None
+    # I-25-4 (reference reading): reduced e′ with normal E/e′ and TR is normal LAP, grade 1
+    trace.say(f"Step 1: {pattern}: impaired relaxation with normal LAP markers, normal LAP.")
+    return FillingPressure.normal
 
 
 def _step_2(trace: Trace, opts: Ase2025Options) -> FillingPressure | None:
     """Supplementary markers (I-25-5).  None when no index of either step is available."""
     p = "ase25.s2"
-    m = trace.measurements
-    rows = [T.LA_RESERVOIR_STRAIN, T.PV_S_D, T.LAVI]
-    use_ivrt = opts.ivrt == "equal-marker" or all(value_of(m, r.measure) is None for r in rows)
-    if use_ivrt:
-        rows.append(T.IVRT)
-    elif value_of(m, Measure.ivrt) is not None:
-        trace.note("IVRT was not used: it counts only when LA strain, PV S/D and LAVI are missing.")
+    rows = [T.LA_RESERVOIR_STRAIN, T.PV_S_D, T.LAVI, T.IVRT]  # IVRT an equal marker (reference)
     checked = [(row, trace.check(row, f"{p}.{row.key}", STEP_2)) for row in rows]
     votes = [c.verdict for _, c in checked]
     t = tally(votes)

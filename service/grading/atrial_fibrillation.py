@@ -67,9 +67,6 @@ class Ase2025AfOptions(BaseModel):
 
     #: step 2 "raised" rule: "two-of-three" (default, reference) or "any-one" positive
     secondary_raised: Literal["two-of-three", "any-one"] = "two-of-three"
-    #: step 2 "normal" rule: "two-negative" (default, reference) or "all-negative" (the reading
-    #: of one secondary implementation, docs/guideline-verification.md A25-AF4)
-    secondary_normal: Literal["two-negative", "all-negative"] = "two-negative"
     #: availability guard: at most one primary criterion met gives "normal" only when at least
     #: this many primary criteria are available (default 3, reference I-25-9)
     min_primary_for_normal: int = Field(default=3, ge=0, le=4)
@@ -261,7 +258,7 @@ def _two_step(trace: Trace, opts: Ase2025AfOptions) -> FillingPressure:
     positive, negative = st.met, st.not_met
     summary = f"{positive} positive and {negative} negative of 3 secondary criteria"
     need_raised = 2 if opts.secondary_raised == "two-of-three" else 1
-    need_normal = 2 if opts.secondary_normal == "two-negative" else 3
+    need_normal = 2  # two of three negative: normal (reference I-25-9)
     if positive >= need_raised:
         trace.say(f"AF step 2: {summary}: elevated filling pressure (I-25-9).")
         return FillingPressure.elevated

@@ -206,3 +206,18 @@ def test_pdf_needs_an_output_folder(demo_dir: Path):
     proc = run_cli("grade", demo_dir / "grade-3.dcm", "--pdf")
     assert proc.returncode == 2
     assert "--out" in proc.stderr and "Traceback" not in proc.stderr
+
+
+def test_worker_processes_give_the_same_rows_in_the_same_order(demo_dir: Path):
+    serial = run_cli("grade", demo_dir, "--json", "--jobs", "1")
+    parallel = run_cli("grade", demo_dir, "--json", "--jobs", "2")
+    assert serial.returncode == parallel.returncode == 0, parallel.stderr
+    keys = ("input", "status", "grade", "filling_pressure", "result_uid")
+    a = [tuple(json.loads(x)[k] for k in keys) for x in serial.stdout.splitlines()]
+    b = [tuple(json.loads(x)[k] for k in keys) for x in parallel.stdout.splitlines()]
+    assert a == b and len(a) == len(list(demo_dir.glob("*.dcm")))
+
+
+def test_negative_jobs_is_refused(demo_dir: Path):
+    proc = run_cli("grade", demo_dir / "normal.dcm", "--jobs", "-1")
+    assert proc.returncode == 2 and "--jobs" in proc.stderr

@@ -4,11 +4,13 @@ from __future__ import annotations
 
 import argparse
 import json
+import multiprocessing
 import os
 import sys
 from collections.abc import Iterator
+from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 from service.model import CAUTION
 from service.options import add_grading_arguments, grade_options_from_args
@@ -32,6 +34,13 @@ def register(sub: argparse._SubParsersAction) -> None:
         help="also write a one-page summary (DICOM Encapsulated PDF) beside each result SR",
     )
     p.add_argument("--page-size", choices=("A4", "Letter"), default="A4", help="summary page")
+    p.add_argument(
+        "--jobs",
+        type=int,
+        default=0,
+        metavar="N",
+        help="grade N files at a time in worker processes (default: one per core)",
+    )
     add_grading_arguments(p)
     p.set_defaults(func=run)
 
@@ -49,43 +58,97 @@ def iter_inputs(paths: list[str]) -> Iterator[Path]:
             yield path
 
 
+class _Job(NamedTuple):
+    """What every file of one run is graded with (inherited by worker processes)."""
+
+    options: GradeOptions
+    table: Any
+    out_dir: Path | None
+    pdf: bool
+    page_size: str
+
+
+_WORKER_JOB: _Job | None = None
+
+
+def _init_worker(job: _Job) -> None:
+    global _WORKER_JOB
+    _WORKER_JOB = job
+
+
+def _grade_in_worker(path: Path) -> dict:
+    assert _WORKER_JOB is not None
+    return grade_one(path, _WORKER_JOB)
+
+
 def run(args: argparse.Namespace) -> int:
     from service.errors import UserError
-    from service.sr.read import read_path
     from service.vocabulary.mapper import load_mapping_table
 
     options = grade_options_from_args(args)
     if args.pdf and not args.out:
         raise UserError("--pdf writes files: give --out DIR as well")
-    table = load_mapping_table(args.mapping or ())
+    if args.jobs < 0:
+        raise UserError(f"--jobs {args.jobs}: give a number of worker processes, 1 or more")
+    job = _Job(
+        options=options,
+        table=load_mapping_table(args.mapping or ()),
+        out_dir=args.out,
+        pdf=args.pdf,
+        page_size=args.page_size,
+    )
     if args.out:
         args.out.mkdir(parents=True, exist_ok=True)
+    paths = list(iter_inputs(args.paths))
+    if not paths:
+        print("diastolic-sr: no input files found", file=sys.stderr)
+        return 1
     rows: list[dict[str, Any]] = []
     any_rejected = False
-    for path in iter_inputs(args.paths):
-        row = grade_one(path, options, table, args.out, read_path, args)
+    for row in _graded(paths, job, args.jobs or os.cpu_count() or 1):
         any_rejected |= row["status"] == GradeStatus.rejected.value
         rows.append(row)
         if args.json:
             print(json.dumps(row, ensure_ascii=False), flush=True)
-    if not rows:
-        print("diastolic-sr: no input files found", file=sys.stderr)
-        return 1
     if not args.json:
         print_table(rows)
     return 1 if any_rejected else 0
 
 
-def grade_one(
-    path: Path, options: GradeOptions, table, out_dir: Path | None, read_path, args
-) -> dict:
-    from service.errors import RejectedInput
+def _graded(paths: list[Path], job: _Job, jobs: int) -> Iterator[dict]:
+    """Rows in input order; several files at a time in worker processes when asked (each
+    worker inherits the loaded mapping table; results are written by the workers)."""
+    jobs = min(jobs, len(paths))
+    if jobs <= 1 or "fork" not in multiprocessing.get_all_start_methods():
+        yield from (grade_one(p, job) for p in paths)
+        return
+    context = multiprocessing.get_context("fork")
+    with ProcessPoolExecutor(
+        jobs, mp_context=context, initializer=_init_worker, initargs=(job,)
+    ) as pool:
+        yield from pool.map(_grade_in_worker, paths)
 
+
+def grade_one(path: Path, job: _Job) -> dict:
+    """Grade one file; never raises (an unexpected failure is a rejected row with its reason)."""
+    try:
+        return _grade_file(path, job)
+    except Exception as exc:  # the run goes on with the next file
+        return rejected_row(
+            path, job.options, f"internal error while grading: {type(exc).__name__}: {exc}"
+        )
+
+
+def _grade_file(path: Path, job: _Job) -> dict:
+    from service.errors import RejectedInput
+    from service.sr.read import read_path
+
+    options, out_dir = job.options, job.out_dir
     try:
         ds, _ = read_path(path)
     except RejectedInput as exc:
         return rejected_row(path, options, str(exc))
-    outcome = grade_study([ds], options, table=table)
+    outcome = grade_study([ds], options, table=job.table)
     if outcome.status is GradeStatus.rejected:
         return rejected_row(path, options, outcome.reason, outcome)
     output = None
@@ -94,10 +157,10 @@ def grade_one(
         outcome.result.save_as(target, enforce_file_format=True)
         output = str(target)
     row = outcome_row(path, options, outcome, output)
-    if getattr(args, "pdf", False) and out_dir is not None:
+    if job.pdf and out_dir is not None:
         from service.pipeline import build_summary
 
-        summary = build_summary(outcome, [ds], page_size=args.page_size, uid_root=options.uid_root)
+        summary = build_summary(outcome, [ds], page_size=job.page_size, uid_root=options.uid_root)
         if summary is not None:
             target = out_dir / f"{path.stem}.summary.dcm"
             summary.save_as(target, enforce_file_format=True)

@@ -12,6 +12,7 @@ import logging
 import tempfile
 from pathlib import Path
 
+from service.commands.columns import print_columns
 from service.model import CAUTION
 
 
@@ -84,8 +85,4 @@ def print_rows(rows: list[dict]) -> None:
         )
         for r in rows
     ]
-    widths = [max(len(h), *(len(t[i]) for t in table)) for i, h in enumerate(headers)]
-    print("  ".join(h.ljust(w) for h, w in zip(headers, widths, strict=True)).rstrip())
-    print("  ".join("-" * w for w in widths))
-    for t in table:
-        print("  ".join(v.ljust(w) for v, w in zip(t, widths, strict=True)).rstrip())
+    print_columns(headers, table)

@@ -12,6 +12,7 @@ from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 from typing import Any, NamedTuple
 
+from service.commands.columns import print_columns
 from service.model import CAUTION
 from service.options import add_grading_arguments, grade_options_from_args
 from service.pipeline import GradeOptions, GradeStatus, StudyOutcome, grade_study
@@ -260,12 +261,6 @@ def print_table(rows: list[dict]) -> None:
                 note,
             )
         )
-    widths = [max(len(h), *(len(str(t[i])) for t in table)) for i, h in enumerate(headers)]
-    widths[-1] = len(headers[-1])  # the note column is not padded
-    line = "  ".join(h.ljust(w) for h, w in zip(headers, widths, strict=True))
-    print(line.rstrip())
-    print("  ".join("-" * w for w in widths))
-    for t in table:
-        print("  ".join(str(v).ljust(w) for v, w in zip(t, widths, strict=True)).rstrip())
+    print_columns(headers, table, pad_last=False)  # the note column is free text
     print()
     print(CAUTION)

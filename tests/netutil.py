@@ -99,7 +99,7 @@ def fake_grade(
     datasets: Sequence[Dataset],
     options: Any,
     *,
-    site_mapping_files: Sequence[Path] = (),
+    table: Any = None,
     predecessors: Sequence[Any] = (),
 ) -> StudyOutcome:
     """Stand-in for the grading pipeline (network-layer tests only): a result whose UID is

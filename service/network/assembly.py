@@ -45,7 +45,7 @@ class GradeFunction(Protocol):
         datasets: Sequence[Dataset],
         options: Any,
         *,
-        site_mapping_files: Sequence[Path] = (),
+        table: Any = None,
         predecessors: Sequence[InstanceRef] = (),
     ) -> Any: ...
 
@@ -54,6 +54,16 @@ def default_grade_fn() -> GradeFunction:
     from service.pipeline import grade_study
 
     return grade_study
+
+
+def _stamp(path: Path) -> tuple[int, int]:
+    """(modification time, size) of a file; (0, -1) when it cannot be read (the loader then
+    reports the problem)."""
+    try:
+        st = path.stat()
+    except OSError:
+        return (0, -1)
+    return (st.st_mtime_ns, st.st_size)
 
 
 def screen_with_reader(ds: Dataset) -> str | None:
@@ -132,6 +142,9 @@ class Assembler:
         metrics: Metrics | None = None,
     ) -> None:
         self.config = config
+        #: the mapping table, loaded once and again only when a mapping file changes
+        self._table: Any = None
+        self._table_key: tuple = ()
         self.metrics = metrics or Metrics()
         #: says why an object cannot be a source (or None); with the real pipeline, objects
         #: that are not readable echo SRs (e.g. an empty SR sent along) are set aside, with a
@@ -253,6 +266,18 @@ class Assembler:
         except Exception:  # the journal itself failed: the claim resumes on restart
             log.exception("cannot give back study %s for a retry", claim.study_uid)
 
+    def mapping_table(self) -> Any:
+        """The standard and site mapping table in force.  Parsed once, not per study; parsed
+        again when the configured files or their contents change (e.g. after a SIGHUP)."""
+        from service.vocabulary.mapper import load_mapping_table
+
+        paths = tuple(self.config.mapping_paths)
+        key = tuple((str(p), *_stamp(p)) for p in paths)
+        if self._table is None or key != self._table_key:
+            self._table = load_mapping_table(paths)
+            self._table_key = key
+        return self._table
+
     def grade(self, claim: StudyClaim) -> None:
         notes: dict[str, str] = {}
         usable = []
@@ -290,7 +315,7 @@ class Assembler:
         outcome = self.grade_fn(
             datasets,
             grade_options(self.config, claim.calling_ae),
-            site_mapping_files=self.config.mapping_paths,
+            table=self.mapping_table(),
             predecessors=predecessors,
         )
         status = str(getattr(outcome.status, "value", outcome.status))

@@ -1,0 +1,159 @@
+"""Content items of the result SR: small immutable value types (PS3.3 C.17.3).
+
+Each class checks its arguments when it is made, so an item that could not be encoded does not
+exist: a coded concept needs a value, a scheme designator and a meaning within their VR limits;
+a TEXT item needs a non-empty text (Text Value is Type 1, PS3.3 C.17.3.2.1); a NUM item needs a
+finite number and a unit; a UIDREF or COMPOSITE item needs valid UIDs.  Relationship types are
+highdicom's enumeration (``RelationshipTypeValues``, the Defined Terms of PS3.3 C.17.3.2.4).
+
+The items carry no DICOM encoding of their own: :mod:`service.sr.encode` turns a tree of them
+into the bytes of a Content Sequence.  They mirror highdicom's content item classes (same
+attributes, same rules) without being pydicom datasets, which makes a result tree of a few
+hundred items cheap to build; ``tests/test_sr_encode.py`` checks that highdicom's classes,
+given the same arguments, encode to the same bytes.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass, field
+
+from highdicom.sr import RelationshipTypeValues as Rel
+from pydicom.sr.coding import Code
+
+__all__ = [
+    "Code",
+    "Item",
+    "Rel",
+    "code_item",
+    "composite_item",
+    "container_item",
+    "num_item",
+    "text_item",
+    "uidref_item",
+]
+
+# PS3.5 6.2: SH 16 characters, LO 64, UI 64
+_SH, _LO, _UI = 16, 64, 64
+_UID = re.compile(r"^(0|[1-9][0-9]*)(\.(0|[1-9][0-9]*))+$")
+
+#: checked concepts (a result names the same few dozen concepts hundreds of times)
+_CHECKED: set[tuple[str, str, str, str | None]] = set()
+
+
+def _check_code(code: Code, what: str) -> Code:
+    if not isinstance(code, Code):
+        raise TypeError(f"{what} must be a pydicom Code, not {type(code).__name__}")
+    key = (code.value, code.scheme_designator, code.meaning, code.scheme_version)
+    if key in _CHECKED:
+        return code
+    if not code.value or not code.scheme_designator or not code.meaning:
+        raise ValueError(f"{what} needs a code value, a scheme designator and a meaning: {code}")
+    if len(code.scheme_designator) > _SH:
+        raise ValueError(f"{what}: scheme designator {code.scheme_designator!r} is over 16 chars")
+    if len(code.meaning) > _LO:
+        raise ValueError(f"{what}: code meaning {code.meaning!r} is over 64 characters")
+    if code.scheme_version is not None and len(code.scheme_version) > _SH:
+        raise ValueError(f"{what}: scheme version {code.scheme_version!r} is over 16 characters")
+    _CHECKED.add(key)
+    return code
+
+
+def _check_uid(value: str, what: str) -> str:
+    if not isinstance(value, str) or len(value) > _UI or not _UID.match(value):
+        raise ValueError(f"{what} {value!r} is not a valid DICOM UID")
+    return value
+
+
+def _check_rel(rel: Rel | None, *, root_allowed: bool) -> Rel | None:
+    if rel is None:
+        if not root_allowed:
+            raise ValueError("only a container can be the root (no relationship type)")
+        return None
+    return Rel(rel)
+
+
+@dataclass(frozen=True, slots=True)
+class Item:
+    """One content item.  Build it with the ``*_item`` functions below, which check."""
+
+    value_type: str  # PS3.3 C.17.3.2.1 Value Type
+    name: Code
+    relationship: Rel | None
+    children: tuple[Item, ...] = ()
+    #: the item's value: Code (CODE), str (TEXT, UIDREF), (number, unit Code) (NUM),
+    #: (SOP Class UID, SOP Instance UID) (COMPOSITE), None (CONTAINER)
+    value: object = field(default=None)
+
+    def with_children(self, children: tuple[Item | None, ...] | list[Item | None]) -> Item:
+        """The same item with ``children`` (None entries dropped) as its content."""
+        kept = tuple(c for c in children if c is not None)
+        for c in kept:
+            if not isinstance(c, Item) or c.relationship is None:
+                raise ValueError("a child content item needs a relationship type")
+        return Item(self.value_type, self.name, self.relationship, kept, self.value)
+
+
+def container_item(name: Code, children: list[Item | None], rel: Rel | None = Rel.CONTAINS) -> Item:
+    """CONTAINER with Continuity of Content CONTINUOUS (highdicom's default); ``rel`` None makes
+    it a document's root."""
+    item = Item(
+        "CONTAINER", _check_code(name, "container name"), _check_rel(rel, root_allowed=True)
+    )
+    return item.with_children(children)
+
+
+def text_item(name: Code, value: str, rel: Rel) -> Item:
+    if not isinstance(value, str) or not value:
+        raise ValueError(f"TEXT item {name.meaning!r} needs a non-empty text value")
+    return Item(
+        "TEXT", _check_code(name, "concept name"), _check_rel(rel, root_allowed=False), (), value
+    )
+
+
+def code_item(name: Code, value: Code, rel: Rel) -> Item:
+    return Item(
+        "CODE",
+        _check_code(name, "concept name"),
+        _check_rel(rel, root_allowed=False),
+        (),
+        _check_code(value, "coded value"),
+    )
+
+
+def num_item(name: Code, value: float, unit: Code, rel: Rel) -> Item:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        raise TypeError(f"NUM item {name.meaning!r}: value must be int or float")
+    if not math.isfinite(value):
+        raise ValueError(f"NUM item {name.meaning!r}: value {value!r} is not finite")
+    return Item(
+        "NUM",
+        _check_code(name, "concept name"),
+        _check_rel(rel, root_allowed=False),
+        (),
+        (value, _check_code(unit, "unit")),
+    )
+
+
+def uidref_item(name: Code, uid: str, rel: Rel) -> Item:
+    return Item(
+        "UIDREF",
+        _check_code(name, "concept name"),
+        _check_rel(rel, root_allowed=False),
+        (),
+        _check_uid(uid, "UIDREF value"),
+    )
+
+
+def composite_item(name: Code, sop_class_uid: str, sop_instance_uid: str, rel: Rel) -> Item:
+    return Item(
+        "COMPOSITE",
+        _check_code(name, "concept name"),
+        _check_rel(rel, root_allowed=False),
+        (),
+        (
+            _check_uid(str(sop_class_uid), "referenced SOP Class UID"),
+            _check_uid(str(sop_instance_uid), "referenced SOP Instance UID"),
+        ),
+    )

@@ -27,6 +27,7 @@ a decision cut-off whose direction is stated by the rule text, not a reference-r
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 from pydicom.sr.coding import Code
@@ -50,8 +51,9 @@ class CodeDef:
     source: str  # citation for standard codes; definition for private ones
     from_memory: bool = False  # standard code not present in pydicom's dictionary
 
-    @property
+    @functools.cached_property
     def code(self) -> Code:
+        """The pydicom Code, made once (a result names each concept many times)."""
         return Code(self.value, self.scheme, self.meaning)
 
     @property
@@ -343,6 +345,7 @@ UNIT_MEANINGS: dict[str, str] = {
 }
 
 
+@functools.lru_cache(maxsize=256)
 def unit_code(unit: str) -> Code:
     """UCUM code for a canonical unit string (the string itself is the UCUM code)."""
     return Code(unit, "UCUM", UNIT_MEANINGS.get(unit, unit))

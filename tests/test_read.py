@@ -275,3 +275,114 @@ def test_damaged_objects_never_raise_other_errors(damage):
         return
     assert all(isinstance(o.path, str) for o in doc.observations)
     build_measurements([doc], TABLE)  # and the mapper copes with whatever was read
+
+
+# --- the content tree decoded from the element bytes equals pydicom's reading ------------------
+# read_document decodes the elements it needs straight from their bytes when they are in the
+# plain form and otherwise reads them through pydicom; both must give the same document.
+
+
+def _through_pydicom(ds: Dataset) -> object:
+    from unittest import mock
+
+    from service.sr import read
+
+    def not_plain(_ds):
+        raise read._NotPlain
+
+    with mock.patch.object(read, "_decoded_root", not_plain):
+        try:
+            return read_document(ds)
+        except RejectedInput as exc:
+            return f"rejected: {exc}"
+
+
+def _both(data: bytes) -> tuple[object, object]:
+    import io
+
+    try:
+        fast = read_document(pydicom.dcmread(io.BytesIO(data)))
+    except RejectedInput as exc:
+        fast = f"rejected: {exc}"
+    return fast, _through_pydicom(pydicom.dcmread(io.BytesIO(data)))
+
+
+def _encoded(ds: Dataset, *, implicit: bool = False, undefined: bool = False) -> bytes:
+    import io
+
+    from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
+
+    ds = copy.deepcopy(ds)
+    if undefined:  # sequences and items with undefined length (PS3.5 7.5.1)
+        for elem in ds.iterall():
+            if elem.VR == "SQ":
+                elem.is_undefined_length = True
+                for item in elem.value:
+                    item.is_undefined_length_sequence_item = True
+    ds.file_meta.TransferSyntaxUID = ImplicitVRLittleEndian if implicit else ExplicitVRLittleEndian
+    out = io.BytesIO()
+    ds.save_as(out, enforce_file_format=True)
+    return out.getvalue()
+
+
+_MIXED = [
+    EchoItem(measure=M.mitral_e, value=0.82, unit="m/s", encoding=Encoding.tid5200),
+    EchoItem(measure=M.e_prime_septal, value=6, encoding=Encoding.post, selection="user"),
+    EchoItem(measure=M.tr_peak_velocity, value=2.5, encoding=Encoding.pre),
+    EchoItem(
+        measure=M.lavi,
+        value=None,  # Measurement not attempted: (114007, DCM) in PS3.16 CID 42
+        qualifier=Code(value="114007", scheme="DCM", meaning="Measurement not attempted"),
+    ),
+]
+
+
+@pytest.mark.parametrize(
+    ("implicit", "undefined"), [(False, False), (True, False), (False, True), (True, True)]
+)
+def test_decoded_tree_equals_pydicom_reading(implicit, undefined):
+    # both VR encodings of PS3.5 7.1, defined and undefined lengths of PS3.5 7.5
+    ds = build_echo_sr(_MIXED, template=Template.tid5200)
+    ds.ContentSequence[0].ContentSequence[0].add_new(0x0040DB73, "UL", [1, 2])  # by reference
+    fast, slow = _both(_encoded(ds, implicit=implicit, undefined=undefined))
+    assert isinstance(fast, type(read_document(ds)))
+    assert fast == slow
+    assert len(fast.observations) == 4  # type: ignore[union-attr]
+
+
+@pytest.mark.filterwarnings("ignore::UserWarning")  # pydicom warns about the damaged values
+@settings(max_examples=120, deadline=None, derandomize=True)
+@given(
+    damage=st.lists(
+        st.tuples(
+            st.integers(min_value=0, max_value=100_000),
+            st.sampled_from(["set", "delete", "insert", "cut"]),
+            st.binary(min_size=1, max_size=4),
+        ),
+        min_size=1,
+        max_size=4,
+    ),
+    implicit=st.booleans(),
+)
+def test_damaged_bytes_read_the_same_both_ways(damage, implicit):
+    # a damaged element either decodes the same way or sends the document through pydicom
+    data = bytearray(_encoded(build_echo_sr(_MIXED, template=Template.tid5200), implicit=implicit))
+    for offset, action, chunk in damage:
+        if len(data) <= 136:
+            break
+        at = 132 + offset % (len(data) - 132)
+        if action == "set":
+            data[at : at + len(chunk)] = chunk
+        elif action == "delete":
+            del data[at : at + len(chunk)]
+        elif action == "insert":
+            data[at:at] = chunk
+        else:
+            del data[at:]
+    try:
+        pydicom.dcmread(__import__("io").BytesIO(bytes(data)))
+    except Exception:
+        return  # not readable at all: nothing to compare
+    fast, slow = _both(bytes(data))
+    assert fast == slow
+    assert repr(fast) == repr(slow)

@@ -18,8 +18,12 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import pydicom
+from pydicom.charset import convert_encodings
+from pydicom.datadict import dictionary_VR, tag_for_keyword
+from pydicom.dataelem import RawDataElement
 from pydicom.dataset import Dataset
 from pydicom.errors import InvalidDicomError
+from pydicom.valuerep import VR as _VR
 
 from service.errors import RejectedInput
 from service.model import Code, CodedItem, Modifier, Observation, SourceDocument
@@ -111,7 +115,7 @@ def _children(item: Dataset, path: str, w: _Walk) -> list[Dataset]:
         seq = item.get("ContentSequence")
         if seq is None:
             return []
-        return [c for c in seq if isinstance(c, Dataset)]
+        return [c for c in seq if isinstance(c, _ITEM_TYPES)]
     except Exception as exc:
         w.warnings.append(f"{path}: unreadable ContentSequence skipped ({type(exc).__name__})")
         return []
@@ -280,9 +284,9 @@ def _created(ds: Dataset) -> str:
     return ""
 
 
-def _template(ds: Dataset, title: Code | None, top: list[Dataset]) -> str | None:
+def _template(root: Any, title: Code | None, top: list[Dataset]) -> str | None:
     try:
-        seq = ds.get("ContentTemplateSequence")
+        seq = root.get("ContentTemplateSequence")
         if seq:
             tid = _text(seq[0].get("TemplateIdentifier"))
             if tid:
@@ -291,7 +295,9 @@ def _template(ds: Dataset, title: Code | None, top: list[Dataset]) -> str | None
         pass
     names = set()
     for child in top:
-        c = read_code(child.get("ConceptNameCodeSequence")) if isinstance(child, Dataset) else None
+        if not isinstance(child, _ITEM_TYPES):
+            continue
+        c = read_code(child.get("ConceptNameCodeSequence"))
         if c is not None:
             names.add(c.key)
     if names & {("DCM", "125301"), ("DCM", "125302"), ("DCM", "125303")}:
@@ -316,6 +322,12 @@ def read_document(ds: Dataset) -> SourceDocument:
 
 
 def _read(ds: Dataset) -> SourceDocument:
+    # the content tree from its encoded bytes when it is in the plain form (fast), else through
+    # pydicom's elements; both give the same values (see _decoded_root)
+    try:
+        root: Any = _decoded_root(ds)
+    except _NotPlain:
+        root = ds
     sop_class = _text(ds.get("SOPClassUID"))
     if not sop_class:
         raise RejectedInput("no SOP Class UID: not a DICOM composite object")
@@ -326,18 +338,18 @@ def _read(ds: Dataset) -> SourceDocument:
     uid = _text(ds.get("SOPInstanceUID"))
     if not uid:
         raise RejectedInput("no SOP Instance UID")
-    if _text(ds.get("ValueType")) not in ("", "CONTAINER"):
+    if _text(root.get("ValueType")) not in ("", "CONTAINER"):
         raise RejectedInput("root content item is not a CONTAINER")
-    top = ds.get("ContentSequence")
+    top = root.get("ContentSequence")
     if top is None or len(top) == 0:
         raise RejectedInput(f"{SUPPORTED_SR_SOP_CLASSES[sop_class]} has no content tree")
     w = _Walk(uid=uid)
-    top_items = [c for c in top if isinstance(c, Dataset)]
-    title = read_code(ds.get("ConceptNameCodeSequence"))
+    top_items = [c for c in top if isinstance(c, _ITEM_TYPES)]
+    title = read_code(root.get("ConceptNameCodeSequence"))
     root_mods = [
         Modifier(name=m.name, value=m.value, inherited=True)
-        for m in _own_modifiers(ds, "1", w)
-        if m.name.key not in NOT_INHERITED and _rel_of(ds, m) in INHERITED_RELATIONSHIPS
+        for m in _own_modifiers(root, "1", w)
+        if m.name.key not in NOT_INHERITED and _rel_of(root, m) in INHERITED_RELATIONSHIPS
     ]
     _walk(top_items, root_mods, "1", w, 1)
     warnings = list(w.warnings)
@@ -357,7 +369,7 @@ def _read(ds: Dataset) -> SourceDocument:
         study_instance_uid=_text(ds.get("StudyInstanceUID")),
         series_instance_uid=_text(ds.get("SeriesInstanceUID")),
         created=created,
-        template=_template(ds, title, top_items),
+        template=_template(root, title, top_items),
         document_title=title,
         patient_age_years=age,
         observations=tuple(w.observations),
@@ -365,6 +377,274 @@ def _read(ds: Dataset) -> SourceDocument:
         by_reference_items=w.by_reference,
         warnings=tuple(warnings),
     )
+
+
+# -- content tree from the encoded bytes -------------------------------------------------------
+#
+# pydicom decodes a sequence item by item into Dataset objects, which costs far more than the
+# walk itself.  The walk reads a handful of elements per content item, so those are decoded here
+# straight from the element bytes into plain dicts (_Item) keyed by keyword, holding the value
+# pydicom would give.  Anything outside the plain form decoded here (big endian, a VR other than
+# the dictionary's, multiple values, a number pydicom would reinterpret, text in a character set
+# other than a single-byte or UTF-8 one, lengths that do not fit) raises _NotPlain and the whole
+# document is read through pydicom instead, so the result never depends on which way was taken.
+
+
+class _Item(dict):
+    """A content item (or code, measured-value, template item): {keyword: value}."""
+
+    __slots__ = ()
+
+
+_ITEM_TYPES = (Dataset, _Item)
+
+
+class _NotPlain(Exception):
+    """Not in the form decoded here: read the document through pydicom."""
+
+
+#: the elements the walk reads: tag -> (keyword, dictionary VR) (PS3.6)
+_WANTED: dict[int, tuple[str, str]] = {
+    tag_for_keyword(k): (k, str(dictionary_VR(k)))  # type: ignore[misc]
+    for k in (
+        "ValueType",
+        "RelationshipType",
+        "ConceptNameCodeSequence",
+        "ConceptCodeSequence",
+        "ContentSequence",
+        "ReferencedContentItemIdentifier",
+        "MeasuredValueSequence",
+        "MeasurementUnitsCodeSequence",
+        "FloatingPointValue",
+        "NumericValue",
+        "NumericValueQualifierCodeSequence",
+        "CodingSchemeDesignator",
+        "CodeValue",
+        "LongCodeValue",
+        "URNCodeValue",
+        "CodeMeaning",
+        "ContentTemplateSequence",
+        "TemplateIdentifier",
+    )
+}
+_WANTED_VR_BYTES = {tag: vr.encode() for tag, (_, vr) in _WANTED.items()}
+_SPECIFIC_CHARACTER_SET = 0x00080005
+_KNOWN_VRS = frozenset(v.value.encode() for v in _VR)
+_SHORT_VRS = _KNOWN_VRS - {
+    b"OB",
+    b"OD",
+    b"OF",
+    b"OL",
+    b"OV",
+    b"OW",
+    b"SQ",
+    b"SV",
+    b"UC",
+    b"UN",
+    b"UR",
+    b"UT",
+    b"UV",
+}
+#: a plain decimal string: what pydicom turns into the same float as float() does (PS3.5 6.2 DS)
+_PLAIN_DS = re.compile(r" *[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)? *")
+#: single-byte and UTF-8 character sets: a value decodes the same as a whole (no ISO 2022)
+_PLAIN_CODECS = frozenset({"iso8859", "latin_1", "UTF8", "utf_8"}) | {
+    f"iso8859_{n}" for n in range(2, 16)
+}
+_MAX_ITEM_DEPTH = 128
+
+
+@dataclass(frozen=True)
+class _Coding:
+    implicit: bool
+    codec: str  # Python codec of SH / LO / UC text (the data set's character set)
+
+
+def _decoded_root(ds: Dataset) -> _Item:
+    """The root content item with its tree decoded from the element bytes; _NotPlain when any
+    element the walk needs is not in the plain form."""
+    charset = ds.get_item(_SPECIFIC_CHARACTER_SET, keep_deferred=True)
+    if isinstance(charset, RawDataElement):
+        raise _NotPlain  # pydicom decodes it on reading; not here then
+    try:
+        codecs = convert_encodings(None if charset is None else charset.value)
+    except Exception:
+        raise _NotPlain from None
+    if len(codecs) != 1 or codecs[0] not in _PLAIN_CODECS:
+        raise _NotPlain
+    return _item_of(ds, codecs[0], root=True)
+
+
+def _item_of(ds: Dataset, codec: str, *, root: bool = False) -> _Item:
+    """A pydicom data set (already split into elements) as an _Item."""
+    item = _Item()
+    for tag, (keyword, vr) in _WANTED.items():
+        elem = ds.get_item(tag, keep_deferred=True)  # never converts
+        if elem is None:
+            continue
+        if isinstance(elem, RawDataElement):
+            if not elem.is_little_endian or elem.value is None or elem.length == _UNDEFINED:
+                raise _NotPlain
+            if elem.VR is not None and vr != elem.VR:
+                raise _NotPlain
+            coding = _Coding(bool(elem.is_implicit_VR), codec)
+            data = elem.value
+            if vr == "SQ":
+                item[keyword] = _sequence(data, 0, len(data), True, coding, True, 0)[0]
+            else:
+                item[keyword] = _value(vr, data, coding)
+        elif elem.VR == "SQ":
+            children = []
+            for child in elem.value:
+                if not isinstance(child, Dataset):
+                    raise _NotPlain
+                children.append(_item_of(child, codec))
+            item[keyword] = children
+        else:  # set in memory or decoded already: the value pydicom gives
+            item[keyword] = elem.value
+    if not root and _SPECIFIC_CHARACTER_SET in ds:
+        raise _NotPlain  # an item with its own character set
+    return item
+
+
+def _sequence(
+    buf: bytes, pos: int, end: int, defined: bool, coding: _Coding, keep: bool, depth: int
+) -> tuple[list[_Item], int]:
+    """The items of a sequence value starting at ``pos``: all of ``pos..end`` when ``defined``,
+    else up to its Sequence Delimitation Item.  Returns (items, position after the value)."""
+    if depth > _MAX_ITEM_DEPTH:
+        raise _NotPlain
+    items: list[_Item] = []
+    while True:
+        if defined and pos == end:
+            return items, pos
+        if pos + 8 > end:
+            raise _NotPlain
+        group, elem, length = struct.unpack_from("<HHI", buf, pos)
+        pos += 8
+        if group != 0xFFFE:
+            raise _NotPlain
+        if elem == _SEQ_END and not defined and length == 0:
+            return items, pos
+        if elem != _ITEM:
+            raise _NotPlain
+        if length == _UNDEFINED:
+            item, pos = _elements(buf, pos, end, None, coding, keep, depth + 1)
+        else:
+            stop = pos + length
+            if stop > end:
+                raise _NotPlain
+            item, pos = _elements(buf, pos, stop, stop, coding, keep, depth + 1)
+        items.append(item)
+
+
+def _elements(
+    buf: bytes,
+    pos: int,
+    end: int,
+    stop: int | None,
+    coding: _Coding,
+    keep: bool,
+    depth: int,
+) -> tuple[_Item, int]:
+    """The elements of one item from ``pos``: up to ``stop``, or (``stop`` None) up to its Item
+    Delimitation Item.  Only the wanted elements are decoded (and only when ``keep``); the
+    others are stepped over as pydicom does (undefined-length sequences parsed, the rest by
+    length)."""
+    item = _Item()
+    implicit = coding.implicit
+    limit = end if stop is None else stop
+    while True:
+        if stop is not None and pos == stop:
+            return item, pos
+        if pos + 8 > limit:
+            raise _NotPlain
+        group, elem = struct.unpack_from("<HH", buf, pos)
+        if group == 0xFFFE:
+            if stop is None and elem == _ITEM_END and buf[pos + 4 : pos + 8] == b"\0\0\0\0":
+                return item, pos + 8
+            raise _NotPlain
+        tag = group << 16 | elem
+        if implicit:
+            (length,) = struct.unpack_from("<I", buf, pos + 4)
+            vr = None
+            pos += 8
+        else:
+            vr = buf[pos + 4 : pos + 6]
+            if vr in _SHORT_VRS:
+                (length,) = struct.unpack_from("<H", buf, pos + 6)
+                pos += 8
+            elif vr in _KNOWN_VRS:
+                if pos + 12 > limit:
+                    raise _NotPlain
+                (length,) = struct.unpack_from("<I", buf, pos + 8)
+                pos += 12
+            else:
+                raise _NotPlain
+        if tag == _SPECIFIC_CHARACTER_SET:
+            raise _NotPlain  # an item with its own character set
+        wanted = _WANTED.get(tag)
+        if wanted is not None and vr is not None and vr != _WANTED_VR_BYTES[tag]:
+            raise _NotPlain
+        if length == _UNDEFINED:
+            if wanted is not None:
+                is_sequence = wanted[1] == "SQ"
+            elif vr is not None:
+                is_sequence = vr == b"SQ"
+            else:
+                try:
+                    is_sequence = dictionary_VR(tag) == "SQ"
+                except KeyError:
+                    is_sequence = False
+            if not is_sequence:
+                raise _NotPlain
+            items, pos = _sequence(buf, pos, end, False, coding, keep and wanted is not None, depth)
+            if keep and wanted is not None:
+                item[wanted[0]] = items
+            continue
+        if pos + length > limit:
+            raise _NotPlain
+        if keep and wanted is not None:
+            keyword, want_vr = wanted
+            if want_vr == "SQ":
+                item[keyword] = _sequence(buf, pos, pos + length, True, coding, True, depth)[0]
+            else:
+                item[keyword] = _value(want_vr, buf[pos : pos + length], coding)
+        pos += length
+
+
+def _value(vr: str, data: bytes, coding: _Coding) -> Any:
+    """The value pydicom gives for a plain element of these VRs (pydicom.values converters)."""
+    if not data:
+        if vr in ("CS", "SH", "LO", "UC", "UR"):
+            return ""
+        raise _NotPlain
+    if vr == "FD":
+        if len(data) != 8:
+            raise _NotPlain
+        return struct.unpack("<d", data)[0]
+    if vr == "UL":
+        if len(data) % 4:
+            raise _NotPlain
+        values = list(struct.unpack(f"<{len(data) // 4}I", data))
+        return values[0] if len(values) == 1 else values
+    if vr == "DS":
+        text = data.decode("latin_1")
+        if _PLAIN_DS.fullmatch(text) is None:
+            raise _NotPlain
+        number = float(text.strip())
+        if not math.isfinite(number):
+            raise _NotPlain
+        return number
+    if vr == "UR":
+        return data.decode("latin_1").rstrip()
+    try:
+        text = data.decode("latin_1" if vr == "CS" else coding.codec)
+    except UnicodeError:
+        raise _NotPlain from None
+    if "\\" in text or "\x1b" in text:
+        raise _NotPlain  # several values, or an escape sequence
+    return text.rstrip(" \x00")
 
 
 # -- structure check ---------------------------------------------------------------------------

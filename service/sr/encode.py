@@ -148,8 +148,13 @@ def _numeric_of(text: str, kind: type) -> bytes:
     return ds
 
 
-def encode_item(item: Item) -> bytes:
-    """One content item as an encoded dataset (the body of a sequence item)."""
+def encode_item(item: Item, _done: dict[int, bytes] | None = None) -> bytes:
+    """One content item as an encoded dataset (the body of a sequence item).  An item that
+    appears more than once in a tree (items are immutable) is encoded once."""
+    done = {} if _done is None else _done
+    found = done.get(id(item))
+    if found is not None:
+        return found
     parts: list[bytes] = []
     vt = item.value_type
     if vt == "COMPOSITE":
@@ -175,12 +180,16 @@ def encode_item(item: Item) -> bytes:
         measured = _code_sequence(_UNITS_SEQUENCE, unit) + _numeric(number)
         parts.append(sequence(_MEASURED_VALUE, [measured]))
     if item.children or vt == "CONTAINER":
-        parts.append(sequence(_CONTENT, [encode_item(c) for c in item.children]))
-    return b"".join(parts)
+        parts.append(sequence(_CONTENT, [encode_item(c, done) for c in item.children]))
+    encoded = done[id(item)] = b"".join(parts)
+    return encoded
 
 
 def content_sequence(items: Sequence[Item]) -> RawDataElement:
     """The Content Sequence holding ``items``, as an encoded (raw) data element: pydicom writes
     it as it is in explicit VR little endian and decodes it when it is read."""
-    value = b"".join(_ITEM + struct.pack("<I", len(b)) + b for b in map(encode_item, items))
+    done: dict[int, bytes] = {}  # the tree is alive while it is encoded: ids are not reused
+    value = b"".join(
+        _ITEM + struct.pack("<I", len(b)) + b for b in (encode_item(i, done) for i in items)
+    )
     return RawDataElement(Tag(_CONTENT_SEQUENCE), "SQ", len(value), value, 0, False, True)

@@ -267,16 +267,13 @@ def assessment_container(a: Assessment, *, primary: bool) -> Item:
     items.append(_code(C.CARDIAC_RHYTHM, C.RHYTHM_VALUES[a.rhythm], Rel.CONTAINS))
     for s in a.special_situations:
         items.append(_code(C.SPECIAL_SITUATION, C.SPECIAL_SITUATION_VALUES[s], Rel.CONTAINS))
-    items.append(
-        _with(
-            _code(C.GRADE, C.GRADE_VALUES[a.grade], Rel.CONTAINS),
-            [criterion_item(c) for c in a.criteria],
-        )
-    )
+    # the same criterion items under both (immutable: made, and encoded, once)
+    criteria = [criterion_item(c) for c in a.criteria]
+    items.append(_with(_code(C.GRADE, C.GRADE_VALUES[a.grade], Rel.CONTAINS), criteria))
     items.append(
         _with(
             _code(C.FILLING_PRESSURE, C.FILLING_PRESSURE_VALUES[a.filling_pressure], Rel.CONTAINS),
-            [criterion_item(c) for c in a.criteria],
+            criteria,
         )
     )
     items.append(_borderline_items(a.borderline))

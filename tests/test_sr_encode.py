@@ -139,6 +139,7 @@ def reference_document(sources, outcome, predecessors=(), when=WHEN) -> Dataset:
         content_date=when.date(),
         content_time=when.time(),
         specific_character_set="ISO_IR 192",
+        previous_versions=[_as_dataset(p) for p in predecessors] or None,
     )
     sr.InstanceCreationDate = DA(when.date())
     sr.InstanceCreationTime = TM(when.time())
@@ -147,12 +148,24 @@ def reference_document(sources, outcome, predecessors=(), when=WHEN) -> Dataset:
         sign = "+" if offset >= 0 else "-"
         sr.TimezoneOffsetFromUTC = f"{sign}{abs(offset) // 60:02d}{abs(offset) % 60:02d}"
     sr.DeviceUID = W.DEVICE_UID
-    sr.CodingSchemeIdentificationSequence = [W._coding_scheme_item()]
-    if predecessors:
-        sr.PredecessorDocumentsSequence = W.references(predecessors)
+    scheme = Dataset()  # PS3.3 C.12.1.1.4, the project's scheme as service/sr/codes.py states it
+    scheme.CodingSchemeDesignator = C.PRIVATE_SCHEME
+    scheme.CodingSchemeName = C.PRIVATE_SCHEME_NAME
+    scheme.CodingSchemeVersion = C.PRIVATE_SCHEME_VERSION
+    scheme.CodingSchemeResponsibleOrganization = C.PRIVATE_SCHEME_ORGANISATION
+    sr.CodingSchemeIdentificationSequence = [scheme]
     assert sr.ContributingEquipmentSequence[0].ManufacturerModelName == "highdicom"
     sr.ContributingEquipmentSequence[0].ContributionDateTime = DT(when)
     return sr
+
+
+def _as_dataset(ref: InstanceRef) -> Dataset:
+    ds = Dataset()
+    ds.StudyInstanceUID = ref.study_instance_uid
+    ds.SeriesInstanceUID = ref.series_instance_uid
+    ds.SOPClassUID = ref.sop_class_uid
+    ds.SOPInstanceUID = ref.sop_instance_uid
+    return ds
 
 
 def encoded(ds: Dataset) -> bytes:

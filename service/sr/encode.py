@@ -34,12 +34,12 @@ _ITEM = b"\xfe\xff\x00\xe0"  # (FFFE,E000) Item
 _CONTENT_SEQUENCE = 0x0040A730
 
 
-def _tag(group: int, element: int) -> bytes:
+def tag_bytes(group: int, element: int) -> bytes:
     return struct.pack("<HH", group, element)
 
 
 def element(tag: bytes, vr: str, value: bytes) -> bytes:
-    """One data element (tag from :func:`_tag`), value already padded."""
+    """One data element (tag from :func:`tag_bytes`), value already padded."""
     if vr in _LONG_VRS:
         return tag + vr.encode("ascii") + b"\x00\x00" + struct.pack("<I", len(value)) + value
     if len(value) > 0xFFFF:
@@ -47,44 +47,59 @@ def element(tag: bytes, vr: str, value: bytes) -> bytes:
     return tag + vr.encode("ascii") + struct.pack("<H", len(value)) + value
 
 
-def _text(value: str) -> bytes:
+def text_value(value: str) -> bytes:
+    """A text value in UTF-8 (ISO_IR 192), padded with a space to even length."""
     raw = value.encode("utf-8")
     return raw + b" " if len(raw) % 2 else raw
 
 
-def _uid(value: str) -> bytes:
+def uid_value(value: str) -> bytes:
+    """A UI value, padded with NUL to even length."""
     raw = value.encode("ascii")
     return raw + b"\x00" if len(raw) % 2 else raw
 
 
+_text, _uid = text_value, uid_value
+
+
+def sequence_value(items: Sequence[bytes]) -> bytes:
+    """The value of a sequence of defined length holding ``items`` (each an encoded dataset)."""
+    return b"".join(_ITEM + struct.pack("<I", len(i)) + i for i in items)
+
+
 def sequence(tag: bytes, items: Sequence[bytes]) -> bytes:
     """A sequence element of defined length holding ``items`` (each an encoded dataset)."""
-    body = b"".join(_ITEM + struct.pack("<I", len(i)) + i for i in items)
-    return element(tag, "SQ", body)
+    return element(tag, "SQ", sequence_value(items))
+
+
+def raw_element(tag: int, vr: str, value: bytes) -> RawDataElement:
+    """An element already encoded in explicit VR little endian: pydicom writes it as it is (in
+    that transfer syntax) and decodes it when it is read."""
+    return RawDataElement(Tag(tag), vr, len(value), value, 0, False, True)
 
 
 # tags, in ascending order within each item
-_CODE_VALUE = _tag(0x0008, 0x0100)
-_SCHEME = _tag(0x0008, 0x0102)
-_SCHEME_VERSION = _tag(0x0008, 0x0103)
-_MEANING = _tag(0x0008, 0x0104)
-_LONG_CODE_VALUE = _tag(0x0008, 0x0119)
-_URN_CODE_VALUE = _tag(0x0008, 0x0120)
-_REF_SOP_CLASS = _tag(0x0008, 0x1150)
-_REF_SOP_INSTANCE = _tag(0x0008, 0x1155)
-_REF_SOP_SEQUENCE = _tag(0x0008, 0x1199)
-_UNITS_SEQUENCE = _tag(0x0040, 0x08EA)
-_RELATIONSHIP = _tag(0x0040, 0xA010)
-_VALUE_TYPE = _tag(0x0040, 0xA040)
-_CONCEPT_NAME = _tag(0x0040, 0xA043)
-_CONTINUITY = _tag(0x0040, 0xA050)
-_UID_VALUE = _tag(0x0040, 0xA124)
-_TEXT_VALUE = _tag(0x0040, 0xA160)
-_FLOAT_VALUE = _tag(0x0040, 0xA161)
-_CONCEPT_CODE = _tag(0x0040, 0xA168)
-_MEASURED_VALUE = _tag(0x0040, 0xA300)
-_NUMERIC_VALUE = _tag(0x0040, 0xA30A)
-_CONTENT = _tag(0x0040, 0xA730)
+_CODE_VALUE = tag_bytes(0x0008, 0x0100)
+_SCHEME = tag_bytes(0x0008, 0x0102)
+_SCHEME_VERSION = tag_bytes(0x0008, 0x0103)
+_MEANING = tag_bytes(0x0008, 0x0104)
+_LONG_CODE_VALUE = tag_bytes(0x0008, 0x0119)
+_URN_CODE_VALUE = tag_bytes(0x0008, 0x0120)
+_REF_SOP_CLASS = tag_bytes(0x0008, 0x1150)
+_REF_SOP_INSTANCE = tag_bytes(0x0008, 0x1155)
+_REF_SOP_SEQUENCE = tag_bytes(0x0008, 0x1199)
+_UNITS_SEQUENCE = tag_bytes(0x0040, 0x08EA)
+_RELATIONSHIP = tag_bytes(0x0040, 0xA010)
+_VALUE_TYPE = tag_bytes(0x0040, 0xA040)
+_CONCEPT_NAME = tag_bytes(0x0040, 0xA043)
+_CONTINUITY = tag_bytes(0x0040, 0xA050)
+_UID_VALUE = tag_bytes(0x0040, 0xA124)
+_TEXT_VALUE = tag_bytes(0x0040, 0xA160)
+_FLOAT_VALUE = tag_bytes(0x0040, 0xA161)
+_CONCEPT_CODE = tag_bytes(0x0040, 0xA168)
+_MEASURED_VALUE = tag_bytes(0x0040, 0xA300)
+_NUMERIC_VALUE = tag_bytes(0x0040, 0xA30A)
+_CONTENT = tag_bytes(0x0040, 0xA730)
 
 
 def coded_concept(code: Code) -> bytes:
@@ -189,7 +204,11 @@ def content_sequence(items: Sequence[Item]) -> RawDataElement:
     """The Content Sequence holding ``items``, as an encoded (raw) data element: pydicom writes
     it as it is in explicit VR little endian and decodes it when it is read."""
     done: dict[int, bytes] = {}  # the tree is alive while it is encoded: ids are not reused
-    value = b"".join(
-        _ITEM + struct.pack("<I", len(b)) + b for b in (encode_item(i, done) for i in items)
+    return raw_element(
+        _CONTENT_SEQUENCE, "SQ", sequence_value([encode_item(i, done) for i in items])
     )
-    return RawDataElement(Tag(_CONTENT_SEQUENCE), "SQ", len(value), value, 0, False, True)
+
+
+def code_sequence_value(code: Code) -> bytes:
+    """The value of a code sequence holding one item for ``code``."""
+    return sequence_value([_coded_concept(_key(code))])

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import functools
 from collections.abc import Sequence
+from dataclasses import dataclass
 from datetime import datetime
 
 from pydicom import Dataset
@@ -29,6 +30,15 @@ from pydicom.uid import ExplicitVRLittleEndian
 from pydicom.valuerep import DA, TM
 
 from service.model import InstanceRef
+from service.sr.encode import (
+    code_sequence_value,
+    element,
+    raw_element,
+    sequence_value,
+    tag_bytes,
+    text_value,
+    uid_value,
+)
 
 COMPREHENSIVE_SR = "1.2.840.10008.5.1.4.1.1.88.33"
 
@@ -75,9 +85,9 @@ def patient_and_study_tags(sop_class_uid: str) -> tuple[int, ...]:
     return tuple(tags)
 
 
-def references(refs: Sequence[InstanceRef]) -> list[Dataset]:
-    """Items of a SOP Instance Reference Macro sequence (PS3.3 Table C.17-3), grouped by study
-    then series in the order given; a repeated instance is listed once."""
+def references(refs: Sequence[InstanceRef]) -> bytes:
+    """The value of a SOP Instance Reference Macro sequence (PS3.3 Table C.17-3): items grouped
+    by study then series in the order given; a repeated instance is listed once."""
     studies: dict[str, dict[str, list[InstanceRef]]] = {}
     seen: set[str] = set()
     for r in refs:
@@ -85,25 +95,24 @@ def references(refs: Sequence[InstanceRef]) -> list[Dataset]:
             continue
         seen.add(r.sop_instance_uid)
         studies.setdefault(r.study_instance_uid, {}).setdefault(r.series_instance_uid, []).append(r)
-    items = []
+    study_items = []
     for study_uid, series in studies.items():
         series_items = []
         for series_uid, instances in series.items():
-            sops = []
-            for r in instances:
-                sop = Dataset()
-                sop.ReferencedSOPClassUID = r.sop_class_uid
-                sop.ReferencedSOPInstanceUID = r.sop_instance_uid
-                sops.append(sop)
-            series_item = Dataset()
-            series_item.SeriesInstanceUID = series_uid
-            series_item.ReferencedSOPSequence = sops
-            series_items.append(series_item)
-        study_item = Dataset()
-        study_item.StudyInstanceUID = study_uid
-        study_item.ReferencedSeriesSequence = series_items
-        items.append(study_item)
-    return items
+            sops = [
+                element(_REF_SOP_CLASS, "UI", uid_value(r.sop_class_uid))
+                + element(_REF_SOP_INSTANCE, "UI", uid_value(r.sop_instance_uid))
+                for r in instances
+            ]
+            series_items.append(
+                element(_REF_SOP_SEQUENCE, "SQ", sequence_value(sops))
+                + element(_SERIES_UID, "UI", uid_value(series_uid))
+            )
+        study_items.append(
+            element(_REF_SERIES_SEQUENCE, "SQ", sequence_value(series_items))
+            + element(_STUDY_UID, "UI", uid_value(study_uid))
+        )
+    return sequence_value(study_items)
 
 
 def instance_ref(ds: Dataset) -> InstanceRef:
@@ -115,12 +124,47 @@ def instance_ref(ds: Dataset) -> InstanceRef:
     )
 
 
-def _code_item(code: Code) -> Dataset:
-    item = Dataset()
-    item.CodeValue = code.value
-    item.CodingSchemeDesignator = code.scheme_designator
-    item.CodeMeaning = code.meaning
-    return item
+@dataclass(frozen=True)
+class CodingScheme:
+    """A Coding Scheme Identification Sequence item (PS3.3 C.12.1.1.4)."""
+
+    designator: str
+    name: str
+    version: str
+    responsible_organization: str
+
+    def encoded(self) -> bytes:
+        return (
+            element(_SCHEME_DESIGNATOR, "SH", text_value(self.designator))
+            + element(_SCHEME_VERSION, "SH", text_value(self.version))
+            + element(_SCHEME_NAME, "ST", text_value(self.name))
+            + element(_SCHEME_ORGANISATION, "ST", text_value(self.responsible_organization))
+        )
+
+
+# tags of the elements encoded here (PS3.6)
+_REF_SERIES_SEQUENCE = tag_bytes(0x0008, 0x1115)
+_REF_SOP_CLASS = tag_bytes(0x0008, 0x1150)
+_REF_SOP_INSTANCE = tag_bytes(0x0008, 0x1155)
+_REF_SOP_SEQUENCE = tag_bytes(0x0008, 0x1199)
+_STUDY_UID = tag_bytes(0x0020, 0x000D)
+_SERIES_UID = tag_bytes(0x0020, 0x000E)
+_SCHEME_DESIGNATOR = tag_bytes(0x0008, 0x0102)
+_SCHEME_VERSION = tag_bytes(0x0008, 0x0103)
+_SCHEME_NAME = tag_bytes(0x0008, 0x0115)
+_SCHEME_ORGANISATION = tag_bytes(0x0008, 0x0116)
+
+
+def _put(ds: Dataset, tag: int, vr: str, value: bytes) -> None:
+    ds[tag] = raw_element(tag, vr, value)
+
+
+def _text(ds: Dataset, tag: int, vr: str, value: str) -> None:
+    _put(ds, tag, vr, text_value(value))
+
+
+def _uid(ds: Dataset, tag: int, value: str) -> None:
+    _put(ds, tag, "UI", uid_value(value))
 
 
 def result_header(
@@ -135,11 +179,18 @@ def result_header(
     manufacturer: str,
     model_name: str,
     software_versions: str,
+    device_uid: str,
+    coding_scheme: CodingScheme,
+    predecessors: Sequence[InstanceRef],
     when: datetime,
 ) -> Dataset:
     """The header of a COMPLETE, UNVERIFIED, PRELIMINARY Comprehensive SR in the patient and
-    study of ``evidence[0]``, with file meta for
-    explicit VR little endian and Specific Character Set ISO_IR 192 (UTF-8)."""
+    study of ``evidence[0]``, with file meta for explicit VR little endian and Specific
+    Character Set ISO_IR 192 (UTF-8).  Creation and content date/time are ``when`` (with its
+    offset from UTC when it has one); ``predecessors`` fill the Predecessor Documents Sequence.
+
+    The elements made here are stored already encoded (pydicom writes them as they are); the
+    ones copied from the source are pydicom's, encoded when the document is written."""
     first = evidence[0]
     ds = Dataset()
     meta = FileMetaDataset()
@@ -155,37 +206,47 @@ def result_header(
         if keyword not in ds:
             setattr(ds, keyword, "")
     study_uid = str(first.StudyInstanceUID)
-    ds.StudyInstanceUID = study_uid
-    # SR Document Series, General Equipment, SOP Common
-    ds.SeriesInstanceUID = series_instance_uid
-    ds.SeriesNumber = series_number
-    ds.Modality = "SR"
-    ds.SeriesDescription = series_description
-    ds.Manufacturer = manufacturer
-    ds.ManufacturerModelName = model_name
-    ds.SoftwareVersions = software_versions
-    ds.SOPInstanceUID = sop_instance_uid
-    ds.SOPClassUID = COMPREHENSIVE_SR
-    ds.InstanceNumber = instance_number
-    ds.InstanceCreationDate = DA(when.date())
-    ds.InstanceCreationTime = TM(when.time())
-    ds.SpecificCharacterSet = "ISO_IR 192"
-    ds.ContentDate = DA(when.date())
-    ds.ContentTime = TM(when.time())
+    _uid(ds, 0x0020000D, study_uid)  # Study Instance UID
+    # SOP Common, SR Document Series, General Equipment
+    date, time = str(DA(when.date())), str(TM(when.time()))
+    _text(ds, 0x00080005, "CS", "ISO_IR 192")  # Specific Character Set
+    _text(ds, 0x00080012, "DA", date)  # Instance Creation Date
+    _text(ds, 0x00080013, "TM", time)  # Instance Creation Time
+    _uid(ds, 0x00080016, COMPREHENSIVE_SR)  # SOP Class UID
+    _uid(ds, 0x00080018, sop_instance_uid)  # SOP Instance UID
+    _text(ds, 0x00080023, "DA", date)  # Content Date
+    _text(ds, 0x00080033, "TM", time)  # Content Time
+    _text(ds, 0x00080060, "CS", "SR")  # Modality
+    _text(ds, 0x00080070, "LO", manufacturer)  # Manufacturer
+    _put(ds, 0x00080110, "SQ", sequence_value([coding_scheme.encoded()]))
+    _text(ds, 0x0008103E, "LO", series_description)  # Series Description
+    _text(ds, 0x00081090, "LO", model_name)  # Manufacturer's Model Name
+    _put(ds, 0x00081111, "SQ", b"")  # Referenced Performed Procedure Step Sequence (Type 2)
+    _uid(ds, 0x00181002, device_uid)  # Device UID
+    _text(ds, 0x00181020, "LO", software_versions)  # Software Versions
+    _uid(ds, 0x0020000E, series_instance_uid)  # Series Instance UID
+    _text(ds, 0x00200011, "IS", str(int(series_number)))  # Series Number
+    _text(ds, 0x00200013, "IS", str(int(instance_number)))  # Instance Number
+    offset = when.utcoffset()
+    if offset is not None:
+        minutes = int(offset.total_seconds() // 60)
+        sign = "+" if minutes >= 0 else "-"
+        _text(ds, 0x00080201, "SH", f"{sign}{abs(minutes) // 60:02d}{abs(minutes) % 60:02d}")
     # SR Document General, and the root of the content tree
-    ds.CompletionFlag = "COMPLETE"
-    ds.VerificationFlag = "UNVERIFIED"
-    ds.PreliminaryFlag = "PRELIMINARY"
-    ds.ValueType = "CONTAINER"
-    ds.ConceptNameCodeSequence = [_code_item(title)]
-    ds.ContinuityOfContent = "CONTINUOUS"
+    _text(ds, 0x0040A040, "CS", "CONTAINER")  # Value Type
+    _put(ds, 0x0040A043, "SQ", code_sequence_value(title))  # Concept Name Code Sequence
+    _text(ds, 0x0040A050, "CS", "CONTINUOUS")  # Continuity Of Content
+    if predecessors:
+        _put(ds, 0x0040A360, "SQ", references(predecessors))  # Predecessor Documents
+    _put(ds, 0x0040A372, "SQ", b"")  # Performed Procedure Code Sequence (Type 2)
     refs = [instance_ref(e) for e in evidence]
     same = [r for r in refs if r.study_instance_uid == study_uid]
     other = [r for r in refs if r.study_instance_uid != study_uid]
-    if same:
-        ds.CurrentRequestedProcedureEvidenceSequence = references(same)
-    if other:
-        ds.PertinentOtherEvidenceSequence = references(other)
-    ds.PerformedProcedureCodeSequence = []
-    ds.ReferencedPerformedProcedureStepSequence = []
+    if same:  # Current Requested Procedure Evidence Sequence
+        _put(ds, 0x0040A375, "SQ", references(same))
+    if other:  # Pertinent Other Evidence Sequence
+        _put(ds, 0x0040A385, "SQ", references(other))
+    _text(ds, 0x0040A491, "CS", "COMPLETE")  # Completion Flag
+    _text(ds, 0x0040A493, "CS", "UNVERIFIED")  # Verification Flag
+    _text(ds, 0x0040A496, "CS", "PRELIMINARY")  # Preliminary Flag
     return ds

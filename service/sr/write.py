@@ -31,6 +31,7 @@ from collections.abc import Sequence
 from datetime import datetime
 
 from pydicom import Dataset
+from pydicom.dataelem import RawDataElement
 from pydicom.filewriter import correct_ambiguous_vr
 
 import service
@@ -62,7 +63,7 @@ from service.sr.content import (
     uidref_item,
 )
 from service.sr.encode import content_sequence
-from service.sr.header import references, result_header
+from service.sr.header import CodingScheme, result_header
 from service.sr.identity import derive_uid
 
 MANUFACTURER = "diastolic-sr project"
@@ -380,13 +381,13 @@ def _checked_sources(sources: Sequence[Dataset]) -> list[Dataset]:
     return out
 
 
-def _coding_scheme_item() -> Dataset:
-    item = Dataset()
-    item.CodingSchemeDesignator = C.PRIVATE_SCHEME
-    item.CodingSchemeName = C.PRIVATE_SCHEME_NAME
-    item.CodingSchemeVersion = C.PRIVATE_SCHEME_VERSION
-    item.CodingSchemeResponsibleOrganization = C.PRIVATE_SCHEME_ORGANISATION
-    return item
+#: the project's coding scheme, declared in every result (PS3.3 C.12.1.1.4)
+PRIVATE_CODING_SCHEME = CodingScheme(
+    designator=C.PRIVATE_SCHEME,
+    name=C.PRIVATE_SCHEME_NAME,
+    version=C.PRIVATE_SCHEME_VERSION,
+    responsible_organization=C.PRIVATE_SCHEME_ORGANISATION,
+)
 
 
 def build_result_sr(
@@ -424,18 +425,13 @@ def build_result_sr(
             manufacturer=MANUFACTURER,
             model_name=MODEL_NAME,
             software_versions=f"{service.SOFTWARE_NAME} {software_version}",
+            device_uid=DEVICE_UID,
+            coding_scheme=PRIVATE_CODING_SCHEME,
+            predecessors=predecessors,
             when=when,
         )
     except (ValueError, TypeError, AttributeError) as exc:
         raise UserError(f"cannot build the result SR: {exc}") from exc
-    if when.utcoffset() is not None:
-        offset = int(when.utcoffset().total_seconds() // 60)  # type: ignore[union-attr]
-        sign = "+" if offset >= 0 else "-"
-        sr.TimezoneOffsetFromUTC = f"{sign}{abs(offset) // 60:02d}{abs(offset) % 60:02d}"
-    sr.DeviceUID = DEVICE_UID
-    sr.CodingSchemeIdentificationSequence = [_coding_scheme_item()]
-    if predecessors:
-        sr.PredecessorDocumentsSequence = references(predecessors)
     _resolve_vrs_once(sr)
     # the tree, already encoded: pydicom writes it as it is and decodes it if it is read
     sr[_CONTENT_SEQUENCE] = content_sequence(content.children)
@@ -446,16 +442,22 @@ _CONTENT_SEQUENCE = 0x0040A730
 
 
 def _resolve_vrs_once(ds: Dataset) -> None:
-    """Resolve ambiguous VRs once for the header, for explicit VR little endian (the transfer
-    syntax of the document's file meta), and record that encoding on every dataset.
+    """Resolve ambiguous VRs of the elements copied from the source, for explicit VR little
+    endian (the transfer syntax of the document's file meta), and record that encoding on the
+    document and every dataset in it.
 
-    pydicom otherwise repeats the resolution below every sequence item of a dataset it did not
-    read from a file, and it writes an already encoded element (the content tree) as it is
-    only when the dataset's recorded encoding is the one being written.  Writing with another
-    transfer syntax still resolves ambiguous VRs and re-encodes as usual."""
-    correct_ambiguous_vr(ds, True)
+    pydicom writes an already encoded element (everything :mod:`service.sr.header` makes, and
+    the content tree) as it is only when the dataset's recorded encoding is the one being
+    written, and it otherwise repeats the resolution below every sequence item of a dataset it
+    did not read from a file.  Writing with another transfer syntax still resolves ambiguous
+    VRs and re-encodes as usual."""
+    copied = Dataset()
+    for elem in ds.elements():
+        if not isinstance(elem, RawDataElement):
+            copied.add(elem)
+    correct_ambiguous_vr(copied, True)
     ds.set_original_encoding(False, True, ds._character_set)
-    stack = [ds]
+    stack = [copied]
     while stack:
         for elem in stack.pop():
             if elem.VR == "SQ":

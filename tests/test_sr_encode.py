@@ -455,3 +455,17 @@ def test_num_refuses_non_numbers():
         num_item(NAME, "7", UNIT, Rel.CONTAINS)  # type: ignore[arg-type]
     with pytest.raises(TypeError):
         num_item(NAME, True, UNIT, Rel.CONTAINS)
+
+
+def test_part10_writes_what_pydicom_writes():
+    # PS3.10 7.1 file format; pydicom's save_as(enforce_file_format=True) as the reference
+    from service.sr.encode import part10
+
+    outcome = grade_study([_demo_source()], GradeOptions(), content_datetime=WHEN)
+    buf = DicomBytesIO()
+    outcome.result.save_as(buf, enforce_file_format=True)
+    assert part10(outcome.result) == buf.getvalue()
+    assert dcmread(DicomBytesIO(part10(outcome.result))).SOPInstanceUID == outcome.result_uid
+    outcome.result.file_meta.TransferSyntaxUID = "1.2.840.10008.1.2"  # implicit VR
+    with pytest.raises(ValueError, match="explicit VR little endian"):
+        part10(outcome.result)

@@ -19,9 +19,14 @@ import functools
 import struct
 from collections.abc import Sequence
 
+import pydicom
+from pydicom import Dataset
 from pydicom.dataelem import RawDataElement
+from pydicom.filebase import DicomBytesIO
+from pydicom.filewriter import write_dataset
 from pydicom.sr.coding import Code
 from pydicom.tag import Tag
+from pydicom.uid import PYDICOM_IMPLEMENTATION_UID, ExplicitVRLittleEndian
 from pydicom.valuerep import DS
 
 from service.sr.content import Item
@@ -212,3 +217,32 @@ def content_sequence(items: Sequence[Item]) -> RawDataElement:
 def code_sequence_value(code: Code) -> bytes:
     """The value of a code sequence holding one item for ``code``."""
     return sequence_value([_coded_concept(_key(code))])
+
+
+def part10(ds: Dataset) -> bytes:
+    """A document built here (file meta for explicit VR little endian) as a Part 10 file
+    (PS3.10 7.1: preamble, "DICM", the File Meta Information group in explicit VR little endian,
+    PS3.10 Table 7.1-1), then the data set in explicit VR little endian.  The same bytes as
+    pydicom's ``save_as(..., enforce_file_format=True)``, without its copy of the file meta."""
+    meta = ds.file_meta
+    if meta.get("TransferSyntaxUID") != ExplicitVRLittleEndian:
+        raise ValueError("part10() writes explicit VR little endian documents only")
+    group = b"".join(
+        (
+            element(tag_bytes(0x0002, 0x0001), "OB", b"\x00\x01"),
+            element(tag_bytes(0x0002, 0x0002), "UI", uid_value(meta.MediaStorageSOPClassUID)),
+            element(tag_bytes(0x0002, 0x0003), "UI", uid_value(meta.MediaStorageSOPInstanceUID)),
+            element(tag_bytes(0x0002, 0x0010), "UI", uid_value(ExplicitVRLittleEndian)),
+            element(tag_bytes(0x0002, 0x0012), "UI", uid_value(PYDICOM_IMPLEMENTATION_UID)),
+            element(tag_bytes(0x0002, 0x0013), "SH", text_value(_IMPLEMENTATION_VERSION)),
+        )
+    )
+    fp = DicomBytesIO()
+    fp.is_little_endian = True
+    fp.is_implicit_VR = False
+    write_dataset(fp, ds)
+    length = element(tag_bytes(0x0002, 0x0000), "UL", struct.pack("<I", len(group)))
+    return b"\x00" * 128 + b"DICM" + length + group + fp.getvalue()
+
+
+_IMPLEMENTATION_VERSION = f"PYDICOM {pydicom.__version__}"  # as pydicom writes it

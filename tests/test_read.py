@@ -386,3 +386,67 @@ def test_damaged_bytes_read_the_same_both_ways(damage, implicit):
     fast, slow = _both(bytes(data))
     assert fast == slow
     assert repr(fast) == repr(slow)
+
+
+# --- read_path skips pydicom's full decoding only where the bytes show it cannot fail ----------
+
+
+@pytest.mark.filterwarnings("ignore::UserWarning")  # pydicom warns about the damaged values
+@settings(max_examples=150, deadline=None, derandomize=True)
+@given(
+    damage=st.lists(
+        st.tuples(
+            st.integers(min_value=0, max_value=100_000),
+            st.sampled_from(["set", "delete", "insert", "cut"]),
+            st.binary(min_size=1, max_size=4),
+        ),
+        min_size=1,
+        max_size=3,
+    )
+)
+def test_bytes_said_decodable_always_decode(damage):
+    import io
+
+    from service.sr.read import _file_body_start, decodes_without_error
+
+    data = bytearray(_encoded(build_echo_sr(_MIXED, template=Template.tid5200)))
+    for offset, action, chunk in damage:
+        if len(data) <= 136:
+            break
+        at = 132 + offset % (len(data) - 132)
+        if action == "set":
+            data[at : at + len(chunk)] = chunk
+        elif action == "delete":
+            del data[at : at + len(chunk)]
+        elif action == "insert":
+            data[at:at] = chunk
+        else:
+            del data[at:]
+    try:
+        ds = pydicom.dcmread(io.BytesIO(bytes(data)))
+    except Exception:
+        return
+    start = _file_body_start(bytes(data))
+    # PS3.5 Table A-1 (Explicit VR Little Endian, 1.2.840.10008.1.2.1)
+    if start is not None and decodes_without_error(bytes(data), "1.2.840.10008.1.2.1", start):
+        for _ in ds.iterall():  # must not raise
+            pass
+
+
+def test_decodable_check_refuses_what_pydicom_cannot_decode():
+    import struct
+
+    from service.sr.read import _file_body_start, decodes_without_error
+
+    good = _encoded(build_echo_sr(_MIXED, template=Template.tid5200))
+    start = _file_body_start(good)
+    assert start is not None
+    assert decodes_without_error(good, "1.2.840.10008.1.2.1", start)
+    # an unknown VR "QQ" in the first element after the file meta (PS3.5 7.1.2 VR field)
+    broken = good[: start + 4] + b"QQ" + good[start + 6 :]
+    assert not decodes_without_error(broken, "1.2.840.10008.1.2.1", start)
+    # a US value of 3 bytes is not a whole number of 2-byte values (PS3.5 6.2 US)
+    odd = good + struct.pack("<HH2sH", 0x0028, 0x0010, b"US", 3) + b"\x00\x01\x02"
+    assert not decodes_without_error(odd, "1.2.840.10008.1.2.1", start)
+    # implicit VR: not known, so pydicom decodes everything (PS3.5 Table A-1)
+    assert not decodes_without_error(good, "1.2.840.10008.1.2", start)

@@ -754,6 +754,113 @@ def file_structure_problem(data: bytes, transfer_syntax: str) -> str | None:
     return structure_problem(data, transfer_syntax, pos)
 
 
+#: byte size of one value of the binary number VRs (PS3.5 6.2)
+_NUMBER_SIZES = {
+    b"US": 2,
+    b"SS": 2,
+    b"UL": 4,
+    b"SL": 4,
+    b"FL": 4,
+    b"AT": 4,
+    b"FD": 8,
+    b"SV": 8,
+    b"UV": 8,
+}
+
+
+def _decodable_elements(buf: bytes, pos: int, end: int, stop: int | None, depth: int) -> int:
+    """Step over the elements of an explicit VR little endian data set (``stop`` None: an item
+    ended by its delimiter); _NotPlain where pydicom's decoding of a value might fail."""
+    if depth > _MAX_ITEM_DEPTH:
+        raise _NotPlain
+    limit = end if stop is None else stop
+    while True:
+        if stop is not None and pos == stop:
+            return pos
+        if pos + 8 > limit:
+            raise _NotPlain
+        group, elem = struct.unpack_from("<HH", buf, pos)
+        if group == 0xFFFE:
+            if stop is None and elem == _ITEM_END and buf[pos + 4 : pos + 8] == b"\0\0\0\0":
+                return pos + 8
+            raise _NotPlain
+        vr = buf[pos + 4 : pos + 6]
+        if vr in _SHORT_VRS:
+            (length,) = struct.unpack_from("<H", buf, pos + 6)
+            pos += 8
+        elif vr in _KNOWN_VRS and vr != b"UN":
+            if pos + 12 > limit:
+                raise _NotPlain
+            (length,) = struct.unpack_from("<I", buf, pos + 8)
+            pos += 12
+        else:
+            raise _NotPlain  # unknown VR, or UN (pydicom may re-read it with another VR)
+        if vr == b"SQ":
+            pos = _decodable_items(buf, pos, end, length, depth + 1)
+            continue
+        if length == _UNDEFINED or pos + length > limit:
+            raise _NotPlain
+        if length % _NUMBER_SIZES.get(vr, 1):
+            raise _NotPlain
+        pos += length
+
+
+def _decodable_items(buf: bytes, pos: int, end: int, length: int, depth: int) -> int:
+    defined = length != _UNDEFINED
+    if defined:
+        end = pos + length
+        if end > len(buf):
+            raise _NotPlain
+    while True:
+        if defined and pos == end:
+            return pos
+        if pos + 8 > end:
+            raise _NotPlain
+        group, elem, item_length = struct.unpack_from("<HHI", buf, pos)
+        pos += 8
+        if group == 0xFFFE and elem == _SEQ_END and not defined and item_length == 0:
+            return pos
+        if group != 0xFFFE or elem != _ITEM:
+            raise _NotPlain
+        if item_length == _UNDEFINED:
+            pos = _decodable_elements(buf, pos, end, None, depth)
+        elif pos + item_length > end:
+            raise _NotPlain
+        else:
+            pos = _decodable_elements(buf, pos, end, pos + item_length, depth)
+
+
+def decodes_without_error(data: bytes, transfer_syntax: str, start: int) -> bool:
+    """True when every element of the explicit VR little endian data set ``data[start:]`` is in
+    a form whose decoding by pydicom cannot fail (known VRs other than UN, lengths that fit,
+    whole binary numbers, sequences of proper items); False means "not known", not "broken"."""
+    if transfer_syntax != EXPLICIT_VR_LE:
+        return False
+    try:
+        _decodable_elements(data, start, len(data), len(data), 0)
+    except (_NotPlain, struct.error):
+        return False
+    return True
+
+
+def _file_body_start(data: bytes) -> int | None:
+    """Where the data set of a Part 10 file starts (after the file meta group); None if not."""
+    if data[128:132] != b"DICM":
+        return None
+    pos = 132
+    try:
+        while pos + 8 <= len(data) and struct.unpack_from("<H", data, pos)[0] == 0x0002:
+            if data[pos + 4 : pos + 6] in _LONG_VRS:
+                (length,) = struct.unpack_from("<I", data, pos + 8)
+                pos += 12 + length
+            else:
+                (length,) = struct.unpack_from("<H", data, pos + 6)
+                pos += 8 + length
+    except struct.error:
+        return None
+    return pos if pos <= len(data) else None
+
+
 def read_path(path: str | os.PathLike[str]) -> tuple[Dataset, SourceDocument]:
     """Read an SR file; RejectedInput for a missing, non-DICOM or unreadable file."""
     p = os.fspath(path)
@@ -769,18 +876,22 @@ def read_path(path: str | os.PathLike[str]) -> tuple[Dataset, SourceDocument]:
         raise RejectedInput(
             f"unreadable or truncated DICOM file: {p} ({type(exc).__name__})"
         ) from None
-    try:
-        # force every element to be parsed now (a truncated file fails here, not later)
-        for _ in ds.iterall():
-            pass
-    except Exception as exc:
-        raise RejectedInput(
-            f"unreadable or truncated DICOM file: {p} ({type(exc).__name__})"
-        ) from None
     meta = getattr(ds, "file_meta", None)
     syntax = str(meta.get("TransferSyntaxUID", "")) if meta is not None else ""
     with open(p, "rb") as fh:
-        problem = file_structure_problem(fh.read(), syntax)
+        data = fh.read()
+    start = _file_body_start(data)
+    if start is None or not decodes_without_error(data, syntax, start):
+        try:
+            # decode every element now (a truncated or damaged file fails here, not later);
+            # not needed when the bytes show that every value decodes
+            for _ in ds.iterall():
+                pass
+        except Exception as exc:
+            raise RejectedInput(
+                f"unreadable or truncated DICOM file: {p} ({type(exc).__name__})"
+            ) from None
+    problem = file_structure_problem(data, syntax)
     if problem:
         raise RejectedInput(f"unreadable or truncated DICOM file: {p} ({problem})")
     return ds, read_document(ds)

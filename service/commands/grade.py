@@ -142,13 +142,15 @@ def grade_one(path: Path, job: _Job) -> dict:
 
 def _grade_file(path: Path, job: _Job) -> dict:
     from service.errors import RejectedInput
-    from service.sr.read import read_path
+    from service.sr.read import load_path
 
     options, out_dir = job.options, job.out_dir
     try:
-        ds, _ = read_path(path)
+        ds = load_path(path)
     except RejectedInput as exc:
         return rejected_row(path, options, str(exc))
+    # the content tree is read once, by grade_study (a content-tree rejection there gives the
+    # same row as read_path's would)
     outcome = grade_study([ds], options, table=job.table)
     if outcome.status is GradeStatus.rejected:
         return rejected_row(path, options, outcome.reason, outcome)

@@ -863,6 +863,13 @@ def _file_body_start(data: bytes) -> int | None:
 
 def read_path(path: str | os.PathLike[str]) -> tuple[Dataset, SourceDocument]:
     """Read an SR file; RejectedInput for a missing, non-DICOM or unreadable file."""
+    ds = load_path(path)
+    return ds, read_document(ds)
+
+
+def load_path(path: str | os.PathLike[str]) -> Dataset:
+    """The data set of a DICOM file, every element decodable (what :func:`read_path` reads
+    before the content tree); RejectedInput for a missing, non-DICOM or unreadable file."""
     p = os.fspath(path)
     if not os.path.exists(p):
         raise RejectedInput(f"file not found: {p}")
@@ -894,4 +901,4 @@ def read_path(path: str | os.PathLike[str]) -> tuple[Dataset, SourceDocument]:
     problem = file_structure_problem(data, syntax)
     if problem:
         raise RejectedInput(f"unreadable or truncated DICOM file: {p} ({problem})")
-    return ds, read_document(ds)
+    return ds

@@ -469,3 +469,39 @@ def test_part10_writes_what_pydicom_writes():
     outcome.result.file_meta.TransferSyntaxUID = "1.2.840.10008.1.2"  # implicit VR
     with pytest.raises(ValueError, match="explicit VR little endian"):
         part10(outcome.result)
+
+
+SR_CLASSES = (
+    "1.2.840.10008.5.1.4.1.1.88.11",  # Basic Text SR
+    "1.2.840.10008.5.1.4.1.1.88.22",  # Enhanced SR
+    "1.2.840.10008.5.1.4.1.1.88.33",  # Comprehensive SR
+    "1.2.840.10008.5.1.4.1.1.88.34",  # Comprehensive 3D SR
+    "1.2.840.10008.5.1.4.1.1.88.35",  # Extensible SR
+    "1.2.840.10008.5.1.4.1.1.88.72",  # Simplified Adult Echo SR
+)
+
+
+@pytest.mark.parametrize("sop_class", SR_CLASSES)
+def test_copied_modules_are_highdicoms_patient_and_study_modules(sop_class):
+    # highdicom's module tables (derived from PS3.3): root-level attributes of the modules of
+    # the Patient and Study information entities of the IOD, which its SR constructor copies
+    from highdicom._standard_utils import (
+        get_iod_module_map,
+        get_module_attribute_map,
+        get_sop_class_iod_map,
+    )
+
+    from service.sr.header import PATIENT_AND_STUDY_MODULES
+
+    modules = get_iod_module_map()[get_sop_class_iod_map()[sop_class]]
+    attributes = get_module_attribute_map()
+    theirs = [
+        str(a["keyword"])
+        for ie in ("Patient", "Study")
+        for m in modules
+        if m["ie"] == ie
+        for a in attributes[m["key"]]
+        if len(a["path"]) == 0
+    ]
+    ours = [k for keywords in PATIENT_AND_STUDY_MODULES.values() for k in keywords]
+    assert ours == theirs

@@ -3,8 +3,7 @@ except the content tree.
 
 Patient, General Study and Patient Study come from the first source, as highdicom's SR
 constructor takes them: every root-level attribute the source has of the modules of the
-source's IOD that belong to the Patient and Study information entities (highdicom's module
-tables, derived from PS3.3).  The
+Patient and Study information entities (the same five modules in every SR IOD).  The
 result is in a new series (SR Document Series), made by this software (General Equipment),
 COMPLETE, UNVERIFIED and PRELIMINARY (SR Document General, PS3.3 C.17.2), and lists its
 sources as Current Requested Procedure Evidence (same study) or Pertinent Other Evidence
@@ -17,7 +16,6 @@ checks of a content tree that is made and checked elsewhere (:mod:`service.sr.co
 
 from __future__ import annotations
 
-import functools
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime
@@ -57,32 +55,135 @@ TYPE2_FROM_SOURCE = (
 )
 
 
-@functools.lru_cache(maxsize=64)
-def patient_and_study_tags(sop_class_uid: str) -> tuple[int, ...]:
-    """Tags of the root-level attributes of the Patient and Study information entities' modules
-    in the IOD of ``sop_class_uid`` (Comprehensive SR's IOD for a class highdicom's tables do
-    not know), in the order highdicom copies them."""
-    from highdicom._standard_utils import (
-        get_iod_module_map,
-        get_module_attribute_map,
-        get_sop_class_iod_map,
-    )
+#: Root-level attributes of the modules of the Patient and Study information entities of every
+#: SR IOD (PS3.3 A.35), as highdicom 0.28's module tables list them (derived from PS3.3);
+#: ``tests/test_sr_encode.py`` checks this table against those tables for each SR class.
+PATIENT_AND_STUDY_MODULES: dict[str, tuple[str, ...]] = {
+    # PS3.3 C.7.1.1
+    "Patient": (
+        "ReferencedPatientSequence",
+        "PatientName",
+        "PatientID",
+        "IssuerOfPatientID",
+        "TypeOfPatientID",
+        "IssuerOfPatientIDQualifiersSequence",
+        "SourcePatientGroupIdentificationSequence",
+        "GroupOfPatientsIdentificationSequence",
+        "PatientBirthDate",
+        "PatientBirthTime",
+        "PatientBirthDateInAlternativeCalendar",
+        "PatientDeathDateInAlternativeCalendar",
+        "PatientAlternativeCalendar",
+        "PatientSex",
+        "QualityControlSubject",
+        "StrainDescription",
+        "StrainNomenclature",
+        "StrainStockSequence",
+        "StrainAdditionalInformation",
+        "StrainCodeSequence",
+        "GeneticModificationsSequence",
+        "OtherPatientNames",
+        "OtherPatientIDsSequence",
+        "ReferencedPatientPhotoSequence",
+        "EthnicGroupCodeSequence",
+        "PatientSpeciesDescription",
+        "PatientSpeciesCodeSequence",
+        "PatientBreedDescription",
+        "PatientBreedCodeSequence",
+        "BreedRegistrationSequence",
+        "ResponsiblePerson",
+        "ResponsiblePersonRole",
+        "ResponsibleOrganization",
+        "PatientComments",
+        "PatientIdentityRemoved",
+        "DeidentificationMethod",
+        "DeidentificationMethodCodeSequence",
+    ),
+    # PS3.3 C.7.1.3
+    "Clinical Trial Subject": (
+        "ClinicalTrialSponsorName",
+        "ClinicalTrialProtocolID",
+        "ClinicalTrialProtocolName",
+        "IssuerOfClinicalTrialProtocolID",
+        "OtherClinicalTrialProtocolIDsSequence",
+        "ClinicalTrialSiteID",
+        "ClinicalTrialSiteName",
+        "IssuerOfClinicalTrialSiteID",
+        "ClinicalTrialSubjectID",
+        "IssuerOfClinicalTrialSubjectID",
+        "ClinicalTrialSubjectReadingID",
+        "IssuerOfClinicalTrialSubjectReadingID",
+        "ClinicalTrialProtocolEthicsCommitteeName",
+        "ClinicalTrialProtocolEthicsCommitteeApprovalNumber",
+    ),
+    # PS3.3 C.7.2.1
+    "General Study": (
+        "StudyDate",
+        "StudyTime",
+        "AccessionNumber",
+        "IssuerOfAccessionNumberSequence",
+        "ReferringPhysicianName",
+        "ReferringPhysicianIdentificationSequence",
+        "ConsultingPhysicianName",
+        "ConsultingPhysicianIdentificationSequence",
+        "StudyDescription",
+        "ProcedureCodeSequence",
+        "PhysiciansOfRecord",
+        "PhysiciansOfRecordIdentificationSequence",
+        "NameOfPhysiciansReadingStudy",
+        "PhysiciansReadingStudyIdentificationSequence",
+        "ReferencedStudySequence",
+        "StudyInstanceUID",
+        "StudyID",
+        "RequestingService",
+        "RequestingServiceCodeSequence",
+        "ReasonForPerformedProcedureCodeSequence",
+    ),
+    # PS3.3 C.7.2.2
+    "Patient Study": (
+        "AdmittingDiagnosesDescription",
+        "AdmittingDiagnosesCodeSequence",
+        "PatientAge",
+        "PatientSize",
+        "PatientSizeCodeSequence",
+        "PatientBodyMassIndex",
+        "MeasuredAPDimension",
+        "MeasuredLateralDimension",
+        "PatientWeight",
+        "MedicalAlerts",
+        "Allergies",
+        "Occupation",
+        "SmokingStatus",
+        "AdditionalPatientHistory",
+        "PregnancyStatus",
+        "LastMenstrualDate",
+        "PatientSexNeutered",
+        "ReasonForVisit",
+        "ReasonForVisitCodeSequence",
+        "AdmissionID",
+        "IssuerOfAdmissionIDSequence",
+        "ServiceEpisodeID",
+        "ServiceEpisodeDescription",
+        "IssuerOfServiceEpisodeIDSequence",
+        "PatientState",
+    ),
+    # PS3.3 C.7.2.3
+    "Clinical Trial Study": (
+        "ClinicalTrialTimePointID",
+        "ClinicalTrialTimePointDescription",
+        "LongitudinalTemporalOffsetFromEvent",
+        "LongitudinalTemporalEventType",
+        "ClinicalTrialTimePointTypeCodeSequence",
+        "IssuerOfClinicalTrialTimePointID",
+        "ConsentForClinicalTrialUseSequence",
+    ),
+}
 
-    iods = get_sop_class_iod_map()
-    iod = iods.get(sop_class_uid) or iods[COMPREHENSIVE_SR]
-    modules = get_iod_module_map()[iod]
-    attributes = get_module_attribute_map()
-    tags: list[int] = []
-    for ie in ("Patient", "Study"):
-        for module in modules:
-            if module["ie"] != ie:
-                continue
-            for attribute in attributes[module["key"]]:
-                if len(attribute["path"]) == 0:
-                    tag = tag_for_keyword(str(attribute["keyword"]))
-                    if tag is not None:
-                        tags.append(int(tag))
-    return tuple(tags)
+_COPIED_TAGS: tuple[int, ...] = tuple(
+    int(tag_for_keyword(k))  # type: ignore[arg-type]
+    for keywords in PATIENT_AND_STUDY_MODULES.values()
+    for k in keywords
+)
 
 
 def references(refs: Sequence[InstanceRef]) -> bytes:
@@ -198,9 +299,10 @@ def result_header(
     meta.MediaStorageSOPInstanceUID = sop_instance_uid
     meta.TransferSyntaxUID = ExplicitVRLittleEndian
     ds.file_meta = meta
-    # Patient, General Study, Patient Study: copied; the caller's dataset is left unchanged
-    for tag in patient_and_study_tags(str(first.SOPClassUID)):
-        if tag in first:
+    # Patient, General Study, Patient Study...: copied; the caller's dataset is left unchanged
+    present = first.keys()
+    for tag in _COPIED_TAGS:
+        if tag in present:
             ds.add(first[tag])
     for keyword in TYPE2_FROM_SOURCE:
         if keyword not in ds:

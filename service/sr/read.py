@@ -68,6 +68,12 @@ def _text(value: Any) -> str:
     return str(value).strip()
 
 
+#: Codes already made, by (designator, value, meaning) as read: an SR repeats a few dozen codes
+#: many times, and Code is immutable so one instance serves every occurrence
+_CODES: dict[tuple[str, str, str], Code] = {}
+_CACHE_SIZE = 4096
+
+
 def read_code(seq: Any) -> Code | None:
     """First item of a code sequence as a Code (SRT normalised to SCT); None if unusable."""
     try:
@@ -82,8 +88,16 @@ def read_code(seq: Any) -> Code | None:
         )
         if not scheme or not value:
             return None
-        scheme, value = normalise(scheme, value)
-        return Code(value=value, scheme=scheme, meaning=_text(item.get("CodeMeaning")))
+        meaning = _text(item.get("CodeMeaning"))
+        key = (scheme, value, meaning)
+        found = _CODES.get(key)
+        if found is None:
+            scheme, value = normalise(scheme, value)
+            found = Code(value=value, scheme=scheme, meaning=meaning)
+            if len(_CODES) >= _CACHE_SIZE:
+                _CODES.clear()
+            _CODES[key] = found
+        return found
     except Exception:
         return None
 
@@ -538,6 +552,49 @@ def _sequence(
         items.append(item)
 
 
+_EXPLICIT_HEAD = struct.Struct("<HH2sH")  # tag, VR, 2-byte length (PS3.5 7.1.2)
+_IMPLICIT_HEAD = struct.Struct("<HHI")  # tag, 4-byte length (PS3.5 7.1.3)
+_LENGTH_32 = struct.Struct("<I")
+#: how a wanted element is decoded: a sequence, text in the default repertoire, text in the
+#: data set's character set, or another VR (_value)
+_SEQ, _DEFAULT_TEXT, _CHARSET_TEXT, _OTHER = range(4)
+_HOW: dict[int, tuple[str, str, bytes, int]] = {
+    tag: (
+        keyword,
+        vr,
+        vr.encode(),
+        _SEQ
+        if vr == "SQ"
+        else _DEFAULT_TEXT
+        if vr == "CS"
+        else _CHARSET_TEXT
+        if vr in ("SH", "LO", "UC")
+        else _OTHER,
+    )
+    for tag, (keyword, vr) in _WANTED.items()
+}
+
+
+#: decoded small sequence values (code sequences, mostly) by their bytes: the same few dozen
+#: recur in every SR.  The items are shared, so nothing may change a decoded item.
+_SMALL_SEQUENCES: dict[tuple[bytes, _Coding], list[_Item]] = {}
+_SMALL = 256
+
+
+def _small_sequence(buf: bytes, pos: int, after: int, coding: _Coding, depth: int) -> list[_Item]:
+    """The items of the defined-length sequence value ``buf[pos:after]``."""
+    if after - pos > _SMALL or depth > _MAX_ITEM_DEPTH - _SMALL // 8:
+        return _sequence(buf, pos, after, True, coding, True, depth)[0]
+    key = (buf[pos:after], coding)
+    items = _SMALL_SEQUENCES.get(key)
+    if items is None:
+        items = _sequence(buf, pos, after, True, coding, True, depth)[0]
+        if len(_SMALL_SEQUENCES) >= _CACHE_SIZE:
+            _SMALL_SEQUENCES.clear()
+        _SMALL_SEQUENCES[key] = items
+    return items
+
+
 def _elements(
     buf: bytes,
     pos: int,
@@ -554,41 +611,37 @@ def _elements(
     item = _Item()
     implicit = coding.implicit
     limit = end if stop is None else stop
-    while True:
-        if stop is not None and pos == stop:
-            return item, pos
+    how_of = _HOW.get
+    while pos != stop:
         if pos + 8 > limit:
             raise _NotPlain
-        group, elem = struct.unpack_from("<HH", buf, pos)
+        if implicit:
+            group, elem, length = _IMPLICIT_HEAD.unpack_from(buf, pos)
+            vr = None
+        else:
+            group, elem, vr, length = _EXPLICIT_HEAD.unpack_from(buf, pos)
         if group == 0xFFFE:
             if stop is None and elem == _ITEM_END and buf[pos + 4 : pos + 8] == b"\0\0\0\0":
                 return item, pos + 8
             raise _NotPlain
-        tag = group << 16 | elem
-        if implicit:
-            (length,) = struct.unpack_from("<I", buf, pos + 4)
-            vr = None
+        if implicit or vr in _SHORT_VRS:
             pos += 8
-        else:
-            vr = buf[pos + 4 : pos + 6]
-            if vr in _SHORT_VRS:
-                (length,) = struct.unpack_from("<H", buf, pos + 6)
-                pos += 8
-            elif vr in _KNOWN_VRS:
-                if pos + 12 > limit:
-                    raise _NotPlain
-                (length,) = struct.unpack_from("<I", buf, pos + 8)
-                pos += 12
-            else:
+        elif vr in _KNOWN_VRS:
+            if pos + 12 > limit:
                 raise _NotPlain
+            (length,) = _LENGTH_32.unpack_from(buf, pos + 8)
+            pos += 12
+        else:
+            raise _NotPlain
+        tag = group << 16 | elem
         if tag == _SPECIFIC_CHARACTER_SET:
             raise _NotPlain  # an item with its own character set
-        wanted = _WANTED.get(tag)
-        if wanted is not None and vr is not None and vr != _WANTED_VR_BYTES[tag]:
+        how = how_of(tag)
+        if how is not None and vr is not None and vr != how[2]:
             raise _NotPlain
         if length == _UNDEFINED:
-            if wanted is not None:
-                is_sequence = wanted[1] == "SQ"
+            if how is not None:
+                is_sequence = how[3] == _SEQ
             elif vr is not None:
                 is_sequence = vr == b"SQ"
             else:
@@ -598,19 +651,30 @@ def _elements(
                     is_sequence = False
             if not is_sequence:
                 raise _NotPlain
-            items, pos = _sequence(buf, pos, end, False, coding, keep and wanted is not None, depth)
-            if keep and wanted is not None:
-                item[wanted[0]] = items
+            items, pos = _sequence(buf, pos, end, False, coding, keep and how is not None, depth)
+            if keep and how is not None:
+                item[how[0]] = items
             continue
-        if pos + length > limit:
+        after = pos + length
+        if after > limit:
             raise _NotPlain
-        if keep and wanted is not None:
-            keyword, want_vr = wanted
-            if want_vr == "SQ":
-                item[keyword] = _sequence(buf, pos, pos + length, True, coding, True, depth)[0]
+        if keep and how is not None:
+            kind = how[3]
+            if kind == _SEQ:
+                item[how[0]] = _small_sequence(buf, pos, after, coding, depth)
+            elif kind == _OTHER or length == 0:
+                item[how[0]] = _value(how[1], buf[pos:after], coding)
             else:
-                item[keyword] = _value(want_vr, buf[pos : pos + length], coding)
-        pos += length
+                data = buf[pos:after]
+                if b"\\" in data or b"\x1b" in data:
+                    raise _NotPlain  # several values, or an escape sequence
+                try:
+                    text = data.decode("latin_1" if kind == _DEFAULT_TEXT else coding.codec)
+                except UnicodeError:
+                    raise _NotPlain from None
+                item[how[0]] = text.rstrip(" \x00")
+        pos = after
+    return item, pos
 
 
 def _value(vr: str, data: bytes, coding: _Coding) -> Any:

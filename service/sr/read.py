@@ -838,35 +838,48 @@ def _decodable_elements(buf: bytes, pos: int, end: int, stop: int | None, depth:
     if depth > _MAX_ITEM_DEPTH:
         raise _NotPlain
     limit = end if stop is None else stop
-    while True:
-        if stop is not None and pos == stop:
-            return pos
+    size_of = _NUMBER_SIZES.get
+    while pos != stop:
         if pos + 8 > limit:
             raise _NotPlain
-        group, elem = struct.unpack_from("<HH", buf, pos)
+        group, elem, vr, length = _EXPLICIT_HEAD.unpack_from(buf, pos)
         if group == 0xFFFE:
             if stop is None and elem == _ITEM_END and buf[pos + 4 : pos + 8] == b"\0\0\0\0":
                 return pos + 8
             raise _NotPlain
-        vr = buf[pos + 4 : pos + 6]
         if vr in _SHORT_VRS:
-            (length,) = struct.unpack_from("<H", buf, pos + 6)
             pos += 8
         elif vr in _KNOWN_VRS and vr != b"UN":
             if pos + 12 > limit:
                 raise _NotPlain
-            (length,) = struct.unpack_from("<I", buf, pos + 8)
+            (length,) = _LENGTH_32.unpack_from(buf, pos + 8)
             pos += 12
         else:
             raise _NotPlain  # unknown VR, or UN (pydicom may re-read it with another VR)
         if vr == b"SQ":
-            pos = _decodable_items(buf, pos, end, length, depth + 1)
+            small = length <= _SMALL and depth < _MAX_ITEM_DEPTH - _SMALL // 8
+            if small and pos + length <= limit:
+                value = buf[pos : pos + length]
+                if value not in _DECODABLE:
+                    _decodable_items(buf, pos, end, length, depth + 1)
+                    if len(_DECODABLE) >= _CACHE_SIZE:
+                        _DECODABLE.clear()
+                    _DECODABLE.add(value)
+                pos += length
+            else:
+                pos = _decodable_items(buf, pos, end, length, depth + 1)
             continue
         if length == _UNDEFINED or pos + length > limit:
             raise _NotPlain
-        if length % _NUMBER_SIZES.get(vr, 1):
+        size = size_of(vr)
+        if size is not None and length % size:
             raise _NotPlain
         pos += length
+    return pos
+
+
+#: small sequence values already stepped through without a problem (code sequences, mostly)
+_DECODABLE: set[bytes] = set()
 
 
 def _decodable_items(buf: bytes, pos: int, end: int, length: int, depth: int) -> int:

@@ -45,10 +45,11 @@ class Code(Frozen):
         return (self.scheme, self.value)
 
     def __eq__(self, other: object) -> bool:
-        return isinstance(other, Code) and self.key == other.key
+        # same as comparing .key, without making two tuples (called very often)
+        return isinstance(other, Code) and self.value == other.value and self.scheme == other.scheme
 
     def __hash__(self) -> int:
-        return hash(self.key)
+        return hash((self.scheme, self.value))
 
     def __str__(self) -> str:
         return f'({self.value}, {self.scheme}, "{self.meaning}")'

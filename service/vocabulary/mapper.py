@@ -117,6 +117,7 @@ class MappingTable(BaseModel):
     entries: tuple[MappingEntry, ...]
     digest: str
     _index: dict[tuple[str, str] | None, list[Rule]] = PrivateAttr(default_factory=dict)
+    _candidates: dict[tuple[str, str], list[Rule]] = PrivateAttr(default_factory=dict)
 
     def model_post_init(self, __context: object) -> None:
         def order(rules: list[Rule]) -> list[Rule]:
@@ -135,14 +136,22 @@ class MappingTable(BaseModel):
         self._index = dict(index)
 
     def candidates(self, concept: Code) -> list[Rule]:
-        site_named = [r for r in self._index.get(concept.key, []) if r.origin is RuleOrigin.site]
-        std_named = [r for r in self._index.get(concept.key, []) if r.origin is RuleOrigin.standard]
-        return (
+        key = concept.key
+        known = self._candidates.get(key)  # the table never changes: one list per concept
+        if known is not None:
+            return known
+        index = self._index
+        site_named = [r for r in index.get(key, []) if r.origin is RuleOrigin.site]
+        std_named = [r for r in index.get(key, []) if r.origin is RuleOrigin.standard]
+        found = (
             site_named
-            + self._index.get(("__any__", "site"), [])
+            + index.get(("__any__", "site"), [])
             + std_named
-            + self._index.get(("__any__", "std"), [])
+            + index.get(("__any__", "std"), [])
         )
+        if len(self._candidates) < 4096:
+            self._candidates[key] = found
+        return found
 
     def match(self, obs: Observation) -> Rule | None:
         for rule in self.candidates(obs.concept):

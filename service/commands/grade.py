@@ -67,6 +67,28 @@ class _Job(NamedTuple):
     out_dir: Path | None
     pdf: bool
     page_size: str
+    json_lines: bool = False  # the run prints JSON lines (made by the workers)
+
+
+class _Graded(NamedTuple):
+    """One graded file as handed back: its row, or (JSON mode) only its status and JSON line,
+    so that the workers, not the printing process, turn rows into text."""
+
+    rejected: bool
+    row: dict | None
+    line: str | None
+
+
+def _json_line(row: dict) -> str:
+    return json.dumps(row, ensure_ascii=False)
+
+
+def _graded_file(path: Path, job: _Job) -> _Graded:
+    row = grade_one(path, job)
+    rejected = row["status"] == GradeStatus.rejected.value
+    if job.json_lines:
+        return _Graded(rejected, None, _json_line(row))
+    return _Graded(rejected, row, None)
 
 
 _WORKER_JOB: _Job | None = None
@@ -77,9 +99,9 @@ def _init_worker(job: _Job) -> None:
     _WORKER_JOB = job
 
 
-def _grade_in_worker(path: Path) -> dict:
+def _grade_in_worker(path: Path) -> _Graded:
     assert _WORKER_JOB is not None
-    return grade_one(path, _WORKER_JOB)
+    return _graded_file(path, _WORKER_JOB)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -97,6 +119,7 @@ def run(args: argparse.Namespace) -> int:
         out_dir=args.out,
         pdf=args.pdf,
         page_size=args.page_size,
+        json_lines=args.json,
     )
     if args.out:
         args.out.mkdir(parents=True, exist_ok=True)
@@ -106,28 +129,32 @@ def run(args: argparse.Namespace) -> int:
         return 1
     rows: list[dict[str, Any]] = []
     any_rejected = False
-    for row in _graded(paths, job, args.jobs or os.cpu_count() or 1):
-        any_rejected |= row["status"] == GradeStatus.rejected.value
-        rows.append(row)
-        if args.json:
-            print(json.dumps(row, ensure_ascii=False), flush=True)
+    for done in _graded(paths, job, args.jobs or os.cpu_count() or 1):
+        any_rejected |= done.rejected
+        if done.line is not None:
+            print(done.line, flush=True)
+        elif done.row is not None:
+            rows.append(done.row)
     if not args.json:
         print_table(rows)
     return 1 if any_rejected else 0
 
 
-def _graded(paths: list[Path], job: _Job, jobs: int) -> Iterator[dict]:
-    """Rows in input order; several files at a time in worker processes when asked (each
+def _graded(paths: list[Path], job: _Job, jobs: int) -> Iterator[_Graded]:
+    """Results in input order; several files at a time in worker processes when asked (each
     worker inherits the loaded mapping table; results are written by the workers)."""
     jobs = min(jobs, len(paths))
     if jobs <= 1 or "fork" not in multiprocessing.get_all_start_methods():
-        yield from (grade_one(p, job) for p in paths)
+        yield from (_graded_file(p, job) for p in paths)
         return
     context = multiprocessing.get_context("fork")
+    # files go to the workers in small batches (one round trip per batch, not per file) while
+    # keeping the batches small enough that both workers stay busy to the end
+    chunk = max(1, min(16, len(paths) // (jobs * 8)))
     with ProcessPoolExecutor(
         jobs, mp_context=context, initializer=_init_worker, initargs=(job,)
     ) as pool:
-        yield from pool.map(_grade_in_worker, paths)
+        yield from pool.map(_grade_in_worker, paths, chunksize=chunk)
 
 
 def grade_one(path: Path, job: _Job) -> dict:

@@ -58,6 +58,9 @@ class StudyOutcome(Frozen):
     measurements: Measurements | None = None
     assessments: AssessmentSet | None = None
     result: Dataset | None = None  # the result SR, ready to store or send
+    #: sources the reader could not use, as (SOP Instance UID, reason); the study is graded
+    #: from the others (rejected only when none is usable)
+    set_aside: tuple[tuple[str, str], ...] = ()
 
     @property
     def assessment(self) -> Assessment | None:
@@ -132,7 +135,11 @@ def grade_study(
     content_datetime: datetime | None = None,
 ) -> StudyOutcome:
     """Grade the SRs of one study together.  Never raises for bad input: returns a ``rejected``
-    outcome with the reason instead."""
+    outcome with the reason instead.
+
+    A source the reader refuses (not an echo measurement SR, damaged, ...) is set aside and
+    named in ``set_aside``; the study is graded from the others and rejected only when no
+    source is usable (with the reader's reason when there was a single source)."""
     from service.grading import assess
     from service.grading.compare import assess_all
     from service.sr.read import read_document
@@ -142,16 +149,26 @@ def grade_study(
     if not datasets:
         return StudyOutcome(status=GradeStatus.rejected, reason="no source objects")
     documents: list[SourceDocument] = []
+    usable: list[Dataset] = []
+    set_aside: list[tuple[str, str]] = []
     for ds in datasets:
         try:
             documents.append(read_document(ds))
         except RejectedInput as exc:
-            return StudyOutcome(status=GradeStatus.rejected, reason=str(exc))
+            set_aside.append((_instance_uid(ds), str(exc)))
+        else:
+            usable.append(ds)
+    if not documents:
+        reason = set_aside[0][1]
+        if len(set_aside) > 1:
+            reason = "no usable source: " + "; ".join(why for _, why in set_aside)
+        return StudyOutcome(status=GradeStatus.rejected, reason=reason, set_aside=tuple(set_aside))
     studies = {d.study_instance_uid for d in documents}
     if len(studies) != 1:
         return StudyOutcome(
             status=GradeStatus.rejected,
             reason=f"sources belong to {len(studies)} different studies; grading is per study",
+            set_aside=tuple(set_aside),
         )
     if table is None:
         table = load_mapping_table(site_mapping_files)
@@ -168,6 +185,7 @@ def grade_study(
             study_instance_uid=documents[0].study_instance_uid,
             documents=tuple(documents),
             measurements=measurements,
+            set_aside=tuple(set_aside),
         )
     context = effective_context(documents, options.context)
     if options.compare:
@@ -181,7 +199,7 @@ def grade_study(
         documents, options, table.digest, primary.rule_set_version
     )
     result = build_result_sr(
-        list(datasets),
+        usable,
         assessments,
         measurements,
         sop_instance_uid=instance_uid,
@@ -199,7 +217,16 @@ def grade_study(
         measurements=measurements,
         assessments=assessments,
         result=result,
+        set_aside=tuple(set_aside),
     )
+
+
+def _instance_uid(ds: Dataset) -> str:
+    """The SOP Instance UID of a source, "" when it has none or it cannot be decoded."""
+    try:
+        return str(ds.get("SOPInstanceUID", "") or "")
+    except Exception:
+        return ""
 
 
 def build_summary(

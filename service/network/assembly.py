@@ -1,40 +1,69 @@
 """Study assembly: wait for a study's settle window, then grade all its objects together.
 
 One scheduler thread watches the journal for studies whose settle window is over and hands
-each to a small pool of grading threads.  Grading reads every spooled object of the study
-(also those graded before: a late SR triggers a re-grade of the whole study, so the merged
-result uses all sources, the more recently created SR winning per measure), calls the grading
-function, stores the result SR durably in the spool and records it with its deliveries in the
-journal in one transaction.  When a destination of the study asks for it (``summary_pdf``), the
-one-page summary (Encapsulated PDF) is built too and recorded as a companion of the result: it
-is delivered right after the result SR to those destinations and to the results folder.  The
-network threads never do any of this.
+each to one of ``assembly.workers`` grading slots.  The per-study work (read every spooled
+object of the study, grade, encode the result SR, and the one-page summary PDF when a
+destination of the study asks for it, ``summary_pdf``) runs in a pool of grading processes
+(:mod:`service.network.grading_worker`), so the listener's network threads keep this
+process's interpreter to themselves and every core is used.  Grading reads every object of the
+study, also those graded before: a late SR triggers a re-grade of the whole study, so the
+merged result uses all sources, the more recently created SR winning per measure.
+
+Back in this process, the grading slot stores the result SR (and the summary) durably in the
+spool and records it with its deliveries in the journal in one transaction; the summary is
+recorded as a companion of the result, delivered right after it to the destinations that want
+it and to the results folder.  A grading process that dies (killed, out of memory) never loses
+the study: the claim is given back, the pool is replaced and the study graded again; a study
+that keeps killing its grading process fails with that reason.  An injected grading function
+(tests) runs in this process, on the grading slot's thread.  The network threads never do any
+of this.
 """
 
 from __future__ import annotations
 
 import logging
+import multiprocessing
 import threading
 import time
 from collections.abc import Callable, Sequence
-from concurrent.futures import Future, ThreadPoolExecutor
-from io import BytesIO
-from pathlib import Path
+from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
 from typing import Any, Protocol
 
-import pydicom
 from pydicom import Dataset
-from pydicom.dataset import FileMetaDataset
-from pydicom.uid import PYDICOM_IMPLEMENTATION_UID, ExplicitVRLittleEndian
 
 from service.config import Config
 from service.model import InstanceRef
+from service.network.grading_worker import (
+    PRELOAD,
+    EncodedObject,
+    GradeJob,
+    GradeRecord,
+    TableCache,
+    encode_part10,
+    grade_in_worker,
+    init_worker,
+    run_job,
+    warm_up,
+)
 from service.observability.logs import event
 from service.observability.metrics import Metrics
 from service.store.journal import FOLDER_DESTINATION, Companion, Journal, NewResult, StudyClaim
 from service.store.spool import Spool
 
 log = logging.getLogger("diastolic_sr.assembly")
+
+__all__ = [
+    "Assembler",
+    "GradeFunction",
+    "destination_targets",
+    "encode_part10",
+    "grade_options",
+    "summary_targets",
+]
+
+#: a study whose grading process died this many times is failed instead of graded again
+MAX_WORKER_CRASHES = 3
 
 
 class GradeFunction(Protocol):
@@ -50,32 +79,8 @@ class GradeFunction(Protocol):
     ) -> Any: ...
 
 
-def default_grade_fn() -> GradeFunction:
-    from service.pipeline import grade_study
-
-    return grade_study
-
-
-def _stamp(path: Path) -> tuple[int, int]:
-    """(modification time, size) of a file; (0, -1) when it cannot be read (the loader then
-    reports the problem)."""
-    try:
-        st = path.stat()
-    except OSError:
-        return (0, -1)
-    return (st.st_mtime_ns, st.st_size)
-
-
-def screen_with_reader(ds: Dataset) -> str | None:
-    """Why the SR reader refuses ``ds`` as a source, or None when it reads it."""
-    from service.errors import RejectedInput
-    from service.sr.read import read_document
-
-    try:
-        read_document(ds)
-    except RejectedInput as exc:
-        return str(exc)
-    return None
+class WorkerCrashed(Exception):
+    """The grading process running a study ended without an answer."""
 
 
 def grade_options(config: Config, calling_ae: str) -> Any:
@@ -114,18 +119,26 @@ def destination_targets(config: Config, calling_ae: str) -> list[tuple[str, str]
     return out
 
 
-def encode_part10(ds: Dataset) -> bytes:
-    """A result dataset as a Part 10 file (file meta added when missing)."""
-    if not getattr(ds, "file_meta", None) or "TransferSyntaxUID" not in ds.file_meta:
-        meta = FileMetaDataset()
-        meta.MediaStorageSOPClassUID = ds.SOPClassUID
-        meta.MediaStorageSOPInstanceUID = ds.SOPInstanceUID
-        meta.TransferSyntaxUID = ExplicitVRLittleEndian
-        meta.ImplementationClassUID = PYDICOM_IMPLEMENTATION_UID
-        ds.file_meta = meta
-    buf = BytesIO()
-    ds.save_as(buf, enforce_file_format=True)
-    return buf.getvalue()
+def _prestart(pool: ProcessPoolExecutor, n: int) -> None:
+    """Start the ``n`` processes of ``pool`` (the pool starts one per task it is given while
+    none is idle)."""
+    try:
+        for _ in range(n):
+            pool.submit(warm_up)
+    except Exception:  # shut down meanwhile, or broken: the grading slots deal with it
+        pass
+
+
+def _process_context() -> Any:
+    """A start method that is safe in a process with threads: the fork server (its grading
+    processes are forked from a clean single-threaded server that imported the pipeline
+    once), or spawn where there is no fork server."""
+    methods = multiprocessing.get_all_start_methods()
+    if "forkserver" in methods:
+        ctx = multiprocessing.get_context("forkserver")
+        ctx.set_forkserver_preload(list(PRELOAD))
+        return ctx
+    return multiprocessing.get_context("spawn")
 
 
 class Assembler:
@@ -138,20 +151,12 @@ class Assembler:
         grade_fn: GradeFunction | None = None,
         on_result: Callable[[], None] = lambda: None,
         poll_seconds: float = 0.5,
-        screen: Callable[[Dataset], str | None] | str | None = "default",
         metrics: Metrics | None = None,
     ) -> None:
         self.config = config
-        #: the mapping table, loaded once and again only when a mapping file changes
-        self._table: Any = None
-        self._table_key: tuple = ()
+        #: the mapping table of the in-process grading function (grading processes keep theirs)
+        self._tables = TableCache()
         self.metrics = metrics or Metrics()
-        #: says why an object cannot be a source (or None); with the real pipeline, objects
-        #: that are not readable echo SRs (e.g. an empty SR sent along) are set aside, with a
-        #: note in the journal, instead of failing the whole study
-        if screen == "default":
-            screen = screen_with_reader if grade_fn is None else None
-        self.screen: Callable[[Dataset], str | None] | None = screen  # type: ignore[assignment]
         self.journal = journal
         self.spool = spool
         self._grade_fn = grade_fn
@@ -160,21 +165,52 @@ class Assembler:
         self._wake = threading.Event()
         self._stop = threading.Event()
         self._workers = config.assembly.workers
-        self._pool = ThreadPoolExecutor(self._workers, thread_name_prefix="grade")
+        #: studies in hand at once, each on a thread of its own that waits for its grading
+        #: process, then spools and journals the outcome (or grades it, with an injected
+        #: grading function).  Twice the grading processes: each has its next study queued
+        #: while the outcome of its last is being stored.
+        self._slots = self._workers if grade_fn is not None else 2 * self._workers
+        self._pool = ThreadPoolExecutor(self._slots, thread_name_prefix="grade")
+        self._processes: ProcessPoolExecutor | None = None
+        #: a pipe only this process writes to: grading processes end when it closes
+        self._lifeline: tuple[Any, Any] | None = None
+        self._processes_lock = threading.Lock()
         self._inflight: set[Future[None]] = set()
         #: storage-error retries per study (back-off as for deliveries)
         self._io_retries: dict[str, int] = {}
+        #: grading processes lost per study
+        self._crashes: dict[str, int] = {}
         self._inflight_lock = threading.Lock()
         self._thread = threading.Thread(target=self._run, name="assembler", daemon=True)
 
     @property
-    def grade_fn(self) -> GradeFunction:
-        if self._grade_fn is None:
-            self._grade_fn = default_grade_fn()
-        return self._grade_fn
+    def in_process(self) -> bool:
+        """An injected grading function runs in this process."""
+        return self._grade_fn is not None
 
     def start(self) -> None:
+        if not self.in_process:
+            with self._processes_lock:
+                self._processes = self._new_processes()
         self._thread.start()
+
+    def _new_processes(self) -> ProcessPoolExecutor:
+        """A pool of grading processes, started (and their start-up work begun) now rather
+        than when the first study arrives; in the background, so that the node does not wait
+        for them."""
+        context = _process_context()
+        if self._lifeline is None:
+            self._lifeline = context.Pipe(duplex=False)
+        pool = ProcessPoolExecutor(
+            self._workers,
+            mp_context=context,
+            initializer=init_worker,
+            initargs=(tuple(self.config.mapping_paths), self._lifeline[0]),
+        )
+        threading.Thread(
+            target=_prestart, args=(pool, self._workers), name="grade-start", daemon=True
+        ).start()
+        return pool
 
     def wake(self) -> None:
         self._wake.set()
@@ -185,6 +221,14 @@ class Assembler:
         self._wake.set()
         self._thread.join(timeout)
         self._pool.shutdown(wait=True, cancel_futures=True)
+        with self._processes_lock:
+            processes, self._processes = self._processes, None
+        if processes is not None:
+            processes.shutdown(wait=True, cancel_futures=True)
+        if self._lifeline is not None:
+            for end in self._lifeline:
+                end.close()
+            self._lifeline = None
 
     # -- scheduling -------------------------------------------------------------------------------
 
@@ -204,7 +248,7 @@ class Assembler:
     def _schedule(self) -> bool:
         """Claim due studies for free workers; True when a worker is still free."""
         with self._inflight_lock:
-            free = self._workers - len(self._inflight)
+            free = self._slots - len(self._inflight)
         if free <= 0 or self._stop.is_set():
             return False
         claims = self.journal.claim_due(limit=free)
@@ -231,19 +275,55 @@ class Assembler:
             self.grade(claim)
             self.metrics.processing.observe(time.monotonic() - started)
             self._io_retries.pop(claim.study_uid, None)
+            self._crashes.pop(claim.study_uid, None)
         except OSError as exc:
             # the node's own storage failed (disk full, ...), not the input: give the study
             # back and try again after a back-off, without anyone having to re-queue it
             self._retry_later(claim, exc)
+        except WorkerCrashed as exc:
+            self._worker_crashed(claim, exc)
         except Exception as exc:
-            self.metrics.studies.labels(outcome="error").inc()
-            log.exception("grading study %s failed", claim.study_uid)
-            try:
-                self.journal.finish_grading(
-                    claim, result=None, failure=f"internal error while grading: {exc}"
-                )
-            except Exception:  # the journal itself failed: the claim resumes on restart
-                log.exception("cannot record the failure of study %s", claim.study_uid)
+            self._failed(claim, exc)
+
+    def _failed(self, claim: StudyClaim, exc: Exception) -> None:
+        self.metrics.studies.labels(outcome="error").inc()
+        log.exception("grading study %s failed", claim.study_uid, exc_info=exc)
+        try:
+            self.journal.finish_grading(
+                claim, result=None, failure=f"internal error while grading: {exc}"
+            )
+        except Exception:  # the journal itself failed: the claim resumes on restart
+            log.exception("cannot record the failure of study %s", claim.study_uid)
+
+    def _worker_crashed(self, claim: StudyClaim, exc: WorkerCrashed) -> None:
+        """Give the study back (graded again at once), unless it keeps killing its grading
+        process: then it fails with that reason."""
+        if self._stop.is_set():
+            self._release(claim)
+            return
+        n = self._crashes.get(claim.study_uid, 0) + 1
+        self._crashes[claim.study_uid] = n
+        if n >= MAX_WORKER_CRASHES:
+            self._crashes.pop(claim.study_uid, None)
+            self._failed(claim, WorkerCrashed(f"{exc} ({n} times)"))
+            return
+        self.metrics.studies.labels(outcome="retry").inc()
+        event(
+            "study_retry",
+            f"study {claim.study_uid}: {exc}; graded again",
+            level=logging.ERROR,
+            study_uid=claim.study_uid,
+            attempt=n,
+            retry_in_seconds=0,
+            reason=str(exc),
+        )
+        self._release(claim)
+
+    def _release(self, claim: StudyClaim, retry_at: float | None = None) -> None:
+        try:
+            self.journal.release_claim(claim, retry_at=retry_at)
+        except Exception:  # the journal itself failed: the claim resumes on restart
+            log.exception("cannot give back study %s", claim.study_uid)
 
     def _retry_later(self, claim: StudyClaim, exc: OSError) -> None:
         n = self._io_retries.get(claim.study_uid, 0) + 1
@@ -261,39 +341,71 @@ class Assembler:
             retry_in_seconds=delay,
             reason=f"{type(exc).__name__}: {exc}",
         )
-        try:
-            self.journal.release_claim(claim, retry_at=time.time() + delay)
-        except Exception:  # the journal itself failed: the claim resumes on restart
-            log.exception("cannot give back study %s for a retry", claim.study_uid)
+        self._release(claim, retry_at=time.time() + delay)
 
     def mapping_table(self) -> Any:
-        """The standard and site mapping table in force.  Parsed once, not per study; parsed
-        again when the configured files or their contents change (e.g. after a SIGHUP)."""
-        from service.vocabulary.mapper import load_mapping_table
+        """The standard and site mapping table in force for the in-process grading function.
+        Parsed once, not per study; parsed again when the configured files or their contents
+        change (e.g. after a SIGHUP).  Grading processes keep their own, the same way."""
+        return self._tables.get(tuple(self.config.mapping_paths))
 
-        paths = tuple(self.config.mapping_paths)
-        key = tuple((str(p), *_stamp(p)) for p in paths)
-        if self._table is None or key != self._table_key:
-            self._table = load_mapping_table(paths)
-            self._table_key = key
-        return self._table
+    def job(self, claim: StudyClaim, *, summary: bool) -> GradeJob:
+        """What grading ``claim`` needs, as sent to a grading process."""
+        predecessors = tuple(
+            InstanceRef(
+                study_instance_uid=r["study_uid"],
+                series_instance_uid=r["series_uid"],
+                sop_class_uid=r["sop_class_uid"],
+                sop_instance_uid=r["result_uid"],
+            )
+            for r in claim.earlier_results
+        )
+        spooled = frozenset(
+            r["result_uid"]
+            for r in claim.earlier_results
+            if self.spool.result_path(claim.study_uid, r["result_uid"]).exists()
+        )
+        return GradeJob(
+            study_uid=claim.study_uid,
+            object_uids=tuple(claim.object_uids),
+            object_paths=tuple(claim.object_paths),
+            options=grade_options(self.config, claim.calling_ae),
+            mapping_paths=tuple(self.config.mapping_paths),
+            predecessors=predecessors,
+            spooled=spooled,
+            summary_page_size=self.config.delivery.summary_page_size if summary else None,
+            uid_root=self.config.grading.uid_root or None,
+        )
+
+    def _run_job(self, job: GradeJob) -> GradeRecord:
+        if self._grade_fn is not None:
+            return run_job(job, self._grade_fn, self.mapping_table())
+        with self._processes_lock:
+            pool = self._processes
+        if pool is None:
+            raise WorkerCrashed("the grading processes are stopped")
+        try:
+            return pool.submit(grade_in_worker, job).result()
+        except BrokenProcessPool as exc:
+            self._replace_processes(pool)
+            raise WorkerCrashed(f"the grading process ended unexpectedly ({exc})") from None
+
+    def _replace_processes(self, broken: ProcessPoolExecutor) -> None:
+        """A new pool for the broken one (once, whichever grading slot notices first)."""
+        with self._processes_lock:
+            if self._processes is not broken:
+                return
+            self._processes = None if self._stop.is_set() else self._new_processes()
+        broken.shutdown(wait=False, cancel_futures=True)
+        log.error("a grading process ended unexpectedly; grading processes restarted")
 
     def grade(self, claim: StudyClaim) -> None:
-        notes: dict[str, str] = {}
-        usable = []
-        for uid, path in zip(claim.object_uids, claim.object_paths, strict=True):
-            try:
-                ds = pydicom.dcmread(path)
-            except Exception as exc:  # spooled file unreadable: say so, do not guess
-                problem: str | None = f"spooled file unreadable ({type(exc).__name__}: {exc})"
-            else:
-                problem = self.screen(ds) if self.screen is not None else None
-            if problem:
-                notes[uid] = f"set aside: {problem}"
-                log.warning("study %s: object %s set aside: %s", claim.study_uid, uid, problem)
-            else:
-                usable.append((uid, ds))
-        if not usable:
+        summary_to = summary_targets(self.config, claim.calling_ae)
+        record = self._run_job(self.job(claim, summary=bool(summary_to)))
+        notes = record.notes
+        for uid, note in notes.items():
+            log.warning("study %s: object %s %s", claim.study_uid, uid, note)
+        if not record.sources:
             self.journal.finish_grading(
                 claim,
                 result=None,
@@ -302,54 +414,30 @@ class Assembler:
             )
             self._graded(claim, "rejected", reason="no usable source")
             return
-        datasets = [ds for _, ds in usable]
-        predecessors = [
-            InstanceRef(
-                study_instance_uid=r["study_uid"],
-                series_instance_uid=r["series_uid"],
-                sop_class_uid=r["sop_class_uid"],
-                sop_instance_uid=r["result_uid"],
-            )
-            for r in claim.earlier_results
-        ]
-        outcome = self.grade_fn(
-            datasets,
-            grade_options(self.config, claim.calling_ae),
-            table=self.mapping_table(),
-            predecessors=predecessors,
-        )
-        status = str(getattr(outcome.status, "value", outcome.status))
-        if outcome.result is None:
-            reason = outcome.reason or status
+        status = record.status
+        if record.result is None:
+            reason = record.reason or status
             self.journal.finish_grading(
                 claim, result=None, failure=f"{status}: {reason}", object_notes=notes
             )
             self._graded(claim, status, reason=reason)
             return
-        ds: Dataset = outcome.result
-        result_uid = str(ds.SOPInstanceUID)
-        known = {r["result_uid"] for r in claim.earlier_results}
-        path = self.spool.result_path(claim.study_uid, result_uid)
-        if result_uid not in known or not path.exists():
-            path = self.spool.write_result(claim.study_uid, result_uid, encode_part10(ds))
-        assessment = getattr(outcome, "assessment", None)
+        result_uid = record.result.uid
+        path = self._spool(claim, record.result)
+        predecessors = [r["result_uid"] for r in claim.earlier_results]
         new = NewResult(
             result_uid=result_uid,
-            series_uid=str(ds.SeriesInstanceUID),
-            sop_class_uid=str(ds.SOPClassUID),
+            series_uid=record.result.series_uid,
+            sop_class_uid=record.result.sop_class_uid,
             path=path,
             status=status,
-            guideline=None if assessment is None else str(assessment.guideline.value),
-            grade=None if assessment is None else str(assessment.grade.value),
-            filling_pressure=(
-                None if assessment is None else str(assessment.filling_pressure.value)
-            ),
-            sources=tuple(uid for uid, _ in usable),
-            predecessors=tuple(
-                p.sop_instance_uid for p in predecessors if p.sop_instance_uid != result_uid
-            ),
+            guideline=record.guideline,
+            grade=record.grade,
+            filling_pressure=record.filling_pressure,
+            sources=record.sources,
+            predecessors=tuple(p for p in predecessors if p != result_uid),
         )
-        companions = self._summary(claim, outcome, datasets)
+        companions = self._summary(claim, record, summary_to)
         queued = self.journal.finish_grading(
             claim,
             result=new,
@@ -361,7 +449,7 @@ class Assembler:
             claim,
             status,
             result_uid=result_uid,
-            objects=len(datasets),
+            objects=len(record.sources),
             grade=new.grade,
             filling_pressure=new.filling_pressure,
             guideline=new.guideline,
@@ -370,6 +458,18 @@ class Assembler:
         )
         if queued:
             self._on_result()
+
+    def _spool(self, claim: StudyClaim, obj: EncodedObject, *, keep: bool = False) -> Any:
+        """The result object durably in the spool; its path.  ``keep``: a file already there
+        is not written again."""
+        path = self.spool.result_path(claim.study_uid, obj.uid)
+        if obj.data is None:  # spooled by an earlier grading of this study
+            if not path.exists():
+                raise FileNotFoundError(f"spooled result {path} vanished")
+            return path
+        if keep and path.exists():
+            return path
+        return self.spool.write_result(claim.study_uid, obj.uid, obj.data)
 
     def _graded(self, claim: StudyClaim, outcome: str, **fields: Any) -> None:
         self.metrics.studies.labels(outcome=outcome).inc()
@@ -383,47 +483,36 @@ class Assembler:
             **{k: v for k, v in fields.items() if v not in (None, "")},
         )
 
-    def _summary(self, claim: StudyClaim, outcome: Any, datasets: list[Dataset]) -> list[Companion]:
+    def _summary(
+        self, claim: StudyClaim, record: GradeRecord, targets: list[tuple[str, str]]
+    ) -> list[Companion]:
         """The summary PDF as a companion of the result, when anyone wants it.  A summary that
-        cannot be built is logged and skipped: the result SR goes out regardless."""
-        targets = summary_targets(self.config, claim.calling_ae)
+        could not be built is logged and skipped: the result SR goes out regardless."""
         if not targets:
             return []
-        from service.pipeline import build_summary
-
-        try:
-            pdf = build_summary(
-                outcome,
-                datasets,
-                page_size=self.config.delivery.summary_page_size,
-                uid_root=self.config.grading.uid_root or None,
-            )
-        except Exception as exc:
+        if record.summary_error:
             log.error(
-                "study %s: summary PDF not built (%s: %s); the result SR is sent without it",
+                "study %s: summary PDF not built (%s); the result SR is sent without it",
                 claim.study_uid,
-                type(exc).__name__,
-                exc,
+                record.summary_error,
             )
             return []
-        if pdf is None:
+        pdf, result = record.summary, record.result
+        if pdf is None or result is None:
             return []
-        uid = str(pdf.SOPInstanceUID)
-        path = self.spool.result_path(claim.study_uid, uid)
-        if not path.exists():
-            path = self.spool.write_result(claim.study_uid, uid, encode_part10(pdf))
+        path = self._spool(claim, pdf, keep=True)
         return [
             Companion(
                 result=NewResult(
-                    result_uid=uid,
-                    series_uid=str(pdf.SeriesInstanceUID),
-                    sop_class_uid=str(pdf.SOPClassUID),
+                    result_uid=pdf.uid,
+                    series_uid=pdf.series_uid,
+                    sop_class_uid=pdf.sop_class_uid,
                     path=path,
                     status="summary",
                     guideline=None,
                     grade=None,
                     filling_pressure=None,
-                    sources=(str(outcome.result.SOPInstanceUID),),
+                    sources=(result.uid,),
                     predecessors=(),
                 ),
                 destinations=tuple(targets),

@@ -1,0 +1,326 @@
+"""The per-study work of the node, run in grading processes: read the spooled objects of a
+study, grade them together, encode the result SR (and the summary PDF when wanted) as Part 10
+bytes.  Nothing here writes a file or touches the journal: the node's process does that with
+the :class:`GradeRecord` this returns, so durability and the journal stay in one place.
+
+Everything crossing the process boundary is small and picklable: a :class:`GradeJob` in, a
+:class:`GradeRecord` out (the result's bytes, the fields the journal records, the notes on
+objects set aside).  The same :func:`run_job` runs in the node's own process when a grading
+function is injected (tests).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import signal
+import threading
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from io import BytesIO
+from pathlib import Path
+from typing import Any
+
+#: the grading processes give way to the node's network threads when both want a core
+WORKER_NICENESS = 5
+
+
+@dataclass(frozen=True)
+class GradeJob:
+    """One claimed study, as the grading process needs it."""
+
+    study_uid: str
+    object_uids: tuple[str, ...]
+    object_paths: tuple[Path, ...]
+    options: Any  # service.pipeline.GradeOptions
+    mapping_paths: tuple[Path, ...]
+    predecessors: tuple[Any, ...] = ()  # service.model.InstanceRef, oldest first
+    #: result UIDs already spooled for this study: not encoded again
+    spooled: frozenset[str] = frozenset()
+    #: build the summary PDF (page size), or None
+    summary_page_size: str | None = None
+    uid_root: str | None = None
+
+
+@dataclass(frozen=True)
+class EncodedObject:
+    """A result object ready to spool: its identity and (unless already spooled) its bytes."""
+
+    uid: str
+    series_uid: str
+    sop_class_uid: str
+    data: bytes | None
+
+
+@dataclass(frozen=True)
+class GradeRecord:
+    """What the node needs to record the outcome of a :class:`GradeJob`."""
+
+    status: str
+    reason: str = ""
+    #: per object UID, why it was set aside ("set aside: ..."), in the claim's order
+    notes: dict[str, str] = field(default_factory=dict)
+    #: object UIDs the result was graded from
+    sources: tuple[str, ...] = ()
+    result: EncodedObject | None = None
+    guideline: str | None = None
+    grade: str | None = None
+    filling_pressure: str | None = None
+    summary: EncodedObject | None = None
+    #: why the summary PDF was not built ("" when it was, or was not wanted)
+    summary_error: str = ""
+
+    @property
+    def no_usable_source(self) -> bool:
+        return not self.sources and bool(self.notes)
+
+
+#: file meta elements the result SR encoder writes itself (PS3.10 Table 7.1-1): group length,
+#: version, media storage SOP class and instance, transfer syntax, implementation class/version
+_PLAIN_META = {0x00020000, 0x00020001, 0x00020002, 0x00020003, 0x00020010, 0x00020012, 0x00020013}
+
+
+def encode_part10(ds: Any) -> bytes:
+    """A result dataset as a Part 10 file (file meta added when missing).  A document with
+    plain explicit VR little endian file meta goes through the result SR encoder's writer
+    (the same bytes as pydicom's, faster)."""
+    import pydicom
+    from pydicom.dataset import FileMetaDataset
+    from pydicom.uid import PYDICOM_IMPLEMENTATION_UID, ExplicitVRLittleEndian
+
+    meta = getattr(ds, "file_meta", None)
+    if (
+        meta
+        and meta.get("TransferSyntaxUID") == ExplicitVRLittleEndian
+        and set(map(int, meta.keys())) <= _PLAIN_META
+        and meta.get("ImplementationClassUID", PYDICOM_IMPLEMENTATION_UID)
+        == PYDICOM_IMPLEMENTATION_UID
+        and meta.get("ImplementationVersionName", f"PYDICOM {pydicom.__version__}")
+        == f"PYDICOM {pydicom.__version__}"
+    ):
+        from service.sr.encode import part10
+
+        return part10(ds)
+    if not meta or "TransferSyntaxUID" not in meta:
+        meta = FileMetaDataset()
+        meta.MediaStorageSOPClassUID = ds.SOPClassUID
+        meta.MediaStorageSOPInstanceUID = ds.SOPInstanceUID
+        meta.TransferSyntaxUID = ExplicitVRLittleEndian
+        meta.ImplementationClassUID = PYDICOM_IMPLEMENTATION_UID
+        ds.file_meta = meta
+    buf = BytesIO()
+    ds.save_as(buf, enforce_file_format=True)
+    return buf.getvalue()
+
+
+def _stamp(path: Path) -> tuple[int, int]:
+    """(modification time, size) of a file; (0, -1) when it cannot be read (the loader then
+    reports the problem)."""
+    try:
+        st = path.stat()
+    except OSError:
+        return (0, -1)
+    return (st.st_mtime_ns, st.st_size)
+
+
+class TableCache:
+    """The standard and site mapping table in force: parsed once, again only when the
+    configured files or their contents change (e.g. after a SIGHUP)."""
+
+    def __init__(self) -> None:
+        self._table: Any = None
+        self._key: tuple = ()
+
+    def get(self, paths: Sequence[Path]) -> Any:
+        from service.vocabulary.mapper import load_mapping_table
+
+        key = tuple((str(p), *_stamp(Path(p))) for p in paths)
+        if self._table is None or key != self._key:
+            self._table = load_mapping_table(tuple(paths))
+            self._key = key
+        return self._table
+
+
+def run_job(job: GradeJob, grade_fn: Callable[..., Any], table: Any) -> GradeRecord:
+    """Grade one study.  Exceptions of the grading function propagate (the node records an
+    internal error); spooled files that cannot be read and sources the reader refuses are set
+    aside with a note."""
+    import pydicom
+
+    notes: dict[str, str] = {}
+    usable: list[tuple[str, Any]] = []
+    for uid, path in zip(job.object_uids, job.object_paths, strict=True):
+        try:
+            ds = pydicom.dcmread(path)
+        except Exception as exc:  # spooled file unreadable: say so, do not guess
+            notes[uid] = f"set aside: spooled file unreadable ({type(exc).__name__}: {exc})"
+        else:
+            usable.append((uid, ds))
+    outcome = None
+    if usable:
+        outcome = grade_fn(
+            [ds for _, ds in usable],
+            job.options,
+            table=table,
+            predecessors=list(job.predecessors),
+        )
+        # the reader's refusals, named by the data set's own SOP Instance UID
+        claim_uid = {_uid_of(ds): uid for uid, ds in usable}
+        for ds_uid, why in getattr(outcome, "set_aside", ()) or ():
+            notes[claim_uid.get(ds_uid, ds_uid)] = f"set aside: {why}"
+    notes = {uid: notes[uid] for uid in job.object_uids if uid in notes} | notes
+    sources = tuple(uid for uid, _ in usable if uid not in notes)
+    if outcome is None or not sources:
+        return GradeRecord(status="rejected", reason="no usable source", notes=notes)
+    status = str(getattr(outcome.status, "value", outcome.status))
+    if outcome.result is None:
+        return GradeRecord(
+            status=status, reason=outcome.reason or status, notes=notes, sources=sources
+        )
+    ds = outcome.result
+    result_uid = str(ds.SOPInstanceUID)
+    result = EncodedObject(
+        uid=result_uid,
+        series_uid=str(ds.SeriesInstanceUID),
+        sop_class_uid=str(ds.SOPClassUID),
+        data=None if result_uid in job.spooled else encode_part10(ds),
+    )
+    assessment = getattr(outcome, "assessment", None)
+    summary, summary_error = None, ""
+    if job.summary_page_size is not None:
+        used = [ds for uid, ds in usable if uid not in notes]
+        summary, summary_error = _summary(job, outcome, used)
+    return GradeRecord(
+        status=status,
+        notes=notes,
+        sources=sources,
+        result=result,
+        guideline=None if assessment is None else str(assessment.guideline.value),
+        grade=None if assessment is None else str(assessment.grade.value),
+        filling_pressure=None if assessment is None else str(assessment.filling_pressure.value),
+        summary=summary,
+        summary_error=summary_error,
+    )
+
+
+def _summary(job: GradeJob, outcome: Any, datasets: list[Any]) -> tuple[EncodedObject | None, str]:
+    """The summary PDF of a graded study; a summary that cannot be built is reported, never
+    raised (the result SR goes out regardless)."""
+    from service.pipeline import build_summary
+
+    try:
+        pdf = build_summary(
+            outcome, datasets, page_size=job.summary_page_size or "A4", uid_root=job.uid_root
+        )
+        if pdf is None:
+            return None, ""
+        uid = str(pdf.SOPInstanceUID)
+        data = None if uid in job.spooled else encode_part10(pdf)
+    except Exception as exc:
+        return None, f"{type(exc).__name__}: {exc}"
+    return EncodedObject(uid, str(pdf.SeriesInstanceUID), str(pdf.SOPClassUID), data), ""
+
+
+def _uid_of(ds: Any) -> str:
+    try:
+        return str(ds.get("SOPInstanceUID", "") or "")
+    except Exception:
+        return ""
+
+
+# -- inside a grading process ------------------------------------------------------------------
+
+_TABLES = TableCache()
+
+#: modules the grading needs (the pipeline imports them on first use), and the warm-up;
+#: imported once by the fork server, so that every grading process (also one replacing a
+#: crashed one) starts with them in place
+PRELOAD = (
+    "service.network.grading_worker",
+    "service.pipeline",
+    "service.grading",
+    "service.grading.compare",
+    "service.sr.read",
+    "service.sr.write",
+    "service.vocabulary.mapper",
+    "service.network.grading_warmup",
+)
+
+_warm = False
+
+
+def warm_up_pipeline() -> bool:
+    """Grade and encode one invented study (fictional "Harbour Vale Cardiac Centre"), so
+    that data the pipeline loads on first use is loaded now; once per process.  Returns
+    whether the pipeline ran; a failure here is left for the first real study to report."""
+    global _warm
+    if _warm:
+        return True
+    try:
+        from service.model import Measure
+        from service.pipeline import GradeOptions, grade_study
+        from service.sr.echo_builder import EchoItem, Patient, Study, build_echo_sr
+
+        values = {
+            "mitral_e": 80.0,
+            "mitral_a": 60.0,
+            "e_prime_septal": 6.0,
+            "e_prime_lateral": 8.0,
+            "tr_peak_velocity": 3.0,
+            "lavi": 40.0,
+            "lvef": 60.0,
+        }
+        ds = build_echo_sr(
+            [EchoItem(measure=Measure(k), value=v) for k, v in values.items()],
+            patient=Patient(name="Warmup^Harbourvale", id="HV-WARMUP"),
+            study=Study(seed="grading-warm-up"),
+        )
+        outcome = grade_study([ds], GradeOptions(), table=_TABLES.get(()))
+        if outcome.result is not None:
+            encode_part10(outcome.result)
+    except Exception:
+        return False
+    _warm = True
+    return True
+
+
+def init_worker(mapping_paths: tuple[Path, ...], lifeline: Any = None) -> None:
+    """Start-up of a grading process: give way to the network threads, ignore the terminal's
+    and the service manager's stop signals (the node stops its grading processes itself,
+    after the studies in progress), end at once when the node's process is gone (``lifeline``:
+    the reading end of a pipe only the node writes to), import the pipeline and parse the
+    mapping table now rather than on the first study."""
+    import importlib
+
+    with contextlib.suppress(OSError):
+        os.nice(WORKER_NICENESS)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    if lifeline is not None:
+        threading.Thread(target=_watch, args=(lifeline,), name="lifeline", daemon=True).start()
+    for name in PRELOAD:  # already there (and warm) when forked from the fork server
+        importlib.import_module(name)
+    warm_up_pipeline()
+    with contextlib.suppress(Exception):  # reported with the first study that needs it
+        _TABLES.get(mapping_paths)
+
+
+def _watch(lifeline: Any) -> None:
+    """Block until the node's end of the lifeline closes (the node ended, even by SIGKILL),
+    then end this process: a grading process never outlives its node."""
+    with contextlib.suppress(Exception):
+        while True:
+            lifeline.recv_bytes()
+    os._exit(0)
+
+
+def warm_up() -> int:
+    """A no-op task: submitting one per process starts them all at once."""
+    return os.getpid()
+
+
+def grade_in_worker(job: GradeJob) -> GradeRecord:
+    """:func:`run_job` with the real pipeline and this process's mapping table."""
+    from service.pipeline import grade_study
+
+    return run_job(job, grade_study, _TABLES.get(job.mapping_paths))

@@ -176,6 +176,8 @@ class DueDelivery:
     path: Path
     #: for a companion (the summary PDF): the result SR it goes with
     parent_uid: str | None = None
+    #: SOP Class UID of the result object
+    sop_class_uid: str = ""
 
 
 class Journal:
@@ -469,6 +471,7 @@ class Journal:
         now = time.time() if now is None else now
         rows = self._query(
             """SELECT d.id, d.result_uid, r.study_uid, d.destination, d.attempts, r.path,
+                      r.sop_class_uid,
                       (SELECT c.result_uid FROM companions c
                        WHERE c.companion_uid = d.result_uid LIMIT 1) AS parent_uid
                FROM deliveries d JOIN results r ON r.result_uid = d.result_uid
@@ -485,6 +488,7 @@ class Journal:
                 attempts=r["attempts"],
                 path=Path(r["path"]),
                 parent_uid=r["parent_uid"],
+                sop_class_uid=r["sop_class_uid"],
             )
             for r in rows
         ]

@@ -21,22 +21,30 @@ from __future__ import annotations
 
 import logging
 import re
+import struct
 from collections.abc import Callable
 from io import BytesIO
 from typing import Any
 
-from pydicom.filebase import DicomBytesIO
-from pydicom.filewriter import write_file_meta_info
+from pydicom import Dataset
+from pydicom.filereader import read_dataset
 from pydicom.uid import (
     DeflatedExplicitVRLittleEndian,
     ExplicitVRLittleEndian,
     ImplicitVRLittleEndian,
 )
-from pynetdicom import AE, ALL_TRANSFER_SYNTAXES, evt
+from pynetdicom import (
+    AE,
+    ALL_TRANSFER_SYNTAXES,
+    PYNETDICOM_IMPLEMENTATION_UID,
+    PYNETDICOM_IMPLEMENTATION_VERSION,
+    evt,
+)
 from pynetdicom.presentation import StoragePresentationContexts
 from pynetdicom.transport import ThreadedAssociationServer
 
 from service.config import Config
+from service.network.sender import no_delay
 from service.observability.logs import event
 from service.observability.metrics import Metrics
 from service.sr.read import structure_problem
@@ -97,13 +105,84 @@ def _body(event: Any) -> bytes:
     return bytes(raw.read())
 
 
+#: the last identifying attribute the listener reads, Study Instance UID (0020,000D); the
+#: grading processes decode the rest
+_LAST_IDENTIFYING_TAG = 0x0020000D
+#: what the listener reads: Specific Character Set, SOP Class UID, SOP Instance UID, Patient's
+#: Name, Patient ID, Study Instance UID (PS3.6 tags)
+_IDENTIFYING_TAGS = (0x00080005, 0x00080016, 0x00080018, 0x00100010, 0x00100020, 0x0020000D)
+
+
+def identifying_attributes(body: bytes, transfer_syntax: str) -> Dataset:
+    """The data set's attributes up to Study Instance UID (SOP Class and Instance UIDs, patient
+    identification, Study Instance UID), decoded; nothing after them is read.
+
+    Raises ValueError when the data set is cut short or damaged anywhere: pydicom returns the
+    items it found in a data set cut short inside a sequence, so every element, sequence and
+    item length is checked against the bytes that arrived (implicit or explicit VR little
+    endian; as pydicom does, the other VR encoding is accepted when the data set is in it)."""
+    other = _LE_SYNTAXES[1] if transfer_syntax == _LE_SYNTAXES[0] else _LE_SYNTAXES[0]
+    if structure_problem(body, transfer_syntax) and structure_problem(body, other):
+        broken = structure_problem(body, ExplicitVRLittleEndian)
+        raise ValueError(f"data set cut short or damaged: {broken}")
+    ds = read_dataset(
+        BytesIO(body),
+        transfer_syntax == ImplicitVRLittleEndian,
+        True,
+        stop_when=lambda tag, vr, length: tag > _LAST_IDENTIFYING_TAG,
+        specific_tags=list(_IDENTIFYING_TAGS),
+    )
+    for _ in ds:  # decode them now: an undecodable one is refused here
+        pass
+    return ds
+
+
 def part10_bytes(event: Any) -> bytes:
     """The received dataset exactly as encoded on the wire, wrapped as a Part 10 file."""
-    meta = DicomBytesIO()
-    meta.is_little_endian = True
-    meta.is_implicit_VR = False
-    write_file_meta_info(meta, event.file_meta, enforce_standard=True)
-    return b"\x00" * 128 + b"DICM" + meta.getvalue() + _body(event)
+    req = event.request
+    return (
+        b"\x00" * 128
+        + b"DICM"
+        + file_meta_bytes(
+            str(req.AffectedSOPClassUID or ""),
+            str(req.AffectedSOPInstanceUID or ""),
+            str(event.context.transfer_syntax),
+        )
+        + _body(event)
+    )
+
+
+def _element(group: int, elem: int, vr: bytes, value: bytes) -> bytes:
+    """One explicit VR little endian element (PS3.5 7.1.2)."""
+    if vr == b"OB":  # 2 reserved bytes and a 4-byte length
+        return struct.pack("<HH2s2xI", group, elem, vr, len(value)) + value
+    return struct.pack("<HH2sH", group, elem, vr, len(value)) + value
+
+
+def _uid(value: str) -> bytes:
+    raw = value.encode("ascii", "replace")
+    return raw + b"\x00" if len(raw) % 2 else raw  # PS3.5 6.2: UI padded with NULL
+
+
+def file_meta_bytes(sop_class: str, sop_instance: str, transfer_syntax: str) -> bytes:
+    """The File Meta Information group (PS3.10 7.1) of a received object, as pynetdicom
+    describes it (``Event.file_meta``: version 00 01, the request's SOP class and instance,
+    the negotiated transfer syntax, pynetdicom's implementation class and version) and pydicom
+    writes it (``write_file_meta_info``), encoded directly."""
+    version = PYNETDICOM_IMPLEMENTATION_VERSION.encode("ascii")
+    if len(version) % 2:
+        version += b" "  # PS3.5 6.2: SH padded with a space
+    group = b"".join(
+        (
+            _element(0x0002, 0x0001, b"OB", b"\x00\x01"),
+            _element(0x0002, 0x0002, b"UI", _uid(sop_class)),
+            _element(0x0002, 0x0003, b"UI", _uid(sop_instance)),
+            _element(0x0002, 0x0010, b"UI", _uid(transfer_syntax)),
+            _element(0x0002, 0x0012, b"UI", _uid(PYNETDICOM_IMPLEMENTATION_UID)),
+            _element(0x0002, 0x0013, b"SH", version),
+        )
+    )
+    return _element(0x0002, 0x0000, b"UL", struct.pack("<I", len(group))) + group
 
 
 class Listener:
@@ -154,6 +233,7 @@ class Listener:
             (evt.EVT_ACCEPTED, self._on_accepted),
             (evt.EVT_REQUESTED, self._on_requested),
             (evt.EVT_CONN_CLOSE, self._on_conn_close),
+            (evt.EVT_CONN_OPEN, self._on_conn_open),
         ]
         from service.network.tls import server_context
 
@@ -207,6 +287,10 @@ class Listener:
             assoc.abort()
 
     # -- handlers (network threads: no clinical work here) ---------------------------------------
+
+    def _on_conn_open(self, ev: Any) -> None:
+        """Answer without waiting for Nagle's algorithm (TCP_NODELAY)."""
+        no_delay(ev.assoc)
 
     def _on_conn_close(self, ev: Any) -> None:
         """A connection closed before its A-ASSOCIATE-RQ (a port probe, a TCP health check):
@@ -294,20 +378,13 @@ class Listener:
             self.metrics.objects.labels(outcome="discarded").inc()
             log.info("discarded non-SR object of class %s from %s", context_class, calling)
             return SUCCESS
+        syntax = str(ev.context.transfer_syntax)
         try:
-            ds = ev.dataset
-            for _ in ds.iterall():  # decode every element now, not later in the grader
-                pass
-            # pydicom returns the items it found in a data set cut short inside a sequence:
-            # check every length against the bytes that arrived
-            broken = None
-            if str(ev.context.transfer_syntax) in (ImplicitVRLittleEndian, ExplicitVRLittleEndian):
-                # as pydicom does, accept the other VR encoding when the data set is in it
-                body = _body(ev)
-                problems = [structure_problem(body, ts) for ts in _LE_SYNTAXES]
-                broken = problems[0] if all(problems) else None
-            if broken:
-                raise ValueError(f"data set cut short or damaged: {broken}")
+            ds = identifying_attributes(_body(ev), syntax) if syntax in _LE_SYNTAXES else None
+            if ds is None:  # deflated: inflate and decode every element now
+                ds = ev.dataset
+                for _ in ds.iterall():
+                    pass
         except Exception as exc:
             return self._object_rejected(
                 calling,

@@ -458,14 +458,31 @@ def test_num_refuses_non_numbers():
 
 
 def test_part10_writes_what_pydicom_writes():
-    # PS3.10 7.1 file format; pydicom's save_as(enforce_file_format=True) as the reference
+    # PS3.10 7.1 file format; pydicom's save_as(enforce_file_format=True) as the reference,
+    # over results with copied sequences (Other Patient IDs), Latin-1 names and predecessors
     from service.sr.encode import part10
 
-    outcome = grade_study([_demo_source()], GradeOptions(), content_datetime=WHEN)
-    buf = DicomBytesIO()
-    outcome.result.save_as(buf, enforce_file_format=True)
-    assert part10(outcome.result) == buf.getvalue()
-    assert dcmread(DicomBytesIO(part10(outcome.result))).SOPInstanceUID == outcome.result_uid
+    extra = _demo_source()
+    extra.SpecificCharacterSet = "ISO_IR 100"
+    extra.PatientName = "Ní Bhriain^Sorcha"
+    other = Dataset()
+    other.PatientID = "HV-OLD-0042"
+    extra.OtherPatientIDsSequence = [other]
+    cases = [([extra], ()), ([_demo_source()], [PREDECESSOR])]
+    cases += [([ds], ()) for ds in demo_datasets()[1:5]]
+    for sources, predecessors in cases:
+        outcome = grade_study(
+            sources, GradeOptions(compare=True), predecessors=predecessors, content_datetime=WHEN
+        )
+        buf = DicomBytesIO()
+        outcome.result.save_as(buf, enforce_file_format=True)
+        assert part10(outcome.result) == buf.getvalue()
+        again = dcmread(DicomBytesIO(part10(outcome.result)))
+        assert again.SOPInstanceUID == outcome.result_uid
+    assert (
+        str(dcmread(DicomBytesIO(part10(grade_study([extra], GradeOptions()).result))).PatientName)
+        == "Ní Bhriain^Sorcha"
+    )
     outcome.result.file_meta.TransferSyntaxUID = "1.2.840.10008.1.2"  # implicit VR
     with pytest.raises(ValueError, match="explicit VR little endian"):
         part10(outcome.result)

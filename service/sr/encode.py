@@ -23,7 +23,7 @@ import pydicom
 from pydicom import Dataset
 from pydicom.dataelem import RawDataElement
 from pydicom.filebase import DicomBytesIO
-from pydicom.filewriter import write_dataset
+from pydicom.filewriter import write_data_element, write_dataset
 from pydicom.sr.coding import Code
 from pydicom.tag import Tag
 from pydicom.uid import PYDICOM_IMPLEMENTATION_UID, ExplicitVRLittleEndian
@@ -237,12 +237,41 @@ def part10(ds: Dataset) -> bytes:
             element(tag_bytes(0x0002, 0x0013), "SH", text_value(_IMPLEMENTATION_VERSION)),
         )
     )
-    fp = DicomBytesIO()
-    fp.is_little_endian = True
-    fp.is_implicit_VR = False
-    write_dataset(fp, ds)
     length = element(tag_bytes(0x0002, 0x0000), "UL", struct.pack("<I", len(group)))
-    return b"\x00" * 128 + b"DICM" + length + group + fp.getvalue()
+    return b"\x00" * 128 + b"DICM" + length + group + dataset_bytes(ds)
+
+
+def dataset_bytes(ds: Dataset) -> bytes:
+    """``ds`` in explicit VR little endian: elements stored already encoded in that transfer
+    syntax (the header and content tree made here) are copied as they are, the others (copied
+    from a source) are written by pydicom.  Needs the encoding recorded on ``ds`` (as
+    ``service.sr.write`` does); otherwise pydicom writes the whole data set."""
+    if ds.original_encoding != (False, True) or ds.original_character_set != ds._character_set:
+        fp = DicomBytesIO()
+        fp.is_little_endian = True
+        fp.is_implicit_VR = False
+        write_dataset(fp, ds)
+        return fp.getvalue()
+    encodings = ds.get("SpecificCharacterSet", "iso8859")
+    parts: list[bytes] = []
+    for tag in sorted(ds.keys()):
+        elem = ds.get_item(tag)
+        if isinstance(elem, RawDataElement) and elem.is_little_endian and not elem.is_implicit_VR:
+            if elem.length == 0xFFFFFFFF or elem.VR is None:
+                fp = DicomBytesIO()  # undefined length or unknown VR: pydicom's business
+                fp.is_little_endian = True
+                fp.is_implicit_VR = False
+                write_data_element(fp, elem, encodings)
+                parts.append(fp.getvalue())
+            else:
+                parts.append(element(tag_bytes(tag.group, tag.element), elem.VR, elem.value))
+        else:
+            fp = DicomBytesIO()
+            fp.is_little_endian = True
+            fp.is_implicit_VR = False
+            write_data_element(fp, ds[tag], encodings)
+            parts.append(fp.getvalue())
+    return b"".join(parts)
 
 
 _IMPLEMENTATION_VERSION = f"PYDICOM {pydicom.__version__}"  # as pydicom writes it

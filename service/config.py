@@ -12,6 +12,7 @@ from __future__ import annotations
 import hashlib
 import ipaddress
 import json
+import os
 import re
 import tomllib
 import types
@@ -157,11 +158,21 @@ class TlsConfig(Section):
     minimum_version: Literal["1.2", "1.3"] = "1.2"
 
 
+def _cores() -> int:
+    """Cores this process may run on (at most 16)."""
+    try:
+        n = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        n = os.cpu_count() or 1
+    return max(1, min(n, 16))
+
+
 class AssemblyConfig(Section):
     #: grade a study this many seconds after its last object arrived (0: at once)
     settle_seconds: float = Field(default=10.0, ge=0, le=86400)
-    #: number of studies graded at the same time
-    workers: int = Field(default=1, ge=1, le=16)
+    #: number of studies graded at the same time, each in a grading process of its own
+    #: (default: one per core; the node's network threads keep a process of their own)
+    workers: int = Field(default_factory=_cores, ge=1, le=16)
 
 
 class SenderDefaults(Section):

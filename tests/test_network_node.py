@@ -177,7 +177,7 @@ def test_grading_runs_off_the_network_threads(start_node):
         release.wait(20)
         return fake_grade(datasets, options, **kwargs)
 
-    node = start_node(grade_fn=slow_grade, settle=0)
+    node = start_node({"assembly": {"workers": 1}}, grade_fn=slow_grade, settle=0)
     first, second = simple_sr(), simple_sr()
     try:
         assert send([first], node.port) == [0]

@@ -26,7 +26,7 @@ import multiprocessing
 import threading
 import time
 from collections.abc import Callable, Sequence
-from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
+from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from typing import Any, Protocol
 
@@ -64,6 +64,8 @@ __all__ = [
 
 #: a study whose grading process died this many times is failed instead of graded again
 MAX_WORKER_CRASHES = 3
+#: seconds the node waits at start for its grading processes to be ready
+READY_TIMEOUT = 120.0
 
 
 class GradeFunction(Protocol):
@@ -119,14 +121,18 @@ def destination_targets(config: Config, calling_ae: str) -> list[tuple[str, str]
     return out
 
 
-def _prestart(pool: ProcessPoolExecutor, n: int) -> None:
+def _prestart(pool: ProcessPoolExecutor, n: int, timeout: float | None = None) -> bool:
     """Start the ``n`` processes of ``pool`` (the pool starts one per task it is given while
-    none is idle)."""
+    none is idle); with ``timeout``, wait until each has done its start-up work.  Returns
+    whether they are all up."""
     try:
-        for _ in range(n):
-            pool.submit(warm_up)
+        started = [pool.submit(warm_up) for _ in range(n)]
+        if timeout is not None:
+            done, _ = wait(started, timeout=timeout)
+            return len(done) == n and all(f.exception() is None for f in done)
     except Exception:  # shut down meanwhile, or broken: the grading slots deal with it
-        pass
+        return False
+    return True
 
 
 def _process_context() -> Any:
@@ -189,15 +195,21 @@ class Assembler:
         return self._grade_fn is not None
 
     def start(self) -> None:
+        """Start the grading processes (waiting, at most ``READY_TIMEOUT`` seconds, until
+        they have imported and warmed up the pipeline, so that the first studies are graded
+        at full speed), then the scheduler."""
         if not self.in_process:
             with self._processes_lock:
-                self._processes = self._new_processes()
+                self._processes = pool = self._new_processes()
+            if not _prestart(pool, self._workers, READY_TIMEOUT):
+                log.warning(
+                    "grading processes not ready after %g s; studies wait for them", READY_TIMEOUT
+                )
         self._thread.start()
 
-    def _new_processes(self) -> ProcessPoolExecutor:
-        """A pool of grading processes, started (and their start-up work begun) now rather
-        than when the first study arrives; in the background, so that the node does not wait
-        for them."""
+    def _new_processes(self, *, prestart: bool = False) -> ProcessPoolExecutor:
+        """A pool of grading processes; with ``prestart``, started now in the background
+        (their start-up work begun before a study needs them)."""
         context = _process_context()
         if self._lifeline is None:
             self._lifeline = context.Pipe(duplex=False)
@@ -207,9 +219,10 @@ class Assembler:
             initializer=init_worker,
             initargs=(tuple(self.config.mapping_paths), self._lifeline[0]),
         )
-        threading.Thread(
-            target=_prestart, args=(pool, self._workers), name="grade-start", daemon=True
-        ).start()
+        if prestart:
+            threading.Thread(
+                target=_prestart, args=(pool, self._workers), name="grade-start", daemon=True
+            ).start()
         return pool
 
     def wake(self) -> None:
@@ -395,7 +408,7 @@ class Assembler:
         with self._processes_lock:
             if self._processes is not broken:
                 return
-            self._processes = None if self._stop.is_set() else self._new_processes()
+            self._processes = None if self._stop.is_set() else self._new_processes(prestart=True)
         broken.shutdown(wait=False, cancel_futures=True)
         log.error("a grading process ended unexpectedly; grading processes restarted")
 

@@ -221,3 +221,29 @@ def test_worker_processes_give_the_same_rows_in_the_same_order(demo_dir: Path):
 def test_negative_jobs_is_refused(demo_dir: Path):
     proc = run_cli("grade", demo_dir / "normal.dcm", "--jobs", "-1")
     assert proc.returncode == 2 and "--jobs" in proc.stderr
+
+
+def test_result_files_are_the_bytes_pydicom_writes(demo_dir: Path):
+    # the grade command writes result SRs through the result SR encoder; the file must be the
+    # one pydicom's save_as(enforce_file_format=True) writes (PS3.10 7.1 Part 10 file)
+    import io
+
+    from service.commands.grade import result_file_bytes
+    from service.pipeline import GradeOptions, grade_study
+    from service.sr.read import load_path
+
+    checked = 0
+    for path in sorted(demo_dir.glob("*.dcm")):
+        outcome = grade_study([load_path(path)], GradeOptions(compare=True))
+        if outcome.result is None:
+            continue
+        expected = io.BytesIO()
+        outcome.result.save_as(expected, enforce_file_format=True)
+        assert result_file_bytes(outcome.result) == expected.getvalue(), path.name
+        # a document whose file meta the encoder does not write itself goes through pydicom
+        outcome.result.file_meta.SourceApplicationEntityTitle = "HVCC_TEST"
+        expected = io.BytesIO()
+        outcome.result.save_as(expected, enforce_file_format=True)
+        assert result_file_bytes(outcome.result) == expected.getvalue(), path.name
+        checked += 1
+    assert checked >= 8

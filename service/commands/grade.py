@@ -150,7 +150,7 @@ def _graded(paths: list[Path], job: _Job, jobs: int) -> Iterator[_Graded]:
     context = multiprocessing.get_context("fork")
     # files go to the workers in small batches (one round trip per batch, not per file) while
     # keeping the batches small enough that both workers stay busy to the end
-    chunk = max(1, min(16, len(paths) // (jobs * 8)))
+    chunk = max(1, min(8, len(paths) // (jobs * 8)))
     with ProcessPoolExecutor(
         jobs, mp_context=context, initializer=_init_worker, initargs=(job,)
     ) as pool:

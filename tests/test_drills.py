@@ -131,6 +131,14 @@ def journal_rows(data_dir: Path, sql: str, params: Sequence = ()) -> list[tuple]
         db.close()
 
 
+def recorded(data_dir: Path) -> int:
+    """Objects the node has recorded in its journal (0 before the journal exists)."""
+    try:
+        return int(journal_rows(data_dir, "SELECT COUNT(*) FROM objects")[0][0])
+    except sqlite3.OperationalError:
+        return 0
+
+
 def integrity(data_dir: Path) -> str:
     return str(journal_rows(data_dir, "PRAGMA integrity_check")[0][0])
 
@@ -187,9 +195,9 @@ def _pacs_has(pacs_dir: Path, expected: set[str]) -> list[str] | None:
 
 
 def test_kill9_at_random_moments_during_a_stream_of_200_studies(tmp_path):
-    """Three SIGKILLs at seeded random moments (two while storescu streams, one while results
-    are being graded and delivered), a restart after each; storescu re-sends what it did not
-    see acknowledged, as a scanner does."""
+    """Three SIGKILLs at seeded random moments (two while storescu streams, after a random
+    number of objects stored; one while results are being graded and delivered), a restart
+    after each; storescu re-sends what it did not see acknowledged, as a scanner does."""
     rng = random.Random(20261202)
     files = write_studies(tmp_path / "load", 200, run="kill9-drill")
     sent = {str(f): sop_uid_of(f) for f in files}
@@ -205,10 +213,18 @@ def test_kill9_at_random_moments_during_a_stream_of_200_studies(tmp_path):
         try:
             for round_ in range(2):  # killed while storescu streams
                 port = node.start(timeout=60)
+                # the moment: after a seeded random number of objects are recorded (stored
+                # durably, so acknowledged or about to be), not after a time, which would
+                # depend on the machine's speed
+                kill_at = recorded(data_dir) + rng.randint(15, 70)
                 scu = storescu([f for f in files if str(f) not in acked], port)
-                deadline = time.monotonic() + rng.uniform(1.0, 6.0)
-                while time.monotonic() < deadline and scu.poll() is None:
-                    time.sleep(0.02)
+                deadline = time.monotonic() + 120
+                while (
+                    time.monotonic() < deadline
+                    and scu.poll() is None
+                    and recorded(data_dir) < kill_at
+                ):
+                    time.sleep(0.005)
                 node.kill()  # SIGKILL
                 kills += 1
                 out, _ = scu.communicate(timeout=60)

@@ -63,6 +63,10 @@ def test_non_sr_class_is_rejected_by_name():
         (lambda ds: setattr(ds, "ContentSequence", DicomSequence([])), "no content tree"),
         (lambda ds: delattr(ds, "SOPInstanceUID"), "no SOP Instance UID"),
         (lambda ds: delattr(ds, "SOPClassUID"), "no SOP Class UID"),
+        # UIDs a result must reference (PS3.5 9.1: digits and dots, no leading zero, <= 64)
+        (lambda ds: setattr(ds, "SOPInstanceUID", "1.2.03.4"), "SOP Instance UID '1.2.03.4'"),
+        (lambda ds: setattr(ds, "StudyInstanceUID", "1." + "2" * 70), "Study Instance UID"),
+        (lambda ds: delattr(ds, "SeriesInstanceUID"), "Series Instance UID missing"),
     ],
 )
 def test_unusable_objects_are_rejected(mutate, reason):

@@ -321,6 +321,14 @@ def _template(root: Any, title: Code | None, top: list[Dataset]) -> str | None:
     return None
 
 
+_VALID_UID = re.compile(r"^(0|[1-9][0-9]*)(\.(0|[1-9][0-9]*))+$")
+_IDENTIFYING_UIDS = (
+    ("SOPInstanceUID", "SOP Instance UID"),
+    ("StudyInstanceUID", "Study Instance UID"),
+    ("SeriesInstanceUID", "Series Instance UID"),
+)
+
+
 def read_document(ds: Dataset) -> SourceDocument:
     """Observations, coded items and identity of one SR dataset.
 
@@ -352,6 +360,15 @@ def _read(ds: Dataset) -> SourceDocument:
     uid = _text(ds.get("SOPInstanceUID"))
     if not uid:
         raise RejectedInput("no SOP Instance UID")
+    # a result references its sources by these UIDs (PS3.3 C.17.2.3): they must be valid
+    for keyword, name in _IDENTIFYING_UIDS:
+        value = _text(ds.get(keyword))
+        if not _VALID_UID.match(value) or len(value) > 64:
+            shown = repr(value[:80]) if value else "missing"
+            raise RejectedInput(
+                f"{name} {shown} is not a valid DICOM UID (PS3.5 9.1); "
+                "a result could not reference this object"
+            )
     if _text(root.get("ValueType")) not in ("", "CONTAINER"):
         raise RejectedInput("root content item is not a CONTAINER")
     top = root.get("ContentSequence")

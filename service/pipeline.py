@@ -15,7 +15,7 @@ from pydantic import ConfigDict, Field
 from pydicom import Dataset
 
 from service import SOFTWARE_NAME, __version__
-from service.errors import RejectedInput
+from service.errors import RejectedInput, UserError
 from service.grading import RuleSwitches
 from service.model import (
     Assessment,
@@ -198,16 +198,27 @@ def grade_study(
     instance_uid, series_uid = result_identity(
         documents, options, table.digest, primary.rule_set_version
     )
-    result = build_result_sr(
-        usable,
-        assessments,
-        measurements,
-        sop_instance_uid=instance_uid,
-        series_instance_uid=series_uid,
-        predecessors=[p for p in predecessors if p.sop_instance_uid != instance_uid],
-        content_datetime=content_datetime,
-        software_version=__version__,
-    )
+    try:
+        result = build_result_sr(
+            usable,
+            assessments,
+            measurements,
+            sop_instance_uid=instance_uid,
+            series_instance_uid=series_uid,
+            predecessors=[p for p in predecessors if p.sop_instance_uid != instance_uid],
+            content_datetime=content_datetime,
+            software_version=__version__,
+        )
+    except UserError as exc:  # the sources cannot make a valid document: say why
+        return StudyOutcome(
+            status=GradeStatus.rejected,
+            reason=str(exc),
+            study_instance_uid=documents[0].study_instance_uid,
+            documents=tuple(documents),
+            measurements=measurements,
+            assessments=assessments,
+            set_aside=tuple(set_aside),
+        )
     status = GradeStatus.not_gradable if primary.grade == "not-gradable" else GradeStatus.graded
     return StudyOutcome(
         status=status,

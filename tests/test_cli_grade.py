@@ -247,3 +247,21 @@ def test_result_files_are_the_bytes_pydicom_writes(demo_dir: Path):
         assert result_file_bytes(outcome.result) == expected.getvalue(), path.name
         checked += 1
     assert checked >= 8
+
+
+def test_a_result_that_cannot_be_written_is_a_rejection_with_its_reason(monkeypatch):
+    # the writer refuses what would make an invalid document (service.sr.write raises
+    # UserError): grading reports that reason, never an internal error
+    from service.demo.scenario import demo_datasets
+    from service.errors import UserError
+    from service.pipeline import GradeOptions, GradeStatus, grade_study
+    from service.sr import write
+
+    def refuse(*args, **kwargs):
+        raise UserError("cannot build the result SR: invented refusal for the test")
+
+    monkeypatch.setattr(write, "build_result_sr", refuse)
+    outcome = grade_study([demo_datasets()[0]], GradeOptions())
+    assert outcome.status is GradeStatus.rejected
+    assert outcome.reason == "cannot build the result SR: invented refusal for the test"
+    assert outcome.assessments is not None  # what was graded is still reported

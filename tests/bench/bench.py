@@ -213,6 +213,41 @@ backoff_max_seconds = 2
 """
 
 
+def _status_kib(pid: int) -> tuple[int, int]:
+    """(VmRSS, VmHWM) of a process in KiB, from /proc (0 when it has gone)."""
+    rss = hwm = 0
+    try:
+        lines = Path(f"/proc/{pid}/status").read_text().splitlines()
+    except OSError:
+        return 0, 0
+    for line in lines:
+        if line.startswith("VmRSS:"):
+            rss = int(line.split()[1])
+        elif line.startswith("VmHWM:"):
+            hwm = int(line.split()[1])
+    return rss, hwm
+
+
+def _descendants(pid: int) -> list[int]:
+    """Every process below ``pid`` (from the parent ids in /proc/*/stat)."""
+    children: dict[int, list[int]] = {}
+    for entry in Path("/proc").iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            stat = (entry / "stat").read_text()
+        except OSError:
+            continue
+        ppid = int(stat.rsplit(")", 1)[1].split()[1])
+        children.setdefault(ppid, []).append(int(entry.name))
+    out, todo = [], [pid]
+    while todo:
+        for child in children.get(todo.pop(), []):
+            out.append(child)
+            todo.append(child)
+    return out
+
+
 class Node:
     """``diastolic-sr serve`` as a subprocess, forwarding results to the PACS."""
 
@@ -252,15 +287,14 @@ class Node:
         return self
 
     def rss_kib(self) -> tuple[int, int]:
-        """(VmRSS, VmHWM) of the node process in KiB."""
+        """(VmRSS, VmHWM) of the node's own process in KiB."""
         assert self.proc is not None
-        rss = hwm = 0
-        for line in Path(f"/proc/{self.proc.pid}/status").read_text().splitlines():
-            if line.startswith("VmRSS:"):
-                rss = int(line.split()[1])
-            elif line.startswith("VmHWM:"):
-                hwm = int(line.split()[1])
-        return rss, hwm
+        return _status_kib(self.proc.pid)
+
+    def tree_rss_kib(self) -> int:
+        """VmRSS of the node and every process below it (its grading processes), KiB."""
+        assert self.proc is not None
+        return sum(_status_kib(pid)[0] for pid in [self.proc.pid, *_descendants(self.proc.pid)])
 
     def journal_rows(self, sql: str, params: Sequence[Any] = ()) -> list[tuple]:
         db = sqlite3.connect(f"file:{self.data / 'journal.sqlite3'}?mode=ro", uri=True, timeout=30)
@@ -455,8 +489,13 @@ def bench_memory(work: Path, marks: Sequence[int], workers: int, batch: int) -> 
         Node(work, pacs_port, workers=workers, name="node-memory") as node,
     ):
         rss0, _ = node.rss_kib()
+        tree0 = node.tree_rss_kib()
         out["rss_start_kib"] = rss0
-        say(f"after start:           RSS {rss0 / 1024:7.1f} MiB")
+        out["tree_rss_start_kib"] = tree0
+        say(
+            f"after start:           RSS {rss0 / 1024:7.1f} MiB "
+            f"(with its grading processes {tree0 / 1024:.1f} MiB)"
+        )
         sent = 0
         t0 = time.perf_counter()
         folder = work / "memory-load"
@@ -470,9 +509,11 @@ def bench_memory(work: Path, marks: Sequence[int], workers: int, batch: int) -> 
                 sent += k
             wait_for(lambda m=mark: node.settled() >= m, 120 + mark, interval=0.2)
             rss, hwm = node.rss_kib()
-            out["marks"][mark] = {"rss_kib": rss, "hwm_kib": hwm}
+            tree = node.tree_rss_kib()
+            out["marks"][mark] = {"rss_kib": rss, "hwm_kib": hwm, "tree_rss_kib": tree}
             say(
                 f"after {mark:6d} studies: RSS {rss / 1024:7.1f} MiB (peak {hwm / 1024:.1f} MiB), "
+                f"with its grading processes {tree / 1024:.1f} MiB, "
                 f"{mark / (time.perf_counter() - t0):.1f} studies/s so far"
             )
             # the PACS folder can grow large: keep disk use bounded

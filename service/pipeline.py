@@ -6,6 +6,7 @@ Nothing here talks to the network or the journal; callers decide where results g
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Sequence
 from datetime import datetime
 from enum import StrEnum
@@ -105,6 +106,15 @@ def effective_context(documents: Sequence[SourceDocument], context: Context) -> 
     return context.model_copy(update={"rhythm": rhythm, "rhythm_source": source})
 
 
+@functools.lru_cache(maxsize=64)
+def _settings_digest(options: GradeOptions, table_digest: str) -> str:
+    """Digest of the options and the mapping table (the same for every study graded under
+    them: computed once; options are frozen and hashable)."""
+    from service.sr.identity import config_digest
+
+    return config_digest({"options": options.model_dump(mode="json"), "mapping": table_digest})
+
+
 def result_identity(
     documents: Sequence[SourceDocument],
     options: GradeOptions,
@@ -113,10 +123,10 @@ def result_identity(
 ) -> tuple[str, str]:
     """(SOP Instance UID, Series Instance UID) of the result: deterministic, so a re-sent study
     under the same rules and configuration yields the same instance (no duplicate in the PACS)."""
-    from service.sr.identity import config_digest, derive_uid
+    from service.sr.identity import derive_uid
 
     sources = sorted(d.sop_instance_uid for d in documents)
-    digest = config_digest({"options": options.model_dump(mode="json"), "mapping": table_digest})
+    digest = _settings_digest(options, table_digest)
     study = documents[0].study_instance_uid
     instance = derive_uid(
         SOFTWARE_NAME, "result", *sources, rule_set_version, digest, root=options.uid_root

@@ -198,37 +198,12 @@ def _grade_file(path: Path, job: _Job) -> dict:
     return row
 
 
-#: file meta elements the result SR encoder writes itself (PS3.10 Table 7.1-1)
-_PLAIN_META = frozenset(
-    {0x00020000, 0x00020001, 0x00020002, 0x00020003, 0x00020010, 0x00020012, 0x00020013}
-)
-
-
 def result_file_bytes(ds: Any) -> bytes:
-    """The result SR as a Part 10 file: the result SR encoder's writer when the file meta is the
-    plain explicit VR little endian one it writes itself (the same bytes as pydicom's
-    ``save_as(..., enforce_file_format=True)``, faster), else pydicom's."""
-    import io
+    """The result SR as a Part 10 file (:func:`service.sr.encode.file_bytes`: the same bytes as
+    pydicom's ``save_as(..., enforce_file_format=True)``, faster for results built here)."""
+    from service.sr.encode import file_bytes
 
-    import pydicom
-    from pydicom.uid import PYDICOM_IMPLEMENTATION_UID, ExplicitVRLittleEndian
-
-    meta = getattr(ds, "file_meta", None)
-    if (
-        meta is not None
-        and meta.get("TransferSyntaxUID") == ExplicitVRLittleEndian
-        and set(map(int, meta.keys())) <= _PLAIN_META
-        and meta.get("ImplementationClassUID", PYDICOM_IMPLEMENTATION_UID)
-        == PYDICOM_IMPLEMENTATION_UID
-        and meta.get("ImplementationVersionName", f"PYDICOM {pydicom.__version__}")
-        == f"PYDICOM {pydicom.__version__}"
-    ):
-        from service.sr.encode import part10
-
-        return part10(ds)
-    out = io.BytesIO()
-    ds.save_as(out, enforce_file_format=True)
-    return out.getvalue()
+    return file_bytes(ds)
 
 
 def rejected_row(

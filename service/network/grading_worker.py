@@ -17,7 +17,6 @@ import signal
 import threading
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
-from io import BytesIO
 from pathlib import Path
 from typing import Any
 
@@ -75,42 +74,11 @@ class GradeRecord:
         return not self.sources and bool(self.notes)
 
 
-#: file meta elements the result SR encoder writes itself (PS3.10 Table 7.1-1): group length,
-#: version, media storage SOP class and instance, transfer syntax, implementation class/version
-_PLAIN_META = {0x00020000, 0x00020001, 0x00020002, 0x00020003, 0x00020010, 0x00020012, 0x00020013}
-
-
 def encode_part10(ds: Any) -> bytes:
-    """A result dataset as a Part 10 file (file meta added when missing).  A document with
-    plain explicit VR little endian file meta goes through the result SR encoder's writer
-    (the same bytes as pydicom's, faster)."""
-    import pydicom
-    from pydicom.dataset import FileMetaDataset
-    from pydicom.uid import PYDICOM_IMPLEMENTATION_UID, ExplicitVRLittleEndian
+    """A result dataset as a Part 10 file (:func:`service.sr.encode.file_bytes`)."""
+    from service.sr.encode import file_bytes
 
-    meta = getattr(ds, "file_meta", None)
-    if (
-        meta
-        and meta.get("TransferSyntaxUID") == ExplicitVRLittleEndian
-        and set(map(int, meta.keys())) <= _PLAIN_META
-        and meta.get("ImplementationClassUID", PYDICOM_IMPLEMENTATION_UID)
-        == PYDICOM_IMPLEMENTATION_UID
-        and meta.get("ImplementationVersionName", f"PYDICOM {pydicom.__version__}")
-        == f"PYDICOM {pydicom.__version__}"
-    ):
-        from service.sr.encode import part10
-
-        return part10(ds)
-    if not meta or "TransferSyntaxUID" not in meta:
-        meta = FileMetaDataset()
-        meta.MediaStorageSOPClassUID = ds.SOPClassUID
-        meta.MediaStorageSOPInstanceUID = ds.SOPInstanceUID
-        meta.TransferSyntaxUID = ExplicitVRLittleEndian
-        meta.ImplementationClassUID = PYDICOM_IMPLEMENTATION_UID
-        ds.file_meta = meta
-    buf = BytesIO()
-    ds.save_as(buf, enforce_file_format=True)
-    return buf.getvalue()
+    return file_bytes(ds)
 
 
 def _stamp(path: Path) -> tuple[int, int]:

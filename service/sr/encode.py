@@ -22,6 +22,7 @@ from collections.abc import Sequence
 import pydicom
 from pydicom import Dataset
 from pydicom.dataelem import RawDataElement
+from pydicom.dataset import FileMetaDataset
 from pydicom.filebase import DicomBytesIO
 from pydicom.filewriter import write_data_element, write_dataset
 from pydicom.sr.coding import Code
@@ -275,3 +276,37 @@ def dataset_bytes(ds: Dataset) -> bytes:
 
 
 _IMPLEMENTATION_VERSION = f"PYDICOM {pydicom.__version__}"  # as pydicom writes it
+
+
+#: the file meta elements :func:`part10` writes itself (PS3.10 Table 7.1-1)
+_PLAIN_META = frozenset(
+    {0x00020000, 0x00020001, 0x00020002, 0x00020003, 0x00020010, 0x00020012, 0x00020013}
+)
+
+
+def file_bytes(ds: Dataset) -> bytes:
+    """Any data set as a Part 10 file: :func:`part10` when its file meta is the plain explicit
+    VR little endian one that writes (documents built here), else pydicom's
+    ``save_as(..., enforce_file_format=True)``, with file meta for explicit VR little endian
+    added when the data set has none.  Both give the same bytes for a document built here."""
+    meta = getattr(ds, "file_meta", None)
+    if (
+        meta
+        and meta.get("TransferSyntaxUID") == ExplicitVRLittleEndian
+        and set(map(int, meta.keys())) <= _PLAIN_META
+        and meta.get("ImplementationClassUID", PYDICOM_IMPLEMENTATION_UID)
+        == PYDICOM_IMPLEMENTATION_UID
+        and meta.get("ImplementationVersionName", _IMPLEMENTATION_VERSION)
+        == _IMPLEMENTATION_VERSION
+    ):
+        return part10(ds)
+    if not meta or "TransferSyntaxUID" not in meta:
+        meta = FileMetaDataset()
+        meta.MediaStorageSOPClassUID = ds.SOPClassUID
+        meta.MediaStorageSOPInstanceUID = ds.SOPInstanceUID
+        meta.TransferSyntaxUID = ExplicitVRLittleEndian
+        meta.ImplementationClassUID = PYDICOM_IMPLEMENTATION_UID
+        ds.file_meta = meta
+    buf = DicomBytesIO()
+    ds.save_as(buf, enforce_file_format=True)
+    return buf.getvalue()

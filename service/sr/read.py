@@ -819,15 +819,8 @@ def file_structure_problem(data: bytes, transfer_syntax: str) -> str | None:
     """:func:`structure_problem` for a Part 10 file (preamble, "DICM", file meta group)."""
     if data[128:132] != b"DICM":
         return None
-    pos = 132
     try:
-        while pos + 8 <= len(data) and struct.unpack_from("<H", data, pos)[0] == 0x0002:
-            if data[pos + 4 : pos + 6] in _LONG_VRS:
-                (length,) = struct.unpack_from("<I", data, pos + 8)
-                pos += 12 + length
-            else:
-                (length,) = struct.unpack_from("<H", data, pos + 6)
-                pos += 8 + length
+        pos = _meta_end(data)
     except struct.error:
         return "file meta information cut short"
     if pos > len(data):
@@ -941,18 +934,25 @@ def _file_body_start(data: bytes) -> int | None:
     """Where the data set of a Part 10 file starts (after the file meta group); None if not."""
     if data[128:132] != b"DICM":
         return None
-    pos = 132
     try:
-        while pos + 8 <= len(data) and struct.unpack_from("<H", data, pos)[0] == 0x0002:
-            if data[pos + 4 : pos + 6] in _LONG_VRS:
-                (length,) = struct.unpack_from("<I", data, pos + 8)
-                pos += 12 + length
-            else:
-                (length,) = struct.unpack_from("<H", data, pos + 6)
-                pos += 8 + length
+        pos = _meta_end(data)
     except struct.error:
         return None
     return pos if pos <= len(data) else None
+
+
+def _meta_end(data: bytes) -> int:
+    """The offset just past the file meta group (group 0002, explicit VR little endian) of a
+    Part 10 file; struct.error when an element header is cut short."""
+    pos = 132
+    while pos + 8 <= len(data) and struct.unpack_from("<H", data, pos)[0] == 0x0002:
+        if data[pos + 4 : pos + 6] in _LONG_VRS:
+            (length,) = struct.unpack_from("<I", data, pos + 8)
+            pos += 12 + length
+        else:
+            (length,) = struct.unpack_from("<H", data, pos + 6)
+            pos += 8 + length
+    return pos
 
 
 def read_path(path: str | os.PathLike[str]) -> tuple[Dataset, SourceDocument]:

@@ -354,6 +354,24 @@ def test_decoded_tree_equals_pydicom_reading(implicit, undefined):
     assert len(fast.observations) == 4  # type: ignore[union-attr]
 
 
+def _damaged(encoded: bytes, damage) -> bytearray:
+    """``encoded`` with each (offset, action, chunk) applied after the preamble and "DICM"."""
+    data = bytearray(encoded)
+    for offset, action, chunk in damage:
+        if len(data) <= 136:
+            break
+        at = 132 + offset % (len(data) - 132)
+        if action == "set":
+            data[at : at + len(chunk)] = chunk
+        elif action == "delete":
+            del data[at : at + len(chunk)]
+        elif action == "insert":
+            data[at:at] = chunk
+        else:
+            del data[at:]
+    return data
+
+
 @pytest.mark.filterwarnings("ignore::UserWarning")  # pydicom warns about the damaged values
 @settings(max_examples=120, deadline=None, derandomize=True)
 @given(
@@ -370,19 +388,9 @@ def test_decoded_tree_equals_pydicom_reading(implicit, undefined):
 )
 def test_damaged_bytes_read_the_same_both_ways(damage, implicit):
     # a damaged element either decodes the same way or sends the document through pydicom
-    data = bytearray(_encoded(build_echo_sr(_MIXED, template=Template.tid5200), implicit=implicit))
-    for offset, action, chunk in damage:
-        if len(data) <= 136:
-            break
-        at = 132 + offset % (len(data) - 132)
-        if action == "set":
-            data[at : at + len(chunk)] = chunk
-        elif action == "delete":
-            del data[at : at + len(chunk)]
-        elif action == "insert":
-            data[at:at] = chunk
-        else:
-            del data[at:]
+    data = _damaged(
+        _encoded(build_echo_sr(_MIXED, template=Template.tid5200), implicit=implicit), damage
+    )
     try:
         pydicom.dcmread(__import__("io").BytesIO(bytes(data)))
     except Exception:
@@ -413,19 +421,7 @@ def test_bytes_said_decodable_always_decode(damage):
 
     from service.sr.read import _file_body_start, decodes_without_error
 
-    data = bytearray(_encoded(build_echo_sr(_MIXED, template=Template.tid5200)))
-    for offset, action, chunk in damage:
-        if len(data) <= 136:
-            break
-        at = 132 + offset % (len(data) - 132)
-        if action == "set":
-            data[at : at + len(chunk)] = chunk
-        elif action == "delete":
-            del data[at : at + len(chunk)]
-        elif action == "insert":
-            data[at:at] = chunk
-        else:
-            del data[at:]
+    data = _damaged(_encoded(build_echo_sr(_MIXED, template=Template.tid5200)), damage)
     try:
         ds = pydicom.dcmread(io.BytesIO(bytes(data)))
     except Exception:

@@ -327,3 +327,59 @@ def test_spooled_file_meta_is_what_pydicom_writes(sop_class, sop_instance, synta
     )
     write_file_meta_info(buf, meta, enforce_standard=True)
     assert file_meta_bytes(sop_class, sop_instance, syntax) == buf.getvalue()
+
+
+# -- grading processes log as the node logs -------------------------------------------------------
+
+
+def _log_in_grading_process(log_setup) -> None:
+    """Run in a fresh process: start up as a grading process, then log as pydicom would."""
+    import logging
+
+    from service.network.grading_worker import init_worker
+
+    init_worker((), None, log_setup)
+    logging.getLogger("pydicom").warning("invented warning from a grading process")
+
+
+@pytest.mark.parametrize("fmt", ["json", "text"])
+def test_grading_processes_log_in_the_nodes_format(capfd, fmt):
+    # the node logs JSON lines (or text) on stderr; what a library logs inside a grading
+    # process must come out the same way, not as a bare message
+    import json
+    import multiprocessing
+
+    process = multiprocessing.get_context("spawn").Process(
+        target=_log_in_grading_process, args=((fmt, "INFO"),)
+    )
+    process.start()
+    process.join(120)
+    assert process.exitcode == 0
+    lines = [
+        line
+        for line in capfd.readouterr().err.splitlines()
+        if "invented warning from a grading process" in line
+    ]
+    assert len(lines) == 1
+    if fmt == "json":
+        record = json.loads(lines[0])
+        assert (record["level"], record["logger"]) == ("WARNING", "pydicom")
+    else:
+        assert " WARNING pydicom: invented warning" in lines[0]
+
+
+def test_the_node_hands_its_logging_to_its_grading_processes():
+    import logging
+
+    from service.observability.logs import configure_logging, current_logging
+
+    root = logging.getLogger()
+    saved = (list(root.handlers), root.level)
+    try:
+        configure_logging("json", "WARNING")
+        assert current_logging() == ("json", "WARNING")
+        configure_logging("text", "DEBUG")
+        assert current_logging() == ("text", "DEBUG")
+    finally:
+        root.handlers[:] = saved[0]
+        root.setLevel(saved[1])

@@ -46,7 +46,7 @@ from service.network.grading_worker import (
     run_job,
     warm_up,
 )
-from service.observability.logs import event
+from service.observability.logs import current_logging, event
 from service.observability.metrics import Metrics
 from service.store.journal import FOLDER_DESTINATION, Companion, Journal, NewResult, StudyClaim
 from service.store.spool import Spool
@@ -217,7 +217,7 @@ class Assembler:
             self._workers,
             mp_context=context,
             initializer=init_worker,
-            initargs=(tuple(self.config.mapping_paths), self._lifeline[0]),
+            initargs=(tuple(self.config.mapping_paths), self._lifeline[0], current_logging()),
         )
         if prestart:
             threading.Thread(

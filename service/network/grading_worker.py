@@ -252,13 +252,23 @@ def warm_up_pipeline() -> bool:
     return True
 
 
-def init_worker(mapping_paths: tuple[Path, ...], lifeline: Any = None) -> None:
-    """Start-up of a grading process: give way to the network threads, ignore the terminal's
-    and the service manager's stop signals (the node stops its grading processes itself,
-    after the studies in progress), end at once when the node's process is gone (``lifeline``:
-    the reading end of a pipe only the node writes to), import the pipeline and parse the
-    mapping table now rather than on the first study."""
+def init_worker(
+    mapping_paths: tuple[Path, ...],
+    lifeline: Any = None,
+    log_setup: tuple[str, str] | None = None,
+) -> None:
+    """Start-up of a grading process: log as the node logs (``log_setup``: format and level,
+    so what pydicom or the pipeline logs here is a JSON line like the node's own), give way to
+    the network threads, ignore the terminal's and the service manager's stop signals (the
+    node stops its grading processes itself, after the studies in progress), end at once when
+    the node's process is gone (``lifeline``: the reading end of a pipe only the node writes
+    to), import the pipeline and parse the mapping table now rather than on the first study."""
     import importlib
+
+    if log_setup is not None:
+        from service.observability.logs import configure_logging
+
+        configure_logging(*log_setup)
 
     with contextlib.suppress(OSError):
         os.nice(WORKER_NICENESS)

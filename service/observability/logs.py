@@ -61,5 +61,17 @@ def configure_logging(fmt: str = "json", level: str = "INFO") -> None:
         logging.getLogger(name).setLevel(logging.WARNING)
 
 
+def current_logging() -> tuple[str, str] | None:
+    """(format, level) of the logging :func:`configure_logging` set up in this process, so a
+    child process can do the same; None when it was not set up (e.g. in tests)."""
+    root = logging.getLogger()
+    for handler in root.handlers:
+        if isinstance(handler.formatter, JsonLineFormatter):
+            return "json", logging.getLevelName(root.level)
+        if isinstance(handler.formatter, TextFormatter):
+            return "text", logging.getLevelName(root.level)
+    return None
+
+
 def set_level(level: str) -> None:
     logging.getLogger().setLevel(getattr(logging, level))

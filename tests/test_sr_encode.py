@@ -443,6 +443,13 @@ def test_whole_tree_round_trips_through_pydicom():
             lambda: container_item(NAME, [container_item(NAME, [], rel=None)]),
             "needs a relationship type",
         ),
+        # the constructor itself checks: no unchecked item can be made around the functions
+        (lambda: Item("TEXT", NAME, Rel.CONTAINS, (), ""), "non-empty"),
+        (lambda: Item("SCOORD", NAME, Rel.CONTAINS), "is not one of"),
+        (lambda: Item("CONTAINER", NAME, Rel.CONTAINS, (), "value"), "has no value"),
+        (lambda: Item("NUM", NAME, Rel.CONTAINS, (), (math.nan, UNIT)), "not finite"),
+        (lambda: Item("CODE", NAME, Rel.CONTAINS, (), "not a code"), "must be a pydicom Code"),
+        (lambda: Item("UIDREF", NAME, Rel.CONTAINS, (), "abc"), "not a valid DICOM UID"),
     ],
 )
 def test_invalid_items_cannot_be_made(make, message):

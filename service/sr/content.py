@@ -1,6 +1,6 @@
 """Content items of the result SR: small immutable value types (PS3.3 C.17.3).
 
-Each class checks its arguments when it is made, so an item that could not be encoded does not
+The item checks its arguments when it is made, so an item that could not be encoded does not
 exist: a coded concept needs a value, a scheme designator and a meaning within their VR limits;
 a TEXT item needs a non-empty text (Text Value is Type 1, PS3.3 C.17.3.2.1); a NUM item needs a
 finite number and a unit; a UIDREF or COMPOSITE item needs valid UIDs.  Relationship types are
@@ -74,9 +74,14 @@ def _check_rel(rel: Rel | None, *, root_allowed: bool) -> Rel | None:
     return Rel(rel)
 
 
+#: value types this module makes (PS3.3 C.17.3.2.1)
+VALUE_TYPES = frozenset({"CONTAINER", "TEXT", "CODE", "NUM", "UIDREF", "COMPOSITE"})
+
+
 @dataclass(frozen=True, slots=True)
 class Item:
-    """One content item.  Build it with the ``*_item`` functions below, which check."""
+    """One content item.  The constructor checks every argument (the ``*_item`` functions
+    below are the readable way to call it): an item that could not be encoded cannot exist."""
 
     value_type: str  # PS3.3 C.17.3.2.1 Value Type
     name: Code
@@ -86,74 +91,67 @@ class Item:
     #: (SOP Class UID, SOP Instance UID) (COMPOSITE), None (CONTAINER)
     value: object = field(default=None)
 
+    def __post_init__(self) -> None:
+        vt = self.value_type
+        if vt not in VALUE_TYPES:
+            raise ValueError(f"value type {vt!r} is not one of {sorted(VALUE_TYPES)}")
+        name = _check_code(self.name, "concept name")
+        _check_rel(self.relationship, root_allowed=vt == "CONTAINER")
+        if self.relationship is not None and not isinstance(self.relationship, Rel):
+            object.__setattr__(self, "relationship", Rel(self.relationship))
+        for c in self.children:
+            if not isinstance(c, Item) or c.relationship is None:
+                raise ValueError("a child content item needs a relationship type")
+        value = self.value
+        if vt == "CONTAINER":
+            if value is not None:
+                raise ValueError("a CONTAINER has no value")
+        elif vt == "TEXT":
+            if not isinstance(value, str) or not value:
+                raise ValueError(f"TEXT item {name.meaning!r} needs a non-empty text value")
+        elif vt == "CODE":
+            _check_code(value, "coded value")  # type: ignore[arg-type]
+        elif vt == "NUM":
+            number, unit = value  # type: ignore[misc]
+            if isinstance(number, bool) or not isinstance(number, int | float):
+                raise TypeError(f"NUM item {name.meaning!r}: value must be int or float")
+            if not math.isfinite(number):
+                raise ValueError(f"NUM item {name.meaning!r}: value {number!r} is not finite")
+            _check_code(unit, "unit")
+        elif vt == "UIDREF":
+            _check_uid(value, "UIDREF value")  # type: ignore[arg-type]
+        else:  # COMPOSITE
+            sop_class, sop_instance = value  # type: ignore[misc]
+            _check_uid(sop_class, "referenced SOP Class UID")
+            _check_uid(sop_instance, "referenced SOP Instance UID")
+
     def with_children(self, children: tuple[Item | None, ...] | list[Item | None]) -> Item:
         """The same item with ``children`` (None entries dropped) as its content."""
         kept = tuple(c for c in children if c is not None)
-        for c in kept:
-            if not isinstance(c, Item) or c.relationship is None:
-                raise ValueError("a child content item needs a relationship type")
         return Item(self.value_type, self.name, self.relationship, kept, self.value)
 
 
 def container_item(name: Code, children: list[Item | None], rel: Rel | None = Rel.CONTAINS) -> Item:
     """CONTAINER with Continuity of Content CONTINUOUS (highdicom's default); ``rel`` None makes
     it a document's root."""
-    item = Item(
-        "CONTAINER", _check_code(name, "container name"), _check_rel(rel, root_allowed=True)
-    )
-    return item.with_children(children)
+    return Item("CONTAINER", name, rel).with_children(children)
 
 
 def text_item(name: Code, value: str, rel: Rel) -> Item:
-    if not isinstance(value, str) or not value:
-        raise ValueError(f"TEXT item {name.meaning!r} needs a non-empty text value")
-    return Item(
-        "TEXT", _check_code(name, "concept name"), _check_rel(rel, root_allowed=False), (), value
-    )
+    return Item("TEXT", name, rel, (), value)
 
 
 def code_item(name: Code, value: Code, rel: Rel) -> Item:
-    return Item(
-        "CODE",
-        _check_code(name, "concept name"),
-        _check_rel(rel, root_allowed=False),
-        (),
-        _check_code(value, "coded value"),
-    )
+    return Item("CODE", name, rel, (), value)
 
 
 def num_item(name: Code, value: float, unit: Code, rel: Rel) -> Item:
-    if isinstance(value, bool) or not isinstance(value, int | float):
-        raise TypeError(f"NUM item {name.meaning!r}: value must be int or float")
-    if not math.isfinite(value):
-        raise ValueError(f"NUM item {name.meaning!r}: value {value!r} is not finite")
-    return Item(
-        "NUM",
-        _check_code(name, "concept name"),
-        _check_rel(rel, root_allowed=False),
-        (),
-        (value, _check_code(unit, "unit")),
-    )
+    return Item("NUM", name, rel, (), (value, unit))
 
 
 def uidref_item(name: Code, uid: str, rel: Rel) -> Item:
-    return Item(
-        "UIDREF",
-        _check_code(name, "concept name"),
-        _check_rel(rel, root_allowed=False),
-        (),
-        _check_uid(uid, "UIDREF value"),
-    )
+    return Item("UIDREF", name, rel, (), uid)
 
 
 def composite_item(name: Code, sop_class_uid: str, sop_instance_uid: str, rel: Rel) -> Item:
-    return Item(
-        "COMPOSITE",
-        _check_code(name, "concept name"),
-        _check_rel(rel, root_allowed=False),
-        (),
-        (
-            _check_uid(str(sop_class_uid), "referenced SOP Class UID"),
-            _check_uid(str(sop_instance_uid), "referenced SOP Instance UID"),
-        ),
-    )
+    return Item("COMPOSITE", name, rel, (), (str(sop_class_uid), str(sop_instance_uid)))

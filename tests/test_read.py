@@ -1,6 +1,7 @@
 """SR reader: SOP classes, tree walking, modifiers, identity, defensive reading."""
 
 import copy
+from io import BytesIO
 
 import pydicom
 import pytest
@@ -354,6 +355,14 @@ def test_decoded_tree_equals_pydicom_reading(implicit, undefined):
     assert len(fast.observations) == 4  # type: ignore[union-attr]
 
 
+#: one damage step for :func:`_damaged`: (offset, action, bytes)
+_DAMAGE_STEP = st.tuples(
+    st.integers(min_value=0, max_value=100_000),
+    st.sampled_from(["set", "delete", "insert", "cut"]),
+    st.binary(min_size=1, max_size=4),
+)
+
+
 def _damaged(encoded: bytes, damage) -> bytearray:
     """``encoded`` with each (offset, action, chunk) applied after the preamble and "DICM"."""
     data = bytearray(encoded)
@@ -375,15 +384,7 @@ def _damaged(encoded: bytes, damage) -> bytearray:
 @pytest.mark.filterwarnings("ignore::UserWarning")  # pydicom warns about the damaged values
 @settings(max_examples=120, deadline=None, derandomize=True)
 @given(
-    damage=st.lists(
-        st.tuples(
-            st.integers(min_value=0, max_value=100_000),
-            st.sampled_from(["set", "delete", "insert", "cut"]),
-            st.binary(min_size=1, max_size=4),
-        ),
-        min_size=1,
-        max_size=4,
-    ),
+    damage=st.lists(_DAMAGE_STEP, min_size=1, max_size=4),
     implicit=st.booleans(),
 )
 def test_damaged_bytes_read_the_same_both_ways(damage, implicit):
@@ -392,7 +393,7 @@ def test_damaged_bytes_read_the_same_both_ways(damage, implicit):
         _encoded(build_echo_sr(_MIXED, template=Template.tid5200), implicit=implicit), damage
     )
     try:
-        pydicom.dcmread(__import__("io").BytesIO(bytes(data)))
+        pydicom.dcmread(BytesIO(bytes(data)))
     except Exception:
         return  # not readable at all: nothing to compare
     fast, slow = _both(bytes(data))
@@ -405,17 +406,7 @@ def test_damaged_bytes_read_the_same_both_ways(damage, implicit):
 
 @pytest.mark.filterwarnings("ignore::UserWarning")  # pydicom warns about the damaged values
 @settings(max_examples=150, deadline=None, derandomize=True)
-@given(
-    damage=st.lists(
-        st.tuples(
-            st.integers(min_value=0, max_value=100_000),
-            st.sampled_from(["set", "delete", "insert", "cut"]),
-            st.binary(min_size=1, max_size=4),
-        ),
-        min_size=1,
-        max_size=3,
-    )
-)
+@given(damage=st.lists(_DAMAGE_STEP, min_size=1, max_size=3))
 def test_bytes_said_decodable_always_decode(damage):
     import io
 

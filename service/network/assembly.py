@@ -48,7 +48,14 @@ from service.network.grading_worker import (
 )
 from service.observability.logs import current_logging, event
 from service.observability.metrics import Metrics
-from service.store.journal import FOLDER_DESTINATION, Companion, Journal, NewResult, StudyClaim
+from service.store.journal import (
+    FOLDER_DESTINATION,
+    Companion,
+    Journal,
+    NewResult,
+    StudyClaim,
+    backoff_delay,
+)
 from service.store.spool import Spool
 
 log = logging.getLogger("diastolic_sr.assembly")
@@ -342,7 +349,7 @@ class Assembler:
         n = self._io_retries.get(claim.study_uid, 0) + 1
         self._io_retries[claim.study_uid] = n
         cfg = self.config.delivery
-        delay = min(cfg.backoff_initial_seconds * 2 ** (n - 1), cfg.backoff_max_seconds)
+        delay = backoff_delay(n, cfg.backoff_initial_seconds, cfg.backoff_max_seconds)
         self.metrics.studies.labels(outcome="retry").inc()
         event(
             "study_retry",

@@ -180,6 +180,12 @@ class DueDelivery:
     sop_class_uid: str = ""
 
 
+def backoff_delay(attempt: int, initial: float, maximum: float) -> float:
+    """Seconds to wait before retry ``attempt`` (1, 2, ...): doubling from ``initial``, at
+    most ``maximum`` (exponential back-off, common practice)."""
+    return min(initial * 2 ** (attempt - 1), maximum)
+
+
 class Journal:
     def __init__(self, path: Path, *, timeout: float = 30.0) -> None:
         self.path = Path(path)
@@ -543,7 +549,7 @@ class Journal:
                 self._settle_study_of_delivery(db, delivery_id, now)
             else:
                 state = DeliveryState.pending
-                delay = min(backoff_initial * 2 ** (attempts - 1), backoff_max)
+                delay = backoff_delay(attempts, backoff_initial, backoff_max)
                 db.execute(
                     "UPDATE deliveries SET attempts = ?, last_error = ?, next_attempt_at = ?, "
                     "updated_at = ? WHERE id = ?",

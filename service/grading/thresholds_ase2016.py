@@ -177,66 +177,6 @@ TABLE: tuple[Threshold, ...] = (
 NAMES: dict[Measure, tuple[str, str]] = {row.measure: (row.name, row.unit) for row in TABLE}
 
 
-# === Atrial fibrillation (§V.E) ===============================================================
-# Each criterion supports elevated filling pressure; no rule combining them is stated (I-16-11).
-
-_AF = "§V.E atrial fibrillation (p295)"
-
-AF16_E_ACCELERATION = Threshold(
-    key="af_e_acceleration_rate",
-    name="Peak acceleration rate of mitral E",
-    measure=Measure.e_acceleration_rate,
-    comparison=Comparison.ge,
-    value=1900.0,
-    unit="cm/s²",
-    citation=f"{PAPER}, {_AF}",
-    evidence="R",
-)
-AF16_IVRT = Threshold(
-    key="af_ivrt",
-    name="IVRT",
-    measure=Measure.ivrt,
-    comparison=Comparison.le,
-    value=65.0,
-    unit="ms",
-    citation=f"{PAPER}, {_AF}",
-    evidence="R",
-)
-AF16_E_E_PRIME_SEPTAL = Threshold(
-    key="af_e_e_prime_septal",
-    name="Septal E/e′",
-    measure=Measure.e_e_prime_septal,
-    comparison=Comparison.ge,
-    value=11.0,
-    unit="",
-    citation=(
-        f"{PAPER}, {_AF} (after Sohn DW et al., J Am Soc Echocardiogr 1999;12:927: "
-        "E/e′ ≥ 11 predicted LV diastolic pressure ≥ 15 mmHg)"
-    ),
-    evidence="R+V",
-)
-AF16_DECELERATION_TIME = Threshold(
-    key="af_deceleration_time",
-    name="Mitral E deceleration time",
-    measure=Measure.deceleration_time,
-    comparison=Comparison.le,
-    value=160.0,
-    unit="ms",
-    citation=f"{PAPER}, {_AF} (with reduced LVEF only)",
-    evidence="R",
-)
-
-#: the atrial-fibrillation rows, in the order the AF rule uses them
-AF_TABLE: tuple[Threshold, ...] = (
-    AF16_E_ACCELERATION,
-    AF16_IVRT,
-    AF16_E_E_PRIME_SEPTAL,
-    AF16_DECELERATION_TIME,
-)
-
-# === Special situations (§V specific diseases) ================================================
-
-
 def _row(
     key: str,
     name: str,
@@ -247,8 +187,8 @@ def _row(
     where: str,
     evidence: str = "R",
 ) -> Threshold:
-    """One §V row; evidence "R" unless stated (the reference's §2.5 marks every cut-off there
-    [R] unless noted otherwise)."""
+    """One §V row (atrial fibrillation, specific diseases); evidence "R" unless stated (the
+    reference's §2.5 marks every cut-off there [R] unless noted otherwise)."""
     return Threshold(
         key=key,
         name=name,
@@ -260,6 +200,52 @@ def _row(
         evidence=evidence,
     )
 
+
+# === Atrial fibrillation (§V.E) ===============================================================
+# Each criterion supports elevated filling pressure; no rule combining them is stated (I-16-11).
+
+_AF = "§V.E atrial fibrillation (p295)"
+
+AF16_E_ACCELERATION = _row(
+    "af_e_acceleration_rate",
+    "Peak acceleration rate of mitral E",
+    Measure.e_acceleration_rate,
+    Comparison.ge,
+    1900.0,
+    "cm/s²",
+    _AF,
+)
+AF16_IVRT = _row("af_ivrt", "IVRT", Measure.ivrt, Comparison.le, 65.0, "ms", _AF)
+AF16_E_E_PRIME_SEPTAL = _row(
+    "af_e_e_prime_septal",
+    "Septal E/e′",
+    Measure.e_e_prime_septal,
+    Comparison.ge,
+    11.0,
+    "",
+    f"{_AF} (after Sohn DW et al., J Am Soc Echocardiogr 1999;12:927: "
+    "E/e′ ≥ 11 predicted LV diastolic pressure ≥ 15 mmHg)",
+    evidence="R+V",
+)
+AF16_DECELERATION_TIME = _row(
+    "af_deceleration_time",
+    "Mitral E deceleration time",
+    Measure.deceleration_time,
+    Comparison.le,
+    160.0,
+    "ms",
+    f"{_AF} (with reduced LVEF only)",
+)
+
+#: the atrial-fibrillation rows, in the order the AF rule uses them
+AF_TABLE: tuple[Threshold, ...] = (
+    AF16_E_ACCELERATION,
+    AF16_IVRT,
+    AF16_E_E_PRIME_SEPTAL,
+    AF16_DECELERATION_TIME,
+)
+
+# === Special situations (§V specific diseases) ================================================
 
 _TACHY = "§V specific diseases, sinus tachycardia"
 _MR = "§V.C valvular disease (p290), mitral regurgitation"

@@ -229,6 +229,9 @@ def storescp(out_dir: Path, port: int, ae_title: str = "PACS") -> Iterator[subpr
         [STORESCP, "-aet", ae_title, "-od", str(out_dir), "+uf", "+B", str(port)],
         stdout=subprocess.DEVNULL,
         stderr=subprocess.DEVNULL,
+        # DCMTK reads TCP_NODELAY from the environment; without it each response waits on
+        # Nagle's algorithm and delayed acknowledgements (~40 ms)
+        env={**os.environ, "TCP_NODELAY": "1"},
     )
     try:
         wait_for(lambda: echo_ok(port, ae_title) or proc.poll() is not None, 15)

@@ -25,12 +25,12 @@ from netutil import (
     LOOPBACK,
     NODE_AE,
     SKIP_WITHOUT_DCMTK,
-    STORESCP,
     STORESCU,
     NodeProcess,
     echo_ok,
     free_port,
     pacs_uids,
+    storescp,
     wait_for,
     write_config,
 )
@@ -58,31 +58,6 @@ backoff_max_seconds = 0.5
 #: DCMTK reads TCP_NODELAY from the environment; without it every small response waits for
 #: Nagle's algorithm and delayed acknowledgements (~40 ms each)
 NODELAY = {**os.environ, "TCP_NODELAY": "1"}
-
-
-@contextlib.contextmanager
-def pacs(out_dir: Path, port: int) -> Iterator[subprocess.Popen[bytes]]:
-    """DCMTK storescp as the PACS: ``+uf`` one file per received object, so a second delivery
-    of a result shows as a second file."""
-    out_dir.mkdir(parents=True, exist_ok=True)
-    proc = subprocess.Popen(
-        [STORESCP, "-aet", "PACS", "-od", str(out_dir), "+uf", str(port)],
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-        env=NODELAY,
-    )
-    try:
-        wait_for(lambda: proc.poll() is not None or echo_ok(port, "PACS"), 15)
-        assert proc.poll() is None, "storescp exited early"
-        yield proc
-    finally:
-        if proc.poll() is None:
-            proc.terminate()
-            try:
-                proc.wait(10)
-            except subprocess.TimeoutExpired:
-                proc.kill()
-                proc.wait(5)
 
 
 def storescu(files: Sequence[Path], port: int) -> subprocess.Popen[str]:
@@ -208,7 +183,7 @@ def test_kill9_at_random_moments_during_a_stream_of_200_studies(tmp_path):
     args += ["--forward", f"PACS@{LOOPBACK}:{pacs_port}"]
     acked: set[str] = set()
     kills = 0
-    with pacs(pacs_dir, pacs_port):
+    with storescp(pacs_dir, pacs_port):
         node = NodeProcess(data_dir, args)
         try:
             for round_ in range(2):  # killed while storescu streams
@@ -276,7 +251,7 @@ def test_pacs_down_for_part_of_a_stream_then_up_every_result_delivered(tmp_path)
             return rows[0][0] >= 5
 
         wait_for(retried, 120, 0.1)
-        with pacs(pacs_dir, pacs_port):
+        with storescp(pacs_dir, pacs_port):
             out, _ = scu.communicate(timeout=300)
             ok, failed = acknowledged(out)
             assert ok == set(sent) and not failed
@@ -336,7 +311,7 @@ def test_disk_full_answers_out_of_resources_then_recovers(tmp_path):
         args += ["--forward", f"PACS@{LOOPBACK}:{pacs_port}"]
         node = NodeProcess(data_dir, args)
         node.log_path = tmp_path / "node.log"  # the log must not live on the full disk
-        with pacs(pacs_dir, pacs_port):
+        with storescp(pacs_dir, pacs_port):
             try:
                 port = node.start(timeout=60)
                 first, rest = files[:4], files[4:]

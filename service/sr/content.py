@@ -16,11 +16,12 @@ given the same arguments, encode to the same bytes.
 from __future__ import annotations
 
 import math
-import re
 from dataclasses import dataclass, field
 
 from highdicom.sr import RelationshipTypeValues as Rel
 from pydicom.sr.coding import Code
+
+from service.sr.identity import is_valid_uid
 
 __all__ = [
     "Code",
@@ -34,9 +35,8 @@ __all__ = [
     "uidref_item",
 ]
 
-# PS3.5 6.2: SH 16 characters, LO 64, UI 64
-_SH, _LO, _UI = 16, 64, 64
-_UID = re.compile(r"^(0|[1-9][0-9]*)(\.(0|[1-9][0-9]*))+$")
+# PS3.5 6.2: SH 16 characters, LO 64
+_SH, _LO = 16, 64
 
 #: checked concepts (a result names the same few dozen concepts hundreds of times)
 _CHECKED: set[tuple[str, str, str, str | None]] = set()
@@ -61,7 +61,7 @@ def _check_code(code: Code, what: str) -> Code:
 
 
 def _check_uid(value: str, what: str) -> str:
-    if not isinstance(value, str) or len(value) > _UI or not _UID.match(value):
+    if not is_valid_uid(value):
         raise ValueError(f"{what} {value!r} is not a valid DICOM UID")
     return value
 

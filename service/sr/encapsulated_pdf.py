@@ -9,7 +9,6 @@ class, so the dataset is built with pydicom.
 
 from __future__ import annotations
 
-import re
 from collections.abc import Iterable
 from datetime import datetime
 
@@ -24,6 +23,7 @@ from pydicom.valuerep import DA, TM
 
 from service import SOFTWARE_NAME, __version__
 from service.errors import UserError
+from service.sr.identity import is_valid_uid
 from service.sr.write import MANUFACTURER, MODEL_NAME
 
 MIME_TYPE = "application/pdf"
@@ -32,7 +32,6 @@ SERIES_DESCRIPTION = "Diastolic function summary (automated, PDF)"
 #: default series number: after the scanner's series and the result SR's (9901)
 SERIES_NUMBER = 9902
 
-_UID = re.compile(r"^(0|[1-9][0-9]*)(\.(0|[1-9][0-9]*))+$")
 
 #: Patient module (PS3.3 C.7.1.1), General Study (C.7.2.1) and Patient Study (C.7.2.2)
 #: attributes copied from the source when present.  The first group is Type 2 in the IOD and
@@ -77,7 +76,7 @@ def summary_uids(
 
 
 def _check_uid(value: object, what: str) -> str:
-    if not isinstance(value, str) or len(value) > 64 or not _UID.match(value):
+    if not is_valid_uid(value):
         raise UserError(f"{what} {value!r} is not a valid DICOM UID")
     return value
 

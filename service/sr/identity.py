@@ -25,6 +25,13 @@ UID_MAX_LENGTH = 64
 MIN_DIGEST_DIGITS = 20
 
 _ROOT = re.compile(r"^(0|[1-9][0-9]*)(\.(0|[1-9][0-9]*))*$")
+_UID = re.compile(r"^(0|[1-9][0-9]*)(\.(0|[1-9][0-9]*))+$")
+
+
+def is_valid_uid(value: object) -> bool:
+    """A UID as PS3.5 9.1 defines it: at most 64 characters, at least two dot-separated
+    components of digits, none with a leading zero."""
+    return isinstance(value, str) and len(value) <= UID_MAX_LENGTH and bool(_UID.match(value))
 
 
 def _digest(parts: tuple[str, ...]) -> bytes:

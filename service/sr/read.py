@@ -27,6 +27,7 @@ from pydicom.valuerep import VR as _VR
 
 from service.errors import RejectedInput
 from service.model import Code, CodedItem, Modifier, Observation, SourceDocument
+from service.sr.identity import is_valid_uid
 from service.vocabulary.srt import normalise
 
 SUPPORTED_SR_SOP_CLASSES: dict[str, str] = {
@@ -321,7 +322,6 @@ def _template(root: Any, title: Code | None, top: list[Dataset]) -> str | None:
     return None
 
 
-_VALID_UID = re.compile(r"^(0|[1-9][0-9]*)(\.(0|[1-9][0-9]*))+$")
 _IDENTIFYING_UIDS = (
     ("SOPInstanceUID", "SOP Instance UID"),
     ("StudyInstanceUID", "Study Instance UID"),
@@ -363,7 +363,7 @@ def _read(ds: Dataset) -> SourceDocument:
     # a result references its sources by these UIDs (PS3.3 C.17.2.3): they must be valid
     for keyword, name in _IDENTIFYING_UIDS:
         value = _text(ds.get(keyword))
-        if not _VALID_UID.match(value) or len(value) > 64:
+        if not is_valid_uid(value):
             shown = repr(value[:80]) if value else "missing"
             raise RejectedInput(
                 f"{name} {shown} is not a valid DICOM UID (PS3.5 9.1); "

@@ -26,7 +26,6 @@ The tree is made of :mod:`service.sr.content` items and encoded by :mod:`service
 from __future__ import annotations
 
 import math
-import re
 from collections.abc import Sequence
 from datetime import datetime
 
@@ -64,7 +63,7 @@ from service.sr.content import (
 )
 from service.sr.encode import content_sequence
 from service.sr.header import CodingScheme, result_header
-from service.sr.identity import derive_uid
+from service.sr.identity import derive_uid, is_valid_uid
 
 MANUFACTURER = "diastolic-sr project"
 MODEL_NAME = "diastolic-sr"
@@ -73,7 +72,6 @@ SERIES_DESCRIPTION = "Diastolic function assessment (automated)"
 #: fixed, so every result names the same device (PS3.16 TID 1004)
 DEVICE_UID = derive_uid("diastolic-sr", "device observer")
 
-_UID = re.compile(r"^(0|[1-9][0-9]*)(\.(0|[1-9][0-9]*))+$")
 
 _GRADE_WORDS: dict[Grade, str] = {
     Grade.normal: "normal diastolic function",
@@ -360,7 +358,7 @@ def content_tree(
 
 
 def _check_uid(value: str, what: str) -> str:
-    if not isinstance(value, str) or len(value) > 64 or not _UID.match(value):
+    if not is_valid_uid(value):
         raise UserError(f"{what} {value!r} is not a valid DICOM UID")
     return value
 

@@ -247,32 +247,23 @@ def dataset_bytes(ds: Dataset) -> bytes:
     syntax (the header and content tree made here) are copied as they are, the others (copied
     from a source) are written by pydicom.  Needs the encoding recorded on ``ds`` (as
     ``service.sr.write`` does); otherwise pydicom writes the whole data set."""
+    fp = DicomBytesIO()
+    fp.is_little_endian = True
+    fp.is_implicit_VR = False
     if ds.original_encoding != (False, True) or ds.original_character_set != ds._character_set:
-        fp = DicomBytesIO()
-        fp.is_little_endian = True
-        fp.is_implicit_VR = False
         write_dataset(fp, ds)
         return fp.getvalue()
     encodings = ds.get("SpecificCharacterSet", "iso8859")
-    parts: list[bytes] = []
     for tag in sorted(ds.keys()):
         elem = ds.get_item(tag)
-        if isinstance(elem, RawDataElement) and elem.is_little_endian and not elem.is_implicit_VR:
-            if elem.length == 0xFFFFFFFF or elem.VR is None:
-                fp = DicomBytesIO()  # undefined length or unknown VR: pydicom's business
-                fp.is_little_endian = True
-                fp.is_implicit_VR = False
-                write_data_element(fp, elem, encodings)
-                parts.append(fp.getvalue())
-            else:
-                parts.append(element(tag_bytes(tag.group, tag.element), elem.VR, elem.value))
-        else:
-            fp = DicomBytesIO()
-            fp.is_little_endian = True
-            fp.is_implicit_VR = False
-            write_data_element(fp, ds[tag], encodings)
-            parts.append(fp.getvalue())
-    return b"".join(parts)
+        encoded = (
+            isinstance(elem, RawDataElement) and elem.is_little_endian and not elem.is_implicit_VR
+        )
+        if encoded and elem.length != 0xFFFFFFFF and elem.VR is not None:
+            fp.write(element(tag_bytes(tag.group, tag.element), elem.VR, elem.value))
+        else:  # undefined length, unknown VR, or not encoded yet: pydicom's business
+            write_data_element(fp, elem if encoded else ds[tag], encodings)
+    return fp.getvalue()
 
 
 _IMPLEMENTATION_VERSION = f"PYDICOM {pydicom.__version__}"  # as pydicom writes it

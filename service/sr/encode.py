@@ -65,9 +65,6 @@ def uid_value(value: str) -> bytes:
     return raw + b"\x00" if len(raw) % 2 else raw
 
 
-_text, _uid = text_value, uid_value
-
-
 def sequence_value(items: Sequence[bytes]) -> bytes:
     """The value of a sequence of defined length holding ``items`` (each an encoded dataset)."""
     return b"".join(_ITEM + struct.pack("<I", len(i)) + i for i in items)
@@ -125,16 +122,16 @@ def _coded_concept(key: tuple[str, str, str, str | None]) -> bytes:
     value, scheme, meaning, version = key
     parts = []
     if len(value) <= 16:
-        parts.append(element(_CODE_VALUE, "SH", _text(value)))
-    parts.append(element(_SCHEME, "SH", _text(scheme)))
+        parts.append(element(_CODE_VALUE, "SH", text_value(value)))
+    parts.append(element(_SCHEME, "SH", text_value(scheme)))
     if version is not None:
-        parts.append(element(_SCHEME_VERSION, "SH", _text(version)))
-    parts.append(element(_MEANING, "LO", _text(meaning)))
+        parts.append(element(_SCHEME_VERSION, "SH", text_value(version)))
+    parts.append(element(_MEANING, "LO", text_value(meaning)))
     if len(value) > 16:
         if value.startswith("urn") or "://" in value:
-            parts.append(element(_URN_CODE_VALUE, "UR", _text(value)))
+            parts.append(element(_URN_CODE_VALUE, "UR", text_value(value)))
         else:
-            parts.append(element(_LONG_CODE_VALUE, "UC", _text(value)))
+            parts.append(element(_LONG_CODE_VALUE, "UC", text_value(value)))
     return b"".join(parts)
 
 
@@ -149,7 +146,7 @@ def _code_sequence_of(tag: bytes, key: tuple[str, str, str, str | None]) -> byte
 
 @functools.lru_cache(maxsize=64)
 def _cs(tag: bytes, value: str) -> bytes:
-    return element(tag, "CS", _text(value))
+    return element(tag, "CS", text_value(value))
 
 
 def _numeric(value: float) -> bytes:
@@ -163,7 +160,7 @@ def _numeric(value: float) -> bytes:
 @functools.lru_cache(maxsize=8192)
 def _numeric_of(text: str, kind: type) -> bytes:
     value = kind(text)
-    ds = element(_NUMERIC_VALUE, "DS", _text(str(DS(value, auto_format=True))))
+    ds = element(_NUMERIC_VALUE, "DS", text_value(str(DS(value, auto_format=True))))
     if kind is float:
         return element(_FLOAT_VALUE, "FD", struct.pack("<d", value)) + ds
     return ds
@@ -180,8 +177,8 @@ def encode_item(item: Item, _done: dict[int, bytes] | None = None) -> bytes:
     vt = item.value_type
     if vt == "COMPOSITE":
         sop_class, sop_instance = item.value  # type: ignore[misc]
-        ref = element(_REF_SOP_CLASS, "UI", _uid(sop_class)) + element(
-            _REF_SOP_INSTANCE, "UI", _uid(sop_instance)
+        ref = element(_REF_SOP_CLASS, "UI", uid_value(sop_class)) + element(
+            _REF_SOP_INSTANCE, "UI", uid_value(sop_instance)
         )
         parts.append(sequence(_REF_SOP_SEQUENCE, [ref]))
     if item.relationship is not None:
@@ -191,9 +188,9 @@ def encode_item(item: Item, _done: dict[int, bytes] | None = None) -> bytes:
     if vt == "CONTAINER":
         parts.append(_cs(_CONTINUITY, "CONTINUOUS"))
     elif vt == "UIDREF":
-        parts.append(element(_UID_VALUE, "UI", _uid(item.value)))  # type: ignore[arg-type]
+        parts.append(element(_UID_VALUE, "UI", uid_value(item.value)))  # type: ignore[arg-type]
     elif vt == "TEXT":
-        parts.append(element(_TEXT_VALUE, "UT", _text(item.value)))  # type: ignore[arg-type]
+        parts.append(element(_TEXT_VALUE, "UT", text_value(item.value)))  # type: ignore[arg-type]
     elif vt == "CODE":
         parts.append(_code_sequence(_CONCEPT_CODE, item.value))  # type: ignore[arg-type]
     elif vt == "NUM":

@@ -90,7 +90,7 @@ _LONG_CODE_VALUE = tag_bytes(0x0008, 0x0119)
 _URN_CODE_VALUE = tag_bytes(0x0008, 0x0120)
 _REF_SOP_CLASS = tag_bytes(0x0008, 0x1150)
 _REF_SOP_INSTANCE = tag_bytes(0x0008, 0x1155)
-_REF_SOP_SEQUENCE = tag_bytes(0x0008, 0x1199)
+REF_SOP_SEQUENCE = tag_bytes(0x0008, 0x1199)  # Referenced SOP Sequence
 _UNITS_SEQUENCE = tag_bytes(0x0040, 0x08EA)
 _RELATIONSHIP = tag_bytes(0x0040, 0xA010)
 _VALUE_TYPE = tag_bytes(0x0040, 0xA040)
@@ -166,6 +166,13 @@ def _numeric_of(text: str, kind: type) -> bytes:
     return ds
 
 
+def sop_reference(sop_class_uid: str, sop_instance_uid: str) -> bytes:
+    """A Referenced SOP Class / Instance UID pair, as one encoded sequence item."""
+    return element(_REF_SOP_CLASS, "UI", uid_value(sop_class_uid)) + element(
+        _REF_SOP_INSTANCE, "UI", uid_value(sop_instance_uid)
+    )
+
+
 def encode_item(item: Item, _done: dict[int, bytes] | None = None) -> bytes:
     """One content item as an encoded dataset (the body of a sequence item).  An item that
     appears more than once in a tree (items are immutable) is encoded once."""
@@ -177,10 +184,7 @@ def encode_item(item: Item, _done: dict[int, bytes] | None = None) -> bytes:
     vt = item.value_type
     if vt == "COMPOSITE":
         sop_class, sop_instance = item.value  # type: ignore[misc]
-        ref = element(_REF_SOP_CLASS, "UI", uid_value(sop_class)) + element(
-            _REF_SOP_INSTANCE, "UI", uid_value(sop_instance)
-        )
-        parts.append(sequence(_REF_SOP_SEQUENCE, [ref]))
+        parts.append(sequence(REF_SOP_SEQUENCE, [sop_reference(sop_class, sop_instance)]))
     if item.relationship is not None:
         parts.append(_cs(_RELATIONSHIP, item.relationship.value))
     parts.append(_cs(_VALUE_TYPE, vt))

@@ -29,10 +29,12 @@ from pydicom.valuerep import DA, TM
 
 from service.model import InstanceRef
 from service.sr.encode import (
+    REF_SOP_SEQUENCE,
     code_sequence_value,
     element,
     raw_element,
     sequence_value,
+    sop_reference,
     tag_bytes,
     text_value,
     uid_value,
@@ -200,13 +202,9 @@ def references(refs: Sequence[InstanceRef]) -> bytes:
     for study_uid, series in studies.items():
         series_items = []
         for series_uid, instances in series.items():
-            sops = [
-                element(_REF_SOP_CLASS, "UI", uid_value(r.sop_class_uid))
-                + element(_REF_SOP_INSTANCE, "UI", uid_value(r.sop_instance_uid))
-                for r in instances
-            ]
+            sops = [sop_reference(r.sop_class_uid, r.sop_instance_uid) for r in instances]
             series_items.append(
-                element(_REF_SOP_SEQUENCE, "SQ", sequence_value(sops))
+                element(REF_SOP_SEQUENCE, "SQ", sequence_value(sops))
                 + element(_SERIES_UID, "UI", uid_value(series_uid))
             )
         study_items.append(
@@ -245,9 +243,6 @@ class CodingScheme:
 
 # tags of the elements encoded here (PS3.6)
 _REF_SERIES_SEQUENCE = tag_bytes(0x0008, 0x1115)
-_REF_SOP_CLASS = tag_bytes(0x0008, 0x1150)
-_REF_SOP_INSTANCE = tag_bytes(0x0008, 0x1155)
-_REF_SOP_SEQUENCE = tag_bytes(0x0008, 0x1199)
 _STUDY_UID = tag_bytes(0x0020, 0x000D)
 _SERIES_UID = tag_bytes(0x0020, 0x000E)
 _SCHEME_DESIGNATOR = tag_bytes(0x0008, 0x0102)

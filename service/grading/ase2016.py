@@ -114,11 +114,7 @@ def _assess(
             "The mitral A wave is missing although E was measured: atrial fibrillation "
             "(or E-A fusion) may be present; check the rhythm."
         )
-    if context.rhythm is Rhythm.unknown:
-        trace.note(
-            "Cardiac rhythm was not stated; sinus rhythm was assumed for the algorithm"
-            + (f" ({context.rhythm_source})." if context.rhythm_source else ".")
-        )
+    trace.note_unstated_rhythm(context)
 
     lvef = value_of(measurements, Measure.lvef)
     lvef_row = trace.check(

@@ -123,11 +123,7 @@ def _assess(measurements: Measurements, context: Context, opts: Ase2025Options) 
             "The mitral A wave is missing although E was measured in sinus rhythm (E-A fusion?): "
             "E/A is unavailable for the grade."
         )
-    if context.rhythm is Rhythm.unknown:
-        trace.note(
-            "Cardiac rhythm was not stated; sinus rhythm was assumed for the algorithm"
-            + (f" ({context.rhythm_source})." if context.rhythm_source else ".")
-        )
+    trace.note_unstated_rhythm(context)
     rhythm = "sinus rhythm" if context.rhythm is Rhythm.sinus else "sinus rhythm assumed"
     if context.rhythm_source:
         rhythm += f" ({context.rhythm_source})"

@@ -10,7 +10,15 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from service.grading.criteria import Threshold, describe, evaluate, value_of
-from service.model import CAUTION, Context, Criterion, Guideline, Measurements, SpecialSituation
+from service.model import (
+    CAUTION,
+    Context,
+    Criterion,
+    Guideline,
+    Measurements,
+    Rhythm,
+    SpecialSituation,
+)
 
 
 @dataclass
@@ -41,6 +49,14 @@ class Trace:
 
     def say(self, text: str) -> None:
         self.reasoning.append(text)
+
+    def note_unstated_rhythm(self, context: Context) -> None:
+        """Say so when the rhythm is unknown: the sinus-rhythm algorithm is applied to it."""
+        if context.rhythm is Rhythm.unknown:
+            self.note(
+                "Cardiac rhythm was not stated; sinus rhythm was assumed for the algorithm"
+                + (f" ({context.rhythm_source})." if context.rhythm_source else ".")
+            )
 
 
 def base_fields(

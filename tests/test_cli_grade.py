@@ -228,8 +228,8 @@ def test_result_files_are_the_bytes_pydicom_writes(demo_dir: Path):
     # one pydicom's save_as(enforce_file_format=True) writes (PS3.10 7.1 Part 10 file)
     import io
 
-    from service.commands.grade import result_file_bytes
     from service.pipeline import GradeOptions, grade_study
+    from service.sr.encode import file_bytes
     from service.sr.read import load_path
 
     checked = 0
@@ -239,12 +239,12 @@ def test_result_files_are_the_bytes_pydicom_writes(demo_dir: Path):
             continue
         expected = io.BytesIO()
         outcome.result.save_as(expected, enforce_file_format=True)
-        assert result_file_bytes(outcome.result) == expected.getvalue(), path.name
+        assert file_bytes(outcome.result) == expected.getvalue(), path.name
         # a document whose file meta the encoder does not write itself goes through pydicom
         outcome.result.file_meta.SourceApplicationEntityTitle = "HVCC_TEST"
         expected = io.BytesIO()
         outcome.result.save_as(expected, enforce_file_format=True)
-        assert result_file_bytes(outcome.result) == expected.getvalue(), path.name
+        assert file_bytes(outcome.result) == expected.getvalue(), path.name
         checked += 1
     assert checked >= 8
 

@@ -34,10 +34,11 @@ from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
 from service.config import apply_overrides, config_from_dict
 from service.errors import RejectedInput
 from service.network.assembly import MAX_WORKER_CRASHES, Assembler, WorkerCrashed
-from service.network.grading_worker import GradeJob, encode_part10, run_job
+from service.network.grading_worker import GradeJob, run_job
 from service.network.listener import identifying_attributes
 from service.network.service import Node
 from service.pipeline import GradeOptions, GradeStatus, grade_study
+from service.sr.encode import file_bytes
 from service.sr.read import read_document
 from service.store.journal import Journal
 from service.store.spool import Spool
@@ -66,7 +67,7 @@ def test_a_source_the_reader_refuses_is_set_aside_and_the_rest_graded():
     assert mixed.set_aside == ((str(empty.SOPInstanceUID), _reader_reason(empty)),)
     assert alone.set_aside == ()
     # the result is the one of the usable source alone, byte for byte
-    assert encode_part10(mixed.result) == encode_part10(alone.result)
+    assert file_bytes(mixed.result) == file_bytes(alone.result)
     # PS3.3 C.17.2: the evidence names only the instance the document was made from
     assert evidence_uids(mixed.result) == {str(echo.SOPInstanceUID)}
 
@@ -298,9 +299,9 @@ def test_results_are_spooled_as_pydicom_writes_them():
     outcome = grade_study([echo_sr("bytes")], GradeOptions(), content_datetime=WHEN)
     fake = fake_grade([simple_sr()], GradeOptions()).result
     for ds in (outcome.result, fake):
-        assert encode_part10(ds) == _pydicom_part10(ds)
+        assert file_bytes(ds) == _pydicom_part10(ds)
     fake.file_meta.ImplementationVersionName = "OTHER_1"  # not the encoder's: pydicom writes it
-    assert encode_part10(fake) == _pydicom_part10(fake)
+    assert file_bytes(fake) == _pydicom_part10(fake)
 
 
 @pytest.mark.parametrize(

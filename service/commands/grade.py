@@ -16,6 +16,7 @@ from service.commands.columns import print_columns
 from service.model import CAUTION
 from service.options import add_grading_arguments, grade_options_from_args
 from service.pipeline import GradeOptions, GradeStatus, StudyOutcome, grade_study
+from service.sr.encode import file_bytes
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -184,7 +185,7 @@ def _grade_file(path: Path, job: _Job) -> dict:
     output = None
     if out_dir is not None and outcome.result is not None:
         target = out_dir / f"{path.stem}.result.dcm"
-        target.write_bytes(result_file_bytes(outcome.result))
+        target.write_bytes(file_bytes(outcome.result))
         output = str(target)
     row = outcome_row(path, options, outcome, output)
     if job.pdf and out_dir is not None:
@@ -196,14 +197,6 @@ def _grade_file(path: Path, job: _Job) -> dict:
             summary.save_as(target, enforce_file_format=True)
             row["summary"] = str(target)
     return row
-
-
-def result_file_bytes(ds: Any) -> bytes:
-    """The result SR as a Part 10 file (:func:`service.sr.encode.file_bytes`: the same bytes as
-    pydicom's ``save_as(..., enforce_file_format=True)``, faster for results built here)."""
-    from service.sr.encode import file_bytes
-
-    return file_bytes(ds)
 
 
 def rejected_row(

@@ -40,7 +40,6 @@ from service.network.grading_worker import (
     GradeJob,
     GradeRecord,
     TableCache,
-    encode_part10,
     grade_in_worker,
     init_worker,
     run_job,
@@ -64,7 +63,6 @@ __all__ = [
     "Assembler",
     "GradeFunction",
     "destination_targets",
-    "encode_part10",
     "grade_options",
     "summary_targets",
 ]

@@ -20,6 +20,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from service.sr.encode import file_bytes
+
 #: the grading processes give way to the node's network threads when both want a core
 WORKER_NICENESS = 5
 
@@ -72,13 +74,6 @@ class GradeRecord:
     @property
     def no_usable_source(self) -> bool:
         return not self.sources and bool(self.notes)
-
-
-def encode_part10(ds: Any) -> bytes:
-    """A result dataset as a Part 10 file (:func:`service.sr.encode.file_bytes`)."""
-    from service.sr.encode import file_bytes
-
-    return file_bytes(ds)
 
 
 def _stamp(path: Path) -> tuple[int, int]:
@@ -151,7 +146,7 @@ def run_job(job: GradeJob, grade_fn: Callable[..., Any], table: Any) -> GradeRec
         uid=result_uid,
         series_uid=str(ds.SeriesInstanceUID),
         sop_class_uid=str(ds.SOPClassUID),
-        data=None if result_uid in job.spooled else encode_part10(ds),
+        data=None if result_uid in job.spooled else file_bytes(ds),
     )
     assessment = getattr(outcome, "assessment", None)
     summary, summary_error = None, ""
@@ -183,7 +178,7 @@ def _summary(job: GradeJob, outcome: Any, datasets: list[Any]) -> tuple[EncodedO
         if pdf is None:
             return None, ""
         uid = str(pdf.SOPInstanceUID)
-        data = None if uid in job.spooled else encode_part10(pdf)
+        data = None if uid in job.spooled else file_bytes(pdf)
     except Exception as exc:
         return None, f"{type(exc).__name__}: {exc}"
     return EncodedObject(uid, str(pdf.SeriesInstanceUID), str(pdf.SOPClassUID), data), ""
@@ -245,7 +240,7 @@ def warm_up_pipeline() -> bool:
         )
         outcome = grade_study([ds], GradeOptions(), table=_TABLES.get(()))
         if outcome.result is not None:
-            encode_part10(outcome.result)
+            file_bytes(outcome.result)
     except Exception:
         return False
     _warm = True

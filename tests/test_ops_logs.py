@@ -119,3 +119,31 @@ def test_patient_identifiers_only_when_asked_for(tmp_path, caplog):
     ]
     assert received and received[0]["patient_name"] == PATIENT_NAME
     assert received[0]["patient_id"] == PATIENT_ID
+
+
+def test_pynetdicom_per_message_log_handlers_are_not_bound(monkeypatch):
+    # pynetdicom _config.LOG_HANDLER_LEVEL (its documented switch): "none" binds no standard
+    # handlers for EVT_DIMSE_RECV/SENT and EVT_PDU_RECV/SENT; their INFO/DEBUG lines would be
+    # dropped anyway (the pynetdicom logger is kept at WARNING)
+    from pynetdicom import _config, evt
+    from pynetdicom._handlers import standard_dimse_recv_handler
+    from pynetdicom.association import Association
+
+    from service.observability.logs import NOISY_LOGGERS, configure_logging
+
+    monkeypatch.setattr(_config, "LOG_HANDLER_LEVEL", "standard")
+    root = logging.getLogger()
+    handlers, level = root.handlers[:], root.level
+    before_noisy = {n: logging.getLogger(n).level for n in NOISY_LOGGERS}
+    try:
+        bound = Association(AE(), mode="requestor").get_handlers(evt.EVT_DIMSE_RECV)
+        assert (standard_dimse_recv_handler, None) in bound  # the library's default
+        configure_logging("json", "INFO")
+        assert logging.getLogger("pynetdicom").level == logging.WARNING
+        for event_type in (evt.EVT_DIMSE_RECV, evt.EVT_DIMSE_SENT, evt.EVT_PDU_RECV):
+            assert Association(AE(), mode="requestor").get_handlers(event_type) == []
+    finally:
+        root.handlers[:] = handlers
+        root.setLevel(level)
+        for name, level in before_noisy.items():
+            logging.getLogger(name).setLevel(level)

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import os
 import sqlite3
+import tempfile
 from pathlib import Path
 
 import pytest
@@ -64,6 +66,62 @@ def test_durable_write_replaces_atomically_and_leaves_no_temporaries(tmp_path):
     assert [p.name for p in target.parent.iterdir()] == ["file.dcm"]
 
 
+def _record_fsyncs(monkeypatch) -> list[str]:
+    """The paths os.fsync is called on, in order (read from /proc/self/fd)."""
+    seen: list[str] = []
+    real = os.fsync
+
+    def fsync(fd: int) -> None:
+        seen.append(os.readlink(f"/proc/self/fd/{fd}"))
+        real(fd)
+
+    monkeypatch.setattr(os, "fsync", fsync)
+    return seen
+
+
+def test_new_file_is_written_under_its_name_then_fsynced_before_its_folders(tmp_path, monkeypatch):
+    # POSIX fsync(2): a new name is durable once its folder is fsync'ed; the file's own fsync
+    # comes first, so that its folders' fsyncs find the file system's journal committed
+    target = tmp_path / "objects" / "study" / "file.dcm"
+    seen = _record_fsyncs(monkeypatch)
+    monkeypatch.setattr(tempfile, "mkstemp", lambda **kw: pytest.fail("no temporary file"))
+    durable_write(target, b"DICM")
+    assert target.read_bytes() == b"DICM"
+    assert seen == [str(target), str(target.parent), str(target.parent.parent), str(tmp_path)]
+
+
+def test_existing_file_is_never_written_in_place(tmp_path, monkeypatch):
+    target = tmp_path / "file.dcm"
+    durable_write(target, b"first")
+    real = os.fsync
+
+    def failing_fsync(fd: int) -> None:
+        if os.readlink(f"/proc/self/fd/{fd}").endswith(".part"):
+            raise OSError(28, "No space left on device")
+        real(fd)
+
+    monkeypatch.setattr(os, "fsync", failing_fsync)
+    with pytest.raises(OSError):
+        durable_write(target, b"second")
+    assert target.read_bytes() == b"first"  # the recorded file is whole
+    assert [p.name for p in tmp_path.iterdir()] == ["file.dcm"]
+
+
+def test_failed_new_file_leaves_nothing_under_its_name(tmp_path, monkeypatch):
+    target = tmp_path / "file.dcm"
+
+    def failing_fsync(fd: int) -> None:
+        raise OSError(5, "Input/output error")
+
+    monkeypatch.setattr(os, "fsync", failing_fsync)
+    with pytest.raises(OSError):
+        durable_write(target, b"DICM")
+    assert not target.exists()
+    monkeypatch.undo()
+    durable_write(target, b"DICM")  # the object comes again: written as new
+    assert target.read_bytes() == b"DICM"
+
+
 def test_spool_layout_and_crash_leftovers_are_cleaned(tmp_path):
     spool = Spool(tmp_path / "spool")
     p = spool.write_object(STUDY, "1.2.3.4", b"DICM")
@@ -88,6 +146,65 @@ def test_journal_uses_wal_with_full_sync(journal):
     # sqlite docs (https://sqlite.org/pragma.html): synchronous FULL = 2
     assert journal._db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
     assert journal._db.execute("PRAGMA synchronous").fetchone()[0] == 2
+
+
+def _sync_of_commits(journal: Journal, action) -> list[str]:
+    """The synchronous setting in force at each COMMIT ``action`` makes."""
+    settings: list[str] = []
+    current = ["FULL"]
+
+    def trace(sql: str) -> None:
+        text = " ".join(sql.split()).upper()
+        if text.startswith("PRAGMA SYNCHRONOUS="):
+            current[0] = text.split("=", 1)[1]
+        elif text == "COMMIT":
+            settings.append(current[0])
+
+    journal._db.set_trace_callback(trace)
+    try:
+        action()
+    finally:
+        journal._db.set_trace_callback(None)
+    return settings
+
+
+def test_what_is_acknowledged_is_on_disk_and_progress_is_committed_lazily(journal, tmp_path):
+    # SQLite "PRAGMA synchronous" (https://www.sqlite.org/pragma.html#pragma_synchronous): in
+    # WAL mode FULL syncs the WAL at every commit; NORMAL stays consistent and survives an
+    # application crash, and may roll back only on power loss.  A received object is promised
+    # to the sender (C-STORE success), so FULL; the node's own progress, NORMAL.
+    assert _sync_of_commits(journal, lambda: _receive(journal, "1.1", now=1000.0)) == ["FULL"]
+    claims: list = []
+    assert _sync_of_commits(journal, lambda: claims.extend(journal.claim_due(now=1010.0))) == [
+        "NORMAL"
+    ]
+    result = _result("2.25.1", ("1.1",), tmp_path / "r.dcm")
+    grade = lambda: journal.finish_grading(  # noqa: E731
+        claims[0], result=result, destinations=[("PACS", "PACS")], now=1011.0
+    )
+    assert _sync_of_commits(journal, grade) == ["NORMAL"]
+    (due,) = journal.due_deliveries(now=1012.0)
+    assert _sync_of_commits(journal, lambda: journal.mark_delivered(due.id, now=1012.0)) == [
+        "NORMAL"
+    ]
+    assert _sync_of_commits(journal, lambda: journal.request_regrade(STUDY, now=1013.0)) == ["FULL"]
+    # and the connection is back at FULL for whatever comes next
+    assert journal._db.execute("PRAGMA synchronous").fetchone()[0] == 2
+
+
+def test_lazily_committed_progress_survives_a_crash_of_the_process(tmp_path):
+    # a new connection sees what the old one committed with NORMAL (the WAL holds it; only a
+    # power loss can roll it back, SQLite docs as above)
+    path = tmp_path / "journal.sqlite3"
+    j = Journal(path)
+    _receive(j, "1.1", now=1000.0)
+    (claim,) = j.claim_due(now=1010.0)
+    j.finish_grading(claim, result=None, failure="rejected: no echo measurement recognised")
+    # no close(): the process "dies" with the connection open
+    again = Journal(path)
+    assert again.study(STUDY)["state"] == "failed"
+    again.close()
+    j.close()
 
 
 def test_settle_window_then_claim_then_graded_then_delivered(journal, tmp_path):

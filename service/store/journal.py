@@ -1,6 +1,22 @@
-"""The journal: an embedded SQLite database (stdlib ``sqlite3``, WAL mode, ``synchronous=FULL``)
-that records every received object, every study, every result and every delivery, so that
-nothing acknowledged is lost across a crash and pending work resumes on start.
+"""The journal: an embedded SQLite database (stdlib ``sqlite3``, WAL mode) that records every
+received object, every study, every result and every delivery, so that nothing acknowledged is
+lost across a crash and pending work resumes on start.
+
+Durability
+----------
+What the node promises to others is committed with ``synchronous=FULL`` (on disk when the
+commit returns): a received object (its C-STORE success is sent after this commit), a re-grade
+or re-queue an administrator asked for, a retention purge.  The node's own progress (a study
+claimed, graded, a delivery attempted or done) is committed with ``synchronous=NORMAL``: it
+survives a crash of the process (kill -9 included) like any commit, and the next FULL commit
+puts it on disk with everything before it; only a power loss or an operating-system crash
+can roll back such a commit, and then the journal is still consistent (SQLite, "PRAGMA
+synchronous": "WAL mode is always consistent with synchronous=NORMAL, but WAL mode does lose
+durability"; https://www.sqlite.org/pragma.html#pragma_synchronous).  What that can cost is
+work done again, never an acknowledged object: a study graded again (the same result, whose UID
+is derived from its sources) or a result sent again (the same SOP Instance UID, which a PACS
+keeps once).  The result file itself is fsync'ed before its journal row is written, so a row
+that survives always names a whole file.
 
 States
 ------
@@ -211,16 +227,24 @@ class Journal:
             self._db.close()
 
     @contextmanager
-    def _tx(self) -> Iterator[sqlite3.Connection]:
-        """One write transaction; committed (and on disk, synchronous=FULL) on exit."""
+    def _tx(self, *, durable: bool = True) -> Iterator[sqlite3.Connection]:
+        """One write transaction, committed on exit: on disk when the commit returns
+        (``durable``: synchronous=FULL), or with the next durable commit (synchronous=NORMAL;
+        see "Durability" above)."""
         with self._lock:
-            self._db.execute("BEGIN IMMEDIATE")
+            if not durable:
+                self._db.execute("PRAGMA synchronous=NORMAL")
             try:
-                yield self._db
-            except BaseException:
-                self._db.execute("ROLLBACK")
-                raise
-            self._db.execute("COMMIT")
+                self._db.execute("BEGIN IMMEDIATE")
+                try:
+                    yield self._db
+                except BaseException:
+                    self._db.execute("ROLLBACK")
+                    raise
+                self._db.execute("COMMIT")
+            finally:
+                if not durable:
+                    self._db.execute("PRAGMA synchronous=FULL")
 
     def _query(self, sql: str, params: Sequence[Any] = ()) -> list[sqlite3.Row]:
         with self._lock:
@@ -286,7 +310,7 @@ class Journal:
         """Take up to ``limit`` studies whose settle window is over: state -> assembled."""
         now = time.time() if now is None else now
         claims = []
-        with self._tx() as db:
+        with self._tx(durable=False) as db:
             studies = db.execute(
                 """SELECT study_uid, calling_ae, generation FROM studies
                    WHERE state = 'received' AND due_at <= ? ORDER BY due_at LIMIT ?""",
@@ -343,7 +367,7 @@ class Journal:
         study fails with ``failure``.  Returns True when new deliveries were queued."""
         now = time.time() if now is None else now
         queued = False
-        with self._tx() as db:
+        with self._tx(durable=False) as db:
             current = db.execute(
                 "SELECT generation FROM studies WHERE study_uid = ?", (claim.study_uid,)
             ).fetchone()
@@ -436,7 +460,7 @@ class Journal:
         """Give a claimed study back (e.g. on shutdown before it was graded); with
         ``retry_at`` it is not due before then (a retry after a write error)."""
         now = time.time() if now is None else now
-        with self._tx() as db:
+        with self._tx(durable=False) as db:
             db.execute(
                 "UPDATE studies SET state = 'received', updated_at = ?, "
                 "due_at = COALESCE(?, due_at) WHERE study_uid = ? AND state = 'assembled'",
@@ -513,7 +537,7 @@ class Journal:
 
     def mark_delivered(self, delivery_id: int, *, now: float | None = None) -> None:
         now = time.time() if now is None else now
-        with self._tx() as db:
+        with self._tx(durable=False) as db:
             db.execute(
                 "UPDATE deliveries SET state = 'delivered', attempts = attempts + 1, "
                 "last_error = '', delivered_at = ?, updated_at = ? WHERE id = ?",
@@ -533,7 +557,7 @@ class Journal:
     ) -> DeliveryState:
         """Count a failed attempt: back off exponentially, or fail past ``max_attempts``."""
         now = time.time() if now is None else now
-        with self._tx() as db:
+        with self._tx(durable=False) as db:
             row = db.execute(
                 "SELECT attempts FROM deliveries WHERE id = ?", (delivery_id,)
             ).fetchone()
@@ -560,7 +584,7 @@ class Journal:
     def mark_failed(self, delivery_id: int, reason: str, *, now: float | None = None) -> None:
         """Fail a delivery at once (e.g. its destination is no longer configured)."""
         now = time.time() if now is None else now
-        with self._tx() as db:
+        with self._tx(durable=False) as db:
             db.execute(
                 "UPDATE deliveries SET state = 'failed', attempts = attempts + 1, "
                 "last_error = ?, updated_at = ? WHERE id = ?",

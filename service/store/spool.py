@@ -1,5 +1,14 @@
-"""Durable files: every write lands in a temporary file, is flushed and fsync'ed, renamed into
-place and the folder is fsync'ed, so a file that exists after a crash is complete.
+"""Durable files: every write is flushed and fsync'ed, and so is every folder whose entries it
+changed, before the caller records the file in the journal; so a file the journal names is
+complete after a crash.
+
+A new file is written under its own name (created exclusively), then fsync'ed, then its
+folders: the file's fsync commits the file system's journal with the new names in it, so the
+folders' fsyncs that follow find little left to do (one commit per file rather than two).  A
+file that crashes half-written under its name was never recorded in the journal, nor
+acknowledged: it is replaced when the object comes again.  A file that already exists is never
+written in place: the new content goes to a temporary file that is fsync'ed and renamed over
+it, so a recorded file is whole at every moment.
 
 Layout under the spool root::
 
@@ -28,21 +37,58 @@ def fsync_dir(path: Path) -> None:
         os.close(fd)
 
 
-def make_dirs(path: Path) -> None:
-    """``mkdir -p`` that also fsyncs every folder it created and its parent."""
+def _missing_dirs(path: Path) -> list[Path]:
+    """``mkdir -p``; the folders it created, outermost first (not yet fsync'ed)."""
     missing = []
     p = path
     while not p.exists():
         missing.append(p)
         p = p.parent
     path.mkdir(parents=True, exist_ok=True)
-    for created in reversed(missing):
+    return list(reversed(missing))
+
+
+def make_dirs(path: Path) -> None:
+    """``mkdir -p`` that also fsyncs every folder it created and its parent."""
+    for created in _missing_dirs(path):
         fsync_dir(created.parent)
 
 
 def durable_write(path: Path, data: bytes) -> None:
-    """Write ``data`` to ``path`` atomically and durably (file and folder fsync'ed)."""
-    make_dirs(path.parent)
+    """Write ``data`` to ``path`` durably: the file and the folders whose entries changed are
+    fsync'ed before this returns.  A new file is created under its name; an existing one is
+    replaced atomically (never written in place)."""
+    created = _missing_dirs(path.parent)
+    flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0)
+    try:
+        fd = os.open(path, flags, 0o644)
+    except FileExistsError:
+        _replace(path, data)
+    else:
+        with os.fdopen(fd, "wb") as fh:
+            try:
+                fh.write(data)
+                fh.flush()
+                os.fsync(fh.fileno())
+            except BaseException:
+                _unlink_if_ours(path, os.fstat(fh.fileno()))
+                raise
+        fsync_dir(path.parent)
+    for folder in reversed(created):
+        fsync_dir(folder.parent)
+
+
+def _unlink_if_ours(path: Path, ours: os.stat_result) -> None:
+    """Remove a half-written new file, unless another writer has replaced it meanwhile."""
+    with contextlib.suppress(OSError):
+        now = os.stat(path)
+        if (now.st_dev, now.st_ino) == (ours.st_dev, ours.st_ino):
+            os.unlink(path)
+
+
+def _replace(path: Path, data: bytes) -> None:
+    """Replace an existing file atomically: a temporary file, fsync'ed, renamed over it, and
+    the folder fsync'ed."""
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".part")
     try:
         with os.fdopen(fd, "wb") as fh:

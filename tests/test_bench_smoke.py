@@ -60,8 +60,11 @@ def test_receivers_latency_and_memory_sections(tmp_path):
         "3,6",
         "--memory-batch",
         "3",
+        "--rounds",
+        "2",
     )
     rec = figures["receivers"]
+    assert len(rec["rounds"]) == 2
     for key in ("pynetdicom_storescp", "dcmtk_storescp", "diastolic_sr_end_to_end"):
         assert rec[key] > 0, key
     assert rec["diastolic_sr_delivered"] + rec["diastolic_sr_failed"] >= 5

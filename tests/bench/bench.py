@@ -12,7 +12,8 @@ Sections
 receivers  the same N studies (one SR each) sent by DCMTK ``storescu`` (TCP_NODELAY=1) to:
            pynetdicom's ``storescp`` app writing to disk, DCMTK ``storescp`` writing to disk,
            and diastolic-sr end to end (receive -> journal -> grade -> result SR -> delivered to
-           a DCMTK ``storescp`` acting as the PACS; settle window 0).  Objects/s and ratios.
+           a DCMTK ``storescp`` acting as the PACS; settle window 0).  Objects/s and ratios;
+           ``--rounds`` (default 3) rounds, each receiver in turn, medians reported.
 latency    a steady offered load (default 10 studies/s, one ``storescu`` per study) through
            diastolic-sr; p50/p95/p99 from receipt (journal ``received_at``) to the result
            delivered to the PACS (journal ``delivered_at``).
@@ -336,24 +337,78 @@ class Node:
 # ---------------------------------------------------------------------------------------------
 
 
-def bench_receivers(work: Path, n: int, workers: int) -> dict[str, Any]:
-    say(f"\n== receivers: {n} studies, one SR each, DCMTK storescu (TCP_NODELAY=1) ==")
+def bench_receivers(work: Path, n: int, workers: int, rounds: int = 1) -> dict[str, Any]:
+    """Each receiver takes the same load once per round, in turn (pynetdicom, DCMTK,
+    diastolic-sr), so that a change in the machine's speed during the run (other virtual
+    machines on the host) affects all three alike; figures are the medians over the rounds,
+    the ratio the median of the rounds' own ratios."""
+    say(
+        f"\n== receivers: {n} studies, one SR each, DCMTK storescu (TCP_NODELAY=1), "
+        f"{rounds} round(s) =="
+    )
     files = write_studies(work / "load", n, run="receivers")
-    out: dict[str, Any] = {"n": n}
+    per_round = [_receivers_round(work / f"round{i + 1}", files, workers) for i in range(rounds)]
+    for i, r in enumerate(per_round, 1):
+        if rounds > 1:
+            say(f"-- round {i}")
+        say(f"pynetdicom storescp (to disk):     {r['pynetdicom_storescp']:8.1f} objects/s")
+        say(f"DCMTK storescp (to disk):          {r['dcmtk_storescp']:8.1f} objects/s")
+        say(
+            f"diastolic-sr receive+journal:      {r['diastolic_sr_acknowledged']:8.1f} "
+            "objects/s acknowledged"
+        )
+        say(
+            f"diastolic-sr end to end:           {r['diastolic_sr_end_to_end']:8.1f} objects/s "
+            f"({r['diastolic_sr_delivered']} results at the PACS, "
+            f"{r['diastolic_sr_failed']} studies failed)"
+        )
+        say(f"ratio end to end / pynetdicom storescp: {r['ratio_to_pynetdicom']:.2f}")
+    keys = (
+        "pynetdicom_storescp",
+        "dcmtk_storescp",
+        "diastolic_sr_acknowledged",
+        "diastolic_sr_end_to_end",
+        "ratio_to_pynetdicom",
+        "ratio_to_dcmtk",
+    )
+    out: dict[str, Any] = {"n": n, "rounds": per_round}
+    out.update({k: statistics.median(r[k] for r in per_round) for k in keys})
+    out["diastolic_sr_delivered"] = min(r["diastolic_sr_delivered"] for r in per_round)
+    out["diastolic_sr_failed"] = max(r["diastolic_sr_failed"] for r in per_round)
+    if rounds > 1:
+        say(f"-- median of {rounds} rounds")
+        say(
+            f"objects/s: pynetdicom storescp {out['pynetdicom_storescp']:.1f}, DCMTK storescp "
+            f"{out['dcmtk_storescp']:.1f}, diastolic-sr acknowledged "
+            f"{out['diastolic_sr_acknowledged']:.1f}, end to end "
+            f"{out['diastolic_sr_end_to_end']:.1f}"
+        )
+    by_round = ", ".join(f"{r['ratio_to_pynetdicom']:.2f}" for r in per_round)
+    say(
+        f"ratio end to end / pynetdicom storescp: {out['ratio_to_pynetdicom']:.2f}   "
+        f"/ DCMTK storescp: {out['ratio_to_dcmtk']:.2f}   (target >= 0.5 x pynetdicom)"
+        + (f"; by round: {by_round}" if rounds > 1 else "")
+    )
+    return out
+
+
+def _receivers_round(work: Path, files: Sequence[Path], workers: int) -> dict[str, Any]:
+    """One round: the same files to each receiver in turn; objects/s of each."""
+    work.mkdir(parents=True, exist_ok=True)
+    n = len(files)
+    out: dict[str, Any] = {}
 
     port = free_port()
     with pynetdicom_storescp(work / "pyn-out", port, work / "pyn-storescp.log") as folder:
         t = run_storescu(port, "BASE", files)
         wait_for(lambda: count_files(folder) >= n, 60)
     out["pynetdicom_storescp"] = n / t
-    say(f"pynetdicom storescp (to disk):     {n / t:8.1f} objects/s  ({t:.2f} s)")
 
     port = free_port()
     with dcmtk_storescp(work / "dcmtk-out", port, work / "dcmtk-storescp.log", "BASE") as folder:
         t = run_storescu(port, "BASE", files)
         wait_for(lambda: count_files(folder) >= n, 60)
     out["dcmtk_storescp"] = n / t
-    say(f"DCMTK storescp (to disk):          {n / t:8.1f} objects/s  ({t:.2f} s)")
 
     pacs_port = free_port()
     pacs_dir = work / "pacs-throughput"
@@ -371,20 +426,8 @@ def bench_receivers(work: Path, n: int, workers: int) -> dict[str, Any]:
     out["diastolic_sr_end_to_end"] = n / t_all
     out["diastolic_sr_delivered"] = delivered
     out["diastolic_sr_failed"] = failed
-    say(
-        f"diastolic-sr receive+journal:      {n / t_ack:8.1f} objects/s acknowledged "
-        f"({t_ack:.2f} s)"
-    )
-    say(
-        f"diastolic-sr end to end:           {n / t_all:8.1f} objects/s ({t_all:.2f} s; "
-        f"{delivered} results at the PACS, {failed} studies failed)"
-    )
     out["ratio_to_pynetdicom"] = out["diastolic_sr_end_to_end"] / out["pynetdicom_storescp"]
     out["ratio_to_dcmtk"] = out["diastolic_sr_end_to_end"] / out["dcmtk_storescp"]
-    say(
-        f"ratio end to end / pynetdicom storescp: {out['ratio_to_pynetdicom']:.2f}   "
-        f"/ DCMTK storescp: {out['ratio_to_dcmtk']:.2f}   (target >= 0.5 x pynetdicom)"
-    )
     return out
 
 
@@ -686,6 +729,12 @@ def parse(argv: list[str] | None) -> argparse.Namespace:
     )
     p.add_argument("--workers", type=int, default=2, help="node grading workers (default 2)")
     p.add_argument(
+        "--rounds",
+        type=int,
+        default=3,
+        help="rounds of the receivers section, each receiver in turn (default 3; medians)",
+    )
+    p.add_argument(
         "--memory-at",
         default="1000,10000",
         help="studies streamed at which RSS is read (default 1000,10000)",
@@ -720,7 +769,7 @@ def main(argv: list[str] | None = None) -> int:
     figures: dict[str, Any] = {}
     try:
         if "receivers" in sections:
-            figures["receivers"] = bench_receivers(work, args.n, args.workers)
+            figures["receivers"] = bench_receivers(work, args.n, args.workers, args.rounds)
         if "latency" in sections:
             rates = [float(x) for x in str(args.rate).split(",") if x.strip()]
             for i, rate in enumerate(rates):

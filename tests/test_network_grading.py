@@ -189,6 +189,52 @@ class _AlwaysCrashing(Assembler):
         raise WorkerCrashed("the grading process ended unexpectedly (test)")
 
 
+def test_a_kept_summary_is_one_the_journal_records_not_a_crash_leftover(tmp_path):
+    # a new spool file is written under its own name, so a crash can leave it short before the
+    # journal records it; such a file must be written anew, a recorded one kept
+    from types import SimpleNamespace
+
+    from service.network.grading_worker import EncodedObject
+    from service.store.journal import NewResult
+
+    journal = Journal(tmp_path / "journal.sqlite3")
+    spool = Spool(tmp_path / "spool")
+    assembler = Assembler(config_from_dict({}), journal, spool, grade_fn=fake_grade)
+    claim = SimpleNamespace(study_uid="2.25.10")
+    pdf = EncodedObject("2.25.11", "2.25.12", "1.2.840.10008.5.1.4.1.1.104.1", b"%PDF-new")
+    left = spool.result_path("2.25.10", "2.25.11")
+    left.parent.mkdir(parents=True)
+    left.write_bytes(b"")  # created, never written: the process died here
+    assert assembler._spool(claim, pdf, keep=True).read_bytes() == b"%PDF-new"
+
+    journal.record_object(
+        sop_instance_uid="2.25.13",
+        study_uid="2.25.10",
+        sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
+        transfer_syntax=ExplicitVRLittleEndian,
+        calling_ae="SCANNER1",
+        path=tmp_path / "x.dcm",
+        settle_seconds=0,
+    )
+    (study_claim,) = journal.claim_due()
+    recorded = NewResult(
+        result_uid="2.25.11",
+        series_uid="2.25.12",
+        sop_class_uid="1.2.840.10008.5.1.4.1.1.104.1",
+        path=left,
+        status="summary",
+        guideline=None,
+        grade=None,
+        filling_pressure=None,
+        sources=("2.25.13",),
+        predecessors=(),
+    )
+    journal.finish_grading(study_claim, result=recorded)
+    again = EncodedObject("2.25.11", "2.25.12", "1.2.840.10008.5.1.4.1.1.104.1", b"%PDF-later")
+    assert assembler._spool(claim, again, keep=True).read_bytes() == b"%PDF-new"
+    journal.close()
+
+
 def test_a_study_that_keeps_killing_its_worker_fails_with_the_reason(tmp_path):
     cfg = config_from_dict({})
     journal = Journal(tmp_path / "journal.sqlite3")

@@ -85,9 +85,23 @@ def test_new_file_is_written_under_its_name_then_fsynced_before_its_folders(tmp_
     target = tmp_path / "objects" / "study" / "file.dcm"
     seen = _record_fsyncs(monkeypatch)
     monkeypatch.setattr(tempfile, "mkstemp", lambda **kw: pytest.fail("no temporary file"))
-    durable_write(target, b"DICM")
+    durable_write(target, b"DICM", atomic=False)
     assert target.read_bytes() == b"DICM"
     assert seen == [str(target), str(target.parent), str(target.parent.parent), str(tmp_path)]
+
+
+def test_a_new_file_outside_the_spool_appears_only_when_whole(tmp_path, monkeypatch):
+    # the results folder may be watched by an importer: no file under its final name before
+    # its content is complete (temporary file, then rename; POSIX rename(2) is atomic)
+    target = tmp_path / "results" / "file.dcm"
+    seen = _record_fsyncs(monkeypatch)
+    durable_write(target, b"DICM")
+    assert target.read_bytes() == b"DICM"
+    assert seen[0].endswith(".part") and seen[1] == str(target.parent)
+    spool = Spool(tmp_path / "spool")
+    monkeypatch.setattr(tempfile, "mkstemp", lambda **kw: pytest.fail("no temporary file"))
+    spool.write_object(STUDY, "1.2.3.4", b"DICM")  # the spool: under its name at once
+    spool.write_result(STUDY, "1.2.3.5", b"DICM")
 
 
 def test_existing_file_is_never_written_in_place(tmp_path, monkeypatch):
@@ -115,10 +129,10 @@ def test_failed_new_file_leaves_nothing_under_its_name(tmp_path, monkeypatch):
 
     monkeypatch.setattr(os, "fsync", failing_fsync)
     with pytest.raises(OSError):
-        durable_write(target, b"DICM")
+        durable_write(target, b"DICM", atomic=False)
     assert not target.exists()
     monkeypatch.undo()
-    durable_write(target, b"DICM")  # the object comes again: written as new
+    durable_write(target, b"DICM", atomic=False)  # the object comes again: written as new
     assert target.read_bytes() == b"DICM"
 
 

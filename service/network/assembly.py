@@ -478,14 +478,15 @@ class Assembler:
             self._on_result()
 
     def _spool(self, claim: StudyClaim, obj: EncodedObject, *, keep: bool = False) -> Any:
-        """The result object durably in the spool; its path.  ``keep``: a file already there
-        is not written again."""
+        """The result object durably in the spool; its path.  ``keep``: a file the journal
+        already records is not written again (one a crash left before it was recorded may be
+        incomplete, and is written anew)."""
         path = self.spool.result_path(claim.study_uid, obj.uid)
         if obj.data is None:  # spooled by an earlier grading of this study
             if not path.exists():
                 raise FileNotFoundError(f"spooled result {path} vanished")
             return path
-        if keep and path.exists():
+        if keep and path.exists() and self.journal.result(obj.uid) is not None:
             return path
         return self.spool.write_result(claim.study_uid, obj.uid, obj.data)
 

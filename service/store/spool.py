@@ -2,13 +2,14 @@
 changed, before the caller records the file in the journal; so a file the journal names is
 complete after a crash.
 
-A new file is written under its own name (created exclusively), then fsync'ed, then its
+A new spool file is written under its own name (created exclusively), then fsync'ed, then its
 folders: the file's fsync commits the file system's journal with the new names in it, so the
 folders' fsyncs that follow find little left to do (one commit per file rather than two).  A
 file that crashes half-written under its name was never recorded in the journal, nor
 acknowledged: it is replaced when the object comes again.  A file that already exists is never
 written in place: the new content goes to a temporary file that is fsync'ed and renamed over
-it, so a recorded file is whole at every moment.
+it, so a recorded file is whole at every moment.  Outside the spool (the results folder,
+which others may watch) a new file, too, appears under its name only when whole.
 
 Layout under the spool root::
 
@@ -54,28 +55,37 @@ def make_dirs(path: Path) -> None:
         fsync_dir(created.parent)
 
 
-def durable_write(path: Path, data: bytes) -> None:
+def durable_write(path: Path, data: bytes, *, atomic: bool = True) -> None:
     """Write ``data`` to ``path`` durably: the file and the folders whose entries changed are
-    fsync'ed before this returns.  A new file is created under its name; an existing one is
-    replaced atomically (never written in place)."""
+    fsync'ed before this returns.  An existing file is replaced atomically (never written in
+    place).  A new file appears under its name only when whole (``atomic``: a temporary file
+    renamed, for folders that others watch), or, with ``atomic=False`` (the spool, which only
+    the journal points into), is created under its name, which saves a file-system commit."""
     created = _missing_dirs(path.parent)
+    if atomic or not _write_new(path, data):
+        _replace(path, data)
+    else:
+        fsync_dir(path.parent)
+    for folder in reversed(created):
+        fsync_dir(folder.parent)
+
+
+def _write_new(path: Path, data: bytes) -> bool:
+    """Create ``path`` (exclusively), write ``data`` and fsync it; False when it exists."""
     flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0)
     try:
         fd = os.open(path, flags, 0o644)
     except FileExistsError:
-        _replace(path, data)
-    else:
-        with os.fdopen(fd, "wb") as fh:
-            try:
-                fh.write(data)
-                fh.flush()
-                os.fsync(fh.fileno())
-            except BaseException:
-                _unlink_if_ours(path, os.fstat(fh.fileno()))
-                raise
-        fsync_dir(path.parent)
-    for folder in reversed(created):
-        fsync_dir(folder.parent)
+        return False
+    with os.fdopen(fd, "wb") as fh:
+        try:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        except BaseException:
+            _unlink_if_ours(path, os.fstat(fh.fileno()))
+            raise
+    return True
 
 
 def _unlink_if_ours(path: Path, ours: os.stat_result) -> None:
@@ -87,8 +97,8 @@ def _unlink_if_ours(path: Path, ours: os.stat_result) -> None:
 
 
 def _replace(path: Path, data: bytes) -> None:
-    """Replace an existing file atomically: a temporary file, fsync'ed, renamed over it, and
-    the folder fsync'ed."""
+    """Put ``data`` under ``path`` atomically: a temporary file, fsync'ed, renamed over any
+    file there, and the folder fsync'ed."""
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".part")
     try:
         with os.fdopen(fd, "wb") as fh:
@@ -139,10 +149,10 @@ class Spool:
 
     def write_object(self, study_uid: str, sop_instance_uid: str, data: bytes) -> Path:
         path = self.object_path(study_uid, sop_instance_uid)
-        durable_write(path, data)
+        durable_write(path, data, atomic=False)
         return path
 
     def write_result(self, study_uid: str, sop_instance_uid: str, data: bytes) -> Path:
         path = self.result_path(study_uid, sop_instance_uid)
-        durable_write(path, data)
+        durable_write(path, data, atomic=False)
         return path

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import os
 import sqlite3
+import stat
 import tempfile
 from pathlib import Path
 
@@ -102,6 +103,16 @@ def test_a_new_file_outside_the_spool_appears_only_when_whole(tmp_path, monkeypa
     monkeypatch.setattr(tempfile, "mkstemp", lambda **kw: pytest.fail("no temporary file"))
     spool.write_object(STUDY, "1.2.3.4", b"DICM")  # the spool: under its name at once
     spool.write_result(STUDY, "1.2.3.5", b"DICM")
+
+
+def test_spool_files_are_readable_by_their_owner_only(tmp_path):
+    # they hold patient data; the same mode as a temporary file (Python tempfile.mkstemp: 0600)
+    spool = Spool(tmp_path / "spool")
+    new = spool.write_object(STUDY, "1.2.3.4", b"DICM")
+    replaced = spool.write_object(STUDY, "1.2.3.4", b"DICM again")
+    result = spool.write_result(STUDY, "1.2.3.5", b"DICM")
+    for path in (new, replaced, result):
+        assert stat.S_IMODE(path.stat().st_mode) == 0o600, path
 
 
 def test_existing_file_is_never_written_in_place(tmp_path, monkeypatch):

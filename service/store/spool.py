@@ -74,7 +74,7 @@ def _write_new(path: Path, data: bytes) -> bool:
     """Create ``path`` (exclusively), write ``data`` and fsync it; False when it exists."""
     flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0)
     try:
-        fd = os.open(path, flags, 0o644)
+        fd = os.open(path, flags, 0o600)  # as mkstemp: patient data, owner only
     except FileExistsError:
         return False
     with os.fdopen(fd, "wb") as fh:

@@ -13,6 +13,18 @@ import os
 import sys
 from pathlib import Path
 
+import pytest
+
 _BIN = str(Path(sys.executable).parent)
 if _BIN not in os.environ.get("PATH", "").split(os.pathsep):
     os.environ["PATH"] = os.environ.get("PATH", "") + os.pathsep + _BIN
+
+
+@pytest.fixture
+def loopback_nodes(tmp_path):
+    """In-process nodes the test starts (``netutil.LoopbackNodes``), stopped at its end."""
+    from netutil import LoopbackNodes
+
+    nodes = LoopbackNodes(tmp_path)
+    yield nodes
+    nodes.stop_all()

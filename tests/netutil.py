@@ -49,6 +49,60 @@ def free_port() -> int:
         return int(s.getsockname()[1])
 
 
+class LoopbackNodes:
+    """In-process nodes a test starts on 127.0.0.1 (a free port, polling every 0.05 s), each
+    in a data folder of its own under ``root``; :meth:`stop_all` at the end of the test (the
+    ``loopback_nodes`` fixture of conftest.py does that)."""
+
+    def __init__(self, root: Path) -> None:
+        self.root = Path(root)
+        self.started: list[Any] = []
+
+    def start(
+        self,
+        data: dict[str, Any],
+        *,
+        grade_fn: Any = None,
+        settle: float = 0.0,
+        forward: Sequence[str] = (),
+        data_dir: Path | str | None = None,
+    ) -> Any:
+        """A started node (service.network.service.Node) with the configuration ``data``."""
+        from service.config import apply_overrides, config_from_dict
+        from service.network.service import Node
+
+        cfg = apply_overrides(
+            config_from_dict(data),
+            port=0,
+            bind=LOOPBACK,
+            data_dir=str(data_dir or self.root / f"node{len(self.started)}"),
+            settle_seconds=settle,
+            forward=list(forward),
+        )
+        node = Node(cfg, grade_fn=grade_fn, poll_seconds=0.05)
+        node.start()
+        self.started.append(node)
+        return node
+
+    def stop_all(self) -> None:
+        for node in self.started:
+            node.stop()
+
+
+def merged(base: dict[str, Any], extra: dict[str, Any] | None) -> dict[str, Any]:
+    """``base`` with ``extra``'s sections merged in, key by key (a non-table value replaces)."""
+    out = dict(base)
+    for key, value in (extra or {}).items():
+        out[key] = {**out.get(key, {}), **value} if isinstance(value, dict) else value
+    return out
+
+
+def study_state(node: Any, study_uid: str) -> str | None:
+    """The journal state of a study in an in-process node, None when it is unknown."""
+    row = node.journal.study(study_uid)
+    return None if row is None else row["state"]
+
+
 def wait_for(condition: Callable[[], Any], timeout: float = 20.0, interval: float = 0.05) -> Any:
     """Poll ``condition`` until it returns something truthy; fail the test after ``timeout``."""
     deadline = time.monotonic() + timeout

@@ -18,20 +18,20 @@ from pathlib import Path
 import pydicom
 import pytest
 from netutil import (
-    LOOPBACK,
     NodeProcess,
     echo_sr,
     evidence_uids,
     fake_grade,
     send,
     simple_sr,
+    study_state,
     wait_for,
     write_config,
 )
 from pydicom.filewriter import write_dataset
 from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
 
-from service.config import apply_overrides, config_from_dict
+from service.config import config_from_dict
 from service.errors import RejectedInput
 from service.network.assembly import MAX_WORKER_CRASHES, Assembler, WorkerCrashed
 from service.network.grading_worker import GradeJob, run_job
@@ -115,36 +115,16 @@ def test_a_job_notes_unreadable_spooled_files_in_the_claims_order(tmp_path):
 
 
 @pytest.fixture
-def node_factory(tmp_path):
-    nodes: list[Node] = []
-
+def node_factory(loopback_nodes):
     def start(*, workers: int = 1, grade_fn=None) -> Node:
-        cfg = apply_overrides(
-            config_from_dict(
-                {
-                    "assembly": {"workers": workers},
-                    "limits": {"shutdown_grace_seconds": 2},
-                    "http": {"enabled": False},
-                }
-            ),
-            port=0,
-            bind=LOOPBACK,
-            data_dir=str(tmp_path / f"node{len(nodes)}"),
-            settle_seconds=0,
-        )
-        node = Node(cfg, grade_fn=grade_fn, poll_seconds=0.05)
-        node.start()
-        nodes.append(node)
-        return node
+        data = {
+            "assembly": {"workers": workers},
+            "limits": {"shutdown_grace_seconds": 2},
+            "http": {"enabled": False},
+        }
+        return loopback_nodes.start(data, grade_fn=grade_fn)
 
-    yield start
-    for node in nodes:
-        node.stop()
-
-
-def _state(node: Node, study_uid: str) -> str | None:
-    row = node.journal.study(study_uid)
-    return None if row is None else row["state"]
+    return start
 
 
 def _worker_pids(node: Node) -> set[int]:
@@ -157,7 +137,7 @@ def test_studies_are_graded_in_worker_processes(node_factory):
     assert _worker_pids(node)  # started with the node, not on demand
     studies = [echo_sr(f"pool-{i}") for i in range(3)]
     assert send(studies, node.port) == [0, 0, 0]
-    wait_for(lambda: all(_state(node, s.StudyInstanceUID) == "delivered" for s in studies), 60)
+    wait_for(lambda: all(study_state(node, s.StudyInstanceUID) == "delivered" for s in studies), 60)
     assert len(node.journal.results()) == 3
     assert _worker_pids(node) and os.getpid() not in _worker_pids(node)
 
@@ -171,12 +151,12 @@ def test_a_dead_worker_loses_no_study(node_factory, caplog):
     wait_for(lambda: old_pool._broken, 30)
     first = echo_sr("after-crash")
     assert send([first], node.port) == [0]
-    wait_for(lambda: _state(node, first.StudyInstanceUID) == "delivered", 60)
+    wait_for(lambda: study_state(node, first.StudyInstanceUID) == "delivered", 60)
     assert node.assembler._processes is not old_pool  # a new pool replaced the broken one
     assert "grading processes restarted" in caplog.text
     second = echo_sr("after-crash-2")
     assert send([second], node.port) == [0]
-    wait_for(lambda: _state(node, second.StudyInstanceUID) == "delivered", 60)
+    wait_for(lambda: study_state(node, second.StudyInstanceUID) == "delivered", 60)
 
 
 class _AlwaysCrashing(Assembler):

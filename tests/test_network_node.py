@@ -24,6 +24,7 @@ from netutil import (
     evidence_uids,
     fake_grade,
     free_port,
+    merged,
     pacs_uids,
     predecessor_uids,
     pynetdicom_echo,
@@ -31,6 +32,7 @@ from netutil import (
     send,
     simple_sr,
     storescp,
+    study_state,
     wait_for,
     write_files,
 )
@@ -45,7 +47,6 @@ from pydicom.uid import (
 from pynetdicom import AE, _config
 
 from service.cli import main as cli_main
-from service.config import apply_overrides, config_from_dict
 from service.errors import UserError
 from service.network.demo_loop import ResultReceiver, run_network_demo
 from service.network.service import Node
@@ -65,10 +66,9 @@ SIMPLIFIED_ECHO_SR = "1.2.840.10008.5.1.4.1.1.88.72"  # PS3.4 Annex B.5
 
 
 @pytest.fixture
-def start_node(tmp_path):
+def start_node(tmp_path, loopback_nodes):
     """Start an in-process node on 127.0.0.1 (free port) with a short settle window and
     short back-off; stopped at the end of the test."""
-    nodes: list[Node] = []
 
     def start(
         extra: dict | None = None,
@@ -83,33 +83,19 @@ def start_node(tmp_path):
             "limits": {"shutdown_grace_seconds": 2},
             "http": {"port": 0},
         }
-        for key, value in (extra or {}).items():
-            data[key] = {**data.get(key, {}), **value} if isinstance(value, dict) else value
-        cfg = apply_overrides(
-            config_from_dict(data),
-            port=0,
-            bind=LOOPBACK,
-            data_dir=str(data_dir or tmp_path / "node"),
-            settle_seconds=settle,
-            forward=list(forward),
+        return loopback_nodes.start(
+            merged(data, extra),
+            grade_fn=grade_fn,
+            settle=settle,
+            forward=forward,
+            data_dir=data_dir or tmp_path / "node",
         )
-        node = Node(cfg, grade_fn=grade_fn, poll_seconds=0.05)
-        node.start()
-        nodes.append(node)
-        return node
 
-    yield start
-    for node in nodes:
-        node.stop()
-
-
-def _study_state(node: Node, study_uid: str) -> str | None:
-    row = node.journal.study(study_uid)
-    return None if row is None else row["state"]
+    return start
 
 
 def _done(node: Node, *study_uids: str):
-    return lambda: all(_study_state(node, s) in ("delivered", "failed") for s in study_uids)
+    return lambda: all(study_state(node, s) in ("delivered", "failed") for s in study_uids)
 
 
 # -- verification and association policy --------------------------------------------------------
@@ -185,7 +171,7 @@ def test_grading_runs_off_the_network_threads(start_node):
         # the grader is busy: the node still acknowledges objects and answers echoes
         assert send([second], node.port) == [0]
         assert pynetdicom_echo(node.port) == 0
-        assert _study_state(node, second.StudyInstanceUID) == "received"
+        assert study_state(node, second.StudyInstanceUID) == "received"
     finally:
         release.set()
     wait_for(_done(node, first.StudyInstanceUID, second.StudyInstanceUID), 30)
@@ -408,7 +394,7 @@ def test_object_that_is_no_echo_sr_is_set_aside_with_a_note(start_node, tmp_path
     empty = simple_sr(str(echo.StudyInstanceUID))  # an SR without a content tree
     assert send([echo, empty], node.port) == [0, 0]
     wait_for(_done(node, echo.StudyInstanceUID), 30)
-    assert _study_state(node, echo.StudyInstanceUID) == "delivered"
+    assert study_state(node, echo.StudyInstanceUID) == "delivered"
     [row] = node.journal.results()
     assert row["sources"] == [echo.SOPInstanceUID]
     notes = {o["sop_instance_uid"]: o["note"] for o in node.journal.objects()}
@@ -536,7 +522,7 @@ def test_resent_study_gives_no_new_instance_and_no_second_delivery(start_node, t
         wait_for(
             lambda: (
                 node.journal.study(ds.StudyInstanceUID)["generation"] > first["generation"]
-                and _study_state(node, ds.StudyInstanceUID) == "delivered"
+                and study_state(node, ds.StudyInstanceUID) == "delivered"
             ),
             30,
         )
@@ -568,7 +554,7 @@ def test_pacs_down_then_up_every_result_is_delivered(start_node, tmp_path):
         expected = {node.journal.study(u)["result_uid"] for u in uids}
         got = wait_for(lambda: (lambda x: x if len(x) >= 3 else None)(pacs_uids(pacs_dir)), 20)
     assert sorted(got) == sorted(expected)
-    assert all(_study_state(node, u) == "delivered" for u in uids)
+    assert all(study_state(node, u) == "delivered" for u in uids)
 
 
 def test_results_follow_the_routing_table_of_the_calling_ae(start_node):
@@ -624,7 +610,7 @@ def test_attempt_limit_marks_failed_with_reason_then_requeue(start_node, tmp_pat
     try:
         assert cli_main(["queue", "--data-dir", data_dir, "--requeue-failed"]) == 0
         assert "1 failed delivery re-queued" in capsys.readouterr().out
-        wait_for(lambda: _study_state(node, ds.StudyInstanceUID) == "delivered", 30)
+        wait_for(lambda: study_state(node, ds.StudyInstanceUID) == "delivered", 30)
         assert receiver.uids() == [study["result_uid"]]
     finally:
         receiver.stop()
@@ -641,7 +627,7 @@ def test_queue_regrade_and_json_listing(start_node, tmp_path, capsys):
     wait_for(
         lambda: (
             node.journal.study(ds.StudyInstanceUID)["generation"] > before["generation"]
-            and _study_state(node, ds.StudyInstanceUID) == "delivered"
+            and study_state(node, ds.StudyInstanceUID) == "delivered"
         ),
         30,
     )

@@ -10,12 +10,11 @@ import urllib.error
 import urllib.request
 
 import pytest
-from netutil import LOOPBACK, fake_grade, send, simple_sr, wait_for
+from netutil import LOOPBACK, fake_grade, merged, send, simple_sr, wait_for
 from prometheus_client.parser import text_string_to_metric_families
 from pydicom.uid import generate_uid
 from pynetdicom import AE
 
-from service.config import apply_overrides, config_from_dict
 from service.network.demo_loop import ResultReceiver
 from service.network.service import Node
 
@@ -23,33 +22,18 @@ pytestmark = pytest.mark.network
 
 
 @pytest.fixture
-def start_node(tmp_path):
-    nodes: list[Node] = []
-
+def start_node(loopback_nodes):
     def start(extra: dict | None = None, *, settle: float = 0.0, forward=()) -> Node:
         data = {
             "http": {"port": 0},
             "delivery": {"backoff_initial_seconds": 0.1, "backoff_max_seconds": 0.4},
             "limits": {"shutdown_grace_seconds": 1},
         }
-        for key, value in (extra or {}).items():
-            data[key] = {**data.get(key, {}), **value}
-        cfg = apply_overrides(
-            config_from_dict(data),
-            port=0,
-            bind=LOOPBACK,
-            data_dir=str(tmp_path / f"node{len(nodes)}"),
-            settle_seconds=settle,
-            forward=list(forward),
+        return loopback_nodes.start(
+            merged(data, extra), grade_fn=fake_grade, settle=settle, forward=forward
         )
-        node = Node(cfg, grade_fn=fake_grade, poll_seconds=0.05)
-        node.start()
-        nodes.append(node)
-        return node
 
-    yield start
-    for node in nodes:
-        node.stop()
+    return start
 
 
 def _get(node: Node, path: str) -> tuple[int, bytes]:

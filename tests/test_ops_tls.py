@@ -12,7 +12,6 @@ from netutil import LOOPBACK, NODE_AE, fake_grade, send, simple_sr, wait_for
 from pynetdicom import AE
 from tlsutil import OPENSSL, make_pki
 
-from service.config import apply_overrides, config_from_dict
 from service.network.demo_loop import ResultReceiver
 from service.network.service import Node
 
@@ -30,9 +29,7 @@ def pki(tmp_path_factory):
 
 
 @pytest.fixture
-def tls_node(tmp_path, pki):
-    nodes: list[Node] = []
-
+def tls_node(loopback_nodes):
     def start(tls: dict, extra: dict | None = None) -> Node:
         data = {
             "tls": tls,
@@ -41,21 +38,9 @@ def tls_node(tmp_path, pki):
             "limits": {"shutdown_grace_seconds": 1, "acse_timeout": 5, "network_timeout": 5},
             **(extra or {}),
         }
-        cfg = apply_overrides(
-            config_from_dict(data),
-            port=0,
-            bind=LOOPBACK,
-            data_dir=str(tmp_path / f"node{len(nodes)}"),
-            settle_seconds=0,
-        )
-        node = Node(cfg, grade_fn=fake_grade, poll_seconds=0.05)
-        node.start()
-        nodes.append(node)
-        return node
+        return loopback_nodes.start(data, grade_fn=fake_grade)
 
-    yield start
-    for node in nodes:
-        node.stop()
+    return start
 
 
 def _client_context(pki, *, with_cert: bool) -> ssl.SSLContext:

@@ -819,13 +819,10 @@ def file_structure_problem(data: bytes, transfer_syntax: str) -> str | None:
     """:func:`structure_problem` for a Part 10 file (preamble, "DICM", file meta group)."""
     if data[128:132] != b"DICM":
         return None
-    try:
-        pos = _meta_end(data)
-    except struct.error:
+    start = _file_body_start(data)
+    if start is None:
         return "file meta information cut short"
-    if pos > len(data):
-        return "file meta information cut short"
-    return structure_problem(data, transfer_syntax, pos)
+    return structure_problem(data, transfer_syntax, start)
 
 
 #: byte size of one value of the binary number VRs (PS3.5 6.2)

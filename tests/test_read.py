@@ -410,14 +410,14 @@ def test_damaged_bytes_read_the_same_both_ways(damage, implicit):
 def test_bytes_said_decodable_always_decode(damage):
     import io
 
-    from service.sr.read import _file_body_start, decodes_without_error
+    from service.sr.read import decodes_without_error, file_body_start
 
     data = _damaged(_encoded(build_echo_sr(_MIXED, template=Template.tid5200)), damage)
     try:
         ds = pydicom.dcmread(io.BytesIO(bytes(data)))
     except Exception:
         return
-    start = _file_body_start(bytes(data))
+    start = file_body_start(bytes(data))
     # PS3.5 Table A-1 (Explicit VR Little Endian, 1.2.840.10008.1.2.1)
     if start is not None and decodes_without_error(bytes(data), "1.2.840.10008.1.2.1", start):
         for _ in ds.iterall():  # must not raise
@@ -427,10 +427,10 @@ def test_bytes_said_decodable_always_decode(damage):
 def test_decodable_check_refuses_what_pydicom_cannot_decode():
     import struct
 
-    from service.sr.read import _file_body_start, decodes_without_error
+    from service.sr.read import decodes_without_error, file_body_start
 
     good = _encoded(build_echo_sr(_MIXED, template=Template.tid5200))
-    start = _file_body_start(good)
+    start = file_body_start(good)
     assert start is not None
     assert decodes_without_error(good, "1.2.840.10008.1.2.1", start)
     # an unknown VR "QQ" in the first element after the file meta (PS3.5 7.1.2 VR field)

@@ -19,8 +19,10 @@ Grading is never done here: after recording an object the handler only wakes the
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import re
+import socket
 import struct
 from collections.abc import Callable
 from io import BytesIO
@@ -44,7 +46,6 @@ from pynetdicom.presentation import StoragePresentationContexts
 from pynetdicom.transport import ThreadedAssociationServer
 
 from service.config import Config
-from service.network.sender import no_delay
 from service.observability.logs import event
 from service.observability.metrics import Metrics
 from service.sr.read import structure_problem
@@ -80,6 +81,16 @@ CANNOT_UNDERSTAND = 0xC000
 
 _UID = re.compile(r"^[0-9]+(\.[0-9]+)*$")
 _LE_SYNTAXES = (ExplicitVRLittleEndian, ImplicitVRLittleEndian)
+
+
+def no_delay(assoc: Any) -> None:
+    """Send each PDU at once (TCP_NODELAY).  pynetdicom writes a C-STORE response's PDUs
+    without it; with Nagle's algorithm a PDU can wait for the peer's delayed acknowledgement
+    of the previous one (tens of milliseconds per object)."""
+    sock = getattr(getattr(getattr(assoc, "dul", None), "socket", None), "socket", None)
+    if sock is not None:
+        with contextlib.suppress(OSError):
+            sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
 
 
 def image_storage_classes() -> list[str]:

@@ -12,25 +12,32 @@ the journal, so the outbox survives restarts.
 
 from __future__ import annotations
 
-import contextlib
+import io
 import logging
-import socket
 import threading
 import time
 from collections import defaultdict
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
 import pydicom
+from pydicom.filebase import DicomBytesIO
 from pydicom.filereader import read_file_meta_info
+from pydicom.filewriter import write_dataset
 from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
-from pynetdicom import AE, _config
-from pynetdicom.association import Association
 
 from service.config import Config, DestinationConfig
+from service.network.store_association import (
+    AssociationFailed,
+    CannotConnect,
+    Proposal,
+    StoreAssociation,
+    StoreResponse,
+    Timeouts,
+)
 from service.observability.logs import event
 from service.observability.metrics import Metrics
+from service.sr.read import file_body_start
 from service.store.journal import FOLDER_DESTINATION, DueDelivery, Journal
 from service.store.spool import durable_write, safe_name
 
@@ -44,29 +51,13 @@ _STORED = {0x0000, 0xB000, 0xB006, 0xB007}
 #: Encapsulated PDF Storage (PS3.4 Annex B.5): the summary
 ENCAPSULATED_PDF = "1.2.840.10008.5.1.4.1.1.104.1"
 
+#: transfer syntaxes proposed for every SOP class: the node writes explicit VR little endian;
+#: implicit VR little endian is the default every peer supports (PS3.5 section 10.1)
+_PROPOSED_SYNTAXES = (ExplicitVRLittleEndian, ImplicitVRLittleEndian)
+
 #: objects sent over one association at most (results that fall due while it is open follow
 #: on it up to this number; then it is released and the next round opens a new one)
 MAX_PER_ASSOCIATION = 200
-
-
-def no_delay(assoc: Any) -> None:
-    """Send each PDU at once (TCP_NODELAY).  pynetdicom writes a C-STORE's command and data
-    set as separate PDUs; with Nagle's algorithm the second waits for the peer's delayed
-    acknowledgement of the first (tens of milliseconds per object)."""
-    sock = getattr(getattr(getattr(assoc, "dul", None), "socket", None), "socket", None)
-    if sock is not None:
-        with contextlib.suppress(OSError):
-            sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
-
-
-def _unreachable_reason(host: str, port: int, where: str) -> str:
-    """Why an association could not be set up when the peer did not reject it."""
-    try:
-        with socket.create_connection((host, port), timeout=3):
-            pass
-    except OSError as exc:
-        return f"cannot connect to {where}: {exc.strerror or exc}"
-    return f"association with {where} aborted or timed out"
 
 
 class Sender:
@@ -196,35 +187,47 @@ class Sender:
         if not batch:
             return
         limits = self.config.limits
-        ae = AE(ae_title=self.config.node.ae_title)
-        ae.acse_timeout = limits.acse_timeout
-        ae.dimse_timeout = limits.dimse_timeout
-        ae.network_timeout = limits.network_timeout
-        for sop_class in sorted({o.sop_class for o in batch}):
-            ae.add_requested_context(sop_class, [ExplicitVRLittleEndian, ImplicitVRLittleEndian])
         where = f"{dest.ae_title}@{dest.host}:{dest.port}" + (" (TLS)" if dest.tls else "")
+        proposals = [
+            Proposal(sop_class, _PROPOSED_SYNTAXES)
+            for sop_class in sorted({o.sop_class for o in batch})
+        ]
         try:
-            tls_args = None
+            tls = None
             if dest.tls:
                 from service.network.tls import client_context
 
-                tls_args = (client_context(self.config), dest.host)
-            assoc = ae.associate(dest.host, dest.port, ae_title=dest.ae_title, tls_args=tls_args)
-        except Exception as exc:  # bad host name, TLS set-up and the like
-            for o in batch:
-                self._failed(o.due, f"cannot associate with {where}: {exc}", o.kind)
-            return
-        if not assoc.is_established:
-            why = (
-                f"association rejected by {where}"
-                if assoc.is_rejected
-                else _unreachable_reason(dest.host, dest.port, where)
+                tls = client_context(self.config)
+            assoc = StoreAssociation.open(
+                dest.host,
+                dest.port,
+                calling_ae=self.config.node.ae_title,
+                called_ae=dest.ae_title,
+                proposals=proposals,
+                max_pdu=limits.max_pdu,
+                timeouts=Timeouts(
+                    connect=limits.acse_timeout,
+                    acse=limits.acse_timeout,
+                    dimse=limits.dimse_timeout,
+                    network=limits.network_timeout,
+                ),
+                tls=tls,
             )
+        except AssociationFailed as exc:
+            if isinstance(exc, CannotConnect):
+                why = f"cannot connect to {where}: {exc}"
+            elif exc.rejected:
+                why = f"association rejected by {where}: {exc}"
+            else:
+                why = f"cannot associate with {where}: {exc}"
             for o in batch:
                 self._failed(o.due, why, o.kind)
             return
-        no_delay(assoc)
-        accepted = {str(cx.abstract_syntax) for cx in assoc.accepted_contexts}
+        except Exception as exc:  # TLS set-up and the like
+            for o in batch:
+                self._failed(o.due, f"cannot associate with {where}: {exc}", o.kind)
+            return
+        accepted = {cx.abstract_syntax for cx in assoc.accepted_contexts}
         seen = {o.due.id for o in batch}
         budget = MAX_PER_ASSOCIATION
         try:
@@ -247,8 +250,7 @@ class Sender:
                 seen.update(d.id for d in more)
                 batch = self._readable(more)
         finally:
-            if assoc.is_established:
-                assoc.release()
+            assoc.release()
 
     def _readable(self, items: list[DueDelivery]) -> list[_Outgoing]:
         """The spooled objects of ``items`` with their file meta; an unreadable one fails."""
@@ -257,60 +259,63 @@ class Sender:
             try:
                 meta = read_file_meta_info(d.path)
                 sop_class = str(meta.MediaStorageSOPClassUID)
+                sop_instance = str(meta.MediaStorageSOPInstanceUID)
                 syntax = str(meta.TransferSyntaxUID)
             except Exception as exc:
                 self.journal.mark_failed(d.id, f"spooled result unreadable: {exc}")
                 self.metrics.deliveries.labels(outcome="failed", kind="result").inc()
                 continue
             kind = "summary" if sop_class == ENCAPSULATED_PDF else "result"
-            out.append(_Outgoing(d, sop_class, syntax, kind))
+            out.append(_Outgoing(d, sop_class, sop_instance, syntax, kind))
         return out
 
-    def _send(self, assoc: Association, o: _Outgoing, where: str) -> None:
+    def _send(self, assoc: StoreAssociation, o: _Outgoing, where: str) -> None:
         """One C-STORE and its outcome in the journal."""
         d, kind = o.due, o.kind
         if self._waits_for_parent(d, kind):
             return
         try:
-            status = _store(assoc, o)
+            response = _store(assoc, o)
+        except AssociationFailed as exc:
+            self._failed(d, f"C-STORE to {where} failed: {exc}", kind)
+            return
         except Exception as exc:
             self._failed(d, f"C-STORE to {where} raised {type(exc).__name__}: {exc}", kind)
             return
-        code = getattr(status, "Status", None)
-        if code is None:
-            self._failed(d, f"no C-STORE response from {where}", kind)
-        elif int(code) in _STORED:
+        if response is None:
+            self._failed(d, f"{where} accepted no presentation context for {o.sop_class}", kind)
+        elif response.status in _STORED:
             self._delivered(d, where, kind)
         else:
-            self._failed(d, f"C-STORE status 0x{int(code):04X} from {where}", kind)
+            comment = f" ({response.error_comment})" if response.error_comment else ""
+            self._failed(d, f"C-STORE status 0x{response.status:04X} from {where}{comment}", kind)
 
 
 @dataclass(frozen=True)
 class _Outgoing:
     due: DueDelivery
     sop_class: str
+    sop_instance: str
     transfer_syntax: str
     kind: str  # "result" or "summary"
 
 
-#: pynetdicom's switch for sending a file's data set as it is encoded (process-wide)
-_RAW_SENDING = threading.Lock()
-
-
-def _store(assoc: Association, o: _Outgoing) -> Any:
+def _store(assoc: StoreAssociation, o: _Outgoing) -> StoreResponse | None:
     """C-STORE of a spooled object.  Sent as encoded in the spool (no decoding and encoding
     again) when the peer accepted its SOP class in the file's transfer syntax; otherwise
-    decoded and converted to the transfer syntax the peer accepted."""
-    exact = any(
-        str(cx.abstract_syntax) == o.sop_class and str(cx.transfer_syntax[0]) == o.transfer_syntax
-        for cx in assoc.accepted_contexts
-    )
-    if not exact:
-        return assoc.send_c_store(pydicom.dcmread(o.due.path))
-    with _RAW_SENDING:
-        before = _config.STORE_SEND_CHUNKED_DATASET
-        _config.STORE_SEND_CHUNKED_DATASET = True
-        try:
-            return assoc.send_c_store(Path(o.due.path))
-        finally:
-            _config.STORE_SEND_CHUNKED_DATASET = before
+    decoded and encoded in the transfer syntax the peer accepted.  None when the peer accepted
+    no context for its SOP class."""
+    data = Path(o.due.path).read_bytes()
+    exact = assoc.context_for(o.sop_class, o.transfer_syntax)
+    start = file_body_start(data)
+    if exact is not None and start is not None:
+        return assoc.store(exact, o.sop_instance, memoryview(data)[start:])
+    context = assoc.context_for(o.sop_class)
+    if context is None:
+        return None
+    ds = pydicom.dcmread(io.BytesIO(data))
+    fp = DicomBytesIO()
+    fp.is_little_endian = True
+    fp.is_implicit_VR = context.transfer_syntax == ImplicitVRLittleEndian
+    write_dataset(fp, ds)
+    return assoc.store(context, o.sop_instance, fp.getvalue())

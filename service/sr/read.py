@@ -819,7 +819,7 @@ def file_structure_problem(data: bytes, transfer_syntax: str) -> str | None:
     """:func:`structure_problem` for a Part 10 file (preamble, "DICM", file meta group)."""
     if data[128:132] != b"DICM":
         return None
-    start = _file_body_start(data)
+    start = file_body_start(data)
     if start is None:
         return "file meta information cut short"
     return structure_problem(data, transfer_syntax, start)
@@ -927,7 +927,7 @@ def decodes_without_error(data: bytes, transfer_syntax: str, start: int) -> bool
     return True
 
 
-def _file_body_start(data: bytes) -> int | None:
+def file_body_start(data: bytes) -> int | None:
     """Where the data set of a Part 10 file starts (after the file meta group); None if not."""
     if data[128:132] != b"DICM":
         return None
@@ -978,7 +978,7 @@ def load_path(path: str | os.PathLike[str]) -> Dataset:
     syntax = str(meta.get("TransferSyntaxUID", "")) if meta is not None else ""
     with open(p, "rb") as fh:
         data = fh.read()
-    start = _file_body_start(data)
+    start = file_body_start(data)
     if start is None or not decodes_without_error(data, syntax, start):
         try:
             # decode every element now (a truncated or damaged file fails here, not later);

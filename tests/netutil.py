@@ -274,13 +274,15 @@ class NodeProcess:
 
 
 @contextlib.contextmanager
-def storescp(out_dir: Path, port: int, ae_title: str = "PACS") -> Iterator[subprocess.Popen]:
+def storescp(
+    out_dir: Path, port: int, ae_title: str = "PACS", extra: Sequence[str] = ()
+) -> Iterator[subprocess.Popen]:
     """DCMTK storescp as the PACS (it listens on all interfaces; we only connect to loopback).
     ``+uf``: one file per received object (a duplicate delivery would show as two files);
-    ``+B``: written exactly as received."""
+    ``+B``: written exactly as received; ``extra``: more options."""
     out_dir.mkdir(parents=True, exist_ok=True)
     proc = subprocess.Popen(
-        [STORESCP, "-aet", ae_title, "-od", str(out_dir), "+uf", "+B", str(port)],
+        [STORESCP, "-aet", ae_title, "-od", str(out_dir), "+uf", "+B", *extra, str(port)],
         stdout=subprocess.DEVNULL,
         stderr=subprocess.DEVNULL,
         # DCMTK reads TCP_NODELAY from the environment; without it each response waits on

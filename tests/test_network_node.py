@@ -10,6 +10,7 @@ import json
 import logging
 import sqlite3
 import threading
+import warnings
 from pathlib import Path
 
 import pydicom
@@ -555,6 +556,31 @@ def test_pacs_down_then_up_every_result_is_delivered(start_node, tmp_path):
         got = wait_for(lambda: (lambda x: x if len(x) >= 3 else None)(pacs_uids(pacs_dir)), 20)
     assert sorted(got) == sorted(expected)
     assert all(study_state(node, u) == "delivered" for u in uids)
+
+
+@needs_dcmtk
+def test_pacs_accepting_only_implicit_vr_gets_the_result_converted(start_node, tmp_path):
+    # results are spooled in explicit VR little endian; a PACS that accepts only implicit VR
+    # little endian (the DICOM default transfer syntax, PS3.5 10.1) gets the same data set
+    # in that syntax
+    pacs_port, pacs_dir = free_port(), tmp_path / "pacs"
+    with storescp(pacs_dir, pacs_port, extra=["+xi"]):
+        node = start_node(forward=[f"PACS@{LOOPBACK}:{pacs_port}"])
+        study = echo_sr("implicit-pacs")
+        assert send([study], node.port) == [0]
+        wait_for(_done(node, study.StudyInstanceUID), 30)
+        wait_for(lambda: pacs_uids(pacs_dir), 20)
+    result = node.journal.result(node.journal.study(study.StudyInstanceUID)["result_uid"])
+    spooled = pydicom.dcmread(result["path"])
+    (path,) = [p for p in pacs_dir.iterdir() if p.is_file()]
+    with warnings.catch_warnings():
+        # pydicom warns when a data set labelled implicit VR is encoded explicit VR
+        warnings.simplefilter("error")
+        at_pacs = pydicom.dcmread(path)
+    assert at_pacs.file_meta.TransferSyntaxUID == "1.2.840.10008.1.2"  # implicit VR LE
+    assert spooled.file_meta.TransferSyntaxUID == "1.2.840.10008.1.2.1"
+    assert at_pacs.SOPInstanceUID == spooled.SOPInstanceUID
+    assert at_pacs == spooled  # every element, value for value
 
 
 def test_results_follow_the_routing_table_of_the_calling_ae(start_node):

@@ -80,3 +80,20 @@ def test_every_configuration_key_named_in_the_document_exists(text):
     assert len(named) > 30
     wrong = sorted(n for n in named if not _exists(n))
     assert not wrong, f"docs/conformance.md names keys that do not exist: {wrong}"
+
+
+def test_implementation_identifiers_are_the_codes(text):
+    # PS3.7 D.3.3.2: what the node announces in its association requests and answers
+    from pynetdicom import PYNETDICOM_IMPLEMENTATION_UID, PYNETDICOM_IMPLEMENTATION_VERSION
+
+    from service.network.store_association import (
+        IMPLEMENTATION_CLASS_UID,
+        IMPLEMENTATION_VERSION_NAME,
+    )
+
+    assert f"| Implementation Class UID, as SCU | `{IMPLEMENTATION_CLASS_UID}`" in text
+    assert f"| Implementation Version Name, as SCU | `{IMPLEMENTATION_VERSION_NAME}` |" in text
+    assert f"| Implementation Class UID, as SCP | `{PYNETDICOM_IMPLEMENTATION_UID}`" in text
+    assert (
+        f"| Implementation Version Name, as SCP | `{PYNETDICOM_IMPLEMENTATION_VERSION}` |" in text
+    )

@@ -559,6 +559,23 @@ def test_pacs_down_then_up_every_result_is_delivered(start_node, tmp_path):
 
 
 @needs_dcmtk
+def test_spooled_result_damaged_before_delivery_fails_with_a_reason(start_node, tmp_path):
+    pacs_port, pacs_dir = free_port(), tmp_path / "pacs"
+    node = start_node(forward=[f"PACS@{LOOPBACK}:{pacs_port}"])  # the PACS is down at first
+    study = echo_sr("damaged-spool")
+    assert send([study], node.port) == [0]
+    wait_for(lambda: node.journal.deliveries(states=["pending"]), 30)
+    (pending,) = node.journal.deliveries(states=["pending"])
+    path = Path(node.journal.result(pending["result_uid"])["path"])
+    path.write_bytes(b"not a DICOM file")  # e.g. a disk fault after grading
+    with storescp(pacs_dir, pacs_port):
+        wait_for(lambda: node.journal.deliveries(states=["failed"]), 30)
+    (failed,) = node.journal.deliveries(states=["failed"])
+    assert failed["last_error"].startswith("spooled result unreadable: no DICOM file meta")
+    assert pacs_uids(pacs_dir) == []  # nothing was sent
+
+
+@needs_dcmtk
 def test_pacs_accepting_only_implicit_vr_gets_the_result_converted(start_node, tmp_path):
     # results are spooled in explicit VR little endian; a PACS that accepts only implicit VR
     # little endian (the DICOM default transfer syntax, PS3.5 10.1) gets the same data set

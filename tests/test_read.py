@@ -441,3 +441,44 @@ def test_decodable_check_refuses_what_pydicom_cannot_decode():
     assert not decodes_without_error(odd, "1.2.840.10008.1.2.1", start)
     # implicit VR: not known, so pydicom decodes everything (PS3.5 Table A-1)
     assert not decodes_without_error(good, "1.2.840.10008.1.2", start)
+
+
+# --- the file meta UIDs the sender needs, read from the bytes ----------------------------------
+
+
+@pytest.mark.filterwarnings("ignore::UserWarning")  # pydicom warns about the damaged values
+@settings(max_examples=150, deadline=None, derandomize=True)
+@given(damage=st.lists(_DAMAGE_STEP, min_size=0, max_size=2), cut=st.integers(0, 400))
+def test_file_meta_uids_agree_with_pydicom(damage, cut):
+    import tempfile
+
+    from pydicom.filereader import read_file_meta_info
+
+    from service.sr.read import file_meta_uids
+
+    data = bytes(_damaged(_encoded(build_echo_sr(_MIXED, template=Template.tid5200)), damage))
+    data = data[: len(data) - cut]
+    got = file_meta_uids(data)
+    with tempfile.NamedTemporaryFile(suffix=".dcm") as f:
+        f.write(data)
+        f.flush()
+        try:
+            meta = read_file_meta_info(f.name)  # PS3.10 7.1 as pydicom reads it
+        except Exception:
+            meta = None
+    if got is not None:
+        # every value this returns is the value pydicom reads
+        assert meta is not None
+        assert got == {k: str(getattr(meta, k)) for k in got}
+    if not damage and cut < 300:
+        # an intact meta group: all three found (PS3.10 Table 7.1-1, Type 1)
+        assert got is not None and got["TransferSyntaxUID"] == "1.2.840.10008.1.2.1"
+
+
+def test_file_meta_uids_refuse_what_is_not_part10():
+    from service.sr.read import file_meta_uids
+
+    good = _encoded(build_echo_sr(_MIXED, template=Template.tid5200))
+    assert file_meta_uids(b"") is None
+    assert file_meta_uids(b"\0" * 128 + b"DIcM" + good[132:]) is None  # PS3.10 7.1 prefix
+    assert file_meta_uids(good[:140]) is None  # cut inside the meta group

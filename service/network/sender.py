@@ -22,7 +22,6 @@ from pathlib import Path
 
 import pydicom
 from pydicom.filebase import DicomBytesIO
-from pydicom.filereader import read_file_meta_info
 from pydicom.filewriter import write_dataset
 from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
 
@@ -37,7 +36,7 @@ from service.network.store_association import (
 )
 from service.observability.logs import event
 from service.observability.metrics import Metrics
-from service.sr.read import file_body_start
+from service.sr.read import file_body_start, file_meta_uids
 from service.store.journal import FOLDER_DESTINATION, DueDelivery, Journal
 from service.store.spool import durable_write, safe_name
 
@@ -257,16 +256,26 @@ class Sender:
         out = []
         for d in items:
             try:
-                meta = read_file_meta_info(d.path)
-                sop_class = str(meta.MediaStorageSOPClassUID)
-                sop_instance = str(meta.MediaStorageSOPInstanceUID)
-                syntax = str(meta.TransferSyntaxUID)
-            except Exception as exc:
-                self.journal.mark_failed(d.id, f"spooled result unreadable: {exc}")
+                meta = file_meta_uids(Path(d.path).read_bytes())
+            except OSError as exc:
+                meta, why = None, f"{type(exc).__name__}: {exc.strerror or exc}"
+            else:
+                why = "no DICOM file meta information (PS3.10 section 7.1)"
+            if meta is None:
+                self.journal.mark_failed(d.id, f"spooled result unreadable: {why}")
                 self.metrics.deliveries.labels(outcome="failed", kind="result").inc()
                 continue
+            sop_class = meta["MediaStorageSOPClassUID"]
             kind = "summary" if sop_class == ENCAPSULATED_PDF else "result"
-            out.append(_Outgoing(d, sop_class, sop_instance, syntax, kind))
+            out.append(
+                _Outgoing(
+                    d,
+                    sop_class,
+                    meta["MediaStorageSOPInstanceUID"],
+                    meta["TransferSyntaxUID"],
+                    kind,
+                )
+            )
         return out
 
     def _send(self, assoc: StoreAssociation, o: _Outgoing, where: str) -> None:

@@ -941,15 +941,52 @@ def file_body_start(data: bytes) -> int | None:
 def _meta_end(data: bytes) -> int:
     """The offset just past the file meta group (group 0002, explicit VR little endian) of a
     Part 10 file; struct.error when an element header is cut short."""
+    return _meta_walk(data, None)
+
+
+def _meta_walk(data: bytes, values: dict[int, bytes] | None) -> int:
     pos = 132
     while pos + 8 <= len(data) and struct.unpack_from("<H", data, pos)[0] == 0x0002:
         if data[pos + 4 : pos + 6] in _LONG_VRS:
             (length,) = struct.unpack_from("<I", data, pos + 8)
-            pos += 12 + length
+            start = pos + 12
         else:
             (length,) = struct.unpack_from("<H", data, pos + 6)
-            pos += 8 + length
+            start = pos + 8
+        if values is not None:
+            values[struct.unpack_from("<H", data, pos + 2)[0]] = data[start : start + length]
+        pos = start + length
     return pos
+
+
+#: the file meta elements :func:`file_meta_uids` returns (PS3.10 Table 7.1-1)
+_META_UIDS = {
+    0x0002: "MediaStorageSOPClassUID",
+    0x0003: "MediaStorageSOPInstanceUID",
+    0x0010: "TransferSyntaxUID",
+}
+
+
+def file_meta_uids(data: bytes) -> dict[str, str] | None:
+    """Media Storage SOP Class UID, Media Storage SOP Instance UID and Transfer Syntax UID
+    from the file meta group of a Part 10 file's bytes, by keyword; None when the file has no
+    Part 10 header, its meta group is cut short, or one of the three is missing or not
+    ASCII."""
+    if data[128:132] != b"DICM":
+        return None
+    values: dict[int, bytes] = {}
+    try:
+        end = _meta_walk(data, values)
+    except struct.error:
+        return None
+    if end > len(data) or not all(values.get(e) for e in _META_UIDS):
+        return None
+    try:
+        return {
+            keyword: values[e].rstrip(b"\x00 ").decode("ascii") for e, keyword in _META_UIDS.items()
+        }
+    except UnicodeDecodeError:  # a UID is digits and dots (PS3.5 9.1)
+        return None
 
 
 def read_path(path: str | os.PathLike[str]) -> tuple[Dataset, SourceDocument]:

@@ -51,7 +51,7 @@ def test_receivers_latency_and_memory_sections(tmp_path):
     r, figures = run_bench(
         tmp_path,
         "--sections",
-        "receivers,latency,memory",
+        "receivers,latency,sender,memory",
         "--n",
         "5",
         "--latency-n",
@@ -70,6 +70,10 @@ def test_receivers_latency_and_memory_sections(tmp_path):
     assert rec["diastolic_sr_delivered"] + rec["diastolic_sr_failed"] >= 5
     lat = figures["latency"]
     assert lat["delivered"] == 4 and lat["p50_ms"] <= lat["p95_ms"] <= lat["p99_ms"]
+    sender = figures["sender"]
+    assert sender["n"] >= 1
+    for key in ("store_association", "pynetdicom"):
+        assert sender[key]["objects_per_s"] > 0 and sender[key]["cpu_ms_per_object"] > 0
     mem = figures["memory"]["marks"]
     assert set(mem) == {"3", "6"} and all(v["rss_kib"] > 0 for v in mem.values())
     assert "objects/s" in r.stdout and "p95" in r.stdout

@@ -5,6 +5,7 @@ Run from the repository root (the venv active, DCMTK in /usr/bin)::
     python tests/bench/bench.py                       # every section, N = 300
     python tests/bench/bench.py --n 1000 --sections receivers,offline
     python tests/bench/bench.py --sections memory --memory-at 1000,10000
+    python tests/bench/bench.py --sections sender
     python tests/bench/bench.py --json figures.json   # also write the figures as JSON
 
 Sections
@@ -19,6 +20,9 @@ latency    a steady offered load (default 10 studies/s, one ``storescu`` per stu
            delivered to the PACS (journal ``delivered_at``).
 offline    ``diastolic-sr grade`` on a folder of N files against a bare pydicom read-and-write
            of the same files (files/s).
+sender     the node's C-STORE service user against pynetdicom's requestor, each sending the
+           same N result SRs to DCMTK ``storescp`` over one association (objects/s, CPU
+           per object).
 memory     resident memory (VmRSS) of the node after 1 000 and 10 000 studies streamed.
 journal    the journal's query times as it grows, and SQLite's query plan for each statement
            the service runs (is it indexed?).
@@ -58,7 +62,7 @@ STORESCP = "/usr/bin/storescp"
 ECHOSCU = "/usr/bin/echoscu"
 NODE_AE = "DIASTOLIC_SR"
 PACS_AE = "PACS"
-SECTIONS = ("receivers", "latency", "offline", "memory", "journal")
+SECTIONS = ("receivers", "latency", "offline", "sender", "memory", "journal")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -522,6 +526,93 @@ def bench_offline(work: Path, n: int) -> dict[str, Any]:
     return out
 
 
+def bench_sender(work: Path, n: int) -> dict[str, Any]:
+    """The node's C-STORE service user (service/network/store_association.py) against
+    pynetdicom's requestor (as the sender used it before: the spooled file sent as encoded,
+    TCP_NODELAY set), each sending the same N result SRs to DCMTK storescp over one
+    association; objects/s and this process's CPU per object (all its threads)."""
+    from pydicom.uid import ExplicitVRLittleEndian
+    from pynetdicom import AE, _config
+
+    from service.network.grading_worker import GradeJob, grade_in_worker
+    from service.network.store_association import Proposal, StoreAssociation, Timeouts
+    from service.observability.logs import quiet_pynetdicom
+    from service.pipeline import GradeOptions
+    from service.sr.read import file_body_start, file_meta_uids
+
+    say(f"\n== sender: {n} result SRs to DCMTK storescp over one association ==")
+    src = write_studies(work / "sender-in", n, run="sender")
+    results = work / "sender-results"
+    results.mkdir()
+    files = []
+    for i, path in enumerate(src):
+        job = GradeJob(
+            study_uid=f"sender-{i}",
+            object_uids=(f"o{i}",),
+            object_paths=(path,),
+            options=GradeOptions(),
+            mapping_paths=(),
+        )
+        record = grade_in_worker(job)
+        if record.result is not None and record.result.data is not None:
+            files.append(results / f"r{i:06d}.dcm")
+            files[-1].write_bytes(record.result.data)
+    sizes = [f.stat().st_size for f in files]
+    say(f"{len(files)} results, median {statistics.median(sizes) / 1024:.0f} KiB")
+    quiet_pynetdicom()
+
+    def ours(port: int) -> None:
+        metas = [file_meta_uids(f.read_bytes()) for f in files[:1]]
+        sop_class = metas[0]["MediaStorageSOPClassUID"]
+        assoc = StoreAssociation.open(
+            LOOPBACK,
+            port,
+            calling_ae=NODE_AE,
+            called_ae=PACS_AE,
+            proposals=[Proposal(sop_class, (ExplicitVRLittleEndian,))],
+            max_pdu=16382,
+            timeouts=Timeouts(connect=10, acse=30, dimse=60, network=60),
+        )
+        cx = assoc.context_for(sop_class, ExplicitVRLittleEndian)
+        for f in files:
+            data = f.read_bytes()
+            meta = file_meta_uids(data)
+            body = memoryview(data)[file_body_start(data) :]
+            assert assoc.store(cx, meta["MediaStorageSOPInstanceUID"], body).status == 0
+        assoc.release()
+
+    def theirs(port: int) -> None:
+        from service.network.listener import no_delay
+
+        ae = AE(ae_title=NODE_AE)
+        sop_class = file_meta_uids(files[0].read_bytes())["MediaStorageSOPClassUID"]
+        ae.add_requested_context(sop_class, ExplicitVRLittleEndian)
+        assoc = ae.associate(LOOPBACK, port, ae_title=PACS_AE)
+        no_delay(assoc)
+        _config.STORE_SEND_CHUNKED_DATASET = True
+        try:
+            for f in files:
+                assert assoc.send_c_store(f).Status == 0
+        finally:
+            _config.STORE_SEND_CHUNKED_DATASET = False
+            assoc.release()
+
+    out: dict[str, Any] = {"n": len(files), "median_bytes": statistics.median(sizes)}
+    for name, send in (("store_association", ours), ("pynetdicom", theirs)):
+        port = free_port()
+        with dcmtk_storescp(work / f"sender-pacs-{name}", port, work / f"sender-{name}.log"):
+            c0, t0 = time.process_time(), time.perf_counter()
+            send(port)
+            cpu, wall = time.process_time() - c0, time.perf_counter() - t0
+        per_s, cpu_ms = len(files) / wall, cpu * 1000 / len(files)
+        out[name] = {"objects_per_s": per_s, "cpu_ms_per_object": cpu_ms}
+        say(
+            f"{name + ':':20s} {per_s:7.1f} objects/s, "
+            f"{cpu_ms:5.2f} ms CPU per object (this process, all threads)"
+        )
+    return out
+
+
 def bench_memory(work: Path, marks: Sequence[int], workers: int, batch: int) -> dict[str, Any]:
     total = max(marks)
     say(f"\n== memory: node RSS while {total} studies stream through ==")
@@ -743,7 +834,7 @@ def parse(argv: list[str] | None) -> argparse.Namespace:
     p.add_argument("--journal-sizes", default="1000,10000,100000", help="journal sizes (studies)")
     p.add_argument(
         "--sections",
-        default="receivers,latency,offline,journal",
+        default="receivers,latency,offline,sender,journal",
         help=f"comma-separated, from {','.join(SECTIONS)} (memory is long: ask for it)",
     )
     p.add_argument("--json", type=Path, help="write the figures to this JSON file")
@@ -777,6 +868,8 @@ def main(argv: list[str] | None = None) -> int:
                 figures[key] = bench_latency(work / f"lat{i}", args.latency_n, rate, args.workers)
         if "offline" in sections:
             figures["offline"] = bench_offline(work, args.offline_n or args.n)
+        if "sender" in sections:
+            figures["sender"] = bench_sender(work, args.n)
         if "memory" in sections:
             marks = [int(x) for x in args.memory_at.split(",") if x.strip()]
             figures["memory"] = bench_memory(work, marks, args.workers, args.memory_batch)

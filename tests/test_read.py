@@ -476,9 +476,12 @@ def test_file_meta_uids_agree_with_pydicom(damage, cut):
 
 
 def test_file_meta_uids_refuse_what_is_not_part10():
-    from service.sr.read import file_meta_uids
+    from service.sr.read import file_body_start, file_meta_uids
 
     good = _encoded(build_echo_sr(_MIXED, template=Template.tid5200))
     assert file_meta_uids(b"") is None
     assert file_meta_uids(b"\0" * 128 + b"DIcM" + good[132:]) is None  # PS3.10 7.1 prefix
     assert file_meta_uids(good[:140]) is None  # cut inside the meta group
+    start = file_body_start(good)
+    assert start is not None and file_meta_uids(good[:start]) is not None
+    assert file_meta_uids(good[: start - 3]) is None  # its last value cut short

@@ -122,14 +122,22 @@ def result_identity(
     rule_set_version: str,
 ) -> tuple[str, str]:
     """(SOP Instance UID, Series Instance UID) of the result: deterministic, so a re-sent study
-    under the same rules and configuration yields the same instance (no duplicate in the PACS)."""
+    under the same rules, configuration and document layout yields the same instance (no
+    duplicate in the PACS)."""
     from service.sr.identity import derive_uid
+    from service.sr.write import DOCUMENT_LAYOUT
 
     sources = sorted(d.sop_instance_uid for d in documents)
     digest = _settings_digest(options, table_digest)
     study = documents[0].study_instance_uid
     instance = derive_uid(
-        SOFTWARE_NAME, "result", *sources, rule_set_version, digest, root=options.uid_root
+        SOFTWARE_NAME,
+        "result",
+        *sources,
+        rule_set_version,
+        digest,
+        DOCUMENT_LAYOUT,
+        root=options.uid_root,
     )
     series = derive_uid(SOFTWARE_NAME, "series", study, root=options.uid_root)
     return instance, series

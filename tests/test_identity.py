@@ -109,3 +109,25 @@ def test_config_digest_stable_and_key_order_free():
 def test_config_digest_rejects_non_json():
     with pytest.raises(UserError, match="cannot be digested"):
         config_digest({"x": object()})
+
+
+def test_result_uid_follows_sources_rules_settings_and_document_layout(monkeypatch):
+    # a re-sent study under the same rules, settings and layout: the same result instance;
+    # a result laid out differently (service.sr.write.DOCUMENT_LAYOUT) never reuses its UID
+    import service.sr.write as write
+    from service.model import SourceDocument
+    from service.pipeline import GradeOptions, result_identity
+
+    doc = SourceDocument(
+        sop_instance_uid="2.25.1",
+        sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
+        study_instance_uid="2.25.2",
+        series_instance_uid="2.25.3",
+    )
+    first = result_identity([doc], GradeOptions(), "table-digest", "ase-eacvi-2016/1")
+    assert result_identity([doc], GradeOptions(), "table-digest", "ase-eacvi-2016/1") == first
+    assert result_identity([doc], GradeOptions(), "table-digest", "ase-2025/1")[0] != first[0]
+    monkeypatch.setattr(write, "DOCUMENT_LAYOUT", write.DOCUMENT_LAYOUT + "-other")
+    again = result_identity([doc], GradeOptions(), "table-digest", "ase-eacvi-2016/1")
+    assert again[0] != first[0]
+    assert again[1] == first[1]  # the series stays the study's results series

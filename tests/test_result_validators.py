@@ -129,6 +129,14 @@ def test_dsrdump_shows_the_tree_shape(written):
     assert '<contains CONTAINER:(19005-8,LN,"Impressions")' in out
     assert "<contains COMPOSITE:(122073,DCM," in out
     assert grade_words(CASES["grade-2"].primary.grade) in out
+    # as DCMTK lists the tree: the impression and the caution come before the assessment and
+    # its criteria, right after the observer context
+    lines = out.splitlines()
+    first = next(i for i, ln in enumerate(lines) if ln.lstrip().startswith("<contains"))
+    assert '<contains CONTAINER:(19005-8,LN,"Impressions")' in lines[first]
+    assert CAUTION in "\n".join(lines[first : first + 4])
+    assessment = next(i for i, ln in enumerate(lines) if "(ASSESSMENT,99DSRG" in ln)
+    assert first < assessment
 
 
 def test_dciodvfy_negative_control(tmp_path):

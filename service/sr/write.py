@@ -72,6 +72,12 @@ SERIES_DESCRIPTION = "Diastolic function assessment (automated)"
 #: fixed, so every result names the same device (PS3.16 TID 1004)
 DEVICE_UID = derive_uid("diastolic-sr", "device observer")
 
+#: the shape of the result's content tree (which containers, in which order).  It is one of
+#: the parts the result's SOP Instance UID is derived from, so a result laid out differently
+#: never reuses the UID of an earlier one with other content (a re-sent study then gets a new
+#: instance that names the earlier one as its predecessor).  Layout 2: Impressions first.
+DOCUMENT_LAYOUT = "layout-2"
+
 
 _GRADE_WORDS: dict[Grade, str] = {
     Grade.normal: "normal diastolic function",
@@ -321,7 +327,18 @@ def content_tree(
         _text(C.DEVICE_OBSERVER_MANUFACTURER, MANUFACTURER, Rel.HAS_OBS_CONTEXT),
         _text(C.DEVICE_OBSERVER_MODEL, MODEL_NAME, Rel.HAS_OBS_CONTEXT),
     ]
-    body: list[Item] = [assessment_container(assessments.primary, primary=True)]
+    # the conclusion and the caution first: a reader (or a viewer showing the tree) meets
+    # them before the hundreds of criteria that support them
+    body: list[Item] = [
+        _container(
+            C.IMPRESSIONS,
+            [
+                _text(C.IMPRESSION, summary_text(assessments), Rel.CONTAINS),
+                _text(C.CAUTION, CAUTION, Rel.CONTAINS),
+            ],
+        )
+    ]
+    body.append(assessment_container(assessments.primary, primary=True))
     body += [assessment_container(o, primary=False) for o in assessments.others]
     if assessments.others:
         sentences = [d for d in assessments.disagreements if d.strip()] or [
@@ -334,15 +351,6 @@ def content_tree(
             )
         )
     body.append(measurements_container(measurements))
-    body.append(
-        _container(
-            C.IMPRESSIONS,
-            [
-                _text(C.IMPRESSION, summary_text(assessments), Rel.CONTAINS),
-                _text(C.CAUTION, CAUTION, Rel.CONTAINS),
-            ],
-        )
-    )
     for src in sources:
         body.append(
             composite_item(

@@ -51,6 +51,7 @@ from service.cli import main as cli_main
 from service.errors import UserError
 from service.network.demo_loop import ResultReceiver, run_network_demo
 from service.network.service import Node
+from service.store.journal import FOLDER_DESTINATION
 
 pytestmark = pytest.mark.network
 
@@ -564,13 +565,21 @@ def test_spooled_result_damaged_before_delivery_fails_with_a_reason(start_node, 
     node = start_node(forward=[f"PACS@{LOOPBACK}:{pacs_port}"])  # the PACS is down at first
     study = echo_sr("damaged-spool")
     assert send([study], node.port) == [0]
-    wait_for(lambda: node.journal.deliveries(states=["pending"]), 30)
-    (pending,) = node.journal.deliveries(states=["pending"])
+
+    def to_pacs(state: str) -> list[dict]:
+        return [
+            d
+            for d in node.journal.deliveries(states=[state])
+            if d["destination"] != FOLDER_DESTINATION  # the results folder's copy is apart
+        ]
+
+    wait_for(lambda: to_pacs("pending"), 30)
+    (pending,) = to_pacs("pending")
     path = Path(node.journal.result(pending["result_uid"])["path"])
     path.write_bytes(b"not a DICOM file")  # e.g. a disk fault after grading
     with storescp(pacs_dir, pacs_port):
-        wait_for(lambda: node.journal.deliveries(states=["failed"]), 30)
-    (failed,) = node.journal.deliveries(states=["failed"])
+        wait_for(lambda: to_pacs("failed"), 30)
+    (failed,) = to_pacs("failed")
     assert failed["last_error"].startswith("spooled result unreadable: no DICOM file meta")
     assert pacs_uids(pacs_dir) == []  # nothing was sent
 

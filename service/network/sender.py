@@ -256,10 +256,11 @@ class Sender:
         out = []
         for d in items:
             try:
-                meta = file_meta_uids(Path(d.path).read_bytes())
+                data = Path(d.path).read_bytes()
             except OSError as exc:
                 meta, why = None, f"{type(exc).__name__}: {exc.strerror or exc}"
             else:
+                meta = file_meta_uids(data)
                 why = "no DICOM file meta information (PS3.10 section 7.1)"
             if meta is None:
                 self.journal.mark_failed(d.id, f"spooled result unreadable: {why}")
@@ -274,6 +275,7 @@ class Sender:
                     meta["MediaStorageSOPInstanceUID"],
                     meta["TransferSyntaxUID"],
                     kind,
+                    data,
                 )
             )
         return out
@@ -307,6 +309,8 @@ class _Outgoing:
     sop_instance: str
     transfer_syntax: str
     kind: str  # "result" or "summary"
+    #: the spooled Part 10 file, read once (at most one round of due deliveries is held)
+    data: bytes
 
 
 def _store(assoc: StoreAssociation, o: _Outgoing) -> StoreResponse | None:
@@ -314,7 +318,7 @@ def _store(assoc: StoreAssociation, o: _Outgoing) -> StoreResponse | None:
     again) when the peer accepted its SOP class in the file's transfer syntax; otherwise
     decoded and encoded in the transfer syntax the peer accepted.  None when the peer accepted
     no context for its SOP class."""
-    data = Path(o.due.path).read_bytes()
+    data = o.data
     exact = assoc.context_for(o.sop_class, o.transfer_syntax)
     start = file_body_start(data)
     if exact is not None and start is not None:

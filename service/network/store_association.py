@@ -217,7 +217,7 @@ def _us(value: bytes | None) -> int | None:
     return struct.unpack("<H", value)[0] if value is not None and len(value) == 2 else None
 
 
-def p_data_pdus(context_id: int, flags: int, data: bytes, max_pdu: int) -> list[bytes]:
+def p_data_pdus(context_id: int, flags: int, data: bytes | memoryview, max_pdu: int) -> list[bytes]:
     """``data`` as P-DATA-TF PDUs of one PDV each (PS3.8 section 9.3.5), none longer than the
     peer's maximum PDU length; the last PDV carries the last-fragment bit."""
     size = max_pdu - 6 if max_pdu else 1 << 20
@@ -280,10 +280,9 @@ class StoreAssociation:
             raise CannotConnect(str(exc.strerror or exc)) from None
         try:
             sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+            sock.settimeout(timeouts.acse)  # the TLS socket keeps it
             if tls is not None:
-                sock.settimeout(timeouts.acse)
                 sock = tls.wrap_socket(sock, server_hostname=host)
-            sock.settimeout(timeouts.acse)
             sock.sendall(request)
             pdu_type, body = _read_pdu(sock)
         except AssociationFailed:
@@ -341,7 +340,7 @@ class StoreAssociation:
         try:
             self._sock.settimeout(self._timeouts.network)
             pdus = p_data_pdus(context.context_id, _COMMAND, command, self.peer_max_pdu)
-            pdus += p_data_pdus(context.context_id, 0, bytes(data_set), self.peer_max_pdu)
+            pdus += p_data_pdus(context.context_id, 0, data_set, self.peer_max_pdu)
             for pdu in pdus:
                 self._sock.sendall(pdu)
             self._sock.settimeout(self._timeouts.dimse)

@@ -561,9 +561,9 @@ def bench_sender(work: Path, n: int) -> dict[str, Any]:
     say(f"{len(files)} results, median {statistics.median(sizes) / 1024:.0f} KiB")
     quiet_pynetdicom()
 
+    sop_class = file_meta_uids(files[0].read_bytes())["MediaStorageSOPClassUID"]
+
     def ours(port: int) -> None:
-        metas = [file_meta_uids(f.read_bytes()) for f in files[:1]]
-        sop_class = metas[0]["MediaStorageSOPClassUID"]
         assoc = StoreAssociation.open(
             LOOPBACK,
             port,
@@ -585,7 +585,6 @@ def bench_sender(work: Path, n: int) -> dict[str, Any]:
         from service.network.listener import no_delay
 
         ae = AE(ae_title=NODE_AE)
-        sop_class = file_meta_uids(files[0].read_bytes())["MediaStorageSOPClassUID"]
         ae.add_requested_context(sop_class, ExplicitVRLittleEndian)
         assoc = ae.associate(LOOPBACK, port, ae_title=PACS_AE)
         no_delay(assoc)

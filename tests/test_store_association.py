@@ -33,9 +33,10 @@ from netutil import (
 )
 from pydicom.filereader import read_dataset
 from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
-from pynetdicom import AE, evt
+from pynetdicom import evt
 from pynetdicom.pdu import A_ASSOCIATE_RQ, P_DATA_TF
 
+from service.network.demo_loop import ResultReceiver
 from service.network.store_association import (
     IMPLEMENTATION_CLASS_UID,
     IMPLEMENTATION_VERSION_NAME,
@@ -53,6 +54,7 @@ from service.sr.read import file_body_start
 needs_dcmtk = pytest.mark.skipif(SKIP_WITHOUT_DCMTK, reason=DCMTK_REASON)
 
 ENHANCED_SR = "1.2.840.10008.5.1.4.1.1.88.22"
+ENCAPSULATED_PDF = "1.2.840.10008.5.1.4.1.1.104.1"
 QUICK = Timeouts(connect=5, acse=5, dimse=5, network=5)
 
 
@@ -197,42 +199,30 @@ def test_dcmtk_storescp_accepting_only_implicit_vr(tmp_path):
         assoc.release()
 
 
-class _Acceptor:
-    """A pynetdicom acceptor for one test; ``answer`` decides each C-STORE."""
+class _Acceptor(ResultReceiver):
+    """The demo's storage SCP (pynetdicom, every SR storage class) for one test, which also
+    notes each requestor's implementation identifiers and each release; ``answer`` decides
+    each C-STORE."""
 
-    def __init__(self, answer, *, require_called: bool = False, classes=(COMPREHENSIVE_SR,)):
-        self.ae = AE(ae_title="PACS")
-        self.ae.require_called_aet = require_called
-        self.ae.acse_timeout = self.ae.dimse_timeout = self.ae.network_timeout = 5
-        for c in classes:
-            self.ae.add_supported_context(c, [ExplicitVRLittleEndian, ImplicitVRLittleEndian])
-        self.received: list[pydicom.Dataset] = []
+    def __init__(self, answer, *, require_called: bool = False):
+        super().__init__("PACS")
+        self._ae.require_called_aet = require_called
+        self._ae.acse_timeout = self._ae.dimse_timeout = self._ae.network_timeout = 5
         self.requestors: list[tuple[str, str]] = []
         self.released = threading.Event()
-        self.port = free_port()
         self._answer = answer
+        self.start()
 
-        def on_store(event):
-            self.received.append(event.dataset)
-            self.requestors.append(
-                (
-                    str(event.assoc.requestor.implementation_class_uid),
-                    event.assoc.requestor.implementation_version_name,
-                )
-            )
-            return self._answer(event)
-
-        self.server = self.ae.start_server(
-            (LOOPBACK, self.port),
-            block=False,
-            evt_handlers=[
-                (evt.EVT_C_STORE, on_store),
-                (evt.EVT_RELEASED, lambda e: self.released.set()),
-            ],
+    def _on_store(self, event):
+        requestor = event.assoc.requestor
+        self.requestors.append(
+            (str(requestor.implementation_class_uid), requestor.implementation_version_name)
         )
+        super()._on_store(event)  # keeps the data set
+        return self._answer(event)
 
-    def close(self):
-        self.server.shutdown()
+    def _handlers(self):
+        return [*super()._handlers(), (evt.EVT_RELEASED, lambda e: self.released.set())]
 
 
 @pytest.fixture
@@ -246,7 +236,7 @@ def acceptor():
 
     yield make
     for a in made:
-        a.close()
+        a.stop()
 
 
 def test_pynetdicom_acceptor_receives_the_same_data_set(acceptor, tmp_path):
@@ -290,9 +280,9 @@ def test_rejection_names_result_source_and_reason(acceptor):
 
 
 def test_no_accepted_context_is_a_failure(acceptor):
-    peer = acceptor(classes=(ENHANCED_SR,))
+    peer = acceptor()  # SR storage only: Encapsulated PDF Storage (PS3.4 B.5) is not supported
     with pytest.raises(AssociationFailed, match="no proposed presentation context"):
-        _open(peer.port)
+        _open(peer.port, classes=[ENCAPSULATED_PDF])
     assert peer.released.wait(5)  # the association was released, not left open
 
 

@@ -66,11 +66,15 @@ class ResultReceiver:
             self.received.append(ds)
         return 0x0000
 
+    def _handlers(self) -> list[tuple[Any, Any]]:
+        """pynetdicom event handlers bound on start (subclasses may add theirs)."""
+        return [(evt.EVT_C_STORE, self._on_store)]
+
     def start(self) -> int:
         self._server = self._ae.start_server(
             (LOOPBACK, self._port),
             block=False,
-            evt_handlers=[(evt.EVT_C_STORE, self._on_store)],
+            evt_handlers=self._handlers(),
             ssl_context=self._ssl,
         )
         self._port = int(self._server.server_address[1])

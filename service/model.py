@@ -361,6 +361,24 @@ class Pathway(StrEnum):
     not_applicable = "not-applicable"  # the standard algorithm does not apply; no grade
 
 
+class Outcome(StrEnum):
+    """What one assessment concluded, as one token: the vocabulary of the JSON ``outcome``
+    field, the journal, the metrics and the audit.  A grade when the standard algorithm
+    graded the study; otherwise why there is no grade.  Atrial fibrillation (filling
+    pressure only, no grade) and special situations (alternative criteria or "the standard
+    algorithm does not apply") are outcomes of their own, never counted with studies that
+    could not be graded for missing data."""
+
+    normal = "normal"
+    grade_1 = "grade-1"
+    grade_2 = "grade-2"
+    grade_3 = "grade-3"
+    indeterminate = "indeterminate"
+    not_gradable = "not-gradable"  # the standard algorithm lacked the data it needs
+    atrial_fibrillation = "atrial-fibrillation"  # no grade; filling pressure by AF criteria
+    special_situation = "special-situation"  # alternative criteria, or algorithm not applicable
+
+
 class BorderlineFlag(Frozen):
     """A criterion whose value lies within measurement variability of its cut-off and whose
     flip to the other side would change the grade or the filling pressure."""
@@ -403,6 +421,14 @@ class Assessment(Frozen):
     @property
     def is_borderline(self) -> bool:
         return bool(self.borderline)
+
+    @property
+    def outcome(self) -> Outcome:
+        if self.pathway is Pathway.atrial_fibrillation:
+            return Outcome.atrial_fibrillation
+        if self.pathway in (Pathway.special_situation, Pathway.not_applicable):
+            return Outcome.special_situation
+        return Outcome(self.grade.value)
 
 
 class AssessmentSet(Frozen):

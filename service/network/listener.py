@@ -50,7 +50,6 @@ from service.observability.logs import event
 from service.observability.metrics import Metrics
 from service.sr.read import structure_problem
 from service.store.journal import Journal
-from service.store.spool import Spool
 
 log = logging.getLogger("diastolic_sr.listener")
 
@@ -201,7 +200,6 @@ class Listener:
         self,
         config: Config,
         journal: Journal,
-        spool: Spool,
         *,
         on_received: Callable[[str], None] = lambda study_uid: None,
         metrics: Metrics | None = None,
@@ -209,7 +207,6 @@ class Listener:
         self.config = config
         self.metrics = metrics or Metrics()
         self.journal = journal
-        self.spool = spool
         self.on_received = on_received
         self.server: ThreadedAssociationServer | None = None
         self._closed = False
@@ -418,15 +415,13 @@ class Listener:
         if problem:
             return self._object_rejected(calling, affected, DOES_NOT_MATCH_SOP_CLASS, problem)
         try:
-            data = part10_bytes(ev)
-            path = self.spool.write_object(study_uid, sop_uid, data)
-            self.journal.record_object(
+            self.journal.store_object(
                 sop_instance_uid=sop_uid,
                 study_uid=study_uid,
                 sop_class_uid=sop_class,
                 transfer_syntax=str(ev.context.transfer_syntax),
                 calling_ae=calling,
-                path=path,
+                data=part10_bytes(ev),
                 settle_seconds=self.config.assembly.settle_seconds,
             )
         except Exception as exc:

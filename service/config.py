@@ -268,6 +268,14 @@ class RetentionConfig(Section):
     interval_hours: float = Field(default=6, gt=0, le=168)
 
 
+class JournalConfig(Section):
+    """Where the node's roles share their work."""
+
+    #: seconds a claim on a study or a delivery holds without being renewed: work of a
+    #: process or node that died is taken over after it
+    lease_seconds: float = Field(default=30.0, ge=2, le=3600)
+
+
 class LoggingConfig(Section):
     #: "json": one JSON object per line (for log collectors); "text": human-readable lines
     format: Literal["json", "text"] = "json"
@@ -300,6 +308,7 @@ class Config(Section):
     delivery: DeliveryConfig = Field(default_factory=DeliveryConfig)
     tls: TlsConfig = Field(default_factory=TlsConfig)
     retention: RetentionConfig = Field(default_factory=RetentionConfig)
+    journal: JournalConfig = Field(default_factory=JournalConfig)
     logging: LoggingConfig = Field(default_factory=LoggingConfig)
     http: HttpConfig = Field(default_factory=HttpConfig)
     #: folder of the configuration file (relative paths are resolved from it); not a TOML key
@@ -382,6 +391,7 @@ RESTART_ONLY: tuple[str, ...] = (
     "tls",
     "http",
     "assembly.workers",
+    "journal",
     "logging.format",
 )
 
@@ -599,6 +609,7 @@ def apply_overrides(
     settle_seconds: float | None = None,
     bind: str | None = None,
     http_port: int | None = None,
+    lease_seconds: float | None = None,
 ) -> Config:
     """The configuration with command-line flags applied (each flag beats the file).
 
@@ -618,6 +629,8 @@ def apply_overrides(
         data["assembly"]["settle_seconds"] = settle_seconds
     if http_port is not None:
         data["http"]["port"] = http_port
+    if lease_seconds is not None:
+        data["journal"]["lease_seconds"] = lease_seconds
     names = []
     for i, text in enumerate(forward, start=1):
         dest = parse_forward(text)

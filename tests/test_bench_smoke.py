@@ -105,7 +105,8 @@ def _hot_path_statements(tmp_path: Path) -> dict[str, str]:
         now=1.0,
     )
     j.next_due_at()
-    (claim,) = j.claim_due(now=2.0)
+    (claim,) = j.claim_due(now=2.0, owner="node/grader-1/1", lease_seconds=30)
+    j.renew_leases("node/grader-1/1", now=2.5)
     result = NewResult(
         result_uid="2.25.19",
         series_uid="2.25.18",
@@ -120,7 +121,10 @@ def _hot_path_statements(tmp_path: Path) -> dict[str, str]:
     )
     j.finish_grading(claim, result=result, destinations=[("PACS", "PACS@127.0.0.1:1")], now=3.0)
     j.next_delivery_at()
-    for d in j.due_deliveries(now=4.0):
+    j.due_destinations(now=4.0)
+    j.next_delivery_at(destination="PACS")
+    for d in j.claim_deliveries("PACS", owner="node/sender/2", now=4.0):
+        j.renew_leases("node/sender/2", now=4.5)
         j.mark_delivered(d.id, now=5.0)
     j._db.set_trace_callback(None)
     plans = {}

@@ -257,7 +257,7 @@ def test_check_config_refuses_a_key_that_does_not_match_its_certificate(tmp_path
 def test_configured_switches_and_sender_rhythm_reach_the_grading():
     from netutil import echo_sr
 
-    from service.network.assembly import grade_options
+    from service.network.grader import grade_options
     from service.pipeline import grade_study
 
     # E/septal e' 16.7 and IVRT 60 ms in AF (Nagueh 2016 JASE 29:277, AF section: E/septal

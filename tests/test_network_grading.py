@@ -1,24 +1,19 @@
 """Grading of the node's studies: sources the reader refuses are set aside by the pipeline
-itself (each source read once), grading runs in worker processes, a worker that dies never
-loses a study, and a worker never outlives its node.  The listener reads only the identifying
-attributes of a received object.
+itself (each source read once), and stored objects that cannot be read are noted in the
+claim's order.  The listener reads only the identifying attributes of a received object, and
+stores it as pydicom would write it.
 
 Loopback only; every wait is bounded and polls a condition.  Invented data (fictional
 "Harbour Vale Cardiac Centre")."""
 
 from __future__ import annotations
 
-import os
-import signal
-import sys
 from datetime import datetime
 from io import BytesIO
-from pathlib import Path
 
 import pydicom
 import pytest
 from netutil import (
-    NodeProcess,
     echo_sr,
     evidence_uids,
     fake_grade,
@@ -26,21 +21,16 @@ from netutil import (
     simple_sr,
     study_state,
     wait_for,
-    write_config,
 )
 from pydicom.filewriter import write_dataset
 from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
 
-from service.config import config_from_dict
 from service.errors import RejectedInput
-from service.network.assembly import MAX_WORKER_CRASHES, Assembler, WorkerCrashed
 from service.network.grading_worker import GradeJob, run_job
 from service.network.listener import identifying_attributes
-from service.network.service import Node
 from service.pipeline import GradeOptions, GradeStatus, grade_study
 from service.sr.encode import file_bytes
 from service.sr.read import read_document
-from service.store.sqlite_journal import SqliteJournal
 
 pytestmark = pytest.mark.network
 
@@ -106,130 +96,6 @@ def test_a_job_notes_unreadable_spooled_files_in_the_claims_order(tmp_path):
     assert all(n.startswith("set aside: spooled file unreadable") for n in record.notes.values())
     assert record.result is not None and record.result.data
     assert pydicom.dcmread(BytesIO(record.result.data)).SOPInstanceUID == record.result.uid
-
-
-# -- grading in worker processes ------------------------------------------------------------------
-
-
-@pytest.fixture
-def node_factory(loopback_nodes):
-    def start(*, workers: int = 1, grade_fn=None) -> Node:
-        data = {
-            "assembly": {"workers": workers},
-            "limits": {"shutdown_grace_seconds": 2},
-            "http": {"enabled": False},
-        }
-        return loopback_nodes.start(data, grade_fn=grade_fn)
-
-    return start
-
-
-def _worker_pids(node: Node) -> set[int]:
-    pool = node.assembler._processes
-    return set() if pool is None else {p.pid for p in (pool._processes or {}).values()}
-
-
-def test_studies_are_graded_in_worker_processes(node_factory):
-    node = node_factory(workers=2)
-    assert _worker_pids(node)  # started with the node, not on demand
-    studies = [echo_sr(f"pool-{i}") for i in range(3)]
-    assert send(studies, node.port) == [0, 0, 0]
-    wait_for(lambda: all(study_state(node, s.StudyInstanceUID) == "delivered" for s in studies), 60)
-    assert len(node.journal.results()) == 3
-    assert _worker_pids(node) and os.getpid() not in _worker_pids(node)
-
-
-def test_a_dead_worker_loses_no_study(node_factory, caplog):
-    node = node_factory(workers=1)
-    assert _worker_pids(node)
-    old_pool = node.assembler._processes
-    for pid in _worker_pids(node):
-        os.kill(pid, signal.SIGKILL)  # as the kernel's out-of-memory killer would
-    wait_for(lambda: old_pool._broken, 30)
-    first = echo_sr("after-crash")
-    assert send([first], node.port) == [0]
-    wait_for(lambda: study_state(node, first.StudyInstanceUID) == "delivered", 60)
-    assert node.assembler._processes is not old_pool  # a new pool replaced the broken one
-    assert "grading processes restarted" in caplog.text
-    second = echo_sr("after-crash-2")
-    assert send([second], node.port) == [0]
-    wait_for(lambda: study_state(node, second.StudyInstanceUID) == "delivered", 60)
-
-
-class _AlwaysCrashing(Assembler):
-    """A grading slot whose worker dies on every study."""
-
-    attempts = 0
-
-    def _run_job(self, job):
-        type(self).attempts += 1
-        raise WorkerCrashed("the grading process ended unexpectedly (test)")
-
-
-def test_a_study_that_keeps_killing_its_worker_fails_with_the_reason(tmp_path):
-    cfg = config_from_dict({})
-    journal = SqliteJournal(tmp_path / "journal.sqlite3")
-    ds = simple_sr()
-    journal.store_object(
-        sop_instance_uid=str(ds.SOPInstanceUID),
-        study_uid=str(ds.StudyInstanceUID),
-        sop_class_uid=str(ds.SOPClassUID),
-        transfer_syntax=ExplicitVRLittleEndian,
-        calling_ae="SCANNER1",
-        data=b"",
-        settle_seconds=0,
-    )
-    assembler = _AlwaysCrashing(cfg, journal, grade_fn=fake_grade, poll_seconds=0.02)
-    assembler.start()
-    try:
-        wait_for(lambda: journal.study(str(ds.StudyInstanceUID))["state"] == "failed", 30)
-    finally:
-        assembler.stop()
-        journal.close()
-    assert _AlwaysCrashing.attempts == MAX_WORKER_CRASHES  # given back until then
-    reason = SqliteJournal(tmp_path / "journal.sqlite3").study(str(ds.StudyInstanceUID))["reason"]
-    assert "grading process ended unexpectedly" in reason
-
-
-def _descendants(pid: int) -> set[int]:
-    """Every process below ``pid`` (Linux /proc)."""
-    out: set[int] = set()
-    todo = [pid]
-    while todo:
-        p = todo.pop()
-        for task in Path(f"/proc/{p}/task").glob("*"):
-            try:
-                children = (task / "children").read_text().split()
-            except OSError:
-                continue
-            for c in map(int, children):
-                if c not in out:
-                    out.add(c)
-                    todo.append(c)
-    return out
-
-
-def _alive(pid: int) -> bool:
-    try:
-        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
-    except OSError:
-        return False
-    return state != "Z"
-
-
-@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
-def test_worker_processes_end_with_a_killed_node(tmp_path):
-    config = write_config(tmp_path / "node.toml", "[assembly]\nworkers = 2\n")
-    node = NodeProcess(tmp_path / "data", ["--config", str(config)])
-    node.start()
-    try:
-        assert node.proc is not None
-        # the node, the fork server and the resource tracker, and two grading processes
-        wait_for(lambda: len(_descendants(node.proc.pid)) >= 4, 60)
-        below = _descendants(node.proc.pid)
-    finally:
-        node.kill()  # SIGKILL: no clean-up in the node
-    wait_for(lambda: not any(_alive(p) for p in below), 30)
 
 
 # -- the listener reads only what identifies an object --------------------------------------------
@@ -305,57 +171,32 @@ def test_spooled_file_meta_is_what_pydicom_writes(sop_class, sop_instance, synta
     assert file_meta_bytes(sop_class, sop_instance, syntax) == buf.getvalue()
 
 
-# -- grading processes log as the node logs -------------------------------------------------------
+# -- claims held while a study is being graded ----------------------------------------------------
 
 
-def _log_in_grading_process(log_setup) -> None:
-    """Run in a fresh process: start up as a grading process, then log as pydicom would."""
-    import logging
+def test_a_long_grading_keeps_its_claim_and_is_graded_once(loopback_nodes):
+    # the lease is 2 s and this grading takes 5: the grader's lease keeper renews the claim,
+    # so the other grader never takes the study over
+    import threading
 
-    from service.network.grading_worker import init_worker
+    calls: list[str] = []
+    lock = threading.Lock()
 
-    init_worker((), None, log_setup)
-    logging.getLogger("pydicom").warning("invented warning from a grading process")
+    def slow_grade(datasets, options, **kwargs):
+        with lock:
+            calls.append(str(datasets[0].StudyInstanceUID))
+        threading.Event().wait(5)
+        return fake_grade(datasets, options, **kwargs)
 
-
-@pytest.mark.parametrize("fmt", ["json", "text"])
-def test_grading_processes_log_in_the_nodes_format(capfd, fmt):
-    # the node logs JSON lines (or text) on stderr; what a library logs inside a grading
-    # process must come out the same way, not as a bare message
-    import json
-    import multiprocessing
-
-    process = multiprocessing.get_context("spawn").Process(
-        target=_log_in_grading_process, args=((fmt, "INFO"),)
+    node = loopback_nodes.start(
+        {
+            "assembly": {"workers": 2},
+            "journal": {"lease_seconds": 2},
+            "http": {"enabled": False},
+        },
+        grade_fn=slow_grade,
     )
-    process.start()
-    process.join(120)
-    assert process.exitcode == 0
-    lines = [
-        line
-        for line in capfd.readouterr().err.splitlines()
-        if "invented warning from a grading process" in line
-    ]
-    assert len(lines) == 1
-    if fmt == "json":
-        record = json.loads(lines[0])
-        assert (record["level"], record["logger"]) == ("WARNING", "pydicom")
-    else:
-        assert " WARNING pydicom: invented warning" in lines[0]
-
-
-def test_the_node_hands_its_logging_to_its_grading_processes():
-    import logging
-
-    from service.observability.logs import configure_logging, current_logging
-
-    root = logging.getLogger()
-    saved = (list(root.handlers), root.level)
-    try:
-        configure_logging("json", "WARNING")
-        assert current_logging() == ("json", "WARNING")
-        configure_logging("text", "DEBUG")
-        assert current_logging() == ("text", "DEBUG")
-    finally:
-        root.handlers[:] = saved[0]
-        root.setLevel(saved[1])
+    ds = simple_sr()
+    assert send([ds], node.port) == [0]
+    wait_for(lambda: study_state(node, ds.StudyInstanceUID) == "delivered", 30)
+    assert calls == [str(ds.StudyInstanceUID)]

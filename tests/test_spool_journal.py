@@ -12,6 +12,7 @@ import pytest
 
 from service.store.journal import (
     FOLDER_DESTINATION,
+    MAX_CLAIMS,
     DeliveryState,
     Journal,
     NewResult,
@@ -460,3 +461,105 @@ def test_open_journal_gives_the_interface(tmp_path):
     assert isinstance(j, Journal)
     assert j.location == str(tmp_path / "journal.sqlite3")
     j.close()
+
+
+# -- claims and leases --------------------------------------------------------------------------
+
+
+def test_a_claimed_study_is_not_claimed_again_until_its_lease_runs_out(journal):
+    _receive(journal, "1.1", now=0.0, settle=0)
+    (mine,) = journal.claim_due(now=0.0, owner="a", lease_seconds=30)
+    assert journal.study(STUDY)["claimed_by"] == "a"
+    assert journal.claim_due(now=29.9, owner="b") == []
+    assert journal.next_due_at() == pytest.approx(30.0)  # when the lease runs out
+    journal.renew_leases("a", lease_seconds=30, now=20.0)
+    assert journal.claim_due(now=49.9, owner="b") == []
+    (theirs,) = journal.claim_due(now=50.0, owner="b")  # a died: b takes over
+    assert (theirs.owner, theirs.object_uids) == ("b", mine.object_uids)
+    journal.finish_grading(theirs, result=_result("2.25.1", ("1.1",)), now=51.0)
+    study = journal.study(STUDY)
+    assert (study["state"], study["claimed_by"], study["claims"]) == ("graded", "", 0)
+
+
+def test_a_dead_owners_work_is_given_back_at_once_and_counted(journal):
+    _receive(journal, "1.1", now=0.0, settle=0)
+    for attempt in range(1, MAX_CLAIMS + 1):
+        journal.claim_due(now=float(attempt), owner=f"grader/{attempt}")
+        assert journal.study(STUDY)["claims"] == attempt
+        assert journal.release_owner(f"grader/{attempt}", now=float(attempt)) == {
+            "studies": 1,
+            "deliveries": 0,
+        }
+        assert journal.study(STUDY)["state"] == "received"
+    # its grading killed the process MAX_CLAIMS times: failed with the reason, not claimed
+    assert journal.claim_due(now=10.0, owner="grader/9") == []
+    study = journal.study(STUDY)
+    assert study["state"] == "failed"
+    assert f"grading ended without a result {MAX_CLAIMS} times" in study["reason"]
+    assert {o["state"] for o in journal.objects(STUDY)} == {"graded"}
+    # a new object gives it a new generation and a fresh count
+    _receive(journal, "1.2", now=11.0, settle=0)
+    (again,) = journal.claim_due(now=11.0, owner="grader/10")
+    assert journal.study(STUDY)["claims"] == 1 and again.object_uids == ("1.1", "1.2")
+
+
+def test_claims_given_back_by_their_owner_or_a_restart_do_not_count(journal):
+    _receive(journal, "1.1", now=0.0, settle=0)
+    for i in range(MAX_CLAIMS + 2):
+        (claim,) = journal.claim_due(now=float(i), owner="nodeA/grader/1")
+        if i % 2:
+            journal.release_claim(claim, now=float(i))  # e.g. shutdown before grading
+        else:
+            assert journal.recover(now=float(i), owner_prefix="nodeA/")["resumed_grading"] == 1
+    assert journal.study(STUDY)["claims"] == 0
+    assert journal.claim_due(now=99.0, owner="x")
+
+
+def test_recover_gives_back_only_the_claims_of_its_own_node(journal):
+    _receive(journal, "1.1", now=0.0, settle=0)
+    _receive(journal, "2.1", study="1.2.9", now=0.0, settle=0)
+    journal.claim_due(now=0.0, owner="nodeA/grader/1", limit=1)
+    journal.claim_due(now=0.0, owner="nodeB/grader/1", limit=1)
+    held = {s["study_uid"]: s["claimed_by"] for s in journal.studies()}
+    assert sorted(held.values()) == ["nodeA/grader/1", "nodeB/grader/1"]
+    assert journal.recover(now=1.0, owner_prefix="nodeA/")["resumed_grading"] == 1
+    after = {s["study_uid"]: (s["state"], s["claimed_by"]) for s in journal.studies()}
+    a_study = next(u for u, o in held.items() if o.startswith("nodeA/"))
+    b_study = next(u for u, o in held.items() if o.startswith("nodeB/"))
+    assert after[a_study] == ("received", "")
+    assert after[b_study] == ("assembled", "nodeB/grader/1")
+    # a prefix with LIKE's wildcard characters matches only itself
+    assert journal.recover(now=2.0, owner_prefix="node_/")["resumed_grading"] == 0
+
+
+def _graded_with_deliveries(journal, dests=("PACS",)):
+    _receive(journal, "1.1", now=0.0, settle=0)
+    (claim,) = journal.claim_due(now=0.0)
+    journal.finish_grading(
+        claim, result=_result("2.25.1", ("1.1",)), destinations=[(d, d) for d in dests], now=0
+    )
+
+
+def test_a_claimed_delivery_goes_to_one_sender_at_a_time(journal):
+    _graded_with_deliveries(journal, ("PACS", "ARCHIVE"))
+    assert journal.due_destinations(now=1.0) == ["ARCHIVE", "PACS"]
+    (d,) = journal.claim_deliveries("PACS", owner="s1", lease_seconds=30, now=1.0)
+    assert d.destination == "PACS"
+    assert journal.claim_deliveries("PACS", owner="s2", now=2.0) == []
+    assert journal.due_destinations(now=2.0) == ["ARCHIVE"]
+    assert journal.next_delivery_at(destination="PACS") == pytest.approx(31.0)
+    journal.renew_leases("s1", lease_seconds=30, now=20.0)
+    assert journal.claim_deliveries("PACS", owner="s2", now=49.0) == []
+    (again,) = journal.claim_deliveries("PACS", owner="s2", now=50.0)  # s1's lease ran out
+    assert again.id == d.id
+    journal.mark_attempt_failed(
+        again.id, "refused", max_attempts=5, backoff_initial=1, backoff_max=1, now=50.0
+    )
+    row = journal.deliveries(result_uid="2.25.1")
+    pacs = next(r for r in row if r["destination"] == "PACS")
+    assert (pacs["claimed_by"], pacs["lease_until"]) == ("", 0)
+    (third,) = journal.claim_deliveries("PACS", owner="s3", now=51.0)
+    assert journal.release_owner("s3", now=52.0) == {"studies": 0, "deliveries": 1}
+    assert journal.claim_deliveries("PACS", owner="s4", now=52.0)
+    journal.mark_delivered(third.id, now=53.0)
+    assert journal.claim_deliveries("PACS", owner="s5", now=100.0) == []

@@ -23,8 +23,10 @@ def register(sub: argparse._SubParsersAction) -> None:
         description="Run the DICOM node: accept echo measurement SRs by C-STORE, grade each "
         "study after its settle window and send the result SR to the configured destinations. "
         "Flags override the configuration file; with neither, embedded defaults are used and "
-        "results are written to a folder under the data directory. SIGTERM stops cleanly; "
-        "SIGHUP reloads the configuration file without dropping open associations.",
+        "results are written to a folder under the data directory. The receiver, the graders "
+        "(assembly.workers) and the sender run as processes of their own, supervised by this "
+        "one (a process that ends is restarted). SIGTERM stops cleanly; SIGHUP reloads the "
+        "configuration file without dropping open associations.",
     )
     add_node_arguments(p)
     p.add_argument(
@@ -42,6 +44,13 @@ def register(sub: argparse._SubParsersAction) -> None:
         type=int,
         metavar="N",
         help="port of the /healthz and /metrics endpoint (0: any free; default 11180)",
+    )
+    p.add_argument(
+        "--lease-seconds",
+        type=float,
+        metavar="S",
+        help="a claim on a study or a delivery holds S seconds without renewal: work of a "
+        "process or node that died is taken over after it (default: journal.lease_seconds, 30)",
     )
     p.set_defaults(func=run)
 
@@ -78,6 +87,7 @@ def config_from_args(args: argparse.Namespace) -> Config:
         settle_seconds=args.settle_seconds,
         bind=args.bind,
         http_port=getattr(args, "http_port", None),
+        lease_seconds=getattr(args, "lease_seconds", None),
     )
 
 
@@ -111,7 +121,7 @@ def reload_config(node: object, args: argparse.Namespace) -> bool:
 
 def run(args: argparse.Namespace) -> int:
     from service.network.preflight import preflight
-    from service.network.service import Node
+    from service.network.supervisor import Supervisor
 
     cfg = config_from_args(args)
     configure_logging(args.log_format or cfg.logging.format, args.log_level or cfg.logging.level)
@@ -132,7 +142,7 @@ def run(args: argparse.Namespace) -> int:
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
     signal.signal(signal.SIGHUP, on_signal)
-    node = Node(cfg)
+    node = Supervisor(cfg, log_level=args.log_level, log_format=args.log_format)
     try:
         node.start()
         event(
@@ -145,8 +155,9 @@ def run(args: argparse.Namespace) -> int:
             digest=cfg.digest(),
         )
         while not stop.is_set():
-            wake.wait(0.5)
+            wake.wait(0.2)
             wake.clear()
+            node.watch()
             if hup.is_set() and not stop.is_set():
                 hup.clear()
                 event("signal", "SIGHUP received: reloading the configuration", signal="SIGHUP")

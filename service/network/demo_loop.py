@@ -25,7 +25,7 @@ from pydicom.uid import (
 from pynetdicom import AE, evt
 
 from service.config import apply_overrides, default_config
-from service.network.assembly import GradeFunction
+from service.network.grader import GradeFunction
 from service.network.listener import SR_STORAGE_CLASSES, VERIFICATION
 from service.network.service import Node
 from service.store.journal import StudyState

@@ -1,30 +1,22 @@
-"""The per-study work of the node, run in grading processes: decode the stored objects of a
-study, grade them together, encode the result SR (and the summary PDF when wanted) as Part 10
-bytes.  Nothing here writes a file or touches the journal: the node's process does that with
-the :class:`GradeRecord` this returns, so durability and the journal stay in one place.
+"""The per-study work of the node: decode the stored objects of a study, grade them together,
+encode the result SR (and the summary PDF when wanted) as Part 10 bytes.  Nothing here writes
+a file or touches the journal: the grader (:mod:`service.network.grader`) does that with the
+:class:`GradeRecord` this returns, so durability and the journal stay in one place.
 
-Everything crossing the process boundary is small and picklable: a :class:`GradeJob` in, a
-:class:`GradeRecord` out (the result's bytes, the fields the journal records, the notes on
-objects set aside).  The same :func:`run_job` runs in the node's own process when a grading
-function is injected (tests).
+A :class:`GradeJob` in, a :class:`GradeRecord` out (the result's bytes, the fields the
+journal records, the notes on objects set aside); the grading function is the real pipeline
+or, in tests, a stand-in.
 """
 
 from __future__ import annotations
 
-import contextlib
 import io
-import os
-import signal
-import threading
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from service.sr.encode import file_bytes
-
-#: the grading processes give way to the node's network threads when both want a core
-WORKER_NICENESS = 5
 
 
 @dataclass(frozen=True)
@@ -196,23 +188,9 @@ def _uid_of(ds: Any) -> str:
         return ""
 
 
-# -- inside a grading process ------------------------------------------------------------------
+# -- in a grading process ---------------------------------------------------------------------
 
 _TABLES = TableCache()
-
-#: modules the grading needs (the pipeline imports them on first use), and the warm-up;
-#: imported once by the fork server, so that every grading process (also one replacing a
-#: crashed one) starts with them in place
-PRELOAD = (
-    "service.network.grading_worker",
-    "service.pipeline",
-    "service.grading",
-    "service.grading.compare",
-    "service.sr.read",
-    "service.sr.write",
-    "service.vocabulary.mapper",
-    "service.network.grading_warmup",
-)
 
 _warm = False
 
@@ -250,51 +228,6 @@ def warm_up_pipeline() -> bool:
         return False
     _warm = True
     return True
-
-
-def init_worker(
-    mapping_paths: tuple[Path, ...],
-    lifeline: Any = None,
-    log_setup: tuple[str, str] | None = None,
-) -> None:
-    """Start-up of a grading process: log as the node logs (``log_setup``: format and level,
-    so what pydicom or the pipeline logs here is a JSON line like the node's own), give way to
-    the network threads, ignore the terminal's and the service manager's stop signals (the
-    node stops its grading processes itself, after the studies in progress), end at once when
-    the node's process is gone (``lifeline``: the reading end of a pipe only the node writes
-    to), import the pipeline and parse the mapping table now rather than on the first study."""
-    import importlib
-
-    if log_setup is not None:
-        from service.observability.logs import configure_logging
-
-        configure_logging(*log_setup)
-
-    with contextlib.suppress(OSError):
-        os.nice(WORKER_NICENESS)
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-    signal.signal(signal.SIGTERM, signal.SIG_IGN)
-    if lifeline is not None:
-        threading.Thread(target=_watch, args=(lifeline,), name="lifeline", daemon=True).start()
-    for name in PRELOAD:  # already there (and warm) when forked from the fork server
-        importlib.import_module(name)
-    warm_up_pipeline()
-    with contextlib.suppress(Exception):  # reported with the first study that needs it
-        _TABLES.get(mapping_paths)
-
-
-def _watch(lifeline: Any) -> None:
-    """Block until the node's end of the lifeline closes (the node ended, even by SIGKILL),
-    then end this process: a grading process never outlives its node."""
-    with contextlib.suppress(Exception):
-        while True:
-            lifeline.recv_bytes()
-    os._exit(0)
-
-
-def warm_up() -> int:
-    """A no-op task: submitting one per process starts them all at once."""
-    return os.getpid()
 
 
 def grade_in_worker(job: GradeJob) -> GradeRecord:

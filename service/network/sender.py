@@ -3,12 +3,14 @@ configured destinations, over TLS where a destination asks for it, and the resul
 
 Each destination has a worker thread of its own, and every step of an association has a total
 deadline (:mod:`service.network.store_scu`), so a destination that is down, slow or trickling
-delays nobody else: its own deliveries wait and back off, the others go on.  A worker takes its
-destination's due deliveries from the journal's outbox, opens one association and sends each
-result as it is stored; results that fall due while the association is open follow on it
-(bounded).  A failed attempt (destination down, association rejected, failure status, no
-answer in time) backs off exponentially (``backoff_initial_seconds * 2**(attempts-1)``, at most
-``backoff_max_seconds``); past ``max_attempts`` the delivery is marked failed with its reason,
+delays nobody else: its own deliveries wait and back off, the others go on.  A worker claims
+its destination's due deliveries from the journal's outbox (with a lease: senders of other
+processes or nodes never send the same delivery at the same time, and take over one whose
+sender died), opens one association and sends each result as it is stored; results that fall
+due while the association is open follow on it (bounded).  A failed attempt (destination
+down, association rejected, failure status, no answer in time) backs off exponentially
+(``backoff_initial_seconds * 2**(attempts-1)``, at most ``backoff_max_seconds``); past
+``max_attempts`` the delivery is marked failed with its reason,
 never dropped.  A warning status (PS3.7 Annex C: 0001, 0107, 0116, Bxxx) means the peer stored
 the object: the delivery is done and the warning logged.  Everything is in the journal, so the
 outbox survives restarts.
@@ -23,6 +25,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from service.config import Config, DestinationConfig
+from service.network.grader import idle
 from service.network.store_scu import (
     AssociationFailed,
     StoreSession,
@@ -32,13 +35,15 @@ from service.network.store_scu import (
 from service.observability.logs import event
 from service.observability.metrics import Metrics
 from service.sr.read import file_meta_uids
-from service.store.journal import FOLDER_DESTINATION, DueDelivery, Journal
+from service.store.journal import DEFAULT_LEASE_SECONDS, FOLDER_DESTINATION, DueDelivery, Journal
 from service.store.spool import durable_write, safe_name
 
 log = logging.getLogger("diastolic_sr.sender")
 
 #: Encapsulated PDF Storage (PS3.4 Annex B.5): the summary
 ENCAPSULATED_PDF = "1.2.840.10008.5.1.4.1.1.104.1"
+#: Comprehensive SR Storage (PS3.4 Annex B.5): the result SR
+COMPREHENSIVE_SR = "1.2.840.10008.5.1.4.1.1.88.33"
 
 #: objects sent over one association at most (results that fall due while it is open follow
 #: on it up to this number; then it is released and the next round opens a new one)
@@ -55,12 +60,17 @@ class Sender:
         config: Config,
         journal: Journal,
         *,
+        owner: str = "sender",
         poll_seconds: float = 0.5,
+        lease_seconds: float = DEFAULT_LEASE_SECONDS,
         metrics: Metrics | None = None,
     ) -> None:
         self.config = config
         self.metrics = metrics or Metrics()
         self.journal = journal
+        #: who holds the deliveries this sender claims
+        self.owner = owner
+        self.lease_seconds = lease_seconds
         self._poll = poll_seconds
         self._wake = threading.Event()
         self._stop = threading.Event()
@@ -93,6 +103,10 @@ class Sender:
             if w.is_alive():
                 w.cut()
                 w.join(5)
+        try:  # what was claimed and not sent goes back to the outbox at once
+            self.journal.release_owner(self.owner)
+        except Exception as exc:  # its leases run out instead
+            log.warning("cannot give back the deliveries in hand: %s", exc)
 
     @property
     def stopping(self) -> bool:
@@ -101,18 +115,22 @@ class Sender:
     def _run(self) -> None:
         while not self._stop.is_set():
             self._wake.clear()
+            wait = self._poll
             try:
                 self._dispatch()
+                nxt = self.journal.next_delivery_at()
+                if nxt is not None:
+                    wait = max(0.01, min(wait, nxt - time.time()))
             except Exception:
                 log.exception("delivery loop error; retrying")
-            self._wake.wait(self._poll)
+            idle(self.journal, self._wake, self._stop, wait)
 
     def _dispatch(self) -> None:
         """A worker for every destination with due deliveries; deliveries to a destination
         that is no longer configured fail with that reason."""
         for name in self.journal.due_destinations():
             if name != FOLDER_DESTINATION and name not in self.config.destinations:
-                for d in self.journal.due_deliveries(destination=name):
+                for d in self.claim(name):
                     self.journal.mark_failed(d.id, f'destination "{name}" is no longer configured')
                     log.error("result %s: destination %s not configured", d.result_uid, name)
                 continue
@@ -122,6 +140,12 @@ class Sender:
                     worker = self._workers[name] = _Worker(self, name)
                     worker.start()
             worker.wake.set()
+
+    def claim(self, destination: str, limit: int = 100) -> list[DueDelivery]:
+        """Due deliveries to ``destination``, claimed for this sender."""
+        return self.journal.claim_deliveries(
+            destination, owner=self.owner, lease_seconds=self.lease_seconds, limit=limit
+        )
 
     # -- recording outcomes (any worker) ----------------------------------------------------
 
@@ -236,7 +260,7 @@ class _Worker(threading.Thread):
         name = self.destination
         if name != FOLDER_DESTINATION and name not in self.config.destinations:
             return False
-        items = self.journal.due_deliveries(destination=name)
+        items = self.sender.claim(name)
         if not items:
             return True
         if name == FOLDER_DESTINATION:
@@ -247,8 +271,9 @@ class _Worker(threading.Thread):
 
     def _to_folder(self, items: list[DueDelivery]) -> None:
         folder = self.config.results_dir
-        for d in items:
+        for i, d in enumerate(items):
             if self.sender.stopping:
+                self.journal.release_deliveries([x.id for x in items[i:]])
                 return
             if self.sender._waits_for_parent(d, "file"):
                 continue
@@ -283,7 +308,11 @@ class _Worker(threading.Thread):
                 dest.port,
                 calling_ae=self.config.node.ae_title,
                 called_ae=dest.ae_title,
-                sop_classes=sorted({o.sop_class for o in batch}),
+                sop_classes=sorted(
+                    {o.sop_class for o in batch}
+                    | {COMPREHENSIVE_SR}
+                    | ({ENCAPSULATED_PDF} if dest.summary_pdf else set())
+                ),
                 timeouts=Timeouts(
                     connect=limits.acse_timeout,
                     acse=limits.acse_timeout,
@@ -308,6 +337,8 @@ class _Worker(threading.Thread):
             return
         self._session = session
         seen = {o.due.id for o in batch}
+        #: claimed and not yet sent: given back when the association ends before them
+        unsent = set(seen)
         budget = MAX_PER_ASSOCIATION
         try:
             while batch and budget > 0:
@@ -315,20 +346,20 @@ class _Worker(threading.Thread):
                     if sender.stopping or not session.is_established:
                         return
                     budget -= 1
+                    unsent.discard(o.due.id)
                     self._send(session, o, where)
                 if sender.stopping or not session.is_established:
                     return
                 # results graded while these went out: on the same association
-                more = [
-                    d
-                    for d in self.journal.due_deliveries(destination=self.destination)
-                    if d.id not in seen and session.accepts(d.sop_class_uid)
-                ][:budget]
+                more = [d for d in sender.claim(self.destination, budget) if d.id not in seen]
                 seen.update(d.id for d in more)
                 batch = sender._readable(more)
+                unsent.update(o.due.id for o in batch)
         finally:
             self._session = None
             session.release()
+            if unsent:
+                self.journal.release_deliveries(sorted(unsent))
 
     def _send(self, session: StoreSession, o: _Outgoing, where: str) -> None:
         """One C-STORE and its outcome in the journal."""

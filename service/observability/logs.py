@@ -15,6 +15,16 @@ from typing import Any
 
 EVENTS = logging.getLogger("diastolic_sr.events")
 
+#: the node's process that writes the lines (``serve``'s role processes set it: "receiver",
+#: "grader-1", "sender", ...); "" in a single-process run
+PROCESS: list[str] = [""]
+
+
+def set_process(name: str) -> None:
+    """Name this process in every JSON line it logs (field ``process``)."""
+    PROCESS[0] = name
+
+
 #: library loggers kept at WARNING (their INFO lines are per-PDU chatter)
 NOISY_LOGGERS = ("pynetdicom", "highdicom", "matplotlib", "fontTools", "PIL")
 
@@ -35,6 +45,8 @@ class JsonLineFormatter(logging.Formatter):
             "event": getattr(record, "event", None) or "log",
             "message": record.getMessage(),
         }
+        if PROCESS[0]:
+            out["process"] = PROCESS[0]
         for key, value in (getattr(record, "fields", None) or {}).items():
             if key not in out:
                 out[key] = value
@@ -71,18 +83,6 @@ def quiet_pynetdicom() -> None:
     from pynetdicom import _config
 
     _config.LOG_HANDLER_LEVEL = "none"
-
-
-def current_logging() -> tuple[str, str] | None:
-    """(format, level) of the logging :func:`configure_logging` set up in this process, so a
-    child process can do the same; None when it was not set up (e.g. in tests)."""
-    root = logging.getLogger()
-    for handler in root.handlers:
-        if isinstance(handler.formatter, JsonLineFormatter):
-            return "json", logging.getLevelName(root.level)
-        if isinstance(handler.formatter, TextFormatter):
-            return "text", logging.getLevelName(root.level)
-    return None
 
 
 def set_level(level: str) -> None:

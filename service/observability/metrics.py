@@ -9,11 +9,16 @@
   (read from the journal at each scrape)
 * ``diastolic_sr_processing_seconds``: histogram, from the end of a study's settle window (its
   claim for grading) to its result being recorded
+
+Under ``serve`` the roles count in processes of their own: prometheus-client's multiprocess
+mode (each process writes its values to files in one folder, ``PROMETHEUS_MULTIPROC_DIR``, set
+for the role processes) and the supervisor serves their sum (:meth:`Metrics.collecting`).
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
+from pathlib import Path
 
 from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
 from prometheus_client.core import GaugeMetricFamily
@@ -66,6 +71,18 @@ class Metrics:
             registry=r,
         )
         self._queue: QueueCollector | None = None
+
+    @classmethod
+    def collecting(cls, folder: Path) -> Metrics:
+        """The metrics the role processes write in ``folder`` (multiprocess mode), summed, in a
+        registry of their own; this process counts nothing itself."""
+        from prometheus_client import multiprocess
+
+        out = cls.__new__(cls)
+        out.registry = CollectorRegistry()
+        multiprocess.MultiProcessCollector(out.registry, path=str(folder))
+        out._queue = None
+        return out
 
     def watch_queue(self, depth: Callable[[], dict[str, int]]) -> None:
         if self._queue is not None:

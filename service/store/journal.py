@@ -22,6 +22,16 @@ study:    received -> assembled -> graded -> delivered
           administrator asks for a re-grade (``generation`` counts these).
 delivery: pending -> delivered | failed (reason); ``requeue_failed`` puts failed ones back.
 
+Claims and leases
+-----------------
+Graders and senders (processes of one node, or of several nodes sharing one journal) take
+work by claiming it: a claim names its owner and holds a lease.  The owner renews the leases
+of what it holds while it works (:meth:`Journal.renew_leases`); work whose lease has run out
+(its owner died, or lost the journal) may be claimed by anyone.  A supervisor that sees one of
+its processes die gives that process's work back at once (:meth:`Journal.release_owner`).  A
+study whose claims keep ending without a result (its grading kills the process) fails after
+:data:`MAX_CLAIMS` of them, with that reason.
+
 Durability
 ----------
 What the node promises to others is durable when the call returns: a received object (its
@@ -66,6 +76,12 @@ class DeliveryState(StrEnum):
 #: destination name of the results folder (not a DICOM peer)
 FOLDER_DESTINATION = "(folder)"
 
+#: claims of one study (one generation) that may end without a result before it fails
+MAX_CLAIMS = 3
+
+#: default lease of a claim, seconds (``--lease-seconds``)
+DEFAULT_LEASE_SECONDS = 30.0
+
 
 class JournalUnavailable(Exception):
     """The journal cannot be reached or written now (database down, disk full); ``str()``
@@ -81,6 +97,8 @@ class StudyClaim:
     generation: int
     object_uids: tuple[str, ...]
     earlier_results: tuple[dict[str, Any], ...]  # result rows of this study, oldest first
+    #: who holds the claim
+    owner: str = ""
 
 
 @dataclass(frozen=True)
@@ -141,6 +159,9 @@ class Journal(abc.ABC):
 
     #: where the journal is, for logs (never a password)
     location: str = ""
+    #: several nodes may use this journal at once (a node's start then gives back only its
+    #: own earlier claims)
+    shared: bool = False
 
     @abc.abstractmethod
     def close(self) -> None:
@@ -173,11 +194,22 @@ class Journal(abc.ABC):
 
     @abc.abstractmethod
     def next_due_at(self) -> float | None:
-        """When the next study waiting for its settle window is due (None: none waits)."""
+        """When the next study can be claimed: its settle window ends, or the lease of the
+        claim on it runs out (None: nothing waits)."""
 
     @abc.abstractmethod
-    def claim_due(self, *, now: float | None = None, limit: int = 1) -> list[StudyClaim]:
-        """Take up to ``limit`` studies whose settle window is over: state -> assembled."""
+    def claim_due(
+        self,
+        *,
+        now: float | None = None,
+        limit: int = 1,
+        owner: str = "",
+        lease_seconds: float = DEFAULT_LEASE_SECONDS,
+    ) -> list[StudyClaim]:
+        """Take up to ``limit`` studies whose settle window is over, or whose claim's lease
+        ran out, for ``owner``: state -> assembled, leased for ``lease_seconds``.  A study
+        whose claims ended without a result :data:`MAX_CLAIMS` times fails instead, with
+        that reason.  Two callers never get the same study while its lease runs."""
 
     @abc.abstractmethod
     def finish_grading(
@@ -210,9 +242,29 @@ class Journal(abc.ABC):
         ``retry_at`` it is not due before then (a retry after a storage error)."""
 
     @abc.abstractmethod
-    def recover(self, *, now: float | None = None) -> dict[str, int]:
-        """On start: studies caught mid-grading go back to received (due now).  Returns the
-        counts of :meth:`counts` and ``resumed_grading``."""
+    def recover(self, *, now: float | None = None, owner_prefix: str = "") -> dict[str, int]:
+        """On start: the claims of this node's earlier run (every claim whose owner starts
+        with ``owner_prefix``; "": every claim, for a journal only this node uses) are given
+        back, studies due now.  Returns the counts of :meth:`counts` and
+        ``resumed_grading``."""
+
+    @abc.abstractmethod
+    def release_owner(self, owner: str, *, now: float | None = None) -> dict[str, int]:
+        """Give back everything ``owner`` holds (it died): its studies due now (the claim
+        counts towards :data:`MAX_CLAIMS`), its deliveries free to claim.  Returns
+        ``{"studies": n, "deliveries": m}``."""
+
+    @abc.abstractmethod
+    def renew_leases(
+        self, owner: str, *, lease_seconds: float = DEFAULT_LEASE_SECONDS, now: float | None = None
+    ) -> None:
+        """Extend the lease of every claim ``owner`` holds to ``lease_seconds`` from now."""
+
+    def changed(self) -> bool:
+        """Whether another connection may have committed something since the last call: a
+        cheap test for the roles to poll between queries.  True when the implementation
+        cannot tell."""
+        return True
 
     @abc.abstractmethod
     def request_regrade(self, study_uid: str, *, now: float | None = None) -> bool:
@@ -237,14 +289,33 @@ class Journal(abc.ABC):
 
     @abc.abstractmethod
     def due_destinations(self, *, now: float | None = None) -> list[str]:
-        """The destinations that have a pending delivery due now."""
+        """The destinations that have a pending delivery due now and not claimed."""
+
+    @abc.abstractmethod
+    def claim_deliveries(
+        self,
+        destination: str,
+        *,
+        owner: str,
+        lease_seconds: float = DEFAULT_LEASE_SECONDS,
+        limit: int = 100,
+        now: float | None = None,
+    ) -> list[DueDelivery]:
+        """Take up to ``limit`` due deliveries to ``destination`` that nobody holds, for
+        ``owner``, leased for ``lease_seconds``; oldest first.  Marking one delivered or
+        failed ends its claim."""
+
+    @abc.abstractmethod
+    def release_deliveries(self, delivery_ids: Sequence[int]) -> None:
+        """End the claims on these deliveries without an attempt (they were not sent)."""
 
     @abc.abstractmethod
     def delivered_to(self, result_uid: str, destination: str) -> bool: ...
 
     @abc.abstractmethod
     def next_delivery_at(self, *, destination: str | None = None) -> float | None:
-        """When the next pending delivery (to ``destination``, when given) is due."""
+        """When the next pending delivery (to ``destination``, when given) is due and not
+        held by a claim."""
 
     @abc.abstractmethod
     def mark_delivered(self, delivery_id: int, *, now: float | None = None) -> None: ...

@@ -20,6 +20,8 @@ from typing import Any
 
 from service.errors import UserError
 from service.store.journal import (
+    DEFAULT_LEASE_SECONDS,
+    MAX_CLAIMS,
     Companion,
     DeliveryState,
     DueDelivery,
@@ -44,7 +46,8 @@ class SqlJournal(Journal):
     #: ORDER BY of results: oldest first, in the order they were recorded
     RESULT_ORDER = "created_at, rowid"
     #: appended to the SELECT that picks rows to claim (rows other transactions hold are
-    #: skipped); "" where a write transaction excludes every other writer
+    #: skipped; ``{table}``: the table or alias whose rows are claimed); "" where a write
+    #: transaction excludes every other writer
     LOCK_ROWS = ""
 
     # -- what a backend supplies ------------------------------------------------------------
@@ -141,7 +144,7 @@ class SqlJournal(Journal):
                        calling_ae = excluded.calling_ae, state = 'received', reason = '',
                        last_received_at = excluded.last_received_at,
                        due_at = excluded.due_at, generation = studies.generation + 1,
-                       updated_at = excluded.updated_at""",
+                       claims = 0, updated_at = excluded.updated_at""",
                 (study_uid, calling_ae, now, now, now + settle_seconds, now),
             )
 
@@ -154,20 +157,42 @@ class SqlJournal(Journal):
     # -- assembling and grading -----------------------------------------------------------------
 
     def next_due_at(self) -> float | None:
-        rows = self._query("SELECT MIN(due_at) AS due FROM studies WHERE state = 'received'")
-        return rows[0][0] if rows else None
+        due = self._query("SELECT MIN(due_at) AS due FROM studies WHERE state = 'received'")
+        lease = self._query("SELECT MIN(lease_until) AS due FROM studies WHERE state = 'assembled'")
+        times = [r[0][0] for r in (due, lease) if r and r[0][0] is not None]
+        return min(times) if times else None
 
-    def claim_due(self, *, now: float | None = None, limit: int = 1) -> list[StudyClaim]:
+    def claim_due(
+        self,
+        *,
+        now: float | None = None,
+        limit: int = 1,
+        owner: str = "",
+        lease_seconds: float = DEFAULT_LEASE_SECONDS,
+    ) -> list[StudyClaim]:
         now = time.time() if now is None else now
         claims = []
         with self._tx(durable=False) as db:
-            studies = db.execute(
-                """SELECT study_uid, calling_ae, generation FROM studies
-                   WHERE state = 'received' AND due_at <= ? ORDER BY due_at LIMIT ?"""
-                + self.LOCK_ROWS,
-                (now, limit),
-            ).fetchall()
-            for s in studies:
+            studies = [
+                *db.execute(
+                    """SELECT study_uid, calling_ae, generation, claims, due_at FROM studies
+                       WHERE state = 'received' AND due_at <= ? ORDER BY due_at LIMIT ?"""
+                    + self.LOCK_ROWS.format(table="studies"),
+                    (now, limit),
+                ).fetchall(),
+                *db.execute(
+                    """SELECT study_uid, calling_ae, generation, claims, due_at FROM studies
+                       WHERE state = 'assembled' AND lease_until <= ?
+                       ORDER BY lease_until LIMIT ?"""
+                    + self.LOCK_ROWS.format(table="studies"),
+                    (now, limit),
+                ).fetchall(),
+            ]
+            studies.sort(key=lambda s: s["due_at"])
+            for s in studies[:limit]:
+                if s["claims"] >= MAX_CLAIMS:
+                    self._fail_unfinished(db, s["study_uid"], s["claims"], now)
+                    continue
                 objs = db.execute(
                     "SELECT sop_instance_uid FROM objects WHERE study_uid = ? "
                     "ORDER BY received_at, sop_instance_uid",
@@ -178,8 +203,9 @@ class SqlJournal(Journal):
                     (s["study_uid"],),
                 ).fetchall()
                 db.execute(
-                    "UPDATE studies SET state = 'assembled', updated_at = ? WHERE study_uid = ?",
-                    (now, s["study_uid"]),
+                    "UPDATE studies SET state = 'assembled', claimed_by = ?, lease_until = ?, "
+                    "claims = claims + 1, updated_at = ? WHERE study_uid = ?",
+                    (owner, now + lease_seconds, now, s["study_uid"]),
                 )
                 db.execute(
                     "UPDATE objects SET state = 'assembled' WHERE study_uid = ? "
@@ -193,9 +219,68 @@ class SqlJournal(Journal):
                         generation=s["generation"],
                         object_uids=tuple(o["sop_instance_uid"] for o in objs),
                         earlier_results=tuple(_result_row(r) for r in earlier),
+                        owner=owner,
                     )
                 )
         return claims
+
+    @staticmethod
+    def _fail_unfinished(db: Cursor, study_uid: str, claims: int, now: float) -> None:
+        """A study whose claims keep ending without a result: failed, with that reason."""
+        db.execute(
+            "UPDATE studies SET state = 'failed', reason = ?, claimed_by = '', lease_until = 0, "
+            "claims = 0, updated_at = ? WHERE study_uid = ?",
+            (
+                f"internal error while grading: grading ended without a result {claims} times "
+                "(the grading process ended unexpectedly, or lost its claim)",
+                now,
+                study_uid,
+            ),
+        )
+        db.execute(
+            "UPDATE objects SET state = 'graded' WHERE study_uid = ? AND state != 'graded'",
+            (study_uid,),
+        )
+
+    def release_owner(self, owner: str, *, now: float | None = None) -> dict[str, int]:
+        now = time.time() if now is None else now
+        with self._tx(durable=False) as db:
+            studies = db.execute(
+                "SELECT study_uid FROM studies WHERE state = 'assembled' AND claimed_by = ?",
+                (owner,),
+            ).fetchall()
+            for s in studies:
+                db.execute(
+                    "UPDATE studies SET state = 'received', claimed_by = '', lease_until = 0, "
+                    "due_at = CASE WHEN due_at < ? THEN due_at ELSE ? END, updated_at = ? "
+                    "WHERE study_uid = ?",
+                    (now, now, now, s[0]),
+                )
+                db.execute(
+                    "UPDATE objects SET state = 'received' WHERE study_uid = ? "
+                    "AND state = 'assembled'",
+                    (s[0],),
+                )
+            deliveries = db.execute(
+                "UPDATE deliveries SET claimed_by = '', lease_until = 0 "
+                "WHERE claimed_by = ? AND state = 'pending'",
+                (owner,),
+            ).rowcount
+        return {"studies": len(studies), "deliveries": deliveries}
+
+    def renew_leases(
+        self, owner: str, *, lease_seconds: float = DEFAULT_LEASE_SECONDS, now: float | None = None
+    ) -> None:
+        now = time.time() if now is None else now
+        with self._tx(durable=False) as db:
+            db.execute(
+                "UPDATE studies SET lease_until = ? WHERE claimed_by = ? AND state = 'assembled'",
+                (now + lease_seconds, owner),
+            )
+            db.execute(
+                "UPDATE deliveries SET lease_until = ? WHERE claimed_by = ? AND state = 'pending'",
+                (now + lease_seconds, owner),
+            )
 
     def finish_grading(
         self,
@@ -276,6 +361,11 @@ class SqlJournal(Journal):
                         (now, claim.study_uid),
                     )
                     self._settle_study_state(db, claim.study_uid, now)
+                db.execute(
+                    "UPDATE studies SET claimed_by = '', lease_until = 0, claims = 0 "
+                    "WHERE study_uid = ?",
+                    (claim.study_uid,),
+                )
             # else: a newer object arrived while grading; the study is 'received' again
         return queued
 
@@ -325,25 +415,47 @@ class SqlJournal(Journal):
         now = time.time() if now is None else now
         with self._tx(durable=False) as db:
             db.execute(
-                "UPDATE studies SET state = 'received', updated_at = ?, "
-                "due_at = COALESCE(?, due_at) WHERE study_uid = ? AND state = 'assembled'",
-                (now, retry_at, claim.study_uid),
+                "UPDATE studies SET state = 'received', updated_at = ?, claimed_by = '', "
+                "lease_until = 0, claims = CASE WHEN claims > 0 THEN claims - 1 ELSE 0 END, "
+                "due_at = COALESCE(?, due_at) WHERE study_uid = ? AND state = 'assembled' "
+                "AND claimed_by = ?",
+                (now, retry_at, claim.study_uid, claim.owner),
             )
             db.execute(
                 "UPDATE objects SET state = 'received' WHERE study_uid = ? AND state = 'assembled'",
                 (claim.study_uid,),
             )
 
-    def recover(self, *, now: float | None = None) -> dict[str, int]:
+    def recover(self, *, now: float | None = None, owner_prefix: str = "") -> dict[str, int]:
+        # the node's own restart is not held against the studies it was grading: their claim
+        # is not counted
         now = time.time() if now is None else now
+        pattern = _like_prefix(owner_prefix)
         with self._tx() as db:
-            studies = db.execute(
-                "UPDATE studies SET state = 'received', "
-                "due_at = CASE WHEN due_at < ? THEN due_at ELSE ? END, "
-                "updated_at = ? WHERE state = 'assembled'",
-                (now, now, now),
-            ).rowcount
-            db.execute("UPDATE objects SET state = 'received' WHERE state = 'assembled'")
+            held = db.execute(
+                "SELECT study_uid FROM studies WHERE state = 'assembled' "
+                "AND claimed_by LIKE ? ESCAPE '!'",
+                (pattern,),
+            ).fetchall()
+            for s in held:
+                db.execute(
+                    "UPDATE studies SET state = 'received', claimed_by = '', lease_until = 0, "
+                    "claims = CASE WHEN claims > 0 THEN claims - 1 ELSE 0 END, "
+                    "due_at = CASE WHEN due_at < ? THEN due_at ELSE ? END, updated_at = ? "
+                    "WHERE study_uid = ?",
+                    (now, now, now, s[0]),
+                )
+                db.execute(
+                    "UPDATE objects SET state = 'received' WHERE study_uid = ? "
+                    "AND state = 'assembled'",
+                    (s[0],),
+                )
+            db.execute(
+                "UPDATE deliveries SET claimed_by = '', lease_until = 0 "
+                "WHERE state = 'pending' AND claimed_by LIKE ? ESCAPE '!'",
+                (pattern,),
+            )
+            studies = len(held)
         counts = self.counts()
         counts["resumed_grading"] = studies
         return counts
@@ -353,7 +465,7 @@ class SqlJournal(Journal):
         with self._tx() as db:
             n = db.execute(
                 "UPDATE studies SET state = 'received', reason = '', due_at = ?, "
-                "generation = generation + 1, updated_at = ? WHERE study_uid = ?",
+                "generation = generation + 1, claims = 0, updated_at = ? WHERE study_uid = ?",
                 (now, now, study_uid),
             ).rowcount
         return n > 0
@@ -388,18 +500,7 @@ class SqlJournal(Journal):
             + " ORDER BY d.next_attempt_at, d.id LIMIT ?",
             (*params, limit),
         )
-        return [
-            DueDelivery(
-                id=r["id"],
-                result_uid=r["result_uid"],
-                study_uid=r["study_uid"],
-                destination=r["destination"],
-                attempts=r["attempts"],
-                parent_uid=r["parent_uid"],
-                sop_class_uid=r["sop_class_uid"],
-            )
-            for r in rows
-        ]
+        return [_due(r) for r in rows]
 
     def delivered_to(self, result_uid: str, destination: str) -> bool:
         rows = self._query(
@@ -413,20 +514,61 @@ class SqlJournal(Journal):
         now = time.time() if now is None else now
         rows = self._query(
             "SELECT DISTINCT destination FROM deliveries WHERE state = 'pending' "
-            "AND next_attempt_at <= ?",
-            (now,),
+            "AND next_attempt_at <= ? AND lease_until <= ?",
+            (now, now),
         )
         return sorted(r[0] for r in rows)
 
-    def next_delivery_at(self, *, destination: str | None = None) -> float | None:
-        if destination is None:
-            rows = self._query(
-                "SELECT MIN(next_attempt_at) AS due FROM deliveries WHERE state = 'pending'"
+    def claim_deliveries(
+        self,
+        destination: str,
+        *,
+        owner: str,
+        lease_seconds: float = DEFAULT_LEASE_SECONDS,
+        limit: int = 100,
+        now: float | None = None,
+    ) -> list[DueDelivery]:
+        now = time.time() if now is None else now
+        with self._tx(durable=False) as db:
+            rows = db.execute(
+                """SELECT d.id, d.result_uid, r.study_uid, d.destination, d.attempts,
+                          r.sop_class_uid,
+                          (SELECT c.result_uid FROM companions c
+                           WHERE c.companion_uid = d.result_uid LIMIT 1) AS parent_uid
+                   FROM deliveries d JOIN results r ON r.result_uid = d.result_uid
+                   WHERE d.destination = ? AND d.state = 'pending'
+                     AND d.next_attempt_at <= ? AND d.lease_until <= ?
+                   ORDER BY d.next_attempt_at, d.id LIMIT ?"""
+                + self.LOCK_ROWS.format(table="d"),
+                (destination, now, now, limit),
+            ).fetchall()
+            for r in rows:
+                db.execute(
+                    "UPDATE deliveries SET claimed_by = ?, lease_until = ? WHERE id = ?",
+                    (owner, now + lease_seconds, r["id"]),
+                )
+        return [_due(r) for r in rows]
+
+    def release_deliveries(self, delivery_ids: Sequence[int]) -> None:
+        if not delivery_ids:
+            return
+        marks = ",".join("?" * len(delivery_ids))
+        with self._tx(durable=False) as db:
+            db.execute(
+                f"UPDATE deliveries SET claimed_by = '', lease_until = 0 WHERE id IN ({marks}) "
+                "AND state = 'pending'",
+                tuple(delivery_ids),
             )
+
+    def next_delivery_at(self, *, destination: str | None = None) -> float | None:
+        when = (
+            "MIN(CASE WHEN lease_until > next_attempt_at THEN lease_until ELSE next_attempt_at END)"
+        )
+        if destination is None:
+            rows = self._query(f"SELECT {when} AS due FROM deliveries WHERE state = 'pending'")
         else:
             rows = self._query(
-                "SELECT MIN(next_attempt_at) AS due FROM deliveries WHERE state = 'pending' "
-                "AND destination = ?",
+                f"SELECT {when} AS due FROM deliveries WHERE state = 'pending' AND destination = ?",
                 (destination,),
             )
         return rows[0][0] if rows else None
@@ -436,7 +578,8 @@ class SqlJournal(Journal):
         with self._tx(durable=False) as db:
             db.execute(
                 "UPDATE deliveries SET state = 'delivered', attempts = attempts + 1, "
-                "last_error = '', delivered_at = ?, updated_at = ? WHERE id = ?",
+                "last_error = '', delivered_at = ?, updated_at = ?, claimed_by = '', "
+                "lease_until = 0 WHERE id = ?",
                 (now, now, delivery_id),
             )
             self._settle_study_of_delivery(db, delivery_id, now)
@@ -462,7 +605,7 @@ class SqlJournal(Journal):
                 reason = f"gave up after {attempts} attempts: {error}"
                 db.execute(
                     "UPDATE deliveries SET state = 'failed', attempts = ?, last_error = ?, "
-                    "updated_at = ? WHERE id = ?",
+                    "updated_at = ?, claimed_by = '', lease_until = 0 WHERE id = ?",
                     (attempts, reason, now, delivery_id),
                 )
                 self._settle_study_of_delivery(db, delivery_id, now)
@@ -471,7 +614,7 @@ class SqlJournal(Journal):
                 delay = backoff_delay(attempts, backoff_initial, backoff_max)
                 db.execute(
                     "UPDATE deliveries SET attempts = ?, last_error = ?, next_attempt_at = ?, "
-                    "updated_at = ? WHERE id = ?",
+                    "updated_at = ?, claimed_by = '', lease_until = 0 WHERE id = ?",
                     (attempts, error, now + delay, now, delivery_id),
                 )
         return state
@@ -481,7 +624,7 @@ class SqlJournal(Journal):
         with self._tx(durable=False) as db:
             db.execute(
                 "UPDATE deliveries SET state = 'failed', attempts = attempts + 1, "
-                "last_error = ?, updated_at = ? WHERE id = ?",
+                "last_error = ?, updated_at = ?, claimed_by = '', lease_until = 0 WHERE id = ?",
                 (reason, now, delivery_id),
             )
             self._settle_study_of_delivery(db, delivery_id, now)
@@ -498,7 +641,7 @@ class SqlJournal(Journal):
             ]
             n = db.execute(
                 "UPDATE deliveries SET state = 'pending', attempts = 0, next_attempt_at = ?, "
-                "updated_at = ? WHERE state = 'failed'",
+                "updated_at = ?, claimed_by = '', lease_until = 0 WHERE state = 'failed'",
                 (now, now),
             ).rowcount
             for study in studies:
@@ -685,6 +828,24 @@ class SqlJournal(Journal):
                 db.execute("DELETE FROM studies WHERE study_uid = ?", (study,))
         files += self._after_purge([p for p in paths if p])
         return Purged(studies=studies, files=files)
+
+
+def _due(r: Any) -> DueDelivery:
+    return DueDelivery(
+        id=r["id"],
+        result_uid=r["result_uid"],
+        study_uid=r["study_uid"],
+        destination=r["destination"],
+        attempts=r["attempts"],
+        parent_uid=r["parent_uid"],
+        sop_class_uid=r["sop_class_uid"],
+    )
+
+
+def _like_prefix(prefix: str) -> str:
+    """A LIKE pattern (escape character ``!``) matching every text that starts with
+    ``prefix``."""
+    return prefix.replace("!", "!!").replace("%", "!%").replace("_", "!_") + "%"
 
 
 def _result_row(row: Any, *, decode: bool = False) -> dict[str, Any]:

@@ -57,6 +57,7 @@ class SqliteJournal(SqlJournal):
             self.path.parent / "spool" if spool_root is None else spool_root, clean=False
         )
         self._lock = threading.RLock()
+        self._data_version: int | None = None
         self._db = sqlite3.connect(
             str(self.path), timeout=timeout, isolation_level=None, check_same_thread=False
         )
@@ -74,6 +75,16 @@ class SqliteJournal(SqlJournal):
     def close(self) -> None:
         with self._lock:
             self._db.close()
+
+    def changed(self) -> bool:
+        """SQLite's ``PRAGMA data_version`` moves when another connection commits (it does
+        not for this connection's own commits; https://www.sqlite.org/pragma.html)."""
+        with self._lock:
+            version = self._db.execute("PRAGMA data_version").fetchone()[0]
+        if version == self._data_version:
+            return False
+        self._data_version = version
+        return True
 
     @contextlib.contextmanager
     def _tx(self, *, durable: bool = True) -> Iterator[Cursor]:
@@ -131,8 +142,8 @@ class SqliteJournal(SqlJournal):
                 folder.rmdir()  # only when empty
         return removed
 
-    def recover(self, *, now: float | None = None) -> dict[str, int]:
+    def recover(self, *, now: float | None = None, owner_prefix: str = "") -> dict[str, int]:
         """On start: also removes half-written temporary spool files a crash left (never
         acknowledged)."""
         self.spool.clean_temporaries()
-        return super().recover(now=now)
+        return super().recover(now=now, owner_prefix=owner_prefix)

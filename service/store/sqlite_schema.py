@@ -77,6 +77,20 @@ MIGRATIONS: list[list[str]] = [
         )""",
         "CREATE INDEX IF NOT EXISTS companions_companion ON companions (companion_uid)",
     ],
+    # 2: claims with leases (several processes take work from one journal)
+    [
+        # who holds a study being graded, until when, and how many claims of this generation
+        # ended without a result (a grading process that died)
+        "ALTER TABLE studies ADD COLUMN claimed_by TEXT NOT NULL DEFAULT ''",
+        "ALTER TABLE studies ADD COLUMN lease_until REAL NOT NULL DEFAULT 0",
+        "ALTER TABLE studies ADD COLUMN claims INTEGER NOT NULL DEFAULT 0",
+        "CREATE INDEX IF NOT EXISTS studies_lease ON studies (state, lease_until)",
+        # who is sending a delivery, until when
+        "ALTER TABLE deliveries ADD COLUMN claimed_by TEXT NOT NULL DEFAULT ''",
+        "ALTER TABLE deliveries ADD COLUMN lease_until REAL NOT NULL DEFAULT 0",
+        "CREATE INDEX IF NOT EXISTS deliveries_destination "
+        "ON deliveries (destination, state, next_attempt_at)",
+    ],
 ]
 
 #: the version this program writes

@@ -1,52 +1,42 @@
-"""Study assembly: wait for a study's settle window, then grade all its objects together.
+"""The grading role: claim a study whose settle window is over, grade all its objects together,
+record the result.
 
-One scheduler thread watches the journal for studies whose settle window is over and hands
-each to one of ``assembly.workers`` grading slots.  The per-study work (decode every stored
-object of the study, grade, encode the result SR, and the one-page summary PDF when a
-destination of the study asks for it, ``summary_pdf``) runs in a pool of grading processes
-(:mod:`service.network.grading_worker`), so the listener's network threads keep this
-process's interpreter to themselves and every core is used.  Grading reads every object of the
-study, also those graded before: a late SR triggers a re-grade of the whole study, so the
-merged result uses all sources, the more recently created SR winning per measure.
+A :class:`Grader` is one grading loop.  ``serve`` runs ``assembly.workers`` of them, each in a
+process of its own (:mod:`service.network.roles`); the in-process node of the tests and the
+demo runs them as threads.  Graders share nothing but the journal: a study is claimed with a
+lease (:meth:`Journal.claim_due`), so two graders (of one node or of several) never grade it at
+the same time, and a study whose grader died is taken over when its lease runs out (or at once,
+when the supervisor gives the dead process's claims back).
 
-Back in this process, the grading slot hands the result SR (and the summary) with its
-deliveries to the journal, which stores the bytes durably and records them in one transaction;
-the summary is recorded as a companion of the result, delivered right after it to the
-destinations that want it and to the results folder.  A grading process that dies (killed,
-out of memory) never loses the study: the claim is given back, the pool is replaced and the
-study graded again; a study that keeps killing its grading process fails with that reason.  An
-injected grading function (tests) runs in this process, on the grading slot's thread.  The
-network threads never do any of this.
+The per-study work (decode every stored object of the study, grade, encode the result SR, and
+the one-page summary PDF when a destination of the study asks for it, ``summary_pdf``) is
+:func:`service.network.grading_worker.run_job`.  Grading reads every object of the study, also
+those graded before: a late SR triggers a re-grade of the whole study, so the merged result
+uses all sources, the more recently created SR winning per measure.  The result SR (and the
+summary) go to the journal with their deliveries in one call, which stores the bytes durably
+and records them in one transaction; the summary is recorded as a companion of the result,
+delivered right after it to the destinations that want it and to the results folder.  A
+storage error (disk full) gives the study back for a retry after a back-off; any other error
+fails the study with the reason.
 """
 
 from __future__ import annotations
 
 import logging
-import multiprocessing
 import threading
 import time
-from collections.abc import Callable, Sequence
-from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor, wait
-from concurrent.futures.process import BrokenProcessPool
+from collections.abc import Callable, Iterable, Sequence
 from typing import Any, Protocol
 
 from pydicom import Dataset
 
 from service.config import Config
 from service.model import InstanceRef
-from service.network.grading_worker import (
-    PRELOAD,
-    GradeJob,
-    GradeRecord,
-    TableCache,
-    grade_in_worker,
-    init_worker,
-    run_job,
-    warm_up,
-)
-from service.observability.logs import current_logging, event
+from service.network.grading_worker import GradeJob, GradeRecord, TableCache, run_job
+from service.observability.logs import event
 from service.observability.metrics import Metrics
 from service.store.journal import (
+    DEFAULT_LEASE_SECONDS,
     FOLDER_DESTINATION,
     Companion,
     Journal,
@@ -55,20 +45,19 @@ from service.store.journal import (
     backoff_delay,
 )
 
-log = logging.getLogger("diastolic_sr.assembly")
+log = logging.getLogger("diastolic_sr.grader")
 
 __all__ = [
-    "Assembler",
     "GradeFunction",
+    "Grader",
+    "LeaseKeeper",
     "destination_targets",
     "grade_options",
     "summary_targets",
 ]
 
-#: a study whose grading process died this many times is failed instead of graded again
-MAX_WORKER_CRASHES = 3
-#: seconds the node waits at start for its grading processes to be ready
-READY_TIMEOUT = 120.0
+#: how often an idle role looks at the journal for new work (a cheap test, not a query)
+CHANGE_POLL_SECONDS = 0.01
 
 
 class GradeFunction(Protocol):
@@ -82,10 +71,6 @@ class GradeFunction(Protocol):
         table: Any = None,
         predecessors: Sequence[InstanceRef] = (),
     ) -> Any: ...
-
-
-class WorkerCrashed(Exception):
-    """The grading process running a study ended without an answer."""
 
 
 def grade_options(config: Config, calling_ae: str) -> Any:
@@ -124,178 +109,140 @@ def destination_targets(config: Config, calling_ae: str) -> list[tuple[str, str]
     return out
 
 
-def _prestart(pool: ProcessPoolExecutor, n: int, timeout: float | None = None) -> bool:
-    """Start the ``n`` processes of ``pool`` (the pool starts one per task it is given while
-    none is idle); with ``timeout``, wait until each has done its start-up work.  Returns
-    whether they are all up."""
-    try:
-        started = [pool.submit(warm_up) for _ in range(n)]
-        if timeout is not None:
-            done, _ = wait(started, timeout=timeout)
-            return len(done) == n and all(f.exception() is None for f in done)
-    except Exception:  # shut down meanwhile, or broken: the grading slots deal with it
-        return False
-    return True
+def idle(journal: Journal, wake: threading.Event, stop: threading.Event, seconds: float) -> None:
+    """Wait up to ``seconds``: less when woken, stopped, or when another process committed
+    to the journal (:meth:`Journal.changed`, looked at every ``CHANGE_POLL_SECONDS``)."""
+    deadline = time.monotonic() + seconds
+    while not stop.is_set():
+        left = deadline - time.monotonic()
+        if left <= 0 or wake.wait(min(CHANGE_POLL_SECONDS, left)):
+            return
+        try:
+            if journal.changed():
+                return
+        except Exception:  # the journal is unreachable: the caller's next query says why
+            return
 
 
-def _process_context() -> Any:
-    """A start method that is safe in a process with threads: the fork server (its grading
-    processes are forked from a clean single-threaded server that imported the pipeline
-    once), or spawn where there is no fork server."""
-    methods = multiprocessing.get_all_start_methods()
-    if "forkserver" in methods:
-        ctx = multiprocessing.get_context("forkserver")
-        ctx.set_forkserver_preload(list(PRELOAD))
-        return ctx
-    return multiprocessing.get_context("spawn")
+class LeaseKeeper:
+    """Renews the leases of every claim the given owners hold, every third of the lease, so
+    that work in progress keeps its claim however long it takes."""
+
+    def __init__(
+        self,
+        journal: Journal,
+        owners: Callable[[], Iterable[str]],
+        lease_seconds: float = DEFAULT_LEASE_SECONDS,
+    ) -> None:
+        self.journal = journal
+        self._owners = owners
+        self.lease_seconds = lease_seconds
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="leases", daemon=True)
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def stop(self) -> None:
+        self._stop.set()
+        self._thread.join(10)
+
+    def _run(self) -> None:
+        while not self._stop.wait(self.lease_seconds / 3):
+            for owner in list(self._owners()):
+                try:
+                    self.journal.renew_leases(owner, lease_seconds=self.lease_seconds)
+                except Exception as exc:  # the journal is away: the next round tries again
+                    log.warning("cannot renew the leases of %s: %s", owner, exc)
 
 
-class Assembler:
+class Grader:
+    """One grading loop (a thread): claims a due study, grades it, records the outcome."""
+
     def __init__(
         self,
         config: Config,
         journal: Journal,
         *,
+        owner: str,
         grade_fn: GradeFunction | None = None,
-        on_result: Callable[[], None] = lambda: None,
         poll_seconds: float = 0.5,
+        lease_seconds: float = DEFAULT_LEASE_SECONDS,
         metrics: Metrics | None = None,
+        on_result: Callable[[], None] = lambda: None,
+        name: str = "grader",
     ) -> None:
         self.config = config
-        #: the mapping table of the in-process grading function (grading processes keep theirs)
-        self._tables = TableCache()
-        self.metrics = metrics or Metrics()
         self.journal = journal
+        self.owner = owner
+        self.metrics = metrics or Metrics()
         self._grade_fn = grade_fn
-        self._on_result = on_result
         self._poll = poll_seconds
+        self.lease_seconds = lease_seconds
+        self._on_result = on_result
+        #: the mapping table in force (parsed once, again when the files change)
+        self._tables = TableCache()
         self._wake = threading.Event()
         self._stop = threading.Event()
-        self._workers = config.assembly.workers
-        #: studies in hand at once, each on a thread of its own that waits for its grading
-        #: process, then spools and journals the outcome (or grades it, with an injected
-        #: grading function).  Twice the grading processes: each has its next study queued
-        #: while the outcome of its last is being stored.
-        self._slots = self._workers if grade_fn is not None else 2 * self._workers
-        self._pool = ThreadPoolExecutor(self._slots, thread_name_prefix="grade")
-        self._processes: ProcessPoolExecutor | None = None
-        #: a pipe only this process writes to: grading processes end when it closes
-        self._lifeline: tuple[Any, Any] | None = None
-        self._processes_lock = threading.Lock()
-        self._inflight: set[Future[None]] = set()
         #: storage-error retries per study (back-off as for deliveries)
         self._io_retries: dict[str, int] = {}
-        #: grading processes lost per study
-        self._crashes: dict[str, int] = {}
-        self._inflight_lock = threading.Lock()
-        self._thread = threading.Thread(target=self._run, name="assembler", daemon=True)
+        self._thread = threading.Thread(target=self.run, name=name, daemon=True)
 
-    @property
-    def in_process(self) -> bool:
-        """An injected grading function runs in this process."""
-        return self._grade_fn is not None
+    # -- the loop ---------------------------------------------------------------------------
 
     def start(self) -> None:
-        """Start the grading processes (waiting, at most ``READY_TIMEOUT`` seconds, until
-        they have imported and warmed up the pipeline, so that the first studies are graded
-        at full speed), then the scheduler."""
-        if not self.in_process:
-            with self._processes_lock:
-                self._processes = pool = self._new_processes()
-            if not _prestart(pool, self._workers, READY_TIMEOUT):
-                log.warning(
-                    "grading processes not ready after %g s; studies wait for them", READY_TIMEOUT
-                )
         self._thread.start()
-
-    def _new_processes(self, *, prestart: bool = False) -> ProcessPoolExecutor:
-        """A pool of grading processes; with ``prestart``, started now in the background
-        (their start-up work begun before a study needs them)."""
-        context = _process_context()
-        if self._lifeline is None:
-            self._lifeline = context.Pipe(duplex=False)
-        pool = ProcessPoolExecutor(
-            self._workers,
-            mp_context=context,
-            initializer=init_worker,
-            initargs=(tuple(self.config.mapping_paths), self._lifeline[0], current_logging()),
-        )
-        if prestart:
-            threading.Thread(
-                target=_prestart, args=(pool, self._workers), name="grade-start", daemon=True
-            ).start()
-        return pool
 
     def wake(self) -> None:
         self._wake.set()
 
     def stop(self, timeout: float = 60.0) -> None:
-        """Stop claiming; let the studies being graded finish (bounded by ``timeout``)."""
+        """Stop claiming; let the study being graded finish (bounded by ``timeout``)."""
         self._stop.set()
         self._wake.set()
-        self._thread.join(timeout)
-        self._pool.shutdown(wait=True, cancel_futures=True)
-        with self._processes_lock:
-            processes, self._processes = self._processes, None
-        if processes is not None:
-            processes.shutdown(wait=True, cancel_futures=True)
-        if self._lifeline is not None:
-            for end in self._lifeline:
-                end.close()
-            self._lifeline = None
+        if self._thread.is_alive():
+            self._thread.join(timeout)
 
-    # -- scheduling -------------------------------------------------------------------------------
+    @property
+    def stopping(self) -> bool:
+        return self._stop.is_set()
 
-    def _run(self) -> None:
+    def run(self) -> None:
         while not self._stop.is_set():
             self._wake.clear()
             wait = self._poll
             try:
-                if self._schedule():  # a worker is free: sleep until the next window ends
-                    due = self.journal.next_due_at()
-                    if due is not None:
-                        wait = max(0.01, min(wait, due - time.time()))
+                if self.run_once():
+                    continue
+                due = self.journal.next_due_at()
+                if due is not None:
+                    wait = max(0.01, min(wait, due - time.time()))
             except Exception:
-                log.exception("assembly scheduler error; retrying")
-            self._wake.wait(wait)
+                log.exception("grading loop error; retrying")
+            idle(self.journal, self._wake, self._stop, wait)
 
-    def _schedule(self) -> bool:
-        """Claim due studies for free workers; True when a worker is still free."""
-        with self._inflight_lock:
-            free = self._slots - len(self._inflight)
-        if free <= 0 or self._stop.is_set():
-            return False
-        claims = self.journal.claim_due(limit=free)
+    def run_once(self) -> bool:
+        """Claim and grade one due study; False when none is due."""
+        claims = self.journal.claim_due(limit=1, owner=self.owner, lease_seconds=self.lease_seconds)
         for claim in claims:
-            fut = self._pool.submit(self._grade_claim, claim)
-            with self._inflight_lock:
-                self._inflight.add(fut)
-            fut.add_done_callback(self._done)
-        return len(claims) < free
+            self._grade_claim(claim)
+        return bool(claims)
 
-    def _done(self, fut: Future[None]) -> None:
-        with self._inflight_lock:
-            self._inflight.discard(fut)
-        self._wake.set()
-
-    # -- grading ---------------------------------------------------------------------------------
+    # -- one study ----------------------------------------------------------------------------
 
     def _grade_claim(self, claim: StudyClaim) -> None:
         if self._stop.is_set():
-            self.journal.release_claim(claim)
+            self._release(claim)
             return
         started = time.monotonic()
         try:
             self.grade(claim)
             self.metrics.processing.observe(time.monotonic() - started)
             self._io_retries.pop(claim.study_uid, None)
-            self._crashes.pop(claim.study_uid, None)
         except OSError as exc:
             # the node's own storage failed (disk full, ...), not the input: give the study
             # back and try again after a back-off, without anyone having to re-queue it
             self._retry_later(claim, exc)
-        except WorkerCrashed as exc:
-            self._worker_crashed(claim, exc)
         except Exception as exc:
             self._failed(claim, exc)
 
@@ -306,37 +253,13 @@ class Assembler:
             self.journal.finish_grading(
                 claim, result=None, failure=f"internal error while grading: {exc}"
             )
-        except Exception:  # the journal itself failed: the claim resumes on restart
+        except Exception:  # the journal itself failed: the claim's lease runs out
             log.exception("cannot record the failure of study %s", claim.study_uid)
-
-    def _worker_crashed(self, claim: StudyClaim, exc: WorkerCrashed) -> None:
-        """Give the study back (graded again at once), unless it keeps killing its grading
-        process: then it fails with that reason."""
-        if self._stop.is_set():
-            self._release(claim)
-            return
-        n = self._crashes.get(claim.study_uid, 0) + 1
-        self._crashes[claim.study_uid] = n
-        if n >= MAX_WORKER_CRASHES:
-            self._crashes.pop(claim.study_uid, None)
-            self._failed(claim, WorkerCrashed(f"{exc} ({n} times)"))
-            return
-        self.metrics.studies.labels(outcome="retry").inc()
-        event(
-            "study_retry",
-            f"study {claim.study_uid}: {exc}; graded again",
-            level=logging.ERROR,
-            study_uid=claim.study_uid,
-            attempt=n,
-            retry_in_seconds=0,
-            reason=str(exc),
-        )
-        self._release(claim)
 
     def _release(self, claim: StudyClaim, retry_at: float | None = None) -> None:
         try:
             self.journal.release_claim(claim, retry_at=retry_at)
-        except Exception:  # the journal itself failed: the claim resumes on restart
+        except Exception:  # the journal itself failed: the claim's lease runs out
             log.exception("cannot give back study %s", claim.study_uid)
 
     def _retry_later(self, claim: StudyClaim, exc: OSError) -> None:
@@ -358,13 +281,12 @@ class Assembler:
         self._release(claim, retry_at=time.time() + delay)
 
     def mapping_table(self) -> Any:
-        """The standard and site mapping table in force for the in-process grading function.
-        Parsed once, not per study; parsed again when the configured files or their contents
-        change (e.g. after a SIGHUP).  Grading processes keep their own, the same way."""
+        """The standard and site mapping table in force: parsed once, not per study; parsed
+        again when the configured files or their contents change (e.g. after a SIGHUP)."""
         return self._tables.get(tuple(self.config.mapping_paths))
 
     def job(self, claim: StudyClaim, *, summary: bool) -> GradeJob:
-        """What grading ``claim`` needs, as sent to a grading process."""
+        """What grading ``claim`` needs."""
         predecessors = tuple(
             InstanceRef(
                 study_instance_uid=r["study_uid"],
@@ -399,26 +321,12 @@ class Assembler:
             return f"{type(exc).__name__}: {exc.strerror or exc}"
 
     def _run_job(self, job: GradeJob) -> GradeRecord:
-        if self._grade_fn is not None:
-            return run_job(job, self._grade_fn, self.mapping_table())
-        with self._processes_lock:
-            pool = self._processes
-        if pool is None:
-            raise WorkerCrashed("the grading processes are stopped")
-        try:
-            return pool.submit(grade_in_worker, job).result()
-        except BrokenProcessPool as exc:
-            self._replace_processes(pool)
-            raise WorkerCrashed(f"the grading process ended unexpectedly ({exc})") from None
+        grade_fn = self._grade_fn
+        if grade_fn is None:
+            from service.pipeline import grade_study
 
-    def _replace_processes(self, broken: ProcessPoolExecutor) -> None:
-        """A new pool for the broken one (once, whichever grading slot notices first)."""
-        with self._processes_lock:
-            if self._processes is not broken:
-                return
-            self._processes = None if self._stop.is_set() else self._new_processes(prestart=True)
-        broken.shutdown(wait=False, cancel_futures=True)
-        log.error("a grading process ended unexpectedly; grading processes restarted")
+            grade_fn = grade_study
+        return run_job(job, grade_fn, self.mapping_table())
 
     def grade(self, claim: StudyClaim) -> None:
         summary_to = summary_targets(self.config, claim.calling_ae)

@@ -138,7 +138,9 @@ def test_a_failed_summary_delivery_fails_the_study_with_its_reason(tmp_path):
         study = str(source.StudyInstanceUID)
         wait_for(lambda: (node.journal.study(study) or {}).get("state") == "failed", 60)
         assert [str(ds.SOPClassUID) for ds in pacs.received] == [COMPREHENSIVE_SR]
-        assert "delivery to PACS_MAIN" in node.journal.study(study)["reason"]
+        reason = node.journal.study(study)["reason"]
+        # the reason names the object whose delivery failed (its kind and UID)
+        assert reason.startswith("delivery of summary PDF ") and " to PACS_MAIN: " in reason
     finally:
         if node is not None:
             node.stop()

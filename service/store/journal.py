@@ -27,6 +27,8 @@ study:    received -> assembled -> graded -> delivered
           any state -> received again when a new object of the study arrives or an
           administrator asks for a re-grade (``generation`` counts these).
 delivery: pending -> delivered | failed (reason); ``requeue_failed`` puts failed ones back.
+ignored:  an object acknowledged and kept in the spool but never graded nor forwarded (the
+          node's own result coming back), with the reason; its study is not touched.
 
 One connection is shared by the threads of a process behind a lock; other processes (the
 ``queue`` command) may open the same file at the same time (WAL readers never block).
@@ -137,6 +139,18 @@ CREATE TABLE IF NOT EXISTS companions (
     PRIMARY KEY (result_uid, companion_uid)
 );
 CREATE INDEX IF NOT EXISTS companions_companion ON companions (companion_uid);
+-- objects acknowledged and kept but never graded (the node's own results coming back)
+CREATE TABLE IF NOT EXISTS ignored_objects (
+    sop_instance_uid TEXT PRIMARY KEY,
+    study_uid TEXT NOT NULL,
+    sop_class_uid TEXT NOT NULL,
+    calling_ae TEXT NOT NULL,
+    path TEXT NOT NULL,
+    reason TEXT NOT NULL,
+    received_at REAL NOT NULL,
+    times_received INTEGER NOT NULL DEFAULT 1
+);
+CREATE INDEX IF NOT EXISTS ignored_objects_received ON ignored_objects (received_at);
 """
 
 
@@ -194,6 +208,14 @@ class DueDelivery:
     parent_uid: str | None = None
     #: SOP Class UID of the result object
     sop_class_uid: str = ""
+
+
+#: Encapsulated PDF Storage (PS3.4 Annex B.5): the summary delivered with a result SR
+_ENCAPSULATED_PDF = "1.2.840.10008.5.1.4.1.1.104.1"
+
+
+def _kind(sop_class_uid: str | None) -> str:
+    return "summary PDF" if sop_class_uid == _ENCAPSULATED_PDF else "result SR"
 
 
 def backoff_delay(attempt: int, initial: float, maximum: float) -> float:
@@ -299,6 +321,48 @@ class Journal:
                        updated_at = excluded.updated_at""",
                 (study_uid, calling_ae, now, now, now + settle_seconds, now),
             )
+
+    def record_ignored(
+        self,
+        *,
+        sop_instance_uid: str,
+        study_uid: str,
+        sop_class_uid: str,
+        calling_ae: str,
+        path: Path,
+        reason: str,
+        now: float | None = None,
+    ) -> None:
+        """Record an object kept (already durable in the spool) but never to be graded, with
+        the reason; its study is neither opened nor re-opened.  Committed before returning."""
+        now = time.time() if now is None else now
+        with self._tx() as db:
+            db.execute(
+                """INSERT INTO ignored_objects (sop_instance_uid, study_uid, sop_class_uid,
+                       calling_ae, path, reason, received_at)
+                   VALUES (?, ?, ?, ?, ?, ?, ?)
+                   ON CONFLICT (sop_instance_uid) DO UPDATE SET
+                       calling_ae = excluded.calling_ae, path = excluded.path,
+                       reason = excluded.reason, received_at = excluded.received_at,
+                       times_received = times_received + 1""",
+                (sop_instance_uid, study_uid, sop_class_uid, calling_ae, str(path), reason, now),
+            )
+
+    def ignored_objects(self, limit: int = 100) -> list[dict[str, Any]]:
+        rows = self._query(
+            "SELECT * FROM ignored_objects ORDER BY received_at DESC LIMIT ?", (limit,)
+        )
+        return [dict(r) for r in rows]
+
+    def purge_ignored(self, older_than: float) -> tuple[Path, ...]:
+        """Forget ignored objects received before ``older_than``; their spool files, for the
+        caller to delete."""
+        with self._tx() as db:
+            rows = db.execute(
+                "SELECT path FROM ignored_objects WHERE received_at < ?", (older_than,)
+            ).fetchall()
+            db.execute("DELETE FROM ignored_objects WHERE received_at < ?", (older_than,))
+        return tuple(Path(r[0]) for r in rows)
 
     # -- assembling and grading -----------------------------------------------------------------
 
@@ -472,7 +536,9 @@ class Journal:
             )
 
     def recover(self, *, now: float | None = None) -> dict[str, int]:
-        """On start: studies caught mid-grading go back to received (due now)."""
+        """On start: studies caught mid-grading go back to received (due now).  Counts:
+        ``resumed_grading``, every study waiting to be graded; ``interrupted_grading``, those
+        of them caught mid-grading."""
         now = time.time() if now is None else now
         with self._tx() as db:
             studies = db.execute(
@@ -481,8 +547,14 @@ class Journal:
                 (now, now),
             ).rowcount
             db.execute("UPDATE objects SET state = 'received' WHERE state = 'assembled'")
+            # every study not yet graded resumes: those caught mid-grading and those whose
+            # settle window had not ended (or had ended unclaimed) when the node stopped
+            waiting = db.execute(
+                "SELECT COUNT(*) FROM studies WHERE state = 'received'"
+            ).fetchone()[0]
         counts = self.counts()
-        counts["resumed_grading"] = studies
+        counts["resumed_grading"] = int(waiting)
+        counts["interrupted_grading"] = studies
         return counts
 
     def request_regrade(self, study_uid: str, *, now: float | None = None) -> bool:
@@ -630,15 +702,21 @@ class Journal:
         if study["result_uid"] is None:
             return
         rows = db.execute(
-            "SELECT destination, state, last_error FROM deliveries WHERE result_uid = ? "
-            "OR result_uid IN (SELECT companion_uid FROM companions WHERE result_uid = ?)",
+            "SELECT d.destination, d.state, d.last_error, d.result_uid, r.sop_class_uid "
+            "FROM deliveries d LEFT JOIN results r ON r.result_uid = d.result_uid "
+            "WHERE d.result_uid = ? "
+            "OR d.result_uid IN (SELECT companion_uid FROM companions WHERE result_uid = ?)",
             (study["result_uid"], study["result_uid"]),
         ).fetchall()
         failed = [r for r in rows if r["state"] == "failed"]
         pending = [r for r in rows if r["state"] == "pending"]
         if failed:
             state = "failed"
-            reason = "; ".join(f"delivery to {r['destination']}: {r['last_error']}" for r in failed)
+            reason = "; ".join(
+                f"delivery of {_kind(r['sop_class_uid'])} {r['result_uid']} to "
+                f"{r['destination']}: {r['last_error']}"
+                for r in failed
+            )
         elif pending or not rows:
             state, reason = "graded", ""
         else:

@@ -1,4 +1,5 @@
-"""Retention: delete spooled sources and results of studies finished more than N days ago.
+"""Retention: delete spooled sources and results of studies finished more than N days ago,
+and objects ignored (the node's own results coming back) more than N days ago.
 
 Pending work (studies waiting to be graded, results waiting to be delivered) and failed
 deliveries are never touched: see :meth:`Journal.purge_finished`.  The results folder is an
@@ -31,10 +32,11 @@ def purge(
         return PurgeReport(0, 0)
     now = time.time() if now is None else now
     purged = journal.purge_finished(now - days * DAY)
+    ignored = journal.purge_ignored(now - days * DAY)
     root = Path(spool_root).resolve()
     removed = 0
     folders = set()
-    for path in purged.paths:
+    for path in (*purged.paths, *ignored):
         p = Path(path)
         with contextlib.suppress(OSError):
             if root in p.resolve().parents:  # only ever delete inside the spool

@@ -12,7 +12,13 @@ from pathlib import Path
 
 import pydicom
 import pytest
-from netutil import echo_sr
+from netutil import (
+    DCMTK_REASON,
+    SKIP_WITHOUT_DCMTK,
+    echo_sr,
+    run_storescu,
+    wait_for,
+)
 
 from service.model import Measure
 
@@ -232,3 +238,28 @@ def test_compare_table_has_a_column_and_a_plain_words_line_per_disagreement(tmp_
     assert not any(x.startswith("Guidelines differ for") and "normal.dcm" in x for x in lines)
     plain = run_cli("grade", demo / "indeterminate.dcm")
     assert "other guidelines" not in plain.stdout and "Guidelines differ" not in plain.stdout
+
+
+@pytest.mark.network
+@pytest.mark.skipif(SKIP_WITHOUT_DCMTK, reason=DCMTK_REASON)
+def test_split_study_gives_the_same_result_offline_and_on_the_node(tmp_path: Path, loopback_nodes):
+    first = echo_sr("split-node", instance=1, content_time="101500", values=FIRST_HALF)
+    second = echo_sr("split-node", instance=2, content_time="103000", values=SECOND_HALF)
+    files = [_save(first, tmp_path / "in" / "a.dcm"), _save(second, tmp_path / "in" / "b.dcm")]
+    [row] = json_rows(run_cli("grade", tmp_path / "in", "--json"))
+    node = loopback_nodes.start({"http": {"port": 0}}, settle=2.0)
+    # DCMTK storescu, -R: propose the files' own SOP classes
+    assert run_storescu(files, node.port).returncode == 0
+    study = str(first.StudyInstanceUID)
+
+    def merged_and_done():
+        row = node.journal.study(study)
+        if row is None or row["state"] not in ("delivered", "failed") or not row["result_uid"]:
+            return None
+        result = node.journal.result(row["result_uid"])
+        return row if result and len(result["sources"]) == 2 else None
+
+    done = wait_for(merged_and_done, 60)
+    # one study, one result: the same instance offline and on the node
+    assert done["state"] == "delivered"
+    assert done["result_uid"] == row["result_uid"]

@@ -192,3 +192,28 @@ def test_result_sent_back_with_dcmtk_storescu_is_acknowledged_and_ignored(
         listed = {o["sop_instance_uid"]: o for o in report["objects_ignored"]}
         assert set(listed) == {first["result_uid"], str(other.SOPInstanceUID)}
         assert listed[first["result_uid"]]["kind"] == "result SR"
+
+
+def test_ignored_object_is_kept_then_purged_with_finished_work(tmp_path):
+    from service.store.sqlite_journal import SqliteJournal
+
+    journal = SqliteJournal(tmp_path / "journal.sqlite3")
+    try:
+        for when in (100.0, 200.0):  # the same result sent back twice
+            journal.store_ignored(
+                sop_instance_uid="2.25.1",
+                study_uid="2.25.9",
+                sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
+                calling_ae="PACS",
+                data=b"\0" * 132,
+                reason=f"{IGNORED_OWN_RESULT}: test",
+                now=when,
+            )
+        [row] = journal.ignored_objects()
+        assert row["times_received"] == 2 and Path(row["path"]).is_file()
+        assert journal.study("2.25.9") is None  # no study opened for grading
+        assert journal.purge_finished(150.0).files == 0  # kept until its cut-off
+        assert journal.purge_finished(250.0).files == 1
+        assert journal.ignored_objects() == [] and not Path(row["path"]).exists()
+    finally:
+        journal.close()

@@ -51,7 +51,6 @@ from service.observability.metrics import Metrics
 from service.sr.provenance import EQUIPMENT_TAGS, IGNORED_OWN_RESULT, received_own_result_reason
 from service.sr.read import structure_problem
 from service.store.journal import Journal
-from service.store.spool import Spool
 
 log = logging.getLogger("diastolic_sr.listener")
 
@@ -211,7 +210,6 @@ class Listener:
         self,
         config: Config,
         journal: Journal,
-        spool: Spool,
         *,
         on_received: Callable[[str], None] = lambda study_uid: None,
         metrics: Metrics | None = None,
@@ -219,7 +217,6 @@ class Listener:
         self.config = config
         self.metrics = metrics or Metrics()
         self.journal = journal
-        self.spool = spool
         self.on_received = on_received
         self.server: ThreadedAssociationServer | None = None
         self._closed = False
@@ -442,25 +439,23 @@ class Listener:
             return self._object_rejected(calling, affected, DOES_NOT_MATCH_SOP_CLASS, problem)
         own = received_own_result_reason(ds, _body(ev), implicit=syntax == ImplicitVRLittleEndian)
         try:
-            data = part10_bytes(ev)
-            path = self.spool.write_object(study_uid, sop_uid, data)
             if own is not None:  # kept and acknowledged, never graded nor forwarded
-                self.journal.record_ignored(
+                self.journal.store_ignored(
                     sop_instance_uid=sop_uid,
                     study_uid=study_uid,
                     sop_class_uid=sop_class,
                     calling_ae=calling,
-                    path=path,
+                    data=part10_bytes(ev),
                     reason=f"{IGNORED_OWN_RESULT}: {own}",
                 )
                 return self._object_ignored(calling, sop_uid, study_uid, own)
-            self.journal.record_object(
+            self.journal.store_object(
                 sop_instance_uid=sop_uid,
                 study_uid=study_uid,
                 sop_class_uid=sop_class,
                 transfer_syntax=str(ev.context.transfer_syntax),
                 calling_ae=calling,
-                path=path,
+                data=part10_bytes(ev),
                 settle_seconds=self.config.assembly.settle_seconds,
             )
         except Exception as exc:

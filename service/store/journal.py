@@ -21,6 +21,8 @@ study:    received -> assembled -> graded -> delivered
           any state -> received again when a new object of the study arrives or an
           administrator asks for a re-grade (``generation`` counts these).
 delivery: pending -> delivered | failed (reason); ``requeue_failed`` puts failed ones back.
+ignored:  an object acknowledged and kept but never graded nor forwarded (the node's own
+          result coming back), with the reason; its study is not touched.
 
 Claims and leases
 -----------------
@@ -187,6 +189,28 @@ class Journal(abc.ABC):
         C-STORE success go out.  Raises on any failure (nothing is acknowledged then)."""
 
     @abc.abstractmethod
+    def store_ignored(
+        self,
+        *,
+        sop_instance_uid: str,
+        study_uid: str,
+        sop_class_uid: str,
+        calling_ae: str,
+        data: bytes,
+        reason: str,
+        now: float | None = None,
+    ) -> None:
+        """Keep a received object that is never to be graded nor forwarded (the node's own
+        result coming back), with the reason; durable when this returns (its C-STORE success
+        follows).  Its study is neither opened nor re-opened.  Purged by
+        :meth:`purge_finished` once older than its cut-off."""
+
+    @abc.abstractmethod
+    def ignored_objects(self, limit: int = 100) -> list[dict[str, Any]]:
+        """The objects kept by :meth:`store_ignored`, newest first: sop_instance_uid,
+        study_uid, sop_class_uid, calling_ae, reason, received_at, times_received."""
+
+    @abc.abstractmethod
     def object_data(self, sop_instance_uid: str) -> bytes:
         """The stored Part 10 bytes of a received object; OSError when they cannot be read."""
 
@@ -245,8 +269,10 @@ class Journal(abc.ABC):
     def recover(self, *, now: float | None = None, owner_prefix: str = "") -> dict[str, int]:
         """On start: the claims of this node's earlier run (every claim whose owner starts
         with ``owner_prefix``; "": every claim, for a journal only this node uses) are given
-        back, studies due now.  Returns the counts of :meth:`counts` and
-        ``resumed_grading``."""
+        back, studies due now.  Returns the counts of :meth:`counts`, ``resumed_grading``
+        (every study waiting to be graded: those caught mid-grading and those whose settle
+        window had not ended) and ``interrupted_grading`` (those of them caught
+        mid-grading)."""
 
     @abc.abstractmethod
     def release_owner(self, owner: str, *, now: float | None = None) -> dict[str, int]:
@@ -392,7 +418,8 @@ class Journal(abc.ABC):
         Finished: ``delivered`` (every delivery done), or ``failed`` with nothing pending or
         failed to deliver (a study that could not be graded).  Studies waiting to be graded,
         results waiting to be delivered and failed deliveries (which an administrator may
-        re-queue) are never purged."""
+        re-queue) are never purged.  Objects kept by :meth:`store_ignored` before
+        ``older_than`` go too."""
 
     def __enter__(self) -> Journal:
         return self

@@ -271,6 +271,14 @@ class RetentionConfig(Section):
 class JournalConfig(Section):
     """Where the node's roles share their work."""
 
+    #: "" keeps the journal in the data directory (SQLite, one machine);
+    #: "postgresql://USER@HOST:PORT/DATABASE" shares it with every node using the same
+    #: database (the objects go into the database too); never a password in it
+    url: str = ""
+    #: the database password (masked by check-config, never logged); "" leaves it to libpq
+    #: (the PGPASSWORD variable, the ~/.pgpass file)
+    password: str = Field(default="", repr=False)
+
     #: seconds a claim on a study or a delivery holds without being renewed: work of a
     #: process or node that died is taken over after it
     lease_seconds: float = Field(default=30.0, ge=2, le=3600)
@@ -380,7 +388,10 @@ class Config(Section):
 
 
 #: (section, key) of every secret: never printed or logged
-SECRET_KEYS: tuple[tuple[str, str], ...] = (("tls", "private_key_password"),)
+SECRET_KEYS: tuple[tuple[str, str], ...] = (
+    ("tls", "private_key_password"),
+    ("journal", "password"),
+)
 #: keys of every destination that are secrets
 DESTINATION_SECRET_KEYS: tuple[str, ...] = ("password",)
 
@@ -511,6 +522,13 @@ def _cross_check(cfg: Config) -> Iterable[str]:
     same_port = cfg.http.enabled and cfg.http.port and cfg.http.port == cfg.node.port
     if same_port and (cfg.http.bind in (cfg.node.bind, "", "0.0.0.0") or cfg.node.bind == ""):
         yield f"http.port: {cfg.http.port} is the DICOM port (node.port); choose another"
+    if cfg.journal.url:
+        from service.store.postgres_journal import check_url
+
+        try:
+            check_url(cfg.journal.url)
+        except UserError as exc:
+            yield f"journal.url: {str(exc).removeprefix('journal: ')}"
     for name, dest in cfg.destinations.items():
         if dest.password and not dest.username:
             yield f"destinations.{name}.password: set destinations.{name}.username too"
@@ -610,6 +628,7 @@ def apply_overrides(
     bind: str | None = None,
     http_port: int | None = None,
     lease_seconds: float | None = None,
+    journal: str | None = None,
 ) -> Config:
     """The configuration with command-line flags applied (each flag beats the file).
 
@@ -631,6 +650,8 @@ def apply_overrides(
         data["http"]["port"] = http_port
     if lease_seconds is not None:
         data["journal"]["lease_seconds"] = lease_seconds
+    if journal is not None:
+        data["journal"]["url"] = journal
     names = []
     for i, text in enumerate(forward, start=1):
         dest = parse_forward(text)

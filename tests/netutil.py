@@ -54,9 +54,13 @@ class LoopbackNodes:
     in a data folder of its own under ``root``; :meth:`stop_all` at the end of the test (the
     ``loopback_nodes`` fixture of conftest.py does that)."""
 
-    def __init__(self, root: Path) -> None:
+    def __init__(
+        self, root: Path, *, journal: Callable[[Path], dict[str, Any]] | None = None
+    ) -> None:
         self.root = Path(root)
         self.started: list[Any] = []
+        #: the [journal] section of the node with a data folder ({}: SQLite in the folder)
+        self.journal = journal or (lambda data_dir: {})
 
     def start(
         self,
@@ -71,11 +75,15 @@ class LoopbackNodes:
         from service.config import apply_overrides, config_from_dict
         from service.network.service import Node
 
+        folder = Path(data_dir or self.root / f"node{len(self.started)}")
+        journal = self.journal(folder)
+        if journal:
+            data = {**data, "journal": {**data.get("journal", {}), **journal}}
         cfg = apply_overrides(
             config_from_dict(data),
             port=0,
             bind=LOOPBACK,
-            data_dir=str(data_dir or self.root / f"node{len(self.started)}"),
+            data_dir=str(folder),
             settle_seconds=settle,
             forward=list(forward),
         )
@@ -206,9 +214,13 @@ def write_config(path: Path, text: str) -> Path:
 class NodeProcess:
     """``python -m service.cli serve ...`` in a subprocess, with its log in a file."""
 
-    def __init__(self, data_dir: Path, args: Sequence[str] = ()) -> None:
+    def __init__(
+        self, data_dir: Path, args: Sequence[str] = (), env: dict[str, str] | None = None
+    ) -> None:
         self.data_dir = Path(data_dir)
         self.args = list(args)
+        #: more environment variables for the node (e.g. PGPASSWORD)
+        self.env = dict(env or {})
         self.proc: subprocess.Popen[bytes] | None = None
         self.log_path = self.data_dir.parent / f"{self.data_dir.name}-node.log"
         self.port: int | None = None
@@ -235,6 +247,7 @@ class NodeProcess:
                 cwd=REPO,
                 stdout=log,
                 stderr=subprocess.STDOUT,
+                env={**os.environ, **self.env},
             )
 
         def ready() -> int | None:
@@ -626,3 +639,29 @@ class TricklingProxy:
             for s in (client, upstream):
                 with contextlib.suppress(OSError):
                     s.close()
+
+
+# ---------------------------------------------------------------------------------------------
+# Journal-neutral looks at a node's journal (SQLite with spool files, or PostgreSQL)
+# ---------------------------------------------------------------------------------------------
+
+
+def journal_args(node: Any) -> list[str]:
+    """The ``queue`` command's options that name ``node``'s journal (the password, for a
+    PostgreSQL journal, from PGPASSWORD: the ``node_backend`` fixture sets it)."""
+    args = ["--data-dir", str(node.config.data_dir)]
+    if node.config.journal.url:
+        args += ["--journal", node.config.journal.url]
+    return args
+
+
+def bytes_kept(journal: Any, row: dict[str, Any]) -> bool:
+    """Whether the bytes of an object row (``objects`` or ``ignored_objects``) are stored: its
+    spool file (SQLite) or its row of ``object_data`` (PostgreSQL)."""
+    if row.get("path"):
+        return Path(row["path"]).is_file()
+    return bool(
+        journal._query(
+            "SELECT 1 FROM object_data WHERE sop_instance_uid = ?", (row["sop_instance_uid"],)
+        )
+    )

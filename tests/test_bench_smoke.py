@@ -47,6 +47,23 @@ def test_offline_and_journal_sections(tmp_path):
 @pytest.mark.network
 @pytest.mark.external
 @pytest.mark.skipif(SKIP_WITHOUT_DCMTK, reason=DCMTK_REASON)
+def test_journals_and_nodes_sections(tmp_path):
+    from pgutil import POSTGRESQL_REASON, SKIP_WITHOUT_POSTGRESQL
+
+    if SKIP_WITHOUT_POSTGRESQL:
+        pytest.skip(POSTGRESQL_REASON)
+    r, figures = run_bench(tmp_path, "--sections", "journals,nodes", "--n", "4", "--rounds", "1")
+    journals = figures["journals"]
+    assert journals["sqlite_end_to_end"] > 0 and journals["postgresql_end_to_end"] > 0
+    assert journals["delivered"] == 4  # every result at the PACS, on both journals
+    nodes = figures["nodes"]
+    assert nodes["one_node"] > 0 and nodes["two_nodes"] > 0 and nodes["delivered"] == 4
+    assert "two / one" in r.stdout and "PostgreSQL / SQLite" in r.stdout
+
+
+@pytest.mark.network
+@pytest.mark.external
+@pytest.mark.skipif(SKIP_WITHOUT_DCMTK, reason=DCMTK_REASON)
 def test_receivers_latency_and_memory_sections(tmp_path):
     r, figures = run_bench(
         tmp_path,

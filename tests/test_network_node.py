@@ -11,6 +11,7 @@ import logging
 import sqlite3
 import threading
 import warnings
+from io import BytesIO
 from pathlib import Path
 
 import pydicom
@@ -25,6 +26,7 @@ from netutil import (
     evidence_uids,
     fake_grade,
     free_port,
+    journal_args,
     merged,
     pacs_uids,
     predecessor_uids,
@@ -248,6 +250,7 @@ def test_bad_objects_get_failure_status_and_the_association_goes_on(
     wait_for(_done(node, good.StudyInstanceUID), 20)
 
 
+@pytest.mark.sqlite_only
 def test_store_failure_answers_out_of_resources_and_nothing_is_acknowledged(
     start_node, monkeypatch
 ):
@@ -306,7 +309,7 @@ def test_acknowledged_object_is_on_disk_as_received_in_every_transfer_syntax(sta
     assert set(rows) == set(sent)
     for uid, (ts, ds) in sent.items():
         assert rows[uid]["transfer_syntax"] == ts
-        stored = pydicom.dcmread(rows[uid]["path"])
+        stored = pydicom.dcmread(BytesIO(node.journal.object_data(uid)))
         assert stored.file_meta.TransferSyntaxUID == ts
         assert stored.SOPInstanceUID == uid
         assert stored.StudyInstanceUID == ds.StudyInstanceUID
@@ -403,7 +406,7 @@ def test_object_that_is_no_echo_sr_is_set_aside_with_a_note(start_node, tmp_path
     notes = {o["sop_instance_uid"]: o["note"] for o in node.journal.objects()}
     assert notes[echo.SOPInstanceUID] == ""
     assert notes[empty.SOPInstanceUID].startswith("set aside: ")
-    assert cli_main(["queue", "--data-dir", str(tmp_path / "node"), "--json"]) == 0
+    assert cli_main(["queue", *journal_args(node), "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
     [aside] = report["objects_set_aside"]
     assert aside["sop_instance_uid"] == empty.SOPInstanceUID
@@ -502,7 +505,11 @@ def test_many_studies_in_parallel_associations_dcmtk_scanner_and_pacs(start_node
             r.stderr for r in results if r is not None and r.returncode
         ]
         uids = [ds.StudyInstanceUID for ds in studies]
-        wait_for(_done(node, *uids), 60)
+        try:
+            wait_for(_done(node, *uids), 60)
+        except AssertionError:
+            rows = [node.journal.study(u) for u in uids]
+            raise AssertionError(f"studies not done: {rows}; {node.journal.deliveries()}") from None
         expected = {node.journal.study(u)["result_uid"] for u in uids}
         assert all(node.journal.study(u)["state"] == "delivered" for u in uids)
         got = wait_for(lambda: (lambda x: x if len(x) >= 8 else None)(pacs_uids(pacs_dir)), 20)
@@ -561,6 +568,7 @@ def test_pacs_down_then_up_every_result_is_delivered(start_node, tmp_path):
 
 
 @needs_dcmtk
+@pytest.mark.sqlite_only
 def test_spooled_result_damaged_before_delivery_fails_with_a_reason(start_node, tmp_path):
     pacs_port, pacs_dir = free_port(), tmp_path / "pacs"
     node = start_node(forward=[f"PACS@{LOOPBACK}:{pacs_port}"])  # the PACS is down at first
@@ -598,7 +606,7 @@ def test_pacs_accepting_only_implicit_vr_gets_the_result_converted(start_node, t
         wait_for(_done(node, study.StudyInstanceUID), 30)
         wait_for(lambda: pacs_uids(pacs_dir), 20)
     result = node.journal.result(node.journal.study(study.StudyInstanceUID)["result_uid"])
-    spooled = pydicom.dcmread(result["path"])
+    spooled = pydicom.dcmread(BytesIO(node.journal.result_data(result["result_uid"])))
     (path,) = [p for p in pacs_dir.iterdir() if p.is_file()]
     with warnings.catch_warnings():
         # pydicom warns when a data set labelled implicit VR is encoded explicit VR
@@ -654,14 +662,13 @@ def test_attempt_limit_marks_failed_with_reason_then_requeue(start_node, tmp_pat
     study = node.journal.study(ds.StudyInstanceUID)
     assert study["state"] == "failed"
     assert "gave up after 2 attempts" in study["reason"]
-    data_dir = str(tmp_path / "node")
-    assert cli_main(["queue", "--data-dir", data_dir]) == 0
+    assert cli_main(["queue", *journal_args(node)]) == 0
     out = capsys.readouterr().out
     assert "failed deliveries: 1" in out and "gave up after 2 attempts" in out
     receiver = ResultReceiver("PACS", port=pacs_port)
     receiver.start()
     try:
-        assert cli_main(["queue", "--data-dir", data_dir, "--requeue-failed"]) == 0
+        assert cli_main(["queue", *journal_args(node), "--requeue-failed"]) == 0
         assert "1 failed delivery re-queued" in capsys.readouterr().out
         wait_for(lambda: study_state(node, ds.StudyInstanceUID) == "delivered", 30)
         assert receiver.uids() == [study["result_uid"]]
@@ -675,8 +682,7 @@ def test_queue_regrade_and_json_listing(start_node, tmp_path, capsys):
     assert send([ds], node.port) == [0]
     wait_for(_done(node, ds.StudyInstanceUID), 30)
     before = node.journal.study(ds.StudyInstanceUID)
-    data_dir = str(tmp_path / "node")
-    assert cli_main(["queue", "--data-dir", data_dir, "--regrade", ds.StudyInstanceUID]) == 0
+    assert cli_main(["queue", *journal_args(node), "--regrade", ds.StudyInstanceUID]) == 0
     wait_for(
         lambda: (
             node.journal.study(ds.StudyInstanceUID)["generation"] > before["generation"]
@@ -686,11 +692,11 @@ def test_queue_regrade_and_json_listing(start_node, tmp_path, capsys):
     )
     assert len(node.journal.deliveries()) == 1  # same result: not written twice
     capsys.readouterr()
-    assert cli_main(["queue", "--data-dir", data_dir, "--json"]) == 0
+    assert cli_main(["queue", *journal_args(node), "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
     assert report["recent"][0]["study_uid"] == ds.StudyInstanceUID
     assert report["recent"][0]["state"] == "delivered"
-    assert cli_main(["queue", "--data-dir", data_dir, "--regrade", "1.2.3.999"]) == 2
+    assert cli_main(["queue", *journal_args(node), "--regrade", "1.2.3.999"]) == 2
     assert "unknown study" in capsys.readouterr().err
     assert cli_main(["queue", "--data-dir", str(tmp_path / "nothing")]) == 2
 

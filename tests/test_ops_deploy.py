@@ -75,3 +75,19 @@ def test_systemd_unit_command_lines_are_accepted_by_the_cli():
     assert lines["ExecReload"] == "/bin/kill -HUP $MAINPID"  # SIGHUP reload
     assert lines["KillSignal"] == "SIGTERM"  # clean stop
     assert _readme_install() in unit
+
+
+def test_cluster_compose_two_nodes_on_one_postgresql_behind_a_tcp_balancer(capsys):
+    compose = (DOCKER / "compose-cluster.yaml").read_text()
+    cmd = json.loads(re.search(r'command: (\["serve".*\])', compose).group(1))
+    args = build_parser().parse_args(cmd)
+    assert args.journal == "postgresql://diastolic@db:5432/diastolic"
+    assert ":" not in args.journal.split("//", 1)[1].split("@", 1)[0]  # no password in it
+    assert "PGPASSWORD: ${DSR_DB_PASSWORD" in compose
+    assert "node-a:" in compose and "node-b:" in compose and "image: postgres:" in compose
+    assert "./compose-node.toml:/config/diastolic-sr.toml:ro" in compose  # one configuration
+    assert cli_main(["check-config", str(DOCKER / "compose-node.toml")]) == 0
+    capsys.readouterr()
+    balancer = (DOCKER / "haproxy.cfg").read_text()
+    assert re.search(r"^\s*mode tcp$", balancer, flags=re.M)  # whole connections
+    assert "server node-a node-a:11112" in balancer and "server node-b node-b:11112" in balancer

@@ -163,6 +163,6 @@ def test_healthz_fails_when_the_journal_cannot_take_a_write(start_node):
         assert status == 503
         assert json.loads(body)["checks"]["journal"]["ok"] is False
     finally:
-        from service.store.sqlite_journal import SqliteJournal
+        from service.store.journal import open_journal
 
-        node.journal = SqliteJournal(node.journal.path)  # let the fixture stop the node cleanly
+        node.journal = open_journal(node.config)  # let the fixture stop the node cleanly

@@ -16,14 +16,31 @@ T0 = 1_900_000_000.0  # an arbitrary fixed epoch time
 
 
 @pytest.fixture
-def store(tmp_path):
-    journal = SqliteJournal(tmp_path / "journal.sqlite3")
+def store(journal_backend):
+    """The journal, once per implementation (SQLite with its spool, PostgreSQL)."""
+    journal = journal_backend[1]()
     yield journal
     journal.close()
 
 
-def _receive(journal: Journal, study: str, sop: str, now: float, settle: float = 0) -> Path:
-    """A received object; its spool file."""
+class _Stored:
+    """Where an object's or a result's bytes are: a spool file (SQLite) or a row of the
+    database (PostgreSQL); ``exists()`` either way."""
+
+    def __init__(self, journal: Journal, kind: str, uid: str, path: str) -> None:
+        self.journal, self.kind, self.uid, self.path = journal, kind, uid, path
+
+    def exists(self) -> bool:
+        if self.path:
+            return Path(self.path).exists()
+        table, key = ("object_data", "sop_instance_uid")
+        if self.kind == "result":
+            table, key = ("result_data", "result_uid")
+        return bool(self.journal._query(f"SELECT 1 FROM {table} WHERE {key} = ?", (self.uid,)))
+
+
+def _receive(journal: Journal, study: str, sop: str, now: float, settle: float = 0) -> _Stored:
+    """A received object; where its bytes are."""
     journal.store_object(
         sop_instance_uid=sop,
         study_uid=study,
@@ -35,11 +52,11 @@ def _receive(journal: Journal, study: str, sop: str, now: float, settle: float =
         now=now,
     )
     (row,) = [o for o in journal.objects(study) if o["sop_instance_uid"] == sop]
-    return Path(row["path"])
+    return _Stored(journal, "object", sop, row["path"])
 
 
-def _grade(journal: Journal, study: str, now: float, dests=("PACS",)) -> Path:
-    """The study graded; its result's spool file."""
+def _grade(journal: Journal, study: str, now: float, dests=("PACS",)) -> _Stored:
+    """The study graded; where its result's bytes are."""
     (claim,) = journal.claim_due(now=now)
     result_uid = f"{study}.9"
     journal.finish_grading(
@@ -59,7 +76,7 @@ def _grade(journal: Journal, study: str, now: float, dests=("PACS",)) -> Path:
         destinations=[(d, "X@127.0.0.1:104") for d in dests],
         now=now,
     )
-    return Path(journal.result(result_uid)["path"])
+    return _Stored(journal, "result", result_uid, journal.result(result_uid)["path"])
 
 
 def _deliver_all(journal: Journal, study: str, now: float) -> None:

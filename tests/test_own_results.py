@@ -16,8 +16,10 @@ from netutil import (
     DCMTK_REASON,
     LOOPBACK,
     SKIP_WITHOUT_DCMTK,
+    bytes_kept,
     echo_sr,
     free_port,
+    journal_args,
     pacs_uids,
     run_storescu,
     storescp,
@@ -168,7 +170,7 @@ def test_result_sent_back_with_dcmtk_storescu_is_acknowledged_and_ignored(
         }
         for r in ignored:
             assert r["reason"].startswith(IGNORED_OWN_RESULT) and r["study_uid"] == study
-            assert Path(r["path"]).is_file()  # kept, as acknowledged
+            assert bytes_kept(node.journal, r)  # kept, as acknowledged
         # never graded nor forwarded: the study was not re-opened
         again = node.journal.study(study)
         assert again["generation"] == first["generation"] and again["state"] == "delivered"
@@ -187,7 +189,7 @@ def test_result_sent_back_with_dcmtk_storescu_is_acknowledged_and_ignored(
         assert pacs_uids(pacs_dir) == [first["result_uid"]]
         # the queue command shows what was ignored and why
         capsys.readouterr()
-        assert cli_main(["queue", "--data-dir", str(node.config.data_dir), "--json"]) == 0
+        assert cli_main(["queue", *journal_args(node), "--json"]) == 0
         report = json.loads(capsys.readouterr().out)
         listed = {o["sop_instance_uid"]: o for o in report["objects_ignored"]}
         assert set(listed) == {first["result_uid"], str(other.SOPInstanceUID)}

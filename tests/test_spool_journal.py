@@ -39,8 +39,17 @@ def _result(uid: str, sources: tuple[str, ...], data: bytes = b"result") -> NewR
 
 
 @pytest.fixture
-def journal(tmp_path):
+def sqlite_journal(tmp_path):
     j = SqliteJournal(tmp_path / "journal.sqlite3")
+    yield j
+    j.close()
+
+
+@pytest.fixture
+def journal(journal_backend):
+    """The journal, once per implementation (SQLite, PostgreSQL)."""
+    _, open_journal = journal_backend
+    j = open_journal()
     yield j
     j.close()
 
@@ -169,10 +178,10 @@ def test_malformed_uid_never_becomes_a_path():
 # -- journal ----------------------------------------------------------------------------------
 
 
-def test_journal_uses_wal_with_full_sync(journal):
+def test_journal_uses_wal_with_full_sync(sqlite_journal):
     # sqlite docs (https://sqlite.org/pragma.html): synchronous FULL = 2
-    assert journal._db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
-    assert journal._db.execute("PRAGMA synchronous").fetchone()[0] == 2
+    assert sqlite_journal._db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+    assert sqlite_journal._db.execute("PRAGMA synchronous").fetchone()[0] == 2
 
 
 def _sync_of_commits(journal: Journal, action) -> list[str]:
@@ -195,40 +204,45 @@ def _sync_of_commits(journal: Journal, action) -> list[str]:
     return settings
 
 
-def test_what_is_acknowledged_is_on_disk_and_progress_is_committed_lazily(journal, tmp_path):
+def test_what_is_acknowledged_is_on_disk_and_progress_is_committed_lazily(sqlite_journal, tmp_path):
     # SQLite "PRAGMA synchronous" (https://www.sqlite.org/pragma.html#pragma_synchronous): in
     # WAL mode FULL syncs the WAL at every commit; NORMAL stays consistent and survives an
     # application crash, and may roll back only on power loss.  A received object is promised
     # to the sender (C-STORE success), so FULL; the node's own progress, NORMAL.
-    assert _sync_of_commits(journal, lambda: _receive(journal, "1.1", now=1000.0)) == ["FULL"]
+    assert _sync_of_commits(
+        sqlite_journal, lambda: _receive(sqlite_journal, "1.1", now=1000.0)
+    ) == ["FULL"]
     claims: list = []
-    assert _sync_of_commits(journal, lambda: claims.extend(journal.claim_due(now=1010.0))) == [
-        "NORMAL"
-    ]
+    assert _sync_of_commits(
+        sqlite_journal, lambda: claims.extend(sqlite_journal.claim_due(now=1010.0))
+    ) == ["NORMAL"]
     result = _result("2.25.1", ("1.1",))
-    grade = lambda: journal.finish_grading(  # noqa: E731
+    grade = lambda: sqlite_journal.finish_grading(  # noqa: E731
         claims[0], result=result, destinations=[("PACS", "PACS")], now=1011.0
     )
-    assert _sync_of_commits(journal, grade) == ["NORMAL"]
-    (due,) = journal.due_deliveries(now=1012.0)
-    assert _sync_of_commits(journal, lambda: journal.mark_delivered(due.id, now=1012.0)) == [
-        "NORMAL"
-    ]
-    assert _sync_of_commits(journal, lambda: journal.request_regrade(STUDY, now=1013.0)) == ["FULL"]
+    assert _sync_of_commits(sqlite_journal, grade) == ["NORMAL"]
+    (due,) = sqlite_journal.due_deliveries(now=1012.0)
+    assert _sync_of_commits(
+        sqlite_journal, lambda: sqlite_journal.mark_delivered(due.id, now=1012.0)
+    ) == ["NORMAL"]
+    assert _sync_of_commits(
+        sqlite_journal, lambda: sqlite_journal.request_regrade(STUDY, now=1013.0)
+    ) == ["FULL"]
     # and the connection is back at FULL for whatever comes next
-    assert journal._db.execute("PRAGMA synchronous").fetchone()[0] == 2
+    assert sqlite_journal._db.execute("PRAGMA synchronous").fetchone()[0] == 2
 
 
-def test_lazily_committed_progress_survives_a_crash_of_the_process(tmp_path):
-    # a new connection sees what the old one committed with NORMAL (the WAL holds it; only a
-    # power loss can roll it back, SQLite docs as above)
-    path = tmp_path / "journal.sqlite3"
-    j = SqliteJournal(path)
+def test_lazily_committed_progress_survives_a_crash_of_the_process(journal_backend):
+    # a new connection sees what the old one committed lazily (SQLite: the WAL holds it; only
+    # a power loss can roll it back, SQLite docs as above; PostgreSQL: asynchronous commit
+    # loses nothing to a crash of the client, PostgreSQL manual "Asynchronous Commit")
+    _, open_journal = journal_backend
+    j = open_journal()
     _receive(j, "1.1", now=1000.0)
     (claim,) = j.claim_due(now=1010.0)
     j.finish_grading(claim, result=None, failure="rejected: no echo measurement recognised")
     # no close(): the process "dies" with the connection open
-    again = SqliteJournal(path)
+    again = open_journal()
     assert again.study(STUDY)["state"] == "failed"
     again.close()
     j.close()
@@ -345,14 +359,14 @@ def test_grading_failure_is_recorded_with_reason(journal):
     assert journal.study(STUDY)["state"] == "received"
 
 
-def test_recover_after_crash_mid_grading_and_state_survives_reopen(tmp_path):
-    path = tmp_path / "j.sqlite3"
-    j = SqliteJournal(path)
+def test_recover_after_crash_mid_grading_and_state_survives_reopen(journal_backend):
+    _, open_journal = journal_backend
+    j = open_journal()
     _receive(j, "1.1", now=0.0, settle=0)
     _receive(j, "2.1", study="1.2.9", now=0.0, settle=100)
     j.claim_due(now=0.0)  # then the process dies (no finish_grading)
-    j._db.close()  # no clean close of the journal object
-    j2 = SqliteJournal(path)
+    # the process dies: no clean close of the journal object
+    j2 = open_journal()
     counts = j2.recover(now=50.0)
     # both studies resume (one caught mid-grading, one still in its settle window): the count
     # the restart log shows is the number of studies that will be graded
@@ -363,13 +377,14 @@ def test_recover_after_crash_mid_grading_and_state_survives_reopen(tmp_path):
     assert claim.study_uid == STUDY
     assert j2.study("1.2.9")["state"] == "received"  # its window is still running
     j2.close()
+    j.close()
 
 
-def test_regrade_request_from_another_connection(tmp_path, journal):
+def test_regrade_request_from_another_connection(journal_backend, journal):
     _receive(journal, "1.1", now=0.0, settle=0)
     [claim] = journal.claim_due(now=0.0)
     journal.finish_grading(claim, result=None, failure="x", now=0.0)
-    other = SqliteJournal(journal.path)  # e.g. the queue command while the node runs
+    other = journal_backend[1]()  # e.g. the queue command while the node runs
     assert other.request_regrade(STUDY, now=10.0)
     assert not other.request_regrade("9.9.9")
     other.close()
@@ -378,8 +393,10 @@ def test_regrade_request_from_another_connection(tmp_path, journal):
 
 
 def test_incomplete_study_rows_are_refused_by_the_schema(journal):
-    with pytest.raises(sqlite3.Error):
-        journal._db.execute("INSERT INTO studies (study_uid) VALUES ('x')")
+    import psycopg
+
+    with pytest.raises((sqlite3.Error, psycopg.Error)), journal._tx() as db:
+        db.execute("INSERT INTO studies (study_uid) VALUES ('x')")
 
 
 def test_claim_given_back_for_a_retry_is_not_due_before_its_time(journal):
@@ -394,21 +411,23 @@ def test_claim_given_back_for_a_retry_is_not_due_before_its_time(journal):
     assert journal.claim_due(now=1011.0)
 
 
-def test_result_bytes_a_crash_left_unrecorded_are_written_anew_recorded_ones_kept(journal):
+def test_result_bytes_a_crash_left_unrecorded_are_written_anew_recorded_ones_kept(sqlite_journal):
     # a new spool file is written under its own name, so a crash can leave it short before the
-    # journal records it; such a file must be written anew, a recorded one kept
-    left = journal.spool.result_path(STUDY, "2.25.11")
+    # sqlite_journal records it; such a file must be written anew, a recorded one kept
+    left = sqlite_journal.spool.result_path(STUDY, "2.25.11")
     left.parent.mkdir(parents=True)
     left.write_bytes(b"")  # created, never written: the process died here
-    _receive(journal, "1.1", now=0.0, settle=0)
-    (claim,) = journal.claim_due(now=0.0)
-    journal.finish_grading(claim, result=_result("2.25.11", ("1.1",), b"%PDF-new"), now=1.0)
+    _receive(sqlite_journal, "1.1", now=0.0, settle=0)
+    (claim,) = sqlite_journal.claim_due(now=0.0)
+    sqlite_journal.finish_grading(claim, result=_result("2.25.11", ("1.1",), b"%PDF-new"), now=1.0)
     assert left.read_bytes() == b"%PDF-new"
-    assert journal.result_data("2.25.11") == b"%PDF-new"
-    assert journal.result_stored("2.25.11")
-    _receive(journal, "1.2", now=2.0, settle=0)
-    (again,) = journal.claim_due(now=2.0)
-    journal.finish_grading(again, result=_result("2.25.11", ("1.1",), b"%PDF-later"), now=3.0)
+    assert sqlite_journal.result_data("2.25.11") == b"%PDF-new"
+    assert sqlite_journal.result_stored("2.25.11")
+    _receive(sqlite_journal, "1.2", now=2.0, settle=0)
+    (again,) = sqlite_journal.claim_due(now=2.0)
+    sqlite_journal.finish_grading(
+        again, result=_result("2.25.11", ("1.1",), b"%PDF-later"), now=3.0
+    )
     assert left.read_bytes() == b"%PDF-new"
 
 
@@ -421,40 +440,41 @@ def test_a_result_said_to_be_stored_that_is_not_raises_and_records_nothing(journ
     assert journal.study(STUDY)["state"] == "assembled"
 
 
-def test_received_bytes_are_in_the_spool_before_the_row_and_read_back(journal):
+def test_received_bytes_are_in_the_spool_before_the_row_and_read_back(sqlite_journal):
     order: list[str] = []
-    real_write = journal.spool.write_object
+    real_write = sqlite_journal.spool.write_object
 
     def write(*args):
         order.append("file")
         return real_write(*args)
 
-    journal.spool.write_object = write
-    journal._db.set_trace_callback(lambda sql: order.append(sql.split()[0].upper()))
+    sqlite_journal.spool.write_object = write
+    sqlite_journal._db.set_trace_callback(lambda sql: order.append(sql.split()[0].upper()))
     try:
-        _receive(journal, "1.1", now=0.0)
+        _receive(sqlite_journal, "1.1", now=0.0)
     finally:
-        journal._db.set_trace_callback(None)
+        sqlite_journal._db.set_trace_callback(None)
     assert order[0] == "file" and "COMMIT" in order
-    assert journal.object_data("1.1") == b"object 1.1"
-    row = journal.objects(STUDY)[0]
-    assert Path(row["path"]) == journal.spool.object_path(STUDY, "1.1")
+    assert sqlite_journal.object_data("1.1") == b"object 1.1"
+    row = sqlite_journal.objects(STUDY)[0]
+    assert Path(row["path"]) == sqlite_journal.spool.object_path(STUDY, "1.1")
     with pytest.raises(FileNotFoundError):
-        journal.object_data("9.9")
+        sqlite_journal.object_data("9.9")
 
 
-def test_schema_version_is_recorded_and_a_newer_journal_is_refused(tmp_path):
-    from service.store import sqlite_schema
+def test_schema_version_is_recorded_and_a_newer_journal_is_refused(journal_backend):
+    from service.store import postgres_schema, sqlite_schema
     from service.store.sql_journal import SchemaTooNew
 
-    path = tmp_path / "journal.sqlite3"
-    j = SqliteJournal(path)
+    _, open_journal = journal_backend
+    j = open_journal()
     version = j._query("SELECT value FROM meta WHERE key = 'schema_version'")[0][0]
-    assert int(version) == sqlite_schema.SCHEMA_VERSION
-    j._db.execute("UPDATE meta SET value = '999' WHERE key = 'schema_version'")
+    assert int(version) == sqlite_schema.SCHEMA_VERSION == postgres_schema.SCHEMA_VERSION
+    with j._tx() as db:
+        db.execute("UPDATE meta SET value = '999' WHERE key = 'schema_version'")
     j.close()
     with pytest.raises(SchemaTooNew, match="schema version 999"):
-        SqliteJournal(path)
+        open_journal()
 
 
 def test_open_journal_gives_the_interface(tmp_path):
@@ -566,3 +586,207 @@ def test_a_claimed_delivery_goes_to_one_sender_at_a_time(journal):
     assert journal.claim_deliveries("PACS", owner="s4", now=52.0)
     journal.mark_delivered(third.id, now=53.0)
     assert journal.claim_deliveries("PACS", owner="s5", now=100.0) == []
+
+
+# -- PostgreSQL: the bytes in the record's transaction, claims that skip locked rows -----------
+
+
+@pytest.fixture
+def pg_journal(pg_url):
+    from pgutil import NODE_PASSWORD
+
+    from service.store.postgres_journal import PostgresJournal
+
+    j = PostgresJournal(pg_url, password=NODE_PASSWORD)
+    yield j
+    j.close()
+
+
+def _transactions(journal, action) -> list[list[str]]:
+    """The statements of each transaction ``action`` runs on a PostgreSQL journal."""
+    import contextlib
+
+    from service.store import postgres_journal
+
+    txs: list[list[str]] = []
+    real_tx, real_execute = journal._tx, postgres_journal._PgCursor.execute
+
+    @contextlib.contextmanager
+    def tx(**kw):
+        txs.append([])
+        with real_tx(**kw) as db:
+            yield db
+
+    def execute(self, sql, params=()):
+        if txs:
+            txs[-1].append(" ".join(sql.split()))
+        return real_execute(self, sql, params)
+
+    journal._tx = tx
+    postgres_journal._PgCursor.execute = execute
+    try:
+        action()
+    finally:
+        del journal._tx
+        postgres_journal._PgCursor.execute = real_execute
+    return txs
+
+
+def test_postgresql_keeps_the_bytes_in_the_records_transaction_and_commits_it_durably(
+    pg_journal,
+):
+    # the object's bytes and its record commit together, with the server's default
+    # synchronous_commit (on: durable when the commit returns, PostgreSQL manual "WAL
+    # Configuration"); the node's own progress commits asynchronously
+    (store,) = _transactions(pg_journal, lambda: _receive(pg_journal, "1.1", now=0.0, settle=0))
+    assert any(s.startswith("INSERT INTO objects") for s in store)
+    assert any(s.startswith("INSERT INTO object_data") for s in store)
+    assert not any("synchronous_commit" in s for s in store)
+    assert pg_journal.object_data("1.1") == b"object 1.1"
+    claims: list = []
+    (claim,) = _transactions(pg_journal, lambda: claims.extend(pg_journal.claim_due(now=1.0)))
+    assert claim[0] == "SET LOCAL synchronous_commit = off"
+    assert any("FOR UPDATE OF studies SKIP LOCKED" in s for s in claim)
+    (finish,) = _transactions(
+        pg_journal,
+        lambda: pg_journal.finish_grading(claims[0], result=_result("2.25.1", ("1.1",)), now=2),
+    )
+    assert finish[0] == "SET LOCAL synchronous_commit = off"
+    assert any(s.startswith("INSERT INTO result_data") for s in finish)
+    assert pg_journal.result_data("2.25.1") == b"result"
+    assert pg_journal.result_stored("2.25.1")
+
+
+def test_postgresql_claims_from_several_connections_never_overlap(pg_url):
+    # FOR UPDATE SKIP LOCKED (PostgreSQL manual, SELECT "The Locking Clause"): four
+    # connections claim at once, each study goes to exactly one of them
+    import threading
+
+    from pgutil import NODE_PASSWORD
+
+    from service.store.postgres_journal import PostgresJournal
+
+    setup = PostgresJournal(pg_url, password=NODE_PASSWORD)
+    studies = [f"1.2.{i}" for i in range(120)]
+    for study in studies:
+        _receive(setup, f"{study}.1", study=study, now=0.0, settle=0)
+    claimed: list[list[str]] = [[] for _ in range(4)]
+
+    def claimer(k: int) -> None:
+        j = PostgresJournal(pg_url, password=NODE_PASSWORD)
+        try:
+            while True:
+                got = j.claim_due(now=1.0, limit=3, owner=f"g{k}")
+                if not got:
+                    return
+                claimed[k] += [c.study_uid for c in got]
+        finally:
+            j.close()
+
+    threads = [threading.Thread(target=claimer, args=(k,)) for k in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(120)
+    everything = [s for part in claimed for s in part]
+    assert sorted(everything) == sorted(studies)  # every study once, none twice
+    owners = {s["study_uid"]: s["claimed_by"] for s in setup.studies(limit=1000)}
+    for k, part in enumerate(claimed):
+        assert all(owners[s] == f"g{k}" for s in part)
+    setup.close()
+
+
+def test_a_password_in_the_url_is_refused_and_a_wrong_one_named_without_it(pg_server, pg_url):
+    from pgutil import NODE_PASSWORD
+
+    from service.errors import UserError
+    from service.store.postgres_journal import PostgresJournal
+
+    with_password = pg_url.replace("@", f":{NODE_PASSWORD}@", 1)
+    with pytest.raises(UserError, match="holds a password") as err:
+        PostgresJournal(with_password)
+    assert NODE_PASSWORD not in str(err.value)
+    with pytest.raises(UserError, match="password authentication failed") as err:
+        PostgresJournal(pg_url, password="not-the-password")
+    assert "not-the-password" not in str(err.value)
+
+
+def test_postgresql_runs_a_method_again_after_the_server_broke_a_deadlock(pg_journal):
+    # PostgreSQL breaks a deadlock by rolling one transaction back (SQLSTATE 40P01, manual
+    # "Explicit Locking"); the journal runs that method again instead of failing the caller
+    import contextlib
+
+    import psycopg
+
+    real_tx = pg_journal._tx
+    raised = []
+
+    @contextlib.contextmanager
+    def tx(**kw):
+        with real_tx(**kw) as db:
+            yield db
+            if not raised:
+                raised.append(1)
+                raise psycopg.errors.DeadlockDetected("deadlock detected (test)")
+
+    pg_journal._tx = tx
+    try:
+        _receive(pg_journal, "1.1", now=0.0, settle=0)
+    finally:
+        del pg_journal._tx
+    assert raised == [1]
+    assert [o["sop_instance_uid"] for o in pg_journal.objects()] == ["1.1"]
+    assert pg_journal.object_data("1.1") == b"object 1.1"
+
+
+def test_postgresql_two_deliveries_of_a_study_finishing_at_once_leave_it_delivered(pg_url):
+    # two destinations' workers record their deliveries of one result at the same moment: with
+    # PostgreSQL's READ COMMITTED each transaction would see the other's delivery still
+    # pending (manual, "Transaction Isolation") unless the study's row is locked first
+    import contextlib
+    import threading
+
+    from pgutil import NODE_PASSWORD
+
+    from service.store.postgres_journal import PostgresJournal
+
+    ja = PostgresJournal(pg_url, password=NODE_PASSWORD)
+    jb = PostgresJournal(pg_url, password=NODE_PASSWORD)
+    _graded_with_deliveries(ja, ("PACS", "ARCHIVE"))
+    (da,) = ja.claim_deliveries("PACS", owner="a", now=1.0)
+    (db_,) = jb.claim_deliveries("ARCHIVE", owner="b", now=1.0)
+    both_updated = threading.Barrier(2, timeout=20)
+    both_read = threading.Barrier(2, timeout=3)
+
+    class _Looked:
+        """The transaction's cursor; before it writes the study's state, it waits (a few
+        seconds at most) until the other transaction has read the deliveries too."""
+
+        def __init__(self, db):
+            self._db = db
+
+        def execute(self, sql, params=()):
+            if sql.startswith("UPDATE studies SET state = ?"):
+                with contextlib.suppress(threading.BrokenBarrierError):
+                    both_read.wait()
+            return self._db.execute(sql, params)
+
+    for j in (ja, jb):
+        settle = j._settle_study_state
+
+        def held(db, study_uid, now, settle=settle):
+            both_updated.wait()  # each has recorded its own delivery, neither has committed
+            return settle(_Looked(db), study_uid, now)
+
+        j._settle_study_state = held
+    threads = [
+        threading.Thread(target=ja.mark_delivered, args=(da.id,), kwargs={"now": 2.0}),
+        threading.Thread(target=jb.mark_delivered, args=(db_.id,), kwargs={"now": 2.0}),
+    ]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(30)
+    assert ja.study(STUDY)["state"] == "delivered"
+    ja.close()
+    jb.close()

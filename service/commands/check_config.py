@@ -20,29 +20,44 @@ def register(sub: argparse._SubParsersAction) -> None:
         "and secrets masked. Exits non-zero on the first problem, naming the key.",
     )
     p.add_argument("file", metavar="FILE", help="configuration file (TOML)")
+    p.add_argument(
+        "--journal",
+        metavar="URL",
+        help="the journal to check instead of journal.url (postgresql://USER@HOST:PORT/DB): "
+        "it must accept the node's login",
+    )
     p.add_argument("--json", action="store_true", help="print the configuration as JSON")
     p.add_argument("--quiet", "-q", action="store_true", help="print nothing when valid")
     p.set_defaults(func=run)
 
 
 def run(args: argparse.Namespace) -> int:
+    from service.config import apply_overrides
     from service.network.preflight import preflight
 
     cfg = load_config(args.file)
+    if args.journal is not None:
+        cfg = apply_overrides(cfg, journal=args.journal)
     preflight(cfg)
+    journal_note = ""
+    if cfg.journal.url:
+        from service.store.postgres_journal import probe
+
+        journal_note = probe(cfg.journal.url, password=cfg.journal.password)
     if args.quiet:
         return 0
     if args.json:
         print(json.dumps(cfg.masked(), indent=2))
         return 0
-    print(effective_toml(cfg, source=args.file))
+    print(effective_toml(cfg, source=args.file, journal=journal_note))
     return 0
 
 
-def effective_toml(cfg: Config, *, source: str = "") -> str:
+def effective_toml(cfg: Config, *, source: str = "", journal: str = "") -> str:
     """The effective configuration as TOML (loadable again; secrets masked)."""
     head = [
         f"# {source}: valid" if source else "# valid",
+        *([f"# journal: {journal}"] if journal else []),
         f"# configuration digest {cfg.digest()}",
         f"# data directory: {cfg.data_dir}",
         f"# results folder: {cfg.results_dir or '(none)'}",

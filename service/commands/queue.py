@@ -23,6 +23,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     p.add_argument("--config", metavar="FILE", help="configuration file (for its data_dir)")
     p.add_argument("--data-dir", metavar="DIR", help="the node's data directory")
+    from service.commands.serve import add_journal_argument
+
+    add_journal_argument(p)
     p.add_argument(
         "--requeue-failed",
         action="store_true",
@@ -56,11 +59,11 @@ def run(args: argparse.Namespace) -> int:
     from service.store.journal import open_journal
     from service.store.sqlite_journal import journal_path
 
-    cfg = apply_overrides(load_config(args.config), data_dir=args.data_dir)
+    cfg = apply_overrides(load_config(args.config), data_dir=args.data_dir, journal=args.journal)
     path = journal_path(cfg.data_dir)
-    if not path.exists():
+    if not cfg.journal.url and not path.exists():
         raise UserError(f"no journal at {path} (has the node run with this data directory?)")
-    journal = open_journal(cfg.data_dir)
+    journal = open_journal(cfg)
     try:
         actions: list[str] = []
         for study in args.regrade:

@@ -74,6 +74,17 @@ def add_node_arguments(p: argparse.ArgumentParser) -> None:
         help="grade a study S seconds after its last object (default 10)",
     )
     p.add_argument("--bind", metavar="ADDRESS", help="address to listen on (default: all)")
+    add_journal_argument(p)
+
+
+def add_journal_argument(p: argparse.ArgumentParser) -> None:
+    p.add_argument(
+        "--journal",
+        metavar="URL",
+        help="share the journal with other nodes in this PostgreSQL database "
+        "(postgresql://USER@HOST:PORT/DB; the password from journal.password, PGPASSWORD or "
+        "~/.pgpass, never in the URL); default: journal.url, else SQLite in the data directory",
+    )
 
 
 def config_from_args(args: argparse.Namespace) -> Config:
@@ -88,6 +99,7 @@ def config_from_args(args: argparse.Namespace) -> Config:
         bind=args.bind,
         http_port=getattr(args, "http_port", None),
         lease_seconds=getattr(args, "lease_seconds", None),
+        journal=getattr(args, "journal", None),
     )
 
 

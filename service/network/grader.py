@@ -40,6 +40,7 @@ from service.store.journal import (
     FOLDER_DESTINATION,
     Companion,
     Journal,
+    JournalUnavailable,
     NewResult,
     StudyClaim,
     backoff_delay,
@@ -124,6 +125,35 @@ def idle(journal: Journal, wake: threading.Event, stop: threading.Event, seconds
             return
 
 
+class OutageLog:
+    """One line when the journal cannot be reached, one when it can again: not one per
+    attempt while it is away (``journal_unavailable``, ``journal_available``)."""
+
+    def __init__(self, who: str) -> None:
+        self.who = who
+        self._down = False
+        self._lock = threading.Lock()
+
+    def failed(self, exc: BaseException) -> None:
+        with self._lock:
+            if self._down:
+                return
+            self._down = True
+        event(
+            "journal_unavailable",
+            f"{self.who}: the journal cannot be reached ({exc}); retrying",
+            level=logging.ERROR,
+            reason=str(exc),
+        )
+
+    def ok(self) -> None:
+        with self._lock:
+            if not self._down:
+                return
+            self._down = False
+        event("journal_available", f"{self.who}: the journal can be reached again")
+
+
 class LeaseKeeper:
     """Renews the leases of every claim the given owners hold, every third of the lease, so
     that work in progress keeps its claim however long it takes."""
@@ -152,7 +182,9 @@ class LeaseKeeper:
             for owner in list(self._owners()):
                 try:
                     self.journal.renew_leases(owner, lease_seconds=self.lease_seconds)
-                except Exception as exc:  # the journal is away: the next round tries again
+                except JournalUnavailable:  # said by the role itself; the next round retries
+                    pass
+                except Exception as exc:
                     log.warning("cannot renew the leases of %s: %s", owner, exc)
 
 
@@ -186,6 +218,7 @@ class Grader:
         self._stop = threading.Event()
         #: storage-error retries per study (back-off as for deliveries)
         self._io_retries: dict[str, int] = {}
+        self._outage = OutageLog(name)
         self._thread = threading.Thread(target=self.run, name=name, daemon=True)
 
     # -- the loop ---------------------------------------------------------------------------
@@ -213,10 +246,15 @@ class Grader:
             wait = self._poll
             try:
                 if self.run_once():
+                    self._outage.ok()
                     continue
                 due = self.journal.next_due_at()
+                self._outage.ok()
                 if due is not None:
-                    wait = max(0.01, min(wait, due - time.time()))
+                    wait = max(0.01, min(wait, due - self.journal.now()))
+            except JournalUnavailable as exc:
+                self._outage.failed(exc)
+                wait = max(wait, 1.0)
             except Exception:
                 log.exception("grading loop error; retrying")
             idle(self.journal, self._wake, self._stop, wait)
@@ -317,6 +355,8 @@ class Grader:
         """An object's stored bytes, or why they cannot be read (the grading notes it)."""
         try:
             return self.journal.object_data(uid)
+        except JournalUnavailable:
+            raise  # not the object's fault: the study is graded when the journal is back
         except OSError as exc:
             return f"{type(exc).__name__}: {exc.strerror or exc}"
 

@@ -120,10 +120,12 @@ def main(argv: list[str] | None = None) -> int:
         return 2
 
 
-def _open_journal(config: Config) -> Any:
+def _open_journal(config: Config, connections: int) -> Any:
+    """The journal, with at most ``connections`` database connections at once (for a
+    journal in a database server)."""
     from service.store.journal import open_journal
 
-    return open_journal(config.data_dir.resolve())
+    return open_journal(config, max_connections=connections)
 
 
 def _serve_until_stopped(signals: _Signals, run_dir: Path, parts: list[Any]) -> None:
@@ -151,7 +153,8 @@ def run_receiver(config: Config, args: Any, signals: _Signals, run_dir: Path) ->
     from service.store.spool import durable_write
 
     status = receiver_status_path(run_dir)
-    journal = _open_journal(config)
+    # every open association may store an object at once
+    journal = _open_journal(config, config.limits.max_associations + 2)
     listener = Listener(config, journal, metrics=Metrics())
     try:
         port = listener.start()
@@ -184,7 +187,7 @@ def run_grader(config: Config, args: Any, signals: _Signals, run_dir: Path) -> i
     with contextlib.suppress(OSError):
         os.nice(GRADER_NICENESS)
     warm_up_pipeline()  # data the pipeline loads on first use, loaded before the first study
-    journal = _open_journal(config)
+    journal = _open_journal(config, 3)
     grader = Grader(
         config,
         journal,
@@ -209,7 +212,7 @@ def run_sender(config: Config, args: Any, signals: _Signals, run_dir: Path) -> i
     from service.network.sender import Sender
     from service.observability.metrics import Metrics
 
-    journal = _open_journal(config)
+    journal = _open_journal(config, len(config.destinations) + 8)  # a worker per destination
     sender = Sender(
         config,
         journal,

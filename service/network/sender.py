@@ -25,7 +25,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from service.config import Config, DestinationConfig
-from service.network.grader import idle
+from service.network.grader import OutageLog, idle
 from service.network.store_scu import (
     AssociationFailed,
     StoreSession,
@@ -35,7 +35,13 @@ from service.network.store_scu import (
 from service.observability.logs import event
 from service.observability.metrics import Metrics
 from service.sr.read import file_meta_uids
-from service.store.journal import DEFAULT_LEASE_SECONDS, FOLDER_DESTINATION, DueDelivery, Journal
+from service.store.journal import (
+    DEFAULT_LEASE_SECONDS,
+    FOLDER_DESTINATION,
+    DueDelivery,
+    Journal,
+    JournalUnavailable,
+)
 from service.store.spool import durable_write, safe_name
 
 log = logging.getLogger("diastolic_sr.sender")
@@ -76,6 +82,10 @@ class Sender:
         self._stop = threading.Event()
         self._workers: dict[str, _Worker] = {}
         self._lock = threading.Lock()
+        #: one line when the journal cannot be reached, one when it can again
+        self.outage = OutageLog("sender")
+        #: destinations of a shared journal this node does not know (said once each)
+        self._unknown: set[str] = set()
         self._thread = threading.Thread(target=self._run, name="sender", daemon=True)
 
     def start(self) -> None:
@@ -119,8 +129,12 @@ class Sender:
             try:
                 self._dispatch()
                 nxt = self.journal.next_delivery_at()
+                self.outage.ok()
                 if nxt is not None:
-                    wait = max(0.01, min(wait, nxt - time.time()))
+                    wait = max(0.01, min(wait, nxt - self.journal.now()))
+            except JournalUnavailable as exc:
+                self.outage.failed(exc)
+                wait = max(wait, 1.0)
             except Exception:
                 log.exception("delivery loop error; retrying")
             idle(self.journal, self._wake, self._stop, wait)
@@ -130,6 +144,16 @@ class Sender:
         that is no longer configured fail with that reason."""
         for name in self.journal.due_destinations():
             if name != FOLDER_DESTINATION and name not in self.config.destinations:
+                if self.journal.shared:
+                    # another node sharing the journal may know it: left to that node
+                    if name not in self._unknown:
+                        self._unknown.add(name)
+                        log.warning(
+                            "deliveries to destination %s wait for a node that has it "
+                            "configured (nodes sharing a journal should share destinations)",
+                            name,
+                        )
+                    continue
                 for d in self.claim(name):
                     self.journal.mark_failed(d.id, f'destination "{name}" is no longer configured')
                     log.error("result %s: destination %s not configured", d.result_uid, name)
@@ -202,6 +226,8 @@ class Sender:
         for d in items:
             try:
                 data = self.journal.result_data(d.result_uid)
+            except JournalUnavailable:
+                raise  # not the object's fault: the delivery waits for the journal
             except OSError as exc:
                 meta, why = None, f"{type(exc).__name__}: {exc.strerror or exc}"
             else:
@@ -250,7 +276,10 @@ class _Worker(threading.Thread):
                     return  # the destination is no longer configured
                 nxt = self.journal.next_delivery_at(destination=self.destination)
                 if nxt is not None:
-                    wait = max(0.05, min(wait, nxt - time.time()))
+                    wait = max(0.05, min(wait, nxt - self.journal.now()))
+            except JournalUnavailable as exc:
+                self.sender.outage.failed(exc)
+                wait = max(wait, 1.0)
             except Exception:
                 log.exception("delivery to %s: error; retrying", self.destination)
             self.wake.wait(wait)
@@ -282,6 +311,8 @@ class _Worker(threading.Thread):
                     raise OSError("no results folder configured")
                 data = self.journal.result_data(d.result_uid)
                 durable_write(Path(folder) / f"{safe_name(d.result_uid)}.dcm", data)
+            except JournalUnavailable:
+                raise  # not the result's fault: it waits for the journal
             except OSError as exc:
                 self.sender._failed(d, f"cannot write to results folder: {exc}")
                 continue

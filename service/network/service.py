@@ -129,9 +129,10 @@ class NodeBase:
                 f"data directory {self.data_dir} is in use by another running node"
             ) from None
 
-    def _open_journal(self) -> Journal:
-        """The journal, with this node's earlier claims given back."""
-        journal = open_journal(self.data_dir)
+    def _open_journal(self, connections: int = 4) -> Journal:
+        """The journal, with this node's earlier claims given back (``connections``: at most
+        that many database connections at once, for a journal in a database server)."""
+        journal = open_journal(self.config, max_connections=connections)
         counts = journal.recover(owner_prefix=self._recovery_prefix(journal))
         log.info("journal %s opened: %s", journal.location, _summary(counts))
         self.journal = journal
@@ -319,7 +320,11 @@ class Node(NodeBase):
     def start(self) -> int:
         """Open the store, resume pending work, start listening; returns the port."""
         self._lock_data_dir()
-        journal = self._open_journal()
+        cfg = self.config
+        # every association may store at once, every grader and delivery worker may write
+        journal = self._open_journal(
+            cfg.limits.max_associations + cfg.assembly.workers + len(cfg.destinations) + 4
+        )
         self.sender = Sender(
             self.config,
             journal,

@@ -27,6 +27,9 @@ def set_process(name: str) -> None:
 
 #: library loggers kept at WARNING (their INFO lines are per-PDU chatter)
 NOISY_LOGGERS = ("pynetdicom", "highdicom", "matplotlib", "fontTools", "PIL")
+#: library loggers kept at ERROR: psycopg's pool warns at every reconnection attempt while a
+#: journal database is away, which the node says once (``journal_unavailable``)
+QUIET_LOGGERS = ("psycopg.pool",)
 
 
 def event(name: str, message: str, *, level: int = logging.INFO, **fields: Any) -> None:
@@ -71,6 +74,8 @@ def configure_logging(fmt: str = "json", level: str = "INFO") -> None:
     root.setLevel(getattr(logging, level))
     for name in NOISY_LOGGERS:
         logging.getLogger(name).setLevel(logging.WARNING)
+    for name in QUIET_LOGGERS:
+        logging.getLogger(name).setLevel(logging.ERROR)
     quiet_pynetdicom()
 
 

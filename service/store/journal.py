@@ -48,11 +48,15 @@ acknowledged object.  A result's bytes are durable before its journal record nam
 from __future__ import annotations
 
 import abc
+import time
 from collections.abc import Sequence
 from dataclasses import dataclass
 from enum import StrEnum
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from service.config import Config
 
 
 class ObjectState(StrEnum):
@@ -85,9 +89,10 @@ MAX_CLAIMS = 3
 DEFAULT_LEASE_SECONDS = 30.0
 
 
-class JournalUnavailable(Exception):
-    """The journal cannot be reached or written now (database down, disk full); ``str()``
-    says why.  The caller answers with a failure status or retries later."""
+class JournalUnavailable(OSError):
+    """The journal cannot be reached now (its database server is down or unreachable);
+    ``str()`` says why.  The caller answers with a failure status or retries later, as for
+    any storage error; never a reason to give up on an object or a delivery."""
 
 
 @dataclass(frozen=True)
@@ -286,6 +291,11 @@ class Journal(abc.ABC):
     ) -> None:
         """Extend the lease of every claim ``owner`` holds to ``lease_seconds`` from now."""
 
+    def now(self) -> float:
+        """The journal's clock, epoch seconds: settle windows, leases and back-offs are
+        measured on it (a journal that several machines share gives them one clock)."""
+        return time.time()
+
     def changed(self) -> bool:
         """Whether another connection may have committed something since the last call: a
         cheap test for the roles to poll between queries.  True when the implementation
@@ -428,8 +438,17 @@ class Journal(abc.ABC):
         self.close()
 
 
-def open_journal(data_dir: Path) -> Journal:
-    """The journal of the node whose data directory is ``data_dir``."""
+def open_journal(where: Config | Path | str, **options: Any) -> Journal:
+    """The journal a configuration names (``journal.url``: PostgreSQL; empty: SQLite in the
+    data directory), or the SQLite journal of the data directory ``where``."""
     from service.store.sqlite_journal import SqliteJournal, journal_path
 
+    if isinstance(where, str | Path):
+        data_dir = Path(where)
+    else:
+        if where.journal.url:
+            from service.store.postgres_journal import PostgresJournal
+
+            return PostgresJournal(where.journal.url, password=where.journal.password, **options)
+        data_dir = where.data_dir.resolve()
     return SqliteJournal(journal_path(data_dir), spool_root=Path(data_dir) / "spool")

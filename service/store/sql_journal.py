@@ -12,6 +12,7 @@ schema module of its own (``sqlite_schema.py``, ...).
 from __future__ import annotations
 
 import abc
+import functools
 import json
 import time
 from collections.abc import Sequence
@@ -42,6 +43,29 @@ class Cursor(abc.ABC):
         and its rows can be read by column name and by position."""
 
 
+def _retried(method: Any) -> Any:
+    """Run a write method again when the database rolled its transaction back for a conflict
+    with another (a deadlock it broke, a serialization failure): the method reads what it
+    needs inside its transaction, so running it again is safe."""
+
+    @functools.wraps(method)
+    def run(self: SqlJournal, *args: Any, **kwargs: Any) -> Any:
+        for attempt in range(RETRIES):
+            try:
+                return method(self, *args, **kwargs)
+            except self.RETRYABLE:
+                if attempt == RETRIES - 1:
+                    raise
+                time.sleep(0.005 * 2**attempt)
+        raise AssertionError("unreachable")
+
+    return run
+
+
+#: times a write method runs before a conflict with another transaction is reported
+RETRIES = 5
+
+
 class SqlJournal(Journal):
     #: ORDER BY of results: oldest first, in the order they were recorded
     RESULT_ORDER = "created_at, rowid"
@@ -49,6 +73,12 @@ class SqlJournal(Journal):
     #: skipped; ``{table}``: the table or alias whose rows are claimed); "" where a write
     #: transaction excludes every other writer
     LOCK_ROWS = ""
+    #: errors of a transaction the database rolled back for a conflict with another (run the
+    #: method again); none where a write transaction excludes every other writer
+    RETRYABLE: tuple[type[BaseException], ...] = ()
+    #: appended to a SELECT that locks the row it reads until the transaction ends ("" where
+    #: a write transaction excludes every other writer)
+    LOCK_ROW = ""
 
     # -- what a backend supplies ------------------------------------------------------------
 
@@ -94,12 +124,18 @@ class SqlJournal(Journal):
         objects and results held in the database; returns how many.  Nothing by default."""
         return 0
 
+    def _work_added(self, db: Cursor) -> None:
+        """Inside a transaction that gives the roles new work (an object stored, deliveries
+        queued, claims given back): let the other connections know, where the backend needs
+        to be told (:meth:`Journal.changed`).  Nothing by default."""
+
     def _after_purge(self, paths: list[str]) -> int:
         """After a purge's commit: delete bytes held outside the database; returns how many."""
         return 0
 
     # -- receiving ------------------------------------------------------------------------------
 
+    @_retried
     def store_object(
         self,
         *,
@@ -113,8 +149,22 @@ class SqlJournal(Journal):
         now: float | None = None,
     ) -> None:
         path = self._put_object(study_uid, sop_instance_uid, data)
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         with self._tx() as db:
+            self._work_added(db)
+            # rows are locked in one order everywhere: a study, then its objects, then its
+            # deliveries (no two transactions wait for each other)
+            db.execute(
+                """INSERT INTO studies (study_uid, calling_ae, state, first_received_at,
+                       last_received_at, due_at, updated_at)
+                   VALUES (?, ?, 'received', ?, ?, ?, ?)
+                   ON CONFLICT (study_uid) DO UPDATE SET
+                       calling_ae = excluded.calling_ae, state = 'received', reason = '',
+                       last_received_at = excluded.last_received_at,
+                       due_at = excluded.due_at, generation = studies.generation + 1,
+                       claims = 0, updated_at = excluded.updated_at""",
+                (study_uid, calling_ae, now, now, now + settle_seconds, now),
+            )
             db.execute(
                 """INSERT INTO objects (sop_instance_uid, study_uid, sop_class_uid,
                        transfer_syntax, calling_ae, path, state, received_at)
@@ -136,18 +186,8 @@ class SqlJournal(Journal):
                 ),
             )
             self._put_object_in_tx(db, sop_instance_uid, data)
-            db.execute(
-                """INSERT INTO studies (study_uid, calling_ae, state, first_received_at,
-                       last_received_at, due_at, updated_at)
-                   VALUES (?, ?, 'received', ?, ?, ?, ?)
-                   ON CONFLICT (study_uid) DO UPDATE SET
-                       calling_ae = excluded.calling_ae, state = 'received', reason = '',
-                       last_received_at = excluded.last_received_at,
-                       due_at = excluded.due_at, generation = studies.generation + 1,
-                       claims = 0, updated_at = excluded.updated_at""",
-                (study_uid, calling_ae, now, now, now + settle_seconds, now),
-            )
 
+    @_retried
     def store_ignored(
         self,
         *,
@@ -160,7 +200,7 @@ class SqlJournal(Journal):
         now: float | None = None,
     ) -> None:
         path = self._put_object(study_uid, sop_instance_uid, data)
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         with self._tx() as db:
             db.execute(
                 """INSERT INTO ignored_objects (sop_instance_uid, study_uid, sop_class_uid,
@@ -199,6 +239,7 @@ class SqlJournal(Journal):
         times = [r[0][0] for r in (due, lease) if r and r[0][0] is not None]
         return min(times) if times else None
 
+    @_retried
     def claim_due(
         self,
         *,
@@ -207,8 +248,16 @@ class SqlJournal(Journal):
         owner: str = "",
         lease_seconds: float = DEFAULT_LEASE_SECONDS,
     ) -> list[StudyClaim]:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         claims = []
+        # a read first: most calls find nothing due, and a read takes no write lock
+        if not self._query(
+            "SELECT 1 AS due FROM studies WHERE state = 'received' AND due_at <= ? "
+            "UNION ALL SELECT 1 FROM studies WHERE state = 'assembled' AND lease_until <= ? "
+            "LIMIT 1",
+            (now, now),
+        ):
+            return []
         with self._tx(durable=False) as db:
             studies = [
                 *db.execute(
@@ -279,20 +328,23 @@ class SqlJournal(Journal):
             (study_uid,),
         )
 
+    @_retried
     def release_owner(self, owner: str, *, now: float | None = None) -> dict[str, int]:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         with self._tx(durable=False) as db:
+            self._work_added(db)
             studies = db.execute(
                 "SELECT study_uid FROM studies WHERE state = 'assembled' AND claimed_by = ?",
                 (owner,),
             ).fetchall()
             for s in studies:
-                db.execute(
+                if not db.execute(
                     "UPDATE studies SET state = 'received', claimed_by = '', lease_until = 0, "
                     "due_at = CASE WHEN due_at < ? THEN due_at ELSE ? END, updated_at = ? "
-                    "WHERE study_uid = ?",
-                    (now, now, now, s[0]),
-                )
+                    "WHERE study_uid = ? AND state = 'assembled' AND claimed_by = ?",
+                    (now, now, now, s[0], owner),
+                ).rowcount:
+                    continue  # taken over meanwhile
                 db.execute(
                     "UPDATE objects SET state = 'received' WHERE study_uid = ? "
                     "AND state = 'assembled'",
@@ -305,10 +357,11 @@ class SqlJournal(Journal):
             ).rowcount
         return {"studies": len(studies), "deliveries": deliveries}
 
+    @_retried
     def renew_leases(
         self, owner: str, *, lease_seconds: float = DEFAULT_LEASE_SECONDS, now: float | None = None
     ) -> None:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         with self._tx(durable=False) as db:
             db.execute(
                 "UPDATE studies SET lease_until = ? WHERE claimed_by = ? AND state = 'assembled'",
@@ -319,6 +372,7 @@ class SqlJournal(Journal):
                 (now + lease_seconds, owner),
             )
 
+    @_retried
     def finish_grading(
         self,
         claim: StudyClaim,
@@ -342,11 +396,13 @@ class SqlJournal(Journal):
             else:
                 paths[new.result_uid] = self._put_result(claim.study_uid, new.result_uid, new.data)
                 held.append(new)
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         queued = False
         with self._tx(durable=False) as db:
+            self._work_added(db)
             current = db.execute(
-                "SELECT generation FROM studies WHERE study_uid = ?", (claim.study_uid,)
+                "SELECT generation FROM studies WHERE study_uid = ?" + self.LOCK_ROW,
+                (claim.study_uid,),
             ).fetchone()
             same_generation = current is not None and current["generation"] == claim.generation
             if claim.object_uids:
@@ -437,6 +493,11 @@ class SqlJournal(Journal):
         )
         queued = False
         for name, target in destinations:
+            if db.execute(  # a plain read waits for nobody (an insert that conflicts may)
+                "SELECT 1 FROM deliveries WHERE result_uid = ? AND destination = ?",
+                (result.result_uid, name),
+            ).fetchone():
+                continue
             cur = db.execute(
                 """INSERT INTO deliveries (result_uid, destination, target,
                        state, next_attempt_at, created_at, updated_at)
@@ -446,11 +507,13 @@ class SqlJournal(Journal):
             queued = queued or cur.rowcount > 0
         return queued
 
+    @_retried
     def release_claim(
         self, claim: StudyClaim, *, retry_at: float | None = None, now: float | None = None
     ) -> None:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         with self._tx(durable=False) as db:
+            self._work_added(db)
             db.execute(
                 "UPDATE studies SET state = 'received', updated_at = ?, claimed_by = '', "
                 "lease_until = 0, claims = CASE WHEN claims > 0 THEN claims - 1 ELSE 0 END, "
@@ -463,25 +526,29 @@ class SqlJournal(Journal):
                 (claim.study_uid,),
             )
 
+    @_retried
     def recover(self, *, now: float | None = None, owner_prefix: str = "") -> dict[str, int]:
         # the node's own restart is not held against the studies it was grading: their claim
         # is not counted
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         pattern = _like_prefix(owner_prefix)
         with self._tx() as db:
+            self._work_added(db)
             held = db.execute(
                 "SELECT study_uid FROM studies WHERE state = 'assembled' "
                 "AND claimed_by LIKE ? ESCAPE '!'",
                 (pattern,),
             ).fetchall()
             for s in held:
-                db.execute(
+                if not db.execute(
                     "UPDATE studies SET state = 'received', claimed_by = '', lease_until = 0, "
                     "claims = CASE WHEN claims > 0 THEN claims - 1 ELSE 0 END, "
                     "due_at = CASE WHEN due_at < ? THEN due_at ELSE ? END, updated_at = ? "
-                    "WHERE study_uid = ?",
-                    (now, now, now, s[0]),
-                )
+                    "WHERE study_uid = ? AND state = 'assembled' AND claimed_by LIKE ? "
+                    "ESCAPE '!'",
+                    (now, now, now, s[0], pattern),
+                ).rowcount:
+                    continue  # taken over meanwhile
                 db.execute(
                     "UPDATE objects SET state = 'received' WHERE study_uid = ? "
                     "AND state = 'assembled'",
@@ -503,9 +570,11 @@ class SqlJournal(Journal):
         counts["interrupted_grading"] = studies
         return counts
 
+    @_retried
     def request_regrade(self, study_uid: str, *, now: float | None = None) -> bool:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         with self._tx() as db:
+            self._work_added(db)
             n = db.execute(
                 "UPDATE studies SET state = 'received', reason = '', due_at = ?, "
                 "generation = generation + 1, claims = 0, updated_at = ? WHERE study_uid = ?",
@@ -528,7 +597,7 @@ class SqlJournal(Journal):
     def due_deliveries(
         self, *, now: float | None = None, limit: int = 100, destination: str | None = None
     ) -> list[DueDelivery]:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         where, params = "", [now]
         if destination is not None:
             where, params = " AND d.destination = ?", [now, destination]
@@ -554,7 +623,7 @@ class SqlJournal(Journal):
         return bool(rows)
 
     def due_destinations(self, *, now: float | None = None) -> list[str]:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         rows = self._query(
             "SELECT DISTINCT destination FROM deliveries WHERE state = 'pending' "
             "AND next_attempt_at <= ? AND lease_until <= ?",
@@ -562,6 +631,7 @@ class SqlJournal(Journal):
         )
         return sorted(r[0] for r in rows)
 
+    @_retried
     def claim_deliveries(
         self,
         destination: str,
@@ -571,7 +641,14 @@ class SqlJournal(Journal):
         limit: int = 100,
         now: float | None = None,
     ) -> list[DueDelivery]:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
+        # a read first: most calls find nothing due, and a read takes no write lock
+        if not self._query(
+            "SELECT 1 AS due FROM deliveries WHERE destination = ? AND state = 'pending' "
+            "AND next_attempt_at <= ? AND lease_until <= ? LIMIT 1",
+            (destination, now, now),
+        ):
+            return []
         with self._tx(durable=False) as db:
             rows = db.execute(
                 """SELECT d.id, d.result_uid, r.study_uid, d.destination, d.attempts,
@@ -592,11 +669,13 @@ class SqlJournal(Journal):
                 )
         return [_due(r) for r in rows]
 
+    @_retried
     def release_deliveries(self, delivery_ids: Sequence[int]) -> None:
         if not delivery_ids:
             return
         marks = ",".join("?" * len(delivery_ids))
         with self._tx(durable=False) as db:
+            self._work_added(db)
             db.execute(
                 f"UPDATE deliveries SET claimed_by = '', lease_until = 0 WHERE id IN ({marks}) "
                 "AND state = 'pending'",
@@ -616,8 +695,9 @@ class SqlJournal(Journal):
             )
         return rows[0][0] if rows else None
 
+    @_retried
     def mark_delivered(self, delivery_id: int, *, now: float | None = None) -> None:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         with self._tx(durable=False) as db:
             db.execute(
                 "UPDATE deliveries SET state = 'delivered', attempts = attempts + 1, "
@@ -627,6 +707,7 @@ class SqlJournal(Journal):
             )
             self._settle_study_of_delivery(db, delivery_id, now)
 
+    @_retried
     def mark_attempt_failed(
         self,
         delivery_id: int,
@@ -637,7 +718,7 @@ class SqlJournal(Journal):
         backoff_max: float,
         now: float | None = None,
     ) -> DeliveryState:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         with self._tx(durable=False) as db:
             row = db.execute(
                 "SELECT attempts FROM deliveries WHERE id = ?", (delivery_id,)
@@ -662,8 +743,9 @@ class SqlJournal(Journal):
                 )
         return state
 
+    @_retried
     def mark_failed(self, delivery_id: int, reason: str, *, now: float | None = None) -> None:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         with self._tx(durable=False) as db:
             db.execute(
                 "UPDATE deliveries SET state = 'failed', attempts = attempts + 1, "
@@ -672,9 +754,11 @@ class SqlJournal(Journal):
             )
             self._settle_study_of_delivery(db, delivery_id, now)
 
+    @_retried
     def requeue_failed(self, *, now: float | None = None) -> int:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         with self._tx() as db:
+            self._work_added(db)
             studies = [
                 r[0]
                 for r in db.execute(
@@ -701,9 +785,12 @@ class SqlJournal(Journal):
             self._settle_study_state(db, row[0], now)
 
     def _settle_study_state(self, db: Cursor, study_uid: str, now: float) -> None:
-        """graded/delivered/failed of a study from the deliveries of its current result."""
+        """graded/delivered/failed of a study from the deliveries of its current result.  The
+        study's row is locked first: two deliveries of one study finishing at once (two
+        destinations) then settle it one after the other, the second seeing the first."""
         study = db.execute(
-            "SELECT state, result_uid FROM studies WHERE study_uid = ?", (study_uid,)
+            "SELECT state, result_uid FROM studies WHERE study_uid = ?" + self.LOCK_ROW,
+            (study_uid,),
         ).fetchone()
         if study is None or study["state"] not in ("graded", "delivered", "failed"):
             return
@@ -825,8 +912,9 @@ class SqlJournal(Journal):
         b = self._query("SELECT COUNT(*) AS n FROM deliveries WHERE state = 'pending'")[0][0]
         return int(a) + int(b)
 
+    @_retried
     def check_writable(self, *, now: float | None = None) -> None:
-        now = time.time() if now is None else now
+        now = self.now() if now is None else now
         with self._tx() as db:
             db.execute(
                 "INSERT INTO meta VALUES ('health_checked_at', ?) "
@@ -836,6 +924,7 @@ class SqlJournal(Journal):
 
     # -- retention ---------------------------------------------------------------------------
 
+    @_retried
     def purge_finished(self, older_than: float) -> Purged:
         with self._tx() as db:
             rows = db.execute(

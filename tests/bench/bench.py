@@ -6,6 +6,7 @@ Run from the repository root (the venv active, DCMTK in /usr/bin)::
     python tests/bench/bench.py --n 1000 --sections receivers,offline
     python tests/bench/bench.py --sections memory --memory-at 1000,10000
     python tests/bench/bench.py --sections sender
+    python tests/bench/bench.py --sections journals,nodes --rounds 3
     python tests/bench/bench.py --json figures.json   # also write the figures as JSON
 
 Sections
@@ -15,14 +16,21 @@ receivers  the same N studies (one SR each) sent by DCMTK ``storescu`` (TCP_NODE
            and diastolic-sr end to end (receive -> journal -> grade -> result SR -> delivered to
            a DCMTK ``storescp`` acting as the PACS; settle window 0).  Objects/s and ratios;
            ``--rounds`` (default 3) rounds, each receiver in turn, medians reported.
+journals   one node end to end on the SQLite journal and on a PostgreSQL journal (Debian
+           postgresql started on loopback, a fresh database each round), the same load, with
+           pynetdicom's ``storescp`` in each round for the ratio.
+nodes      two nodes on one PostgreSQL journal against one node, each with one grading
+           process: two ``storescu`` streams of N/2 studies at once, both to the one node or
+           one to each node; end-to-end objects/s and their ratio (target >= 1.6).
 latency    a steady offered load (default 10 studies/s, one ``storescu`` per study) through
            diastolic-sr; p50/p95/p99 from receipt (journal ``received_at``) to the result
            delivered to the PACS (journal ``delivered_at``).
 offline    ``diastolic-sr grade`` on a folder of N files against a bare pydicom read-and-write
            of the same files (files/s).
-sender     the node's C-STORE service user against pynetdicom's requestor, each sending the
-           same N result SRs to DCMTK ``storescp`` over one association (objects/s, CPU
-           per object).
+sender     the node's C-STORE sending (pynetdicom's requestor with deadlines, each result
+           decoded and sent as a data set) against pynetdicom sending the stored files as
+           encoded, the same N result SRs to DCMTK ``storescp`` over one association
+           (objects/s, CPU per object).
 memory     resident memory (VmRSS) of the node after 1 000 and 10 000 studies streamed.
 journal    the journal's query times as it grows, and SQLite's query plan for each statement
            the service runs (is it indexed?).
@@ -62,7 +70,7 @@ STORESCP = "/usr/bin/storescp"
 ECHOSCU = "/usr/bin/echoscu"
 NODE_AE = "DIASTOLIC_SR"
 PACS_AE = "PACS"
-SECTIONS = ("receivers", "latency", "offline", "sender", "memory", "journal")
+SECTIONS = ("receivers", "journals", "nodes", "latency", "offline", "sender", "memory", "journal")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -254,16 +262,30 @@ def _descendants(pid: int) -> list[int]:
 
 
 class Node:
-    """``diastolic-sr serve`` as a subprocess, forwarding results to the PACS."""
+    """``diastolic-sr serve`` as a subprocess, forwarding results to the PACS; on the SQLite
+    journal in its data folder, or on the PostgreSQL journal ``journal`` (a URL; the password
+    ``pg_password`` goes in PGPASSWORD)."""
 
-    def __init__(self, work: Path, pacs_port: int, *, workers: int, name: str) -> None:
+    def __init__(
+        self,
+        work: Path,
+        pacs_port: int,
+        *,
+        workers: int,
+        name: str,
+        journal: str = "",
+        pg_password: str = "",
+    ) -> None:
         self.data = work / f"{name}-data"
         self.config = work / f"{name}.toml"
         self.config.write_text(NODE_CONFIG.format(workers=workers))
         self.log = work / f"{name}.log"
         self.pacs_port = pacs_port
         self.port = free_port()
+        self.journal_url = journal
+        self.pg_password = pg_password
         self.proc: subprocess.Popen[bytes] | None = None
+        self._journal: Any = None
 
     def __enter__(self) -> Node:
         cmd = [
@@ -284,8 +306,14 @@ class Node:
             "--log-level",
             "WARNING",
         ]
+        env = dict(os.environ)
+        if self.journal_url:
+            cmd += ["--journal", self.journal_url]
+            env["PGPASSWORD"] = self.pg_password
         with open(self.log, "ab") as fh:
-            self.proc = subprocess.Popen(cmd, cwd=REPO, stdout=fh, stderr=subprocess.STDOUT)
+            self.proc = subprocess.Popen(
+                cmd, cwd=REPO, stdout=fh, stderr=subprocess.STDOUT, env=env
+            )
         wait_for(lambda: self.proc.poll() is not None or echo_ok(self.port, NODE_AE), 60)
         if self.proc.poll() is not None:
             raise RuntimeError(f"node exited early; see {self.log}")
@@ -302,6 +330,13 @@ class Node:
         return sum(_status_kib(pid)[0] for pid in [self.proc.pid, *_descendants(self.proc.pid)])
 
     def journal_rows(self, sql: str, params: Sequence[Any] = ()) -> list[tuple]:
+        """Rows of a read-only statement on the node's journal (``?`` parameters)."""
+        if self.journal_url:
+            if self._journal is None:
+                from service.store.postgres_journal import PostgresJournal
+
+                self._journal = PostgresJournal(self.journal_url, password=self.pg_password)
+            return [tuple(r._values) for r in self._journal._query(sql, params)]
         db = sqlite3.connect(f"file:{self.data / 'journal.sqlite3'}?mode=ro", uri=True, timeout=30)
         try:
             return db.execute(sql, params).fetchall()
@@ -313,7 +348,7 @@ class Node:
             return int(
                 self.journal_rows("SELECT COUNT(*) FROM deliveries WHERE state = 'delivered'")[0][0]
             )
-        except sqlite3.OperationalError:
+        except Exception:  # no journal yet
             return 0
 
     def settled(self) -> int:
@@ -323,10 +358,13 @@ class Node:
                     "SELECT COUNT(*) FROM studies WHERE state IN ('delivered', 'failed')"
                 )[0][0]
             )
-        except sqlite3.OperationalError:
+        except Exception:  # no journal yet
             return 0
 
     def __exit__(self, *exc: object) -> None:
+        if self._journal is not None:
+            self._journal.close()
+            self._journal = None
         if self.proc is not None and self.proc.poll() is None:
             self.proc.terminate()
             try:
@@ -432,6 +470,180 @@ def _receivers_round(work: Path, files: Sequence[Path], workers: int) -> dict[st
     out["diastolic_sr_failed"] = failed
     out["ratio_to_pynetdicom"] = out["diastolic_sr_end_to_end"] / out["pynetdicom_storescp"]
     out["ratio_to_dcmtk"] = out["diastolic_sr_end_to_end"] / out["dcmtk_storescp"]
+    return out
+
+
+def _end_to_end(
+    work: Path,
+    name: str,
+    streams: Sequence[tuple[Node, Sequence[Path]]],
+    n: int,
+    pacs_dir: Path,
+) -> dict[str, Any]:
+    """Send each stream's files to its node (one storescu per stream, all at once); objects/s
+    acknowledged (the slowest stream) and end to end (until every study of every node is
+    delivered or failed)."""
+    t0 = time.perf_counter()
+    procs = [
+        subprocess.Popen(
+            storescu_cmd(node.port, NODE_AE, files),
+            env=storescu_env(),
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.PIPE,
+            text=True,
+        )
+        for node, files in streams
+    ]
+    for p in procs:
+        _, err = p.communicate(timeout=3600)
+        if p.returncode != 0:
+            raise RuntimeError(f"storescu failed ({p.returncode}) in {name}: {err[-2000:]}")
+    t_ack = time.perf_counter() - t0
+    nodes = list({id(node): node for node, _ in streams}.values())
+    # one journal (several nodes on one database): each node's count is the whole count
+    shared = (
+        len(nodes) > 1 and nodes[0].journal_url and nodes[0].journal_url == nodes[1].journal_url
+    )
+    counted = nodes[:1] if shared else nodes
+    wait_for(lambda: sum(node.settled() for node in counted) >= n, 120 + n * 2, interval=0.05)
+    t_all = time.perf_counter() - t0
+    failed = sum(
+        node.journal_rows("SELECT COUNT(*) FROM studies WHERE state = 'failed'")[0][0]
+        for node in counted
+    )
+    return {
+        "acknowledged": n / t_ack,
+        "end_to_end": n / t_all,
+        "delivered": count_files(pacs_dir),
+        "failed": failed,
+    }
+
+
+@contextlib.contextmanager
+def postgres(work: Path) -> Iterator[Any]:
+    """A PostgreSQL server for the bench (tests/pgutil.py: Debian postgresql on a free
+    loopback port, as the postgres user), stopped afterwards."""
+    from pgutil import running_server
+
+    with running_server(free_port()) as server:
+        yield server
+
+
+def bench_journals(work: Path, n: int, workers: int, rounds: int, pg: Any) -> dict[str, Any]:
+    """One node end to end on the SQLite journal and on a PostgreSQL journal (a fresh database
+    each round), the same load, taking turns with pynetdicom's storescp within each round."""
+    from pgutil import NODE_PASSWORD
+
+    say(f"\n== journals: one node, SQLite against PostgreSQL, {n} studies, {rounds} round(s) ==")
+    files = write_studies(work / "journals-load", n, run="journals")
+    per_round = []
+    for i in range(rounds):
+        w = work / f"journals{i + 1}"
+        w.mkdir(parents=True)
+        r: dict[str, Any] = {}
+        port = free_port()
+        with pynetdicom_storescp(w / "pyn-out", port, w / "pyn.log") as folder:
+            t = run_storescu(port, "BASE", files)
+            wait_for(lambda folder=folder: count_files(folder) >= n, 60)
+        r["pynetdicom_storescp"] = n / t
+        for name in ("sqlite", "postgresql"):
+            pacs_port, pacs_dir = free_port(), w / f"pacs-{name}"
+            url = pg.url(pg.create_database()) if name == "postgresql" else ""
+            with (
+                dcmtk_storescp(pacs_dir, pacs_port, w / f"pacs-{name}.log"),
+                Node(
+                    w,
+                    pacs_port,
+                    workers=workers,
+                    name=f"node-{name}",
+                    journal=url,
+                    pg_password=NODE_PASSWORD,
+                ) as node,
+            ):
+                r[name] = _end_to_end(w, name, [(node, files)], n, pacs_dir)
+        r["ratio_postgresql_to_sqlite"] = r["postgresql"]["end_to_end"] / r["sqlite"]["end_to_end"]
+        say(
+            f"round {i + 1}: pynetdicom storescp {r['pynetdicom_storescp']:.1f}/s; end to end "
+            f"SQLite {r['sqlite']['end_to_end']:.1f}/s "
+            f"({r['sqlite']['end_to_end'] / r['pynetdicom_storescp']:.2f} x), PostgreSQL "
+            f"{r['postgresql']['end_to_end']:.1f}/s "
+            f"({r['postgresql']['end_to_end'] / r['pynetdicom_storescp']:.2f} x); "
+            f"acknowledged {r['sqlite']['acknowledged']:.1f} / "
+            f"{r['postgresql']['acknowledged']:.1f}"
+        )
+        per_round.append(r)
+    out: dict[str, Any] = {"n": n, "workers": workers, "rounds": per_round}
+    out["sqlite_end_to_end"] = statistics.median(r["sqlite"]["end_to_end"] for r in per_round)
+    out["postgresql_end_to_end"] = statistics.median(
+        r["postgresql"]["end_to_end"] for r in per_round
+    )
+    out["ratio_postgresql_to_sqlite"] = statistics.median(
+        r["ratio_postgresql_to_sqlite"] for r in per_round
+    )
+    out["delivered"] = min(
+        min(r["sqlite"]["delivered"], r["postgresql"]["delivered"]) for r in per_round
+    )
+    say(
+        f"median: SQLite {out['sqlite_end_to_end']:.1f}/s, PostgreSQL "
+        f"{out['postgresql_end_to_end']:.1f}/s, PostgreSQL / SQLite "
+        f"{out['ratio_postgresql_to_sqlite']:.2f}"
+    )
+    return out
+
+
+def bench_nodes(work: Path, n: int, rounds: int, pg: Any) -> dict[str, Any]:
+    """Two nodes on one PostgreSQL journal against one node, each with one grading process,
+    under the same load: two storescu streams of n/2 studies at once, both to the one node, or
+    one to each node (as a TCP balancer would spread them)."""
+    from pgutil import NODE_PASSWORD
+
+    say(
+        f"\n== nodes: two nodes on one PostgreSQL against one node, one grading process per "
+        f"node, {n} studies in two streams, {rounds} round(s) =="
+    )
+    files = write_studies(work / "nodes-load", n, run="nodes")
+    halves = [files[::2], files[1::2]]
+    per_round = []
+    for i in range(rounds):
+        w = work / f"nodes{i + 1}"
+        w.mkdir(parents=True)
+        r: dict[str, Any] = {}
+        for setup in ("one", "two"):
+            pacs_port, pacs_dir = free_port(), w / f"pacs-{setup}"
+            url = pg.url(pg.create_database())
+            with contextlib.ExitStack() as stack:
+                stack.enter_context(dcmtk_storescp(pacs_dir, pacs_port, w / f"pacs-{setup}.log"))
+                nodes = [
+                    stack.enter_context(
+                        Node(
+                            w,
+                            pacs_port,
+                            workers=1,
+                            name=f"{setup}-{k}",
+                            journal=url,
+                            pg_password=NODE_PASSWORD,
+                        )
+                    )
+                    for k in range(1 if setup == "one" else 2)
+                ]
+                streams = [(nodes[k % len(nodes)], halves[k]) for k in range(2)]
+                r[setup] = _end_to_end(w, setup, streams, n, pacs_dir)
+        r["ratio_two_to_one"] = r["two"]["end_to_end"] / r["one"]["end_to_end"]
+        say(
+            f"round {i + 1}: one node {r['one']['end_to_end']:.1f}/s, two nodes "
+            f"{r['two']['end_to_end']:.1f}/s: {r['ratio_two_to_one']:.2f} x "
+            f"(acknowledged {r['one']['acknowledged']:.1f} / {r['two']['acknowledged']:.1f})"
+        )
+        per_round.append(r)
+    out: dict[str, Any] = {"n": n, "rounds": per_round}
+    out["one_node"] = statistics.median(r["one"]["end_to_end"] for r in per_round)
+    out["two_nodes"] = statistics.median(r["two"]["end_to_end"] for r in per_round)
+    out["ratio_two_to_one"] = statistics.median(r["ratio_two_to_one"] for r in per_round)
+    out["delivered"] = min(min(r["one"]["delivered"], r["two"]["delivered"]) for r in per_round)
+    say(
+        f"median: one node {out['one_node']:.1f}/s, two nodes {out['two_nodes']:.1f}/s, "
+        f"two / one {out['ratio_two_to_one']:.2f}   (target >= 1.6)"
+    )
     return out
 
 
@@ -831,7 +1043,7 @@ def parse(argv: list[str] | None) -> argparse.Namespace:
     p.add_argument("--journal-sizes", default="1000,10000,100000", help="journal sizes (studies)")
     p.add_argument(
         "--sections",
-        default="receivers,latency,offline,sender,journal",
+        default="receivers,journals,nodes,latency,offline,sender,journal",
         help=f"comma-separated, from {','.join(SECTIONS)} (memory is long: ask for it)",
     )
     p.add_argument("--json", type=Path, help="write the figures to this JSON file")
@@ -855,9 +1067,16 @@ def main(argv: list[str] | None = None) -> int:
     work.mkdir(parents=True, exist_ok=True)
     say(f"diastolic-sr benchmarks; {os.cpu_count()} CPUs; work folder {work}")
     figures: dict[str, Any] = {}
+    stack = contextlib.ExitStack()
     try:
         if "receivers" in sections:
             figures["receivers"] = bench_receivers(work, args.n, args.workers, args.rounds)
+        if {"journals", "nodes"} & set(sections):
+            pg = stack.enter_context(postgres(work))
+            if "journals" in sections:
+                figures["journals"] = bench_journals(work, args.n, args.workers, args.rounds, pg)
+            if "nodes" in sections:
+                figures["nodes"] = bench_nodes(work, args.n, args.rounds, pg)
         if "latency" in sections:
             rates = [float(x) for x in str(args.rate).split(",") if x.strip()]
             for i, rate in enumerate(rates):
@@ -874,6 +1093,7 @@ def main(argv: list[str] | None = None) -> int:
             sizes = [int(x) for x in args.journal_sizes.split(",") if x.strip()]
             figures["journal"] = bench_journal(work, sizes)
     finally:
+        stack.close()
         if args.json:
             args.json.write_text(json.dumps(figures, indent=2, default=str))
         if not args.keep and args.work is None:

@@ -305,7 +305,7 @@ def case_indeterminate():
 def case_not_gradable():
     a = ase16(
         grade=Grade.not_gradable,
-        filling_pressure=FillingPressure.unknown,
+        filling_pressure=FillingPressure.not_estimated,
         pathway_reason="none of the measurements the guideline uses is available",
         reasoning=("Not graded: none of the measurements the guideline uses is available.",),
     )
@@ -344,7 +344,7 @@ def case_special():
         pathway_reason="moderate or severe mitral stenosis",
         special_situations=(SpecialSituation.mitral_stenosis,),
         grade=Grade.not_gradable,
-        filling_pressure=FillingPressure.unknown,
+        filling_pressure=FillingPressure.not_estimated,
         reasoning=("Mitral stenosis is flagged: the standard algorithm does not apply.",),
     )
     return a, measurements_of((), measured(M.mitral_e, 160), measured(M.lavi, 58))

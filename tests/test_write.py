@@ -221,7 +221,7 @@ CASES: dict[str, AssessmentSet] = {
                    notes=("TR velocity and LAVI unavailable.",))
     ),
     "not-gradable": _set(
-        assessment(Grade.not_gradable, FillingPressure.unknown,
+        assessment(Grade.not_gradable, FillingPressure.not_estimated,
                    pathway=Pathway.not_applicable,
                    pathway_reason="Moderate mitral stenosis: the standard algorithm does not apply",
                    special_situations=(SpecialSituation.mitral_stenosis,),
@@ -270,7 +270,7 @@ CASES: dict[str, AssessmentSet] = {
         Assessment(
             guideline=Guideline.ase_2025, guideline_citation="", rule_set_version="",
             pathway=Pathway.sinus_general, pathway_reason="", grade=Grade.indeterminate,
-            filling_pressure=FillingPressure.unknown,
+            filling_pressure=FillingPressure.not_estimated,
         ),
         disagreements=("",),
     ),

@@ -23,6 +23,7 @@ from service.model import (
     Measurements,
     Verdict,
 )
+from service.wording import measure_name, outcome_phrase
 
 #: how comparisons read in plain text
 SYMBOLS: dict[Comparison, str] = {
@@ -45,8 +46,11 @@ class Threshold:
     unit: str  # unit as shown to readers ("" for ratios)
     citation: str  # e.g. "Nagueh 2016 JASE 29:277, Fig 8A"
     #: evidence behind the row: "R" recalled from the primary paper, "V" confirmed in a retrieved
-    #: source, "R+V" both, "I" an interpretation (with its I-x identifier in the citation)
+    #: source, "R+V" both, "I" an interpretation (see ``reading``)
     evidence: str
+    #: identifier of the project's reading of an ambiguity that the row depends on
+    #: (:mod:`service.grading.readings`), "" when the row is as published
+    reading: str = ""
 
     def label(self, threshold: float | None = None) -> str:
         """Plain words, e.g. "Average E/e′ > 14"."""
@@ -219,13 +223,12 @@ def borderline_flags(
             assessment.filling_pressure,
         ):
             continue
-        name, unit = names.get(c.measure, (c.measure.value, ""))
+        name, unit = names.get(c.measure, (measure_name(c.measure), ""))
         u = f" {unit}" if unit else ""
         text = (
             f"{name} {fmt(c.value)}{u} is within {fmt(fraction * 100)} % of the cut-off "
-            f"{SYMBOLS[c.comparison]} {fmt(c.threshold)}{u}; on the other side the grade would be "
-            f"{other.grade.value} (filling pressure {other.filling_pressure.value}) instead of "
-            f"{assessment.grade.value} (filling pressure {assessment.filling_pressure.value})."
+            f"{SYMBOLS[c.comparison]} {fmt(c.threshold)}{u}; on the other side of it the result "
+            f"would be {outcome_phrase(other)}, instead of {outcome_phrase(assessment)}."
         )
         flags.append(
             BorderlineFlag(

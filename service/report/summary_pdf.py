@@ -188,7 +188,7 @@ PRESSURE_WORDING: dict[FillingPressure, str] = {
     FillingPressure.normal: "LV filling pressure normal",
     FillingPressure.elevated: "LV filling pressure elevated",
     FillingPressure.indeterminate: "LV filling pressure indeterminate",
-    FillingPressure.unknown: "LV filling pressure not estimated",
+    FillingPressure.not_estimated: "LV filling pressure not estimated",
 }
 
 PATHWAY_WORDING: dict[Pathway, str] = {

@@ -218,7 +218,7 @@ FILLING_PRESSURE_VALUES: dict[FillingPressure, CodeDef] = {
     FillingPressure.normal: NORMAL_RANGE,
     FillingPressure.elevated: ELEVATED,
     FillingPressure.indeterminate: NORMALITY_UNDETERMINED,
-    FillingPressure.unknown: UNDETERMINED,
+    FillingPressure.not_estimated: UNDETERMINED,
 }
 
 GUIDELINE_VALUES: dict[Guideline, CodeDef] = {

@@ -91,7 +91,7 @@ _PRESSURE_WORDS: dict[FillingPressure, str] = {
     FillingPressure.normal: "normal",
     FillingPressure.elevated: "elevated",
     FillingPressure.indeterminate: "indeterminate",
-    FillingPressure.unknown: "not estimated",
+    FillingPressure.not_estimated: "not estimated",
 }
 _ORIGIN_WORDS: dict[Origin, str] = {
     Origin.measured: "measured (single value in the source)",

@@ -197,7 +197,7 @@ CASES: tuple[DemoCase, ...] = (
     DemoCase(
         key="atrial-fibrillation",
         title="Atrial fibrillation stated by a coded Cardiac Rhythm item",
-        expected_2016=Grade.not_gradable,
+        expected_2016=Grade.not_applicable,
         patient=Patient(
             name="Vasquez-Hale^Ruben", id="HV100208", birth_date="19470306", sex="M", age="079Y"
         ),

@@ -140,7 +140,7 @@ def describe(criterion: Criterion, name: str, unit: str) -> str:
     """One reasoning sentence for an evaluated criterion, e.g.
     "Average E/e′ 15.2 against > 14: met."."""
     if criterion.value is None:
-        return f"{name} not available; criterion {criterion.label} not evaluated."
+        return f"{criterion.label}: not evaluated, {name[:1].lower()}{name[1:]} not available."
     u = f" {unit}" if unit else ""
     return (
         f"{name} {fmt(criterion.value)}{u} against {SYMBOLS[criterion.comparison]} "

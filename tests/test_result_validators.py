@@ -13,9 +13,8 @@ Each check has a negative control showing the validator does reject a broken obj
 
 from __future__ import annotations
 
-import re
-
 import os
+import re
 import shutil
 import subprocess
 import sys

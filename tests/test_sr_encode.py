@@ -37,9 +37,9 @@ from highdicom.sr import (
 )
 from pydicom import Dataset, dcmread
 from pydicom.dataelem import DataElement
-from pydicom.sequence import Sequence
 from pydicom.filebase import DicomBytesIO
 from pydicom.filewriter import write_dataset
+from pydicom.sequence import Sequence
 from pydicom.sr.coding import Code
 from pydicom.valuerep import DA, DT, TM
 

@@ -388,7 +388,7 @@ def test_highdicom_srread_reads_all_but_the_by_reference_items(case, tmp_path):
         for c in i.get("ContentSequence", [])
     )
     assert referenced  # every result names its criteria or its pathway by reference
-    with pytest.raises(AttributeError, match="not a value SR Content Item|not an SR Content"):
+    with pytest.raises(AttributeError, match=r"not a value SR Content Item|not an SR Content"):
         srread(path)
     plain = dcmread(path)
     assert _without_references(plain) > 0
@@ -428,9 +428,11 @@ def test_grade_and_pressure_items_carry_the_assessment(case):
         assert [t for _, t in by_grade] == criteria_items
     assert {r for r, _ in by_grade + by_pressure} == {"INFERRED FROM"}
     # no criterion is written anywhere else
-    assert all(i in criteria_items for _, i in walk(ds) if C.CRITERION_VERDICT.value in [
-        name_of(p)[0] for p in i.get("ContentSequence", [])
-    ])
+    assert all(
+        i in criteria_items
+        for _, i in walk(ds)
+        if C.CRITERION_VERDICT.value in [name_of(p)[0] for p in i.get("ContentSequence", [])]
+    )
     children = criteria_items
     for c, item in zip(a.criteria, children, strict=True):
         assert name_of(item) == (

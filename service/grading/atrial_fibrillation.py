@@ -53,9 +53,9 @@ class Ase2016AfOptions(BaseModel):
     model_config = ConfigDict(frozen=True, extra="forbid")
 
     #: reading I-16-11: ASE/EACVI 2016 states no rule combining the AF criteria.  "flags-only"
-    #: (default) reports each criterion and leaves the filling pressure indeterminate; "majority" adds the
-    #: reference's optional summary (more than half of the available criteria met: elevated,
-    #: less than half: normal, exactly half: indeterminate).
+    #: (default) reports each criterion and leaves the filling pressure indeterminate;
+    #: "majority" adds the reference's optional summary (more than half of the available
+    #: criteria met: elevated, less than half: normal, exactly half: indeterminate).
     summary: Literal["flags-only", "majority"] = "flags-only"
 
 

@@ -13,10 +13,11 @@ from pathlib import Path
 from typing import Any, NamedTuple
 
 from service.commands.columns import print_columns
-from service.model import CAUTION
+from service.model import CAUTION, Measure
 from service.options import add_grading_arguments, grade_options_from_args
 from service.pipeline import GradeOptions, GradeStatus, StudyOutcome, grade_study
 from service.sr.encode import file_bytes
+from service.wording import headline, measure_name
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -215,6 +216,8 @@ def empty_row(path: Path, options: GradeOptions) -> dict:
         "status": None,
         "reason": None,
         "guideline": options.guideline.value,
+        "outcome": None,
+        "conclusion": None,
         "pathway": None,
         "grade": None,
         "filling_pressure": None,
@@ -236,12 +239,15 @@ def outcome_row(path: Path, options: GradeOptions, outcome: StudyOutcome, output
         status=outcome.status.value,
         reason=outcome.reason or None,
         guideline=a.guideline.value,
+        outcome=a.outcome.value,
+        conclusion=headline(a),
         pathway=a.pathway.value,
         pathway_reason=a.pathway_reason,
         grade=a.grade.value,
         filling_pressure=a.filling_pressure.value,
         rhythm=a.rhythm.value,
         borderline=[b.model_dump(mode="json") for b in a.borderline],
+        readings=[r.model_dump(mode="json") for r in a.readings],
         measurements={
             name.value: {
                 "value": mv.value,
@@ -264,6 +270,8 @@ def outcome_row(path: Path, options: GradeOptions, outcome: StudyOutcome, output
         row["compared"] = [
             {
                 "guideline": o.guideline.value,
+                "outcome": o.outcome.value,
+                "conclusion": headline(o),
                 "pathway": o.pathway.value,
                 "grade": o.grade.value,
                 "filling_pressure": o.filling_pressure.value,
@@ -274,23 +282,33 @@ def outcome_row(path: Path, options: GradeOptions, outcome: StudyOutcome, output
     return row
 
 
+def table_note(row: dict) -> str:
+    """The last column: the conclusion as the result SR and the summary say it (and the
+    borderline measures by their clinical names), or the reason a file was rejected."""
+    if not row.get("conclusion"):
+        return row.get("reason") or ""
+    note = row["conclusion"]
+    if row.get("borderline"):
+        names = ", ".join(
+            dict.fromkeys(measure_name(Measure(b["measure"])) for b in row["borderline"])
+        )
+        note += f" Borderline: {names}."
+    return note
+
+
 def print_table(rows: list[dict]) -> None:
-    headers = ("input", "status", "grade", "filling pressure", "pathway", "note")
+    headers = ("input", "status", "outcome", "filling pressure", "conclusion")
     table = []
     for r in rows:
-        note = r.get("reason") or ""
-        if r.get("borderline"):
-            note = "borderline: " + ", ".join(b["measure"] for b in r["borderline"])
         table.append(
             (
                 r["input"],
                 r["status"] or "",
-                r["grade"] or "-",
+                r["outcome"] or "-",
                 r["filling_pressure"] or "-",
-                r["pathway"] or "-",
-                note,
+                table_note(r),
             )
         )
-    print_columns(headers, table, pad_last=False)  # the note column is free text
+    print_columns(headers, table, pad_last=False)  # the conclusion column is free text
     print()
     print(CAUTION)

@@ -137,6 +137,12 @@ CREATE TABLE IF NOT EXISTS companions (
     PRIMARY KEY (result_uid, companion_uid)
 );
 CREATE INDEX IF NOT EXISTS companions_companion ON companions (companion_uid);
+-- what each result concluded, as a service.model.Outcome token (kept apart from the results
+-- table: record_outcome / outcome_of)
+CREATE TABLE IF NOT EXISTS result_outcomes (
+    result_uid TEXT PRIMARY KEY,
+    outcome TEXT NOT NULL
+);
 """
 
 
@@ -705,6 +711,24 @@ class Journal:
         d["sources"] = json.loads(d["sources"])
         d["predecessors"] = json.loads(d["predecessors"])
         return d
+
+    # -- outcomes of results (service.model.Outcome tokens) --------------------------------------
+
+    def record_outcome(self, result_uid: str, outcome: str) -> None:
+        """Record what a result concluded (an Outcome token: "grade-2", "atrial-fibrillation",
+        ...).  Not part of the grading transaction: a result whose outcome was lost to a crash
+        shows its grade instead."""
+        with self._tx(durable=False) as db:
+            db.execute(
+                "INSERT OR REPLACE INTO result_outcomes (result_uid, outcome) VALUES (?, ?)",
+                (result_uid, outcome),
+            )
+
+    def outcome_of(self, result_uid: str) -> str | None:
+        rows = self._query(
+            "SELECT outcome FROM result_outcomes WHERE result_uid = ?", (result_uid,)
+        )
+        return str(rows[0]["outcome"]) if rows else None
 
     def objects_set_aside(self, limit: int = 100) -> list[dict[str, Any]]:
         rows = self._query(

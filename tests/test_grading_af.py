@@ -31,6 +31,7 @@ from service.model import (
     Rhythm,
     Verdict,
 )
+from service.wording import headline
 
 ELEVATED = FillingPressure.elevated
 NORMAL = FillingPressure.normal
@@ -211,7 +212,7 @@ def test_af_result_shape_2025():
     assert a.outcome is Outcome.atrial_fibrillation
     assert a.pathway is Pathway.atrial_fibrillation
     assert "coded Cardiac Rhythm item" in a.pathway_reason
-    assert "atrial-fibrillation algorithm apply" in a.pathway_reason
+    assert "by the ASE 2025 atrial-fibrillation criteria" in headline(a)
     for c in a.criteria:
         assert c.id.startswith("ase25.af.")
         assert c.source.startswith(T25.PAPER)

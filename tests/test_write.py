@@ -510,7 +510,7 @@ def test_compared_guidelines_primary_first_with_disagreement():
     roles = [i.ConceptCodeSequence[0].CodeValue for i in find(ds, C.ASSESSMENT_ROLE)]
     assert roles == ["PRIMARY", "COMPARISON"]
     assert [i.TextValue for i in find(ds, C.DISAGREEMENT)] == list(CASES["compared"].disagreements)
-    assert "For comparison, ASE 2025: grade II" in find(ds, C.IMPRESSION)[0].TextValue
+    assert "For comparison, ASE 2025: Grade II" in find(ds, C.IMPRESSION)[0].TextValue
     assert not find(build("normal"), C.GUIDELINE_COMPARISON)
 
 

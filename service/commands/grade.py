@@ -195,7 +195,7 @@ def _grade_file(path: Path, job: _Job) -> dict:
         summary = build_summary(outcome, [ds], page_size=job.page_size, uid_root=options.uid_root)
         if summary is not None:
             target = out_dir / f"{path.stem}.summary.dcm"
-            summary.save_as(target, enforce_file_format=True)
+            target.write_bytes(file_bytes(summary))
             row["summary"] = str(target)
     return row
 

@@ -239,6 +239,9 @@ def _algorithm_a(
         )
     )
     trace.say(f"{one[:1].upper()}{one[1:]}, {verdict_words_of(e_prime)}.")
+    sites = [c.verdict for c in trace.criteria[-2:]]
+    if Verdict.unavailable in sites or len(set(sites)) > 1:  # the "or" decides
+        trace.reading("I-16-2")
     votes = [
         _e_over_e_prime(trace, p, STEP_A),
         e_prime,
@@ -293,6 +296,11 @@ def _algorithm_b(trace: Trace, lvef_depressed: bool) -> _Result:
     ea_low = trace.check(T.E_A_LOW, f"{p}.e_a_ratio_low", STEP_B1)
     e_low = trace.check(T.E_LOW, f"{p}.mitral_e_low", STEP_B1)
     ea_high = trace.check(T.E_A_HIGH, f"{p}.e_a_ratio_high", STEP_B1)
+    # E/A exactly on a branch of Figure 8B: the figure, not the paper's table, decides
+    if ea_low.value == T.E_A_LOW.value:
+        trace.reading("I-16-4")
+    if ea_high.value == T.E_A_HIGH.value:
+        trace.reading("I-16-5")
 
     if ea_low.verdict is Verdict.unavailable:
         trace.reasoning.append(

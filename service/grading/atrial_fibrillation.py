@@ -110,7 +110,9 @@ def _result(
     rules: str,
     pressure: FillingPressure,
 ) -> Assessment:
-    reason = f"atrial fibrillation{_rhythm_words(context)}: the {rules} apply"
+    # the rules applied are named by the conclusion ("... by the ... atrial-fibrillation
+    # criteria"); the reason says where the rhythm came from
+    reason = "atrial fibrillation" + (f", {context.rhythm_source}" if context.rhythm_source else "")
     return Assessment(
         **base_fields(guideline, citation, version, context),
         pathway=Pathway.atrial_fibrillation,

@@ -9,6 +9,7 @@ its cut-offs in one cited table of :class:`Threshold` rows and uses these helper
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 
@@ -146,6 +147,15 @@ def describe(criterion: Criterion, name: str, unit: str) -> str:
         f"{name} {fmt(criterion.value)}{u} against {SYMBOLS[criterion.comparison]} "
         f"{fmt(criterion.threshold)}{u}: {verdict_words(criterion)}."
     )
+
+
+#: matches the sentences :func:`describe` writes (and the one saying that several rows count as
+#: one criterion), so a reader that shows the criteria themselves can leave them out
+CRITERION_SENTENCE = re.compile(
+    r"^.+ against [<>≤≥] \S+.*: (met|not met|unavailable)\.$"
+    r"|^.+: not evaluated, .+ not available\.$"
+    r"|^.+: one criterion, (met|not met|not available)\.$"
+)
 
 
 def verdict_words(criterion: Criterion) -> str:

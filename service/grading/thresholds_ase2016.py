@@ -68,7 +68,6 @@ E_PRIME_SEPTAL = Threshold(
     unit="cm/s",
     citation=f"{PAPER}, Figure 8A (septal e′ < 7 or lateral e′ < 10)",
     evidence="R+V",
-    reading="I-16-2",
 )
 E_PRIME_LATERAL = Threshold(
     key="e_prime_lateral",
@@ -79,7 +78,6 @@ E_PRIME_LATERAL = Threshold(
     unit="cm/s",
     citation=f"{PAPER}, Figure 8A (septal e′ < 7 or lateral e′ < 10)",
     evidence="R+V",
-    reading="I-16-2",
 )
 TR_VELOCITY = Threshold(
     key="tr_peak_velocity",
@@ -113,7 +111,6 @@ E_A_LOW = Threshold(
     unit="",
     citation=f"{PAPER}, Figure 8B (E/A ≤ 0.8 and E ≤ 50 cm/s: grade I)",
     evidence="R+V",
-    reading="I-16-4",
 )
 E_LOW = Threshold(
     key="mitral_e_low",
@@ -134,7 +131,6 @@ E_A_HIGH = Threshold(
     unit="",
     citation=f"{PAPER}, Figure 8B (E/A ≥ 2: grade III)",
     evidence="R+V",
-    reading="I-16-5",
 )
 
 # --- Figure 8B step 2 substitute (depressed LVEF only) ----------------------------------------

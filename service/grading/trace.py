@@ -43,7 +43,16 @@ class Trace:
     ) -> Criterion:
         """Evaluate a row on its measure, record the criterion and a reasoning sentence.
         ``group``: words for rows that count together as one criterion (e.g. "septal or
-        lateral e′: one criterion")."""
+        lateral e′: one criterion").  A criterion already evaluated by an earlier step (same
+        measure and cut-off, e.g. average E/e′ > 14 in Figure 8A and in Figure 8B step 2) is
+        recorded once, with both steps named, and said once."""
+        t = row.value if threshold is None else threshold
+        for i, seen in enumerate(self.criteria):
+            if (seen.measure, seen.comparison, seen.threshold) == (row.measure, row.comparison, t):
+                if step and step not in seen.step.split(" and "):
+                    seen = seen.model_copy(update={"step": f"{seen.step} and {step}"})
+                    self.criteria[i] = seen
+                return seen
         c = evaluate(
             row,
             value_of(self.measurements, row.measure),

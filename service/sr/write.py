@@ -76,7 +76,6 @@ from service.wording import (
     GRADE_WORDS,
     GUIDELINE_NAMES,
     headline,
-    outcome_phrase,
     reading_sentence,
 )
 
@@ -124,7 +123,7 @@ def summary_text(assessments: AssessmentSet) -> str:
     if p.borderline:
         text += " Borderline: " + " ".join(f.text for f in p.borderline)
     for o in assessments.others:
-        text += f" For comparison, {GUIDELINE_NAMES[o.guideline]}: {outcome_phrase(o)}."
+        text += f" For comparison, {GUIDELINE_NAMES[o.guideline]}: {headline(o)}"
     return text
 
 

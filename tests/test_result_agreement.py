@@ -326,8 +326,8 @@ def write_doc_pictures(folder: Path, dpi: int = 80) -> list[Path]:
             timeout=60,
         )
         png = target.with_suffix(".png")
-        with Image.open(png) as img:  # a 64-colour palette keeps the pictures small
-            small = img.convert("RGB").quantize(colors=64, method=Image.Quantize.MEDIANCUT)
+        with Image.open(png) as img:  # a 128-colour palette keeps the pictures small
+            small = img.convert("RGB").quantize(colors=128, method=Image.Quantize.MEDIANCUT)
         small.save(png, optimize=True)
         written.append(png)
     return written

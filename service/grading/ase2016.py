@@ -239,8 +239,8 @@ def _algorithm_a(
         )
     )
     trace.say(f"{one[:1].upper()}{one[1:]}, {verdict_words_of(e_prime)}.")
-    sites = [c.verdict for c in trace.criteria[-2:]]
-    if Verdict.unavailable in sites or len(set(sites)) > 1:  # the "or" decides
+    known = [c.verdict for c in trace.criteria[-2:] if c.verdict is not Verdict.unavailable]
+    if len(known) == 1 or len(set(known)) > 1:  # one site, or the sites differ: "or" decides
         trace.reading("I-16-2")
     votes = [
         _e_over_e_prime(trace, p, STEP_A),

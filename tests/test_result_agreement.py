@@ -294,6 +294,22 @@ def test_borderline_names_the_measure_clinically() -> None:
     assert "Borderline:" in _flat(g.pdf_text())
 
 
+def test_vocabulary_document_lists_every_token_and_reading() -> None:
+    # docs/vocabulary.md is the one place the vocabulary is written down: it must not drift
+    from service.grading.readings import READINGS, SWITCHED
+    from service.wording import OUTCOME_WORDS, PRESSURE_WORDS
+
+    doc = (Path(__file__).parents[1] / "docs" / "vocabulary.md").read_text(encoding="utf-8")
+    for outcome, words in OUTCOME_WORDS.items():
+        assert f"| `{outcome.value}` | {words}" in doc, outcome
+    for pressure, words in PRESSURE_WORDS.items():
+        assert f"| `{pressure.value}` | {words}" in doc, pressure
+    for ident, words in READINGS.items():
+        assert f"| `{ident}` | {words} |" in doc, ident
+    for (ident, setting), words in SWITCHED.items():
+        assert f"| `{ident}` | `{setting}` | {words} |" in doc, (ident, setting)
+
+
 # ---------------------------------------------------------------------------------------------
 # Pictures for docs/
 # ---------------------------------------------------------------------------------------------

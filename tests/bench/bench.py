@@ -43,6 +43,7 @@ import io
 import json
 import math
 import os
+import resource
 import shutil
 import sqlite3
 import statistics
@@ -539,9 +540,11 @@ def bench_summary(work: Path, n: int, rounds: int) -> dict[str, Any]:
     write_studies(src, n, run="summary")
     cli = [sys.executable, "-m", "service.cli", "grade", str(src), "--json"]
     times: dict[str, list[float]] = {"plain": [], "pdf": []}
+    cpu: dict[str, list[float]] = {"plain": [], "pdf": []}
     for r in range(rounds):
         for kind, extra in (("plain", []), ("pdf", ["--pdf"])):
             out = work / f"summary-out-{kind}-{r}"
+            before = resource.getrusage(resource.RUSAGE_CHILDREN)
             t0 = time.perf_counter()
             done = subprocess.run(
                 [*cli, "--out", str(out), *extra],
@@ -551,13 +554,17 @@ def bench_summary(work: Path, n: int, rounds: int) -> dict[str, Any]:
                 timeout=1800,
             )
             times[kind].append(time.perf_counter() - t0)
+            after = resource.getrusage(resource.RUSAGE_CHILDREN)  # the command and its workers
+            cpu[kind].append(after.ru_utime + after.ru_stime - before.ru_utime - before.ru_stime)
             if done.returncode not in (0, 1):
                 raise RuntimeError(done.stderr.decode(errors="replace")[-2000:])
             shutil.rmtree(out, ignore_errors=True)
         ratio = times["plain"][-1] / times["pdf"][-1]
+        cpu_ratio = cpu["plain"][-1] / cpu["pdf"][-1]
         say(
             f"round {r + 1}: grade --out {n / times['plain'][-1]:7.1f} files/s, "
-            f"grade --pdf --out {n / times['pdf'][-1]:7.1f} files/s, ratio {ratio:.2f}"
+            f"grade --pdf --out {n / times['pdf'][-1]:7.1f} files/s, ratio {ratio:.2f}; "
+            f"CPU {cpu['plain'][-1]:.1f} s vs {cpu['pdf'][-1]:.1f} s, ratio {cpu_ratio:.2f}"
         )
     plain, pdf = statistics.median(times["plain"]), statistics.median(times["pdf"])
     ratios = [a / b for a, b in zip(times["plain"], times["pdf"], strict=True)]
@@ -570,10 +577,16 @@ def bench_summary(work: Path, n: int, rounds: int) -> dict[str, Any]:
         "pdf_files_per_s": n / pdf,
         "ratio_median": statistics.median(ratios),
         "ratios": ratios,
+        "plain_cpu_s": cpu["plain"],
+        "pdf_cpu_s": cpu["pdf"],
+        "cpu_ratio_median": statistics.median(
+            a / b for a, b in zip(cpu["plain"], cpu["pdf"], strict=True)
+        ),
     }
     say(
         f"median: grade --out {n / plain:.1f} files/s, grade --pdf --out {n / pdf:.1f} files/s; "
-        f"ratio {out['ratio_median']:.2f}   (target >= 0.5)"
+        f"ratio {out['ratio_median']:.2f}   (target >= 0.5); CPU-time ratio "
+        f"{out['cpu_ratio_median']:.2f} (the same comparison, less sensitive to other load)"
     )
     return out
 

@@ -1,7 +1,8 @@
 """Prometheus metrics of one node, in a registry of its own (``prometheus-client``).
 
 * ``diastolic_sr_associations_total{outcome}``: accepted / rejected
-* ``diastolic_sr_objects_received_total{outcome}``: stored / rejected / discarded (images)
+* ``diastolic_sr_objects_received_total{outcome}``: stored / rejected / discarded (images) /
+  ignored (the node's own results coming back)
 * ``diastolic_sr_studies_graded_total{outcome}``: what each study concluded, as a
   :class:`service.model.Outcome` token (normal, grade-1, grade-2, grade-3, indeterminate,
   not-gradable, atrial-fibrillation, special-situation), or why it has no result (rejected,

@@ -106,12 +106,15 @@ def _gap(h: float) -> Row:
 
 
 def _heading(p: Page, t: Type, text: str) -> Row:
+    """A heading, wrapped to its column, kept with the row after it."""
     size = t.heading
+    lines = wrap(text, p.inner, size, True)
 
     def draw(c: Canvas, y: float) -> None:
-        c.text(p.left, y + size, text, size, bold=True)
+        for i, line in enumerate(lines):
+            c.text(p.left, y + size + i * t.lead(size), line, size, bold=True)
 
-    return Row(t.lead(size) + 2, draw, keep=True)
+    return Row(len(lines) * t.lead(size) + 2, draw, keep=True)
 
 
 def _paragraph(

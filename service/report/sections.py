@@ -551,7 +551,7 @@ def measurements(p: Page, t: Type, *, split: int = 2) -> list[Row]:
     columns = [entries[i * half : (i + 1) * half] for i in range(split)]
 
     def cells(x: float) -> tuple[float, float, float, float]:
-        return x, x + col_w * 0.58, x + col_w * 0.6, x + col_w * 0.78
+        return x, x + col_w * 0.52, x + col_w * 0.54, x + col_w * 0.7
 
     def draw_head(c: Canvas, y: float) -> None:
         for col in range(split):

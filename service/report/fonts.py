@@ -127,7 +127,7 @@ def font_files() -> tuple[str, str]:
 
 #: characters every page's font subset starts with, in this order, so that the embedded
 #: subset is the same from page to page (and made once per process, :func:`start_document`)
-REPERTOIRE = "".join(chr(c) for c in range(0x20, 0x7F)) + "′≤≥²·—–−§"
+REPERTOIRE = "".join(chr(c) for c in range(0x20, 0x7F)) + "′≤≥²·•—–−§“”’"
 
 
 @cache

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import io
 import threading
+from typing import Literal
 
 from service import SOFTWARE_NAME, __version__
 from service.errors import UserError
@@ -41,6 +42,7 @@ from service.report.layout import (
     wrap,
 )
 from service.report.numbers import format_number, scale_for
+from service.report.pdf_page import NotInRepertoire, PageWriter, document
 from service.report.sections import TITLE, Page, footer, footer_height, page_rows
 
 __all__ = [
@@ -106,6 +108,15 @@ def _fitted(page: Page) -> tuple[Type, list]:
     return last[0], last[1]
 
 
+#: the document information of every summary (PDF Info dictionary)
+INFO = {
+    "Title": f"{TITLE}: summary",
+    "Author": SOFTWARE_NAME,
+    "Subject": "Decision support only; confirm by a qualified reader",
+    "Creator": f"{SOFTWARE_NAME} {__version__}",
+}
+
+
 def render_summary_pdf(
     assessments: AssessmentSet,
     measurements: Measurements,
@@ -113,42 +124,65 @@ def render_summary_pdf(
     *,
     page_size: PageSize = "A4",
     result_sr_uid: str = "",
+    writer: Literal["auto", "reportlab"] = "auto",
 ) -> bytes:
     """Render the summary of ``assessments`` and return the PDF bytes: one page, or more only
     when the content does not fit on one at the smallest readable type (nothing is cut).
 
-    The same inputs give the same bytes (no creation date or random document ID is written)."""
+    The page is written by the lean writer of :mod:`service.report.pdf_page` when all its text
+    is in the font's fixed repertoire (``writer="auto"``), else (or with
+    ``writer="reportlab"``) by reportlab.  The same inputs give the same bytes (no creation
+    date or random document ID is written)."""
     if page_size not in PAGE_SIZES_PT:
         raise UserError(f"unknown page size {page_size!r}: use one of {', '.join(PAGE_SIZES_PT)}")
     if not isinstance(assessments, AssessmentSet):
         raise UserError("render_summary_pdf needs an AssessmentSet")
-    _configure()
     registered()
-    from reportlab.pdfgen.canvas import Canvas as PdfCanvas
-
     width, height = PAGE_SIZES_PT[page_size]
     page = Page(assessments, measurements, identity, result_sr_uid, width, height)
     t, rows = _fitted(page)
     bottom = height - MARGIN * 0.7 - footer_height(t)
     pages = paginate(rows, MARGIN * 0.8, bottom)
+    if writer == "auto":
+        try:
+            return _lean(page, t, pages)
+        except NotInRepertoire:
+            pass
+    return _with_reportlab(page, t, pages)
+
+
+def _lean(page: Page, t: Type, pages: list) -> bytes:
+    drawn = []
+    for number, placed in enumerate(pages, 1):
+        c = PageWriter(page.height)
+        for row, y in placed:
+            row.draw(c, y)
+        footer(c, page, t, number, len(pages))
+        drawn.append(c)
+    return document(drawn, page.width, page.height, INFO)
+
+
+def _with_reportlab(page: Page, t: Type, pages: list) -> bytes:
+    _configure()
+    from reportlab.pdfgen.canvas import Canvas as PdfCanvas
 
     out = io.BytesIO()
     regular, _ = registered()
     pdf = PdfCanvas(
         out,
-        pagesize=(width, height),
+        pagesize=(page.width, page.height),
         invariant=1,
         pageCompression=0,
         initialFontName=regular,
         initialFontSize=t.body,
     )
     start_document(pdf._doc)
-    pdf.setTitle(f"{TITLE}: summary")
-    pdf.setAuthor(SOFTWARE_NAME)
-    pdf.setSubject("Decision support only; confirm by a qualified reader")
-    pdf.setCreator(f"{SOFTWARE_NAME} {__version__}")
+    pdf.setTitle(INFO["Title"])
+    pdf.setAuthor(INFO["Author"])
+    pdf.setSubject(INFO["Subject"])
+    pdf.setCreator(INFO["Creator"])
     for number, placed in enumerate(pages, 1):
-        c = Canvas(pdf, height)
+        c = Canvas(pdf, page.height)
         for row, y in placed:
             row.draw(c, y)
         footer(c, page, t, number, len(pages))

@@ -78,8 +78,12 @@ def _because(primary: Assessment, other: Assessment) -> str:
         primary.pathway in _OUTSIDE_STANDARD or other.pathway in _OUTSIDE_STANDARD
     ):
         return f"{p}: {primary.pathway_reason}; {o}: {other.pathway_reason}"
-    reasons = [r for a in (primary, other) if (r := _why_undecided(a))]
-    reasons += _differing_groups(primary, other)
+    # a finding the two cut-offs judge differently explains the difference; failing that, the
+    # reasoning that left a result undecided (e.g. no rule combining the criteria), then the
+    # findings only one of them uses
+    reasons = _differing_groups(primary, other)
+    if not reasons:
+        reasons = [r for a in (primary, other) if (r := _why_undecided(a))]
     if len(reasons) < _MAX_REASONS:
         only = _used_by_one(primary, other) + _used_by_one(other, primary)
         only.sort(key=lambda pair: not pair[0])  # abnormal findings first

@@ -486,9 +486,13 @@ def reasoning(p: Page, t: Type) -> list[Row]:
         [f"{s.name}: {s.text}" for s in a.supporting],
         numbered=False,
     )
+    # a guideline whose result differs is named, with both results, by the sentence saying
+    # where they differ: listed here are only those that agree
+    same = (a.grade, a.filling_pressure)
     others = [
         f"{GUIDELINE_NAMES.get(o.guideline, o.guideline)}: {headline(o)}"
         for o in p.assessments.others
+        if (o.grade, o.filling_pressure) == same or not p.assessments.disagreements
     ]
     rows += _list(p, t, "Other guidelines", others, numbered=False)
     rows += _list(

@@ -274,6 +274,21 @@ def test_nothing_cut_and_nothing_said_twice_in_the_summary(case: str) -> None:
 
 
 @pytest.mark.external
+@pytest.mark.parametrize("case", list(CASES))
+def test_every_word_stays_inside_the_margins(case: str) -> None:
+    # poppler-utils pdftotext -bbox: each word's box, in points; the page is A4 (595.3 pt wide)
+    # with 36 pt margins: nothing may run past them (a word over the edge is a word cut)
+    g = graded(case)
+    out = subprocess.run(
+        [tool("pdftotext"), "-bbox", str(g.pdf), "-"], capture_output=True, text=True, check=True
+    ).stdout
+    boxes = re.findall(r'<word xMin="([\d.]+)" yMin="[\d.]+" xMax="([\d.]+)"', out)
+    assert boxes
+    for x_min, x_max in boxes:
+        assert float(x_min) >= 36 - 0.5 and float(x_max) <= 595.28 - 36 + 0.5, (x_min, x_max)
+
+
+@pytest.mark.external
 def test_compared_guidelines_say_where_they_differ() -> None:
     g = graded("compared")
     [other] = g.json["compared"]

@@ -542,20 +542,35 @@ def measurement_rows(m: Measurements) -> list[tuple[str, str, str, str]]:
 
 
 def measurements(p: Page, t: Type, *, split: int = 2) -> list[Row]:
-    """The measurements table, in ``split`` side-by-side columns."""
+    """The measurements table, in ``split`` side-by-side columns.  The columns are as wide as
+    their content (value, unit and source keep their width; a measure's name wraps when the
+    column is narrow), so nothing passes the column's edge."""
     entries = measurement_rows(p.measurements)
     rows = [_gap(t.body * 0.5), _heading(p, t, "Measurements")]
     if not entries:
         return rows + _paragraph(p, t, "No measurement was recognised.", colour=GREY)
     gap = 16 * t.k
+    pad = 5 * t.k
     col_w = (p.inner - gap * (split - 1)) / split
     size = t.small
     lead = t.lead(size) * 1.05
+
+    def widest(i: int, bold: bool = False) -> float:
+        return max(text_width(e[i], size, bold) for e in entries)
+
+    value_w, unit_w = widest(1, True), max(widest(2), text_width("unit", t.tiny))
+    src_w = max(widest(3), text_width("source", t.tiny))
+    name_w = col_w - value_w - unit_w - src_w - 3 * pad
+    if name_w < col_w * 0.3:  # very long words: the source column takes what is left
+        name_w = col_w * 0.3
+        src_w = col_w - name_w - value_w - unit_w - 3 * pad
     half = (len(entries) + split - 1) // split
     columns = [entries[i * half : (i + 1) * half] for i in range(split)]
 
     def cells(x: float) -> tuple[float, float, float, float]:
-        return x, x + col_w * 0.52, x + col_w * 0.54, x + col_w * 0.7
+        value_right = x + name_w + pad + value_w
+        unit_x = value_right + pad * 0.6
+        return x, value_right, unit_x, unit_x + unit_w + pad
 
     def draw_head(c: Canvas, y: float) -> None:
         for col in range(split):
@@ -571,22 +586,30 @@ def measurements(p: Page, t: Type, *, split: int = 2) -> list[Row]:
     rows.append(Row(t.lead(t.tiny) + 3, draw_head, keep=True))
     for i in range(half):
         pair = [col[i] if i < len(col) else None for col in columns]
+        cells_text = [
+            (wrap(e[0], name_w, size), wrap(e[3], src_w, size)) if e else ([], []) for e in pair
+        ]
+        n = max(max(len(a), len(b)) for a, b in cells_text) or 1
+        height = lead + (n - 1) * t.lead(size)
 
-        def draw(c: Canvas, y: float, pair=pair, stripe=i % 2 == 1) -> None:
-            if stripe:
-                c.rect(p.left, y - lead * 0.1, p.inner, lead, fill=STRIPE)
+        def draw(c: Canvas, y: float, pair=pair, texts=cells_text, h=height, i=i) -> None:
+            if i % 2 == 1:
+                c.rect(p.left, y - lead * 0.1, p.inner, h, fill=STRIPE)
             for col, entry in enumerate(pair):
                 if entry is None:
                     continue
-                name, value, unit, src = entry
+                _, value, unit, _ = entry
+                names, sources = texts[col]
                 name_x, value_x, unit_x, src_x = cells(p.left + col * (col_w + gap))
                 base = y + size
-                c.text(name_x, base, name, size)
+                for k, line in enumerate(names):
+                    c.text(name_x, base + k * t.lead(size), line, size)
                 c.text(value_x, base, value, size, bold=True, align="right")
                 c.text(unit_x, base, unit, size, colour=GREY)
-                c.text(src_x, base, src, size, colour=GREY)
+                for k, line in enumerate(sources):
+                    c.text(src_x, base + k * t.lead(size), line, size, colour=GREY)
 
-        rows.append(Row(lead, draw))
+        rows.append(Row(height, draw))
     return rows
 
 

@@ -100,7 +100,14 @@ MIGRATIONS: list[list[str]] = [
         )""",
         "CREATE INDEX IF NOT EXISTS ignored_objects_received ON ignored_objects (received_at)",
     ],
-    # 3: claims with leases
+    # 3: what each result concluded (a service.model.Outcome token)
+    [
+        """CREATE TABLE IF NOT EXISTS result_outcomes (
+            result_uid TEXT PRIMARY KEY,
+            outcome TEXT NOT NULL
+        )""",
+    ],
+    # 4: claims with leases
     [
         "ALTER TABLE studies ADD COLUMN IF NOT EXISTS claimed_by TEXT NOT NULL DEFAULT ''",
         "ALTER TABLE studies ADD COLUMN IF NOT EXISTS lease_until DOUBLE PRECISION NOT NULL "

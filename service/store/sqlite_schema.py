@@ -91,7 +91,15 @@ MIGRATIONS: list[list[str]] = [
         )""",
         "CREATE INDEX IF NOT EXISTS ignored_objects_received ON ignored_objects (received_at)",
     ],
-    # 3: claims with leases (several processes take work from one journal)
+    # 3: what each result concluded, as a service.model.Outcome token (kept apart from the
+    # results table: Journal.record_outcome / outcome_of)
+    [
+        """CREATE TABLE IF NOT EXISTS result_outcomes (
+            result_uid TEXT PRIMARY KEY,
+            outcome TEXT NOT NULL
+        )""",
+    ],
+    # 4: claims with leases (several processes take work from one journal)
     [
         # who holds a study being graded, until when, and how many claims of this generation
         # ended without a result (a grading process that died)

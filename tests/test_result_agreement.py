@@ -254,6 +254,81 @@ def test_each_criterion_once_in_the_content_tree(case: str) -> None:
         assert dump.count('"Counted as one criterion")="septal or lateral e′: one criterion"') == 2
 
 
+#: what a sentence about one criterion looks like ("Septal e′ 5.1 cm/s against < 7 cm/s: met.",
+#: "LAVI > 34 mL/m²: not evaluated, LAVI not available.", "Septal or lateral e′: one
+#: criterion, met."): the criteria are written once, in the Criteria container, and the
+#: reasoning holds only the decisions made from them
+CRITERION_SENTENCE = re.compile(
+    r"\bagainst [<>≤≥]|: not evaluated\b|: one criterion, (?:met|not met|not available)\b"
+)
+#: a verdict said after a criterion's rule ("E/A ≤ 0.8: not met")
+VERDICTS = (": met", ": not met", ": not evaluated", ": unavailable", ": not available")
+#: the result SR's sentences a person reads, other than a criterion's own items (its rule and
+#: the source of its cut-off) and the comparison of two guidelines, which names the one
+#: finding they judge differently with both cut-offs side by side
+OTHER_PROSE = tuple(n for n in PROSE if n not in ("Criterion rule", "Cut-off source"))
+
+
+def _reasoning_steps(assessment) -> list[str]:
+    return [i.TextValue for i in _items(assessment, "Reasoning step")]
+
+
+@pytest.mark.external
+@pytest.mark.parametrize("case", list(CASES))
+def test_reasoning_holds_the_decisions_and_no_criterion_twice(case: str) -> None:
+    g = graded(case)
+    assessments = _items(g.sr, "LV diastolic function assessment")
+    rules = [i.TextValue for a in assessments for i in _items(a, "Criterion rule")]
+    prose = [
+        i.TextValue
+        for name in OTHER_PROSE
+        if name != "Guideline disagreement"
+        for i in _items(g.sr, name)
+    ]
+    assert prose
+    for text in prose:
+        assert not CRITERION_SENTENCE.search(text), text
+        for rule in rules:
+            low = text.casefold()
+            assert not any(rule.casefold() + v in low for v in VERDICTS), (rule, text)
+            # a criterion's rule is never a sentence of its own outside its criterion item
+            sentences = {s.strip().rstrip(".").casefold() for s in re.split(r"(?<=\.)\s", text)}
+            assert rule.casefold() not in sentences, (rule, text)
+    # the JSON's reasoning is the primary assessment's reasoning, step for step
+    assert g.json["reasoning"] == _reasoning_steps(assessments[0])
+    for text in (*g.json["reasoning"], *g.json["notes"]):
+        assert not CRITERION_SENTENCE.search(text), text
+    # within one guideline's assessment nothing is said twice (the pathway refers to the
+    # reasoning step that chose it, by reference, instead of repeating it)
+    for a in assessments:
+        said = [i.TextValue for name in OTHER_PROSE for i in _items(a, name)]
+        assert len(said) == len(set(said)), [t for t in said if said.count(t) > 1]
+
+
+@pytest.mark.external
+def test_grade_2_reasoning_is_the_four_decisions_of_figures_8a_and_8b() -> None:
+    # Nagueh 2016 JASE 29:277, Figure 8A (more than half of 4 criteria met: dysfunction) and
+    # Figure 8B (E/A between 0.8 and 2: step 2; 2 or 3 of 3 met: grade II)
+    g = graded("grade-2")
+    expected = [
+        "LVEF 58 % is not below 50 % and no myocardial disease is flagged: Algorithm A "
+        "(Figure 8A) for normal LVEF applies.",
+        "Algorithm A: 4 of 4 available criteria met (more than half): diastolic dysfunction "
+        "present; Algorithm B (Figure 8B) grades it.",
+        "Algorithm B: E/A between the branches; step 2 applies.",
+        "Step 2: 3 of 3 available criteria met: grade II, elevated filling pressure.",
+    ]
+    assert g.json["reasoning"] == expected
+    [primary] = _items(g.sr, "LV diastolic function assessment")
+    assert _reasoning_steps(primary) == expected
+    dump = g.dsrdump()
+    # the routing sentence once, the pathway inferred from it by reference (DCMTK resolves it)
+    assert dump.count(expected[0]) == 1
+    assert '"Pathway reason"' not in dump
+    pathway = dump.index('(,,"Grading pathway")')
+    assert re.match(r"\s*<inferred from 1(?:\.\d+)+>", dump[dump.index("\n", pathway) :])
+
+
 @pytest.mark.external
 @pytest.mark.parametrize("case", list(CASES))
 def test_nothing_cut_and_nothing_said_twice_in_the_summary(case: str) -> None:

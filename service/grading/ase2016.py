@@ -18,7 +18,7 @@ from service.grading.criteria import (
     tally,
     value_of,
 )
-from service.grading.trace import Trace, verdict_words_of
+from service.grading.trace import Trace
 from service.model import (
     CAUTION,
     Assessment,
@@ -238,7 +238,6 @@ def _algorithm_a(
             trace.check(T.E_PRIME_LATERAL, f"{p}.e_prime_lateral", STEP_A, group=one).verdict,
         )
     )
-    trace.say(f"{one[:1].upper()}{one[1:]}, {verdict_words_of(e_prime)}.")
     known = [c.verdict for c in trace.criteria[-2:] if c.verdict is not Verdict.unavailable]
     if len(known) == 1 or len(set(known)) > 1:  # one site, or the sites differ: "or" decides
         trace.reading("I-16-2")
@@ -268,9 +267,9 @@ def _algorithm_a(
     counted = f"{t.met} of {t.available} available criteria met"
     if 2 * t.met > t.available:
         trace.reasoning.append(
-            f"Algorithm A: {counted} (more than half): diastolic dysfunction present."
+            f"Algorithm A: {counted} (more than half): diastolic dysfunction present; "
+            "Algorithm B (Figure 8B) grades it."
         )
-        trace.reasoning.append("Dysfunction present; Algorithm B (Figure 8B) grades it.")
         return _algorithm_b(trace, lvef_depressed)
     if 2 * t.met == t.available:
         trace.reasoning.append(

@@ -306,6 +306,17 @@ def test_reasoning_holds_the_decisions_and_no_criterion_twice(case: str) -> None
 
 
 @pytest.mark.external
+@pytest.mark.parametrize("case", list(CASES))
+def test_measure_names_keep_their_clinical_spelling(case: str) -> None:
+    from test_clinical_spelling import BROKEN
+
+    g = graded(case)
+    for text in (g.dsrdump(), g.pdf_text(), g.table, json.dumps(g.json, ensure_ascii=False)):
+        found = BROKEN.search(text)
+        assert found is None, text[max(0, found.start() - 80) : found.end() + 40]
+
+
+@pytest.mark.external
 def test_grade_2_reasoning_is_the_four_decisions_of_figures_8a_and_8b() -> None:
     # Nagueh 2016 JASE 29:277, Figure 8A (more than half of 4 criteria met: dysfunction) and
     # Figure 8B (E/A between 0.8 and 2: step 2; 2 or 3 of 3 met: grade II)

@@ -32,7 +32,7 @@ from service.model import (
     Rhythm,
     Verdict,
 )
-from service.wording import ONE_E_PRIME_CRITERION
+from service.wording import ONE_E_PRIME_CRITERION, in_sentence
 
 RULE_SET_VERSION = "ase-eacvi-2016/1"
 CITATION = (
@@ -211,7 +211,7 @@ def _e_over_e_prime(trace: Trace, prefix: str, step: str) -> Verdict:
     ]
     if not singles:
         return trace.check(T.E_E_PRIME_AVERAGE, f"{prefix}.e_e_prime_average", step).verdict
-    names = " and ".join(row.name for row in singles)
+    names = " and ".join(in_sentence(row.name) for row in singles)
     trace.note(
         f"Average E/e′ was not available; {names} used with the single-site cut-off "
         "(septal > 15, lateral > 13)."

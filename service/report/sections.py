@@ -57,6 +57,7 @@ from service.wording import (
     SHORT_CITATIONS,
     headline,
     measure_name,
+    sentence_start,
 )
 
 TITLE = "Automated LV diastolic function assessment"
@@ -475,7 +476,7 @@ def reasoning(p: Page, t: Type) -> list[Row]:
         p,
         t,
         "This service's readings of ambiguities in the guideline",
-        [r.text[:1].upper() + r.text[1:] for r in a.readings],
+        [sentence_start(r.text) for r in a.readings],
         numbered=False,
     )
     rows += _list(

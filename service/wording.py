@@ -151,6 +151,9 @@ SITUATION_NAMES: dict[SpecialSituation, str] = {
     SpecialSituation.lbbb_or_ventricular_pacing: "LBBB or ventricular pacing",
 }
 
+#: how the result says that the source SR stated a special situation itself
+STATED_BY_FINDING = "stated by a coded finding in the source SR"
+
 #: first words whose spelling is clinical although they look like an ordinary capitalised word
 _KEEP_SPELLING = frozenset({"Ar", "Ar-A"})
 

@@ -42,8 +42,9 @@ CASES: dict[str, tuple[str, tuple[str, ...], Outcome]] = {
     "indeterminate": ("indeterminate", (), Outcome.indeterminate),
     "not-gradable": ("not-gradable", (), Outcome.not_gradable),
     "atrial-fibrillation": ("atrial-fibrillation", (), Outcome.atrial_fibrillation),
-    # alternative criteria (ASE/EACVI 2016 section V.C) and no alternative at all
-    "special-situation": ("grade-2", ("--situation", "mitral-stenosis"), Outcome.special_situation),
+    # alternative criteria (ASE/EACVI 2016 section V.C), stated by the study's own SR (a coded
+    # finding), and no alternative at all, given by the run option
+    "special-situation": ("mitral-stenosis", (), Outcome.special_situation),
     "special-not-applicable": (
         "grade-2",
         ("--situation", "heart-transplant"),
@@ -375,6 +376,25 @@ def test_every_word_stays_inside_the_margins(case: str) -> None:
 
 
 @pytest.mark.external
+def test_special_situation_stated_by_the_sr_or_given_by_the_option() -> None:
+    # the demo study's SR states mitral stenosis by a coded finding (121071 DCM "Finding" =
+    # 79619009 SCT "Mitral stenosis", both in pydicom's PS3.16 dictionary); the same situation
+    # given by --situation on another study is applied alike, without that attribution
+    g = graded("special-situation")
+    assert g.json["pathway_reason"].startswith(
+        "mitral stenosis (stated by a coded finding in the source SR): "
+    )
+    assert "stated by a coded finding in the source SR" in g.dsrdump()
+    assert g.json["conclusion"].startswith("Grade not applicable in mitral stenosis;")
+    root = _demo_folder()
+    common = [str(root / "demo" / "grade-2.dcm"), "--mapping", str(SITE_MAPPING), "--jobs", "1"]
+    flagged = json.loads(_run_cli(["grade", *common, "--json", "--situation", "mitral-stenosis"]))
+    assert flagged["outcome"] == "special-situation"
+    assert flagged["conclusion"].startswith("Grade not applicable in mitral stenosis;")
+    assert "stated by a coded finding" not in flagged["pathway_reason"]
+
+
+@pytest.mark.external
 def test_compared_guidelines_say_where_they_differ() -> None:
     g = graded("compared")
     [other] = g.json["compared"]
@@ -402,7 +422,7 @@ def test_borderline_names_the_measure_clinically() -> None:
 def test_vocabulary_document_lists_every_token_and_reading() -> None:
     # docs/vocabulary.md is the one place the vocabulary is written down: it must not drift
     from service.grading.readings import READINGS, SWITCHED
-    from service.wording import OUTCOME_WORDS, PRESSURE_WORDS
+    from service.wording import OUTCOME_WORDS, PRESSURE_WORDS, SITUATION_NAMES
 
     doc = (Path(__file__).parents[1] / "docs" / "vocabulary.md").read_text(encoding="utf-8")
     for outcome, words in OUTCOME_WORDS.items():
@@ -413,6 +433,8 @@ def test_vocabulary_document_lists_every_token_and_reading() -> None:
         assert f"| `{ident}` | {words} |" in doc, ident
     for (ident, setting), words in SWITCHED.items():
         assert f"| `{ident}` | `{setting}` | {words} |" in doc, (ident, setting)
+    for situation, words in SITUATION_NAMES.items():
+        assert f"| `{situation.value}` | {words} |" in doc, situation
 
 
 # ---------------------------------------------------------------------------------------------

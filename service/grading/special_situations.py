@@ -41,7 +41,7 @@ from service.grading.thresholds_ase2016 import (
     TACHY_E_E_PRIME_LATERAL,
     TACHY_IVRT,
 )
-from service.grading.trace import Trace, base_fields, situation_words
+from service.grading.trace import Trace, base_fields
 from service.model import (
     Assessment,
     Context,
@@ -56,7 +56,7 @@ from service.model import (
     SpecialSituation,
     Verdict,
 )
-from service.wording import sentence_start, situation_name
+from service.wording import STATED_BY_FINDING, sentence_start, situation_name
 
 S = SpecialSituation
 
@@ -165,7 +165,7 @@ def assess(
     """The result for a context with one or more special situations (never a standard grade)."""
     base = base_fields(guideline, citation, version, context)
     situations = sorted(context.special_situations)
-    words = situation_words(context.special_situations)
+    words = _named_with_source(context)
     label = _LABEL.get(guideline, guideline.value)
     blocked = [(s, r) for s in situations if (r := not_applicable_reason(s, guideline))]
     rhythm = _rhythm_sentence(context)
@@ -211,6 +211,15 @@ def assess(
     )
 
 
+def _named_with_source(context: Context) -> str:
+    """ "mitral stenosis (stated by a coded finding in the source SR)": each situation, and
+    where the source SR stated it itself (the others were configured or given by the user)."""
+    return ", ".join(
+        situation_name(s) + (f" ({STATED_BY_FINDING})" if s in context.situations_stated else "")
+        for s in sorted(context.special_situations)
+    )
+
+
 def _rhythm_sentence(context: Context) -> str:
     if context.rhythm is Rhythm.af:
         src = f" ({context.rhythm_source})" if context.rhythm_source else ""
@@ -231,7 +240,7 @@ def _combine(trace: Trace, outcomes: list[_Outcome]) -> FillingPressure:
             return FillingPressure.not_estimated
         trace.say(
             "The guideline lists these criteria without a rule combining them, so the filling "
-            "pressure is indeterminate; each criterion met supports elevated filling pressure."
+            "pressure is indeterminate."
         )
         return FillingPressure.indeterminate
     pressures = {o.pressure for o in stated}
@@ -262,7 +271,7 @@ def _flags(
         situation,
         None,
         f"{sentence_start(name)}: {t.met} of {t.available} available "
-        "criteria support elevated filling pressure (no combination rule stated).",
+        "criteria support elevated filling pressure.",
     )
 
 

@@ -19,7 +19,6 @@ from service.model import (
     Measurements,
     Reading,
     Rhythm,
-    SpecialSituation,
 )
 
 
@@ -100,10 +99,3 @@ def base_fields(
         "special_situations": tuple(sorted(context.special_situations)),
         "caution": CAUTION,
     }
-
-
-def situation_words(situations: frozenset[SpecialSituation] | tuple[SpecialSituation, ...]) -> str:
-    """ "mitral stenosis, heart transplant" (sorted, plain words)."""
-    from service.wording import situations as words
-
-    return words(situations)

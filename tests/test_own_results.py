@@ -8,6 +8,7 @@ import copy
 import json
 import subprocess
 import sys
+from io import BytesIO
 from pathlib import Path
 
 import pydicom
@@ -220,14 +221,15 @@ def test_summary_pdf_sent_back_with_dcmtk_storescu_is_recorded_as_ignored(
     [row] = wait_for(lambda: node.journal.ignored_objects() or None, 20)
     assert row["sop_instance_uid"] == summary.SOPInstanceUID
     assert row["reason"].startswith(IGNORED_OWN_RESULT) and "summary PDF" in row["reason"]
-    assert row["study_uid"] == summary.StudyInstanceUID and Path(row["path"]).is_file()
-    kept = pydicom.dcmread(row["path"])  # kept as received: the PDF itself
+    assert row["study_uid"] == summary.StudyInstanceUID and bytes_kept(node.journal, row)
+    # kept as received: the PDF itself
+    kept = pydicom.dcmread(BytesIO(node.journal.ignored_data(row["sop_instance_uid"])))
     assert kept.EncapsulatedDocument == summary.EncapsulatedDocument
     # never graded: no study opened, nothing queued; the foreign PDF discarded as before
     assert node.journal.study(summary.StudyInstanceUID) is None
     assert node.journal.objects() == []
     capsys.readouterr()
-    assert cli_main(["queue", "--data-dir", str(node.config.data_dir), "--json"]) == 0
+    assert cli_main(["queue", *journal_args(node), "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
     [listed] = report["objects_ignored"]
     assert listed["sop_instance_uid"] == summary.SOPInstanceUID

@@ -216,6 +216,11 @@ class Journal(abc.ABC):
         study_uid, sop_class_uid, calling_ae, reason, received_at, times_received."""
 
     @abc.abstractmethod
+    def ignored_data(self, sop_instance_uid: str) -> bytes:
+        """The stored Part 10 bytes of an object kept by :meth:`store_ignored`; OSError when
+        they cannot be read."""
+
+    @abc.abstractmethod
     def object_data(self, sop_instance_uid: str) -> bytes:
         """The stored Part 10 bytes of a received object; OSError when they cannot be read."""
 

@@ -229,6 +229,14 @@ class SqlJournal(Journal):
         )
         return str(rows[0][0]) if rows else None
 
+    def ignored_data(self, sop_instance_uid: str) -> bytes:
+        rows = self._query(
+            "SELECT * FROM ignored_objects WHERE sop_instance_uid = ?", (sop_instance_uid,)
+        )
+        if not rows:
+            raise FileNotFoundError(f"object {sop_instance_uid} is not among the ignored ones")
+        return self._read_object(rows[0])
+
     def ignored_objects(self, limit: int = 100) -> list[dict[str, Any]]:
         rows = self._query(
             "SELECT * FROM ignored_objects ORDER BY received_at DESC LIMIT ?", (limit,)

@@ -366,3 +366,48 @@ def test_a_peer_trickling_its_c_store_response_is_cut_at_the_deadline(acceptor, 
         _, took = _bounded(session.release, 10)
         assert took < 5
     wait_for(lambda: len(peer.received) == 1, 10)  # the peer had stored it all the same
+
+
+def test_the_association_thread_takes_no_response_between_c_stores(acceptor, tmp_path):
+    # pynetdicom's association thread takes any DIMSE message off the queue whenever it runs
+    # (and drops a C-STORE response it did not ask for); between the node's C-STOREs it stays
+    # paused, so a response can only go to the C-STORE waiting for it
+    import threading as _threading
+
+    from pynetdicom.dimse_primitives import C_STORE
+
+    _, data = _part10(tmp_path)
+    peer = acceptor()
+    session = _open(peer.port)
+    try:
+        assert session.store(data).status == 0
+        response = C_STORE()
+        response.MessageIDBeingRespondedTo = 99
+        response.Status = 0x0000
+        queue = session._assoc.dimse.msg_queue
+        queue.put((1, response))  # as if a response had just arrived
+        _threading.Event().wait(0.3)  # the thread turns every millisecond when it runs
+        assert queue.qsize() == 1, "the association thread took the message"
+        queue.get_nowait()
+        assert session.store(data).status == 0  # and the session goes on
+    finally:
+        session.release()
+    assoc = session._assoc
+    wait_for(lambda: not assoc.is_alive(), 10)  # the thread ends with the release
+    assert peer.released.wait(5)
+
+
+def test_a_peer_abort_between_c_stores_ends_the_next_one_at_once(acceptor, tmp_path):
+    # with the association thread held between C-STOREs, nobody watches the connection then:
+    # an A-ABORT (or a closed connection) that comes in meanwhile must still end the next
+    # C-STORE at once, not after the DIMSE timeout
+    _, data = _part10(tmp_path)
+    peer = acceptor()
+    session = _open(peer.port, timeouts=Timeouts(connect=5, acse=5, dimse=20, network=20))
+    assert session.store(data).status == 0
+    wait_for(lambda: len(peer._ae.active_associations) == 1, 5)
+    peer._ae.active_associations[0].abort()
+    outcome, took = _bounded(lambda: session.store(data), 30)
+    assert isinstance(outcome, AssociationFailed), outcome
+    assert took < 5
+    assert not session.is_established

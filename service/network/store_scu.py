@@ -18,6 +18,14 @@ around it:
 * Status categories as PS3.7 Annex C defines them (pynetdicom's ``code_to_category``):
   success and warning mean the peer stored the object; a warning is reported with the
   response.
+* The association's reactor held between C-STOREs.  pynetdicom's association thread takes
+  every DIMSE message off the queue while it runs, and ``send_c_store`` pauses it only for its
+  own exchange: a response that arrives in the instant between the two (a fast peer on the
+  same machine, one C-STORE in a few hundred) is taken by the thread, logged as an unexpected
+  message and dropped, and the C-STORE then waits its whole DIMSE timeout for it (then it is
+  sent again).  The node's association only sends C-STOREs and waits for their responses, so
+  its reactor is kept paused for as long as it is used (:class:`_HeldCheckpoint`) and let go
+  for the release.
 """
 
 from __future__ import annotations
@@ -102,6 +110,26 @@ class StoreResponse:
         return self.category == STATUS_WARNING
 
 
+class _HeldCheckpoint(threading.Event):
+    """pynetdicom's reactor checkpoint (``Association._reactor_checkpoint``, an Event the
+    association thread waits on before each turn), kept cleared while ``held``: the thread
+    stays paused between C-STOREs instead of running (and taking the next response) as soon as
+    ``send_c_store`` sets it again."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.held = True
+
+    def set(self) -> None:
+        if not self.held:
+            super().set()
+
+    def let_go(self) -> None:
+        """Back to pynetdicom's own use (before the release, or ending the association)."""
+        self.held = False
+        super().set()
+
+
 class _Watchdog:
     """Ends the association of a :class:`StoreSession` when the step in progress runs past
     its deadline: shuts its connection down, which ends any read or write pynetdicom's threads
@@ -161,6 +189,7 @@ class StoreSession:
         self.where = where
         self._connected = False
         self._ended = False
+        self._checkpoint: _HeldCheckpoint | None = None
         self._watchdog = _Watchdog(self)
 
     @classmethod
@@ -218,6 +247,7 @@ class StoreSession:
             raise AssociationFailed(f"cannot associate with {where}: {exc}") from None
         session._assoc = assoc
         if assoc.is_established:
+            session._checkpoint = assoc._reactor_checkpoint = _HeldCheckpoint()
             return session
         session._end()
         if session._watchdog.fired:
@@ -265,9 +295,17 @@ class StoreSession:
         then closed) and ValueError when no accepted context fits the object."""
         if not self.is_established:
             raise AssociationFailed(f"the association with {self.where} is no longer established")
+        if self._assoc.acse.is_aborted() or not self._assoc.dul.is_alive():
+            # the reactor is held between C-STOREs (see the module's notes), so an A-ABORT
+            # or a closed connection that came in meanwhile is looked for here
+            self._assoc.is_aborted = True
+            self._end()
+            raise AssociationFailed(f"{self.where} aborted the association")
         ds = pydicom.dcmread(io.BytesIO(data))
         limit = self.timeouts.dimse + DEADLINE_SLACK
         with self._watchdog.step(limit, "C-STORE"):
+            while not self._assoc.dimse.msg_queue.empty():
+                self._assoc.dimse.msg_queue.get_nowait()
             status = self._assoc.send_c_store(ds)
         if "Status" in status:
             comment = status.get("ErrorComment")
@@ -288,10 +326,15 @@ class StoreSession:
         """A-RELEASE (within the ACSE timeout in total; aborted after it)."""
         try:
             if self.is_established:
+                self._let_go()
                 with self._watchdog.step(self.timeouts.acse + DEADLINE_SLACK, "release"):
                     self._assoc.release()
         finally:
             self._end()
+
+    def _let_go(self) -> None:
+        if self._checkpoint is not None:
+            self._checkpoint.let_go()
 
     def cut(self) -> None:
         """End the association now: shut its connection down (any thread may call this; the
@@ -310,6 +353,7 @@ class StoreSession:
         """Make sure nothing of the association is left (threads, connection)."""
         self._ended = True
         self._watchdog.close()
+        self._let_go()
         assoc = self._assoc
         if (
             assoc is not None

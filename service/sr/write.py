@@ -96,7 +96,9 @@ DEVICE_UID = derive_uid("diastolic-sr", "device observer")
 #: pressure), readings of ambiguous rules as items of their own.  Layout 4: the reasoning holds
 #: only the decision steps (no sentence per criterion), the pathway refers to the reasoning
 #: step that chose it instead of repeating it, special situations in their clinical spelling.
-DOCUMENT_LAYOUT = "layout-4"
+#: Layout 5: counts agree in number ("1 of 1 available criterion"), a reasoning step no longer
+#: repeats the reading it rests on.
+DOCUMENT_LAYOUT = "layout-5"
 
 
 _ORIGIN_WORDS: dict[Origin, str] = {

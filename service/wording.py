@@ -267,6 +267,16 @@ def supporting_count(met: int, available: int) -> str:
     return f"{criteria} {verb_for(met, 'supports', 'support')} elevated filling pressure"
 
 
+def borderline_words(measures: Iterable[Measure]) -> str:
+    """ "Borderline: Average E/e′." (each measure once, by its clinical name), or "" when the
+    result is not borderline.  The impression and the table say this much; the sentence saying
+    how near the cut-off the value is and what the result would be on its other side is said
+    once, in the result's borderline item (the summary's headline panel, the JSON's
+    ``borderline``)."""
+    names = list(dict.fromkeys(measure_name(m) for m in measures))
+    return f"Borderline: {', '.join(names)}." if names else ""
+
+
 def reading_sentence(text: str) -> str:
     """A reading of an ambiguous rule, as a reader meets it."""
     return READING_PREFIX + text

@@ -30,8 +30,9 @@ from pydicom import dcmread
 
 from service.cli import main
 from service.demo.scenario import SITE_MAPPING, write_demo_files
-from service.model import CAUTION, FillingPressure, Grade, Outcome
+from service.model import CAUTION, FillingPressure, Grade, Guideline, Outcome
 from service.sr import codes as C
+from service.wording import GUIDELINE_NAMES
 
 #: outcome case -> (demo file, extra grade options, the outcome token it must give)
 CASES: dict[str, tuple[str, tuple[str, ...], Outcome]] = {
@@ -180,8 +181,14 @@ def test_impression_table_json_and_pdf_headline_agree(case: str) -> None:
     # the one conclusion sentence: JSON, table, SR impression (after the guideline), PDF
     conclusion = j["conclusion"]
     assert row[-1].startswith(conclusion)  # the last column (after the result path)
+    # the impression is the table's conclusion column word for word (borderline measures
+    # included), then each compared guideline's JSON conclusion
     [impression] = _items(g.sr, "Impression")
-    assert impression.TextValue.startswith(f"ASE/EACVI 2016: {conclusion}")
+    compared = "".join(
+        f" For comparison, {GUIDELINE_NAMES[Guideline(o['guideline'])]}: {o['conclusion']}"
+        for o in j.get("compared", ())
+    )
+    assert impression.TextValue == f"ASE/EACVI 2016: {row[-1]}{compared}"
     assert conclusion in _flat(g.pdf_text())
     assert conclusion in g.dsrdump()
     # the coded items say the same as the tokens
@@ -417,6 +424,24 @@ def test_borderline_names_the_measure_clinically() -> None:
     assert row[-1].endswith("Borderline: Average E/e′.")
     assert "e_e_prime_average" not in g.table
     assert "Borderline:" in _flat(g.pdf_text())
+
+
+@pytest.mark.external
+def test_borderline_flag_is_said_once() -> None:
+    # the impression (like the table) names the measure; the sentence saying how near the
+    # cut-off the value is and what the result would be across it is the borderline item's,
+    # once in the SR (DCMTK dsrdump) and once under the summary's headline (pdftotext)
+    g = graded("borderline")
+    [flag] = g.json["borderline"]
+    sentence = flag["text"]
+    assert sentence.startswith("Average E/e′ ") and "on the other side of it" in sentence
+    [item] = _items(g.sr, "Borderline criterion")
+    assert item.TextValue == sentence
+    [impression] = _items(g.sr, "Impression")
+    assert "Borderline: Average E/e′." in impression.TextValue
+    assert "on the other side" not in impression.TextValue
+    assert g.dsrdump().count(sentence) == 1
+    assert _flat(g.pdf_text()).count(_flat(f"Borderline: {sentence}")) == 1
 
 
 def test_vocabulary_document_lists_every_token_and_reading() -> None:

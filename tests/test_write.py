@@ -496,7 +496,10 @@ def test_borderline_flag_and_supporting_finding():
     (finding,) = find(ds, C.SUPPORTING_FINDING)
     assert finding.TextValue.startswith("Valsalva:")
     impression = find(ds, C.IMPRESSION)[0].TextValue
-    assert "Borderline: Average E/e′ 13.4 is within 10 %" in impression
+    # the impression names the measure; the flag's sentence is said once, in its own item
+    assert impression.endswith("Borderline: Average E/e′.")
+    assert detail.TextValue.startswith("Average E/e′ 13.4 is within 10 %")
+    assert detail.TextValue not in impression
     assert "e_e_prime_average" not in impression  # plain words for the reader, no field names
     # a result without flags says No (373067005 SCT, PS3.16 CID 230)
     (no_flag,) = find(build("normal"), C.BORDERLINE)

@@ -20,7 +20,7 @@ from service.model import CAUTION, Measure
 from service.options import add_grading_arguments, grade_options_from_args
 from service.pipeline import GradeOptions, GradeStatus, StudyOutcome, grade_study
 from service.sr.encode import file_bytes
-from service.wording import headline, measure_name
+from service.wording import borderline_words, headline
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -546,10 +546,7 @@ def table_note(row: dict) -> str:
         return row.get("reason") or ""
     note = row["conclusion"]
     if row.get("borderline"):
-        names = ", ".join(
-            dict.fromkeys(measure_name(Measure(b["measure"])) for b in row["borderline"])
-        )
-        note += f" Borderline: {names}."
+        note += " " + borderline_words(Measure(b["measure"]) for b in row["borderline"])
     return note
 
 

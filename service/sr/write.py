@@ -77,6 +77,7 @@ from service.sr.identity import derive_uid, is_valid_uid
 from service.wording import (
     GRADE_WORDS,
     GUIDELINE_NAMES,
+    borderline_words,
     headline,
     reading_sentence,
 )
@@ -97,7 +98,8 @@ DEVICE_UID = derive_uid("diastolic-sr", "device observer")
 #: only the decision steps (no sentence per criterion), the pathway refers to the reasoning
 #: step that chose it instead of repeating it, special situations in their clinical spelling.
 #: Layout 5: counts agree in number ("1 of 1 available criterion"), a reasoning step no longer
-#: repeats the reading it rests on.
+#: repeats the reading it rests on, the impression names a borderline measure and leaves the
+#: flag's sentence to the borderline item.
 DOCUMENT_LAYOUT = "layout-5"
 
 
@@ -122,12 +124,13 @@ def grade_words(grade: Grade) -> str:
 
 def summary_text(assessments: AssessmentSet) -> str:
     """The impression: the guideline and the conclusion (:func:`service.wording.headline`, the
-    same sentence as the summary's headline, the table and the JSON), then any borderline
-    flag, then the other guidelines' results."""
+    same sentence as the summary's headline, the table and the JSON), then the measures a
+    borderline flag names (the flag itself is said once, in the "Borderline criterion" item),
+    then the other guidelines' results."""
     p = assessments.primary
     text = f"{GUIDELINE_NAMES[p.guideline]}: {headline(p)}"
     if p.borderline:
-        text += " Borderline: " + " ".join(f.text for f in p.borderline)
+        text += " " + borderline_words(f.measure for f in p.borderline)
     for o in assessments.others:
         text += f" For comparison, {GUIDELINE_NAMES[o.guideline]}: {headline(o)}"
     return text

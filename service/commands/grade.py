@@ -512,7 +512,7 @@ def outcome_row(
         },
         criteria=[c.model_dump(mode="json") for c in a.criteria],
         reasoning=list(a.reasoning),
-        notes=list(a.notes) + list(m.notes),
+        notes=list(_context_notes(outcome)) + list(a.notes) + list(m.notes),
         excluded=[e.model_dump(mode="json") for e in m.excluded],
         output=output,
         result_uid=outcome.result_uid,
@@ -532,6 +532,11 @@ def outcome_row(
         ]
         row["disagreements"] = list(outcome.assessments.disagreements)
     return row
+
+
+def _context_notes(outcome: StudyOutcome) -> tuple[str, ...]:
+    """What holds for the study whichever guideline is applied, once."""
+    return () if outcome.assessments is None else outcome.assessments.context_notes
 
 
 def _input_cell(row: dict) -> str:

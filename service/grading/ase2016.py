@@ -173,6 +173,7 @@ def _assess(
         criteria=tuple(trace.criteria),
         reasoning=tuple(trace.reasoning),
         notes=tuple(trace.notes),
+        context_notes=tuple(trace.context_notes),
         readings=tuple(trace.readings),
     )
 

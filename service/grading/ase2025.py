@@ -144,6 +144,7 @@ def _assess(measurements: Measurements, context: Context, opts: Ase2025Options) 
         criteria=tuple(trace.criteria),
         reasoning=tuple(trace.reasoning),
         notes=tuple(trace.notes),
+        context_notes=tuple(trace.context_notes),
         readings=tuple(trace.readings),
     )
 

@@ -123,6 +123,7 @@ def _result(
         criteria=tuple(trace.criteria),
         reasoning=tuple(trace.reasoning),
         notes=tuple(trace.notes),
+        context_notes=tuple(trace.context_notes),
         readings=tuple(trace.readings),
     )
 

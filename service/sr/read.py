@@ -397,7 +397,10 @@ def _datetime(date: str, time: str) -> str:
     return f"{date}{whole}.{frac}"
 
 
-def _created(ds: Dataset) -> str:
+def created_at(ds: Dataset) -> str:
+    """When a document was made, as "YYYYMMDDHHMMSS.ffffff" (sorts as text): its Content Date
+    and Time (SR Document General module, PS3.3 C.17.2), else its Instance Creation Date and
+    Time (SOP Common module, PS3.3 C.12.1); "" when it carries neither in a valid form."""
     for d, t in (("ContentDate", "ContentTime"), ("InstanceCreationDate", "InstanceCreationTime")):
         value = _datetime(_text(ds.get(d)), _text(ds.get(t)))
         if value:
@@ -496,7 +499,7 @@ def _read(ds: Dataset) -> SourceDocument:
         warnings.append(f"patient age unreadable ({type(exc).__name__}); ignored")
         age = None
     try:
-        created = _created(ds)
+        created = created_at(ds)
     except Exception as exc:
         warnings.append(f"content date/time unreadable ({type(exc).__name__}); ignored")
         created = ""

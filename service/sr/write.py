@@ -102,7 +102,8 @@ DEVICE_UID = derive_uid("diastolic-sr", "device observer")
 #: Layout 5: counts agree in number ("1 of 1 available criterion"), a reasoning step no longer
 #: repeats the reading it rests on, the impression names a borderline measure and leaves the
 #: flag's sentence to the borderline item, a note that holds for every guideline (the rhythm
-#: assumed) is a study note said once instead of a note in each assessment.
+#: assumed) is a study note said once instead of a note in each assessment, and a study's
+#: sources are in one order offline and on the node (service.pipeline.study_order).
 DOCUMENT_LAYOUT = "layout-5"
 
 

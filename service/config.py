@@ -90,7 +90,9 @@ class AccessConfig(Section):
     #: calling AE titles allowed to associate; empty allows any
     allowed_calling_aes: list[AETitle] = Field(default_factory=list)
     #: accept image storage SOP classes and discard the objects (so a rule that forwards a
-    #: whole study does not fail); SR objects are always kept
+    #: whole study does not fail); SR objects are always kept.  Encapsulated PDF Storage is
+    #: accepted either way: the node's own summary is kept as ignored; another PDF is refused
+    #: (0x0122) when this is off and discarded when it is on
     accept_images: bool = False
     #: address pinning: calling AE title -> addresses or networks (CIDR) it must come from;
     #: a pinned AE calling from anywhere else is rejected like an unknown AE

@@ -48,6 +48,8 @@ def test_sop_classes_and_transfer_syntaxes_as_dicom_names_them(text):
         assert f"| SCP | {name} | `{uid}` |" in text
     assert UID("1.2.840.10008.5.1.4.1.1.104.1").name == "Encapsulated PDF Storage"  # PS3.6
     assert "| SCU | Encapsulated PDF Storage (summary) | `1.2.840.10008.5.1.4.1.1.104.1` |" in text
+    # as SCP too, whatever the configuration: the node's own summary may come back
+    assert "| SCP | Encapsulated PDF Storage (the node's own summary coming back;" in text
     assert "| SCU | Comprehensive SR Storage (result) |" in text
     assert "| SCP | Verification | `1.2.840.10008.1.1` |" in text
     for ts in SR_TRANSFER_SYNTAXES:

@@ -2,8 +2,10 @@
 
 * Verification (C-ECHO) and C-STORE of the SR storage SOP classes, in implicit and explicit VR
   little endian and deflated explicit VR little endian.
-* Optionally every image storage class too, accepted and discarded (``access.accept_images``);
-  a summary PDF the node wrote itself is kept and recorded as ignored, like an own result SR.
+* Encapsulated PDF Storage always, so that a PACS forwarding the node's own summary PDF back
+  is answered success: a summary this node wrote is kept and recorded as ignored, like an own
+  result SR; any other PDF is refused (0x0122) unless ``access.accept_images`` is on.
+* Optionally every image storage class too, accepted and discarded (``access.accept_images``).
 * The called AE title must match ours (pynetdicom rejects others); calling AE titles may be
   limited to an allow-list, and an AE title may be pinned to addresses: both are checked on the
   association request against the configuration in force, so a reload (SIGHUP) applies to the
@@ -80,6 +82,12 @@ SUCCESS = 0x0000
 OUT_OF_RESOURCES = 0xA700
 DOES_NOT_MATCH_SOP_CLASS = 0xA900
 CANNOT_UNDERSTAND = 0xC000
+#: Refused: SOP Class not supported, a general status of the C-STORE response (PS3.7 Annex C;
+#: PS3.4 B.2.3 Table B.2-1 leaves general statuses to PS3.7): an Encapsulated PDF other than
+#: the node's own summary, with ``access.accept_images`` off
+SOP_CLASS_NOT_SUPPORTED = 0x0122
+#: the Error Comment (0000,0902) sent with it: VR LO, at most 64 characters (PS3.5 6.2)
+ONLY_OWN_SUMMARIES = "Only summary PDFs written by this node are accepted"
 
 _UID = re.compile(r"^[0-9]+(\.[0-9]+)*$")
 _LE_SYNTAXES = (ExplicitVRLittleEndian, ImplicitVRLittleEndian)
@@ -239,6 +247,9 @@ class Listener:
         ae.add_supported_context(VERIFICATION, SR_TRANSFER_SYNTAXES)
         for uid in SR_STORAGE_CLASSES:
             ae.add_supported_context(uid, SR_TRANSFER_SYNTAXES)
+        # the class of the node's own summaries, whatever the configuration: one sent back is
+        # answered success (_on_store); a rule retrying a refused association never ends
+        ae.add_supported_context(EncapsulatedPDFStorage, SR_TRANSFER_SYNTAXES)
         if cfg.access.accept_images:
             for uid in image_storage_classes():
                 ae.add_supported_context(uid, ALL_TRANSFER_SYNTAXES)
@@ -400,9 +411,9 @@ class Listener:
         return SUCCESS
 
     def _keep_own_summary(self, ev: Any, calling: str, affected: str) -> int | None:
-        """A summary PDF this node (any version) wrote, sent back to it (``accept_images``
-        accepts Encapsulated PDF Storage): kept and recorded as ignored, like an own result
-        SR, so that ``queue`` lists it.  None for any other PDF (discarded as before)."""
+        """A summary PDF this node (any version) wrote, sent back to it: kept and recorded as
+        ignored, like an own result SR, so that ``queue`` lists it, whatever the configuration.
+        None for any other PDF (refused, or discarded with ``accept_images``)."""
         syntax = str(ev.context.transfer_syntax)
         try:
             # little endian: the identifying attributes only; otherwise pynetdicom decodes it
@@ -436,6 +447,20 @@ class Listener:
             )
         return self._object_ignored(calling, sop_uid, study_uid, own)
 
+    def _refuse_document(self, calling: str, affected: str) -> Dataset:
+        """A PDF that is not this node's own summary, with ``access.accept_images`` off: a
+        failure the sender sees, with the reason in the Error Comment."""
+        self._object_rejected(
+            calling,
+            affected,
+            SOP_CLASS_NOT_SUPPORTED,
+            "an Encapsulated PDF that this node did not write (access.accept_images is off)",
+        )
+        status = Dataset()
+        status.Status = SOP_CLASS_NOT_SUPPORTED
+        status.ErrorComment = ONLY_OWN_SUMMARIES
+        return status
+
     def _on_echo(self, ev: Any) -> int:
         return SUCCESS
 
@@ -448,6 +473,8 @@ class Listener:
                 kept = self._keep_own_summary(ev, calling, affected)
                 if kept is not None:
                     return kept
+                if not self.config.access.accept_images:
+                    return self._refuse_document(calling, affected)
             # accept_images: the object is acknowledged and discarded, by design
             self.metrics.objects.labels(outcome="discarded").inc()
             log.info("discarded non-SR object of class %s from %s", context_class, calling)

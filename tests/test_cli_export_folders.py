@@ -311,6 +311,21 @@ def test_the_order_sources_are_given_in_does_not_change_the_result():
     assert len(made) == 1
 
 
+def test_files_set_aside_are_listed_in_the_order_given(tmp_path: Path):
+    # the study is graded in its own order (the later SR first here would be wrong: b.dcm was
+    # made first), but the rows about files keep the order the files were given in
+    from netutil import simple_sr
+
+    study = "1.2.826.0.1.3680043.10.1.77"
+    later = simple_sr(study, sop_uid="1.2.826.0.1.3680043.10.1.77.2", created="20260101130000")
+    earlier = simple_sr(study, sop_uid="1.2.826.0.1.3680043.10.1.77.1", created="20260101120000")
+    a = _save(later, tmp_path / "in" / "a.dcm")
+    b = _save(earlier, tmp_path / "in" / "b.dcm")
+    rows = json_rows(run_cli("grade", tmp_path / "in", "--json"))
+    assert [r["input"] for r in rows] == [str(a), str(b)]
+    assert all(r["status"] == "rejected" for r in rows)
+
+
 #: what must differ between two results of the same study made at different moments: the
 #: date and time each was made (SOP Common: Instance Creation Date/Time, PS3.3 C.12.1; SR
 #: Document General: Content Date/Time, PS3.3 C.17.2).  Nothing else may.

@@ -377,7 +377,9 @@ def _grade_files(unit: _Unit, job: _Job) -> list[dict]:
         return rows
     datasets = [ds for _, ds in loaded]
     outcome = grade_study(datasets, options, table=job.table)
-    aside = dict(outcome.set_aside)
+    # the files set aside in the order they were given (the study is graded in its own order)
+    given = {_sop_uid(ds): i for i, (_, ds) in enumerate(loaded)}
+    aside = dict(sorted(outcome.set_aside, key=lambda item: given.get(item[0], -1)))
     by_uid = {_sop_uid(ds): path for path, ds in loaded}
     used = [p for p, ds in loaded if _sop_uid(ds) not in aside]
     if outcome.status is GradeStatus.rejected and (not used or len(loaded) == 1):

@@ -1,5 +1,6 @@
 """Delivery of result SRs (and their summary PDFs): C-STORE (SCU) to the configured
-destinations, over TLS where a destination asks for it, and the results folder.
+destinations, over TLS where a destination asks for it, STOW-RS to a destination that is a
+DICOMweb URL (:mod:`service.dicomweb.stow`), and the results folder.
 
 One thread takes due deliveries from the journal's outbox, groups them by destination, opens
 one association per destination and sends each result, as it is encoded in the spool; results
@@ -25,7 +26,7 @@ from pydicom.filebase import DicomBytesIO
 from pydicom.filewriter import write_dataset
 from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
 
-from service.config import Config, DestinationConfig
+from service.config import Config, DestinationConfig, DicomwebDestinationConfig
 from service.network.store_association import (
     AssociationFailed,
     CannotConnect,
@@ -113,7 +114,11 @@ class Sender:
             if name == FOLDER_DESTINATION:
                 self._to_folder(items)
             elif name in self.config.destinations:
-                self._to_peer(self.config.destinations[name], items)
+                dest = self.config.destinations[name]
+                if isinstance(dest, DicomwebDestinationConfig):
+                    self._to_web(dest, items)
+                else:
+                    self._to_peer(dest, items)
             else:
                 for d in items:
                     self.journal.mark_failed(d.id, f'destination "{name}" is no longer configured')
@@ -250,6 +255,25 @@ class Sender:
                 batch = self._readable(more)
         finally:
             assoc.release()
+
+    def _to_web(self, dest: DicomwebDestinationConfig, items: list[DueDelivery]) -> None:
+        """STOW-RS to a DICOMweb destination (:mod:`service.dicomweb.stow`): the result SRs
+        in one request, then the summaries that go with those that arrived."""
+        from service.dicomweb.stow import store_files
+
+        batch = self._readable(items)
+        results = [o for o in batch if o.due.parent_uid is None]
+        companions = [o for o in batch if o.due.parent_uid is not None]
+        for part in (results, companions):
+            ready = [o for o in part if not self._waits_for_parent(o.due, o.kind)]
+            if not ready or self._stop.is_set():
+                continue
+            outcomes = store_files(dest, [o.data for o in ready], config=self.config)
+            for o, outcome in zip(ready, outcomes, strict=True):
+                if outcome.stored:
+                    self._delivered(o.due, dest.url, o.kind)
+                else:
+                    self._failed(o.due, outcome.reason, o.kind)
 
     def _readable(self, items: list[DueDelivery]) -> list[_Outgoing]:
         """The spooled objects of ``items`` with their file meta; an unreadable one fails."""

@@ -167,17 +167,22 @@ class DimseArchive:
                     f"knows the calling AE title {self.config.node.ae_title})"
                 )
             return ArchiveRefused(f"association rejected by {where}{detail}")
-        if assoc.is_aborted:
-            return ArchiveUnavailable(f"association with {where} aborted during set-up")
-        return ArchiveUnavailable(f"cannot connect to {where}: {self._probe()}")
+        # pynetdicom reports a refused connection as an abort too: one plain TCP connect says
+        # which it was
+        why = self._probe()
+        if why is None:
+            return ArchiveUnavailable(
+                f"association with {where} aborted during set-up (or no answer in time)"
+            )
+        return ArchiveUnavailable(f"cannot connect to {where}: {why}")
 
-    def _probe(self) -> str:
-        """Why a connection fails (pynetdicom does not say): one plain TCP connect."""
+    def _probe(self) -> str | None:
+        """Why a connection fails, None when a TCP connection can be made."""
         try:
             with socket.create_connection(
                 (self.archive.host, self.archive.port), timeout=self.config.limits.acse_timeout
             ):
-                return "no association (the peer closed it or did not answer in time)"
+                return None
         except OSError as exc:
             return exc.strerror or str(exc)
 
@@ -193,7 +198,9 @@ class DimseArchive:
             code = int(status.Status) if "Status" in status else None
             if code is None:
                 raise ArchiveUnavailable(
-                    f"{what} at {self.description}: no answer (association aborted or timed out)"
+                    f"{what} at {self.description}: the association was aborted or the archive "
+                    "did not answer in time (an archive that does not let calling AE title "
+                    f"{self.config.node.ae_title} query or retrieve may abort)"
                 )
             if code in PENDING:
                 if identifier is not None:
@@ -301,7 +308,9 @@ class DimseArchive:
         for status, _identifier in responses:
             code = int(status.Status) if "Status" in status else None
             if code is None:
-                raise ArchiveUnavailable(f"{what}: no answer (association aborted or timed out)")
+                raise ArchiveUnavailable(
+                    f"{what}: the association was aborted or the archive did not answer in time"
+                )
             if code in PENDING:
                 continue
             final = (code, status)

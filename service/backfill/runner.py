@@ -99,6 +99,8 @@ class Summary:
     delivery_pending: list[tuple[str, str]] = field(default_factory=list)
     #: studies not finished in this run (stopped, or still waiting for grading)
     left: int = 0
+    #: studies left for a later run by --limit
+    beyond_limit: int = 0
     #: studies skipped, by reason
     skipped_reasons: dict[str, int] = field(default_factory=dict)
     outcomes: dict[str, int] = field(default_factory=dict)
@@ -120,6 +122,7 @@ class Summary:
             "failed": [{"study": s, "reason": r} for s, r in self.failed],
             "delivery_pending": [{"study": s, "reason": r} for s, r in self.delivery_pending],
             "left": self.left,
+            "beyond_limit": self.beyond_limit,
             "outcomes": dict(self.outcomes),
             "elapsed_seconds": round(self.elapsed, 3),
             "note": self.note,
@@ -288,20 +291,29 @@ class Backfill:
         try:
             if self.options.dry_run:
                 self._dry_run()
-            else:
-                with open_roles(
-                    self.config,
-                    move_to=self.move_to,
-                    grade_fn=self._grade_fn,
-                    poll_seconds=min(self._poll, 0.5),
-                ) as roles:
-                    self._run(roles)
+                return self.summary
+            # the archive first: an archive that cannot be queried starts nothing
+            opts = self.options
+            try:
+                studies = self._patiently(
+                    lambda: self.archive.find_studies(opts.since, opts.until), "query"
+                )
+            except Stopped:
+                self.summary.state = RunState.interrupted.value
+                return self.summary
+            with open_roles(
+                self.config,
+                move_to=self.move_to,
+                grade_fn=self._grade_fn,
+                poll_seconds=min(self._poll, 0.5),
+            ) as roles:
+                self._run(roles, studies)
         finally:
             self.summary.elapsed = time.monotonic() - self._started
             self.progress.stop()
         return self.summary
 
-    def _run(self, roles: Roles) -> None:
+    def _run(self, roles: Roles, studies: list[ArchivedStudy]) -> None:
         self.roles = roles
         self.log = BackfillLog(roles.journal)
         opts = self.options
@@ -312,15 +324,12 @@ class Backfill:
         )
         state = RunState.finished
         try:
-            studies = self._patiently(
-                lambda: self.archive.find_studies(opts.since, opts.until), "query"
-            )
             self.summary.found = len(studies)
             done = self.log.done_under(self.rules)
             todo = [s for s in studies if s.study_uid not in done]
             self._skip(len(studies) - len(todo), "already graded under the same rules")
             if opts.limit is not None and len(todo) > opts.limit:
-                self.summary.left += len(todo) - opts.limit
+                self.summary.beyond_limit = len(todo) - opts.limit
                 todo = todo[: opts.limit]
             self.summary.to_do = len(todo)
             self.log.found(run_id, self.archive.description, [s.study_uid for s in todo])
@@ -661,7 +670,7 @@ class Backfill:
             todo = [s for s in studies if s.study_uid not in done]
             self._skip(len(studies) - len(todo), "already graded under the same rules")
             if opts.limit is not None and len(todo) > opts.limit:
-                self.summary.left = len(todo) - opts.limit
+                self.summary.beyond_limit = len(todo) - opts.limit
                 todo = todo[: opts.limit]
             self.summary.to_do = len(todo)
             self.progress.start(len(todo), f"dry run against {self.archive.description}")

@@ -253,8 +253,8 @@ def summary_text(summary: Any, *, dry_run: bool = False) -> str:
         lines.append(f"  already graded (skipped)     {s.skipped:>6}")
         lines.append(f"  to retrieve and grade        {s.to_do:>6}")
         lines.append(f"  SR objects in them           {s.objects:>6}")
-        if s.left:
-            lines.append(f"  beyond --limit               {s.left:>6}")
+        if s.beyond_limit:
+            lines.append(f"  beyond --limit               {s.beyond_limit:>6}")
         for uid, reason in s.failed:
             lines.append(f"    {uid}: {reason}")
         return "\n".join(lines)
@@ -274,7 +274,9 @@ def summary_text(summary: Any, *, dry_run: bool = False) -> str:
         for uid, reason in s.delivery_pending:
             lines.append(f"    {uid}: {reason}")
     if s.left:
-        lines.append(f"  left for a later run         {s.left:>6}")
+        lines.append(f"  not finished                 {s.left:>6}")
+    if s.beyond_limit:
+        lines.append(f"  beyond --limit (later run)   {s.beyond_limit:>6}")
     lines.append(f"  SR objects retrieved         {s.objects:>6}")
     if s.note:
         lines.append(f"  {s.note}")

@@ -39,10 +39,9 @@ def _put(orthanc, tmp_path, studies):
 
 
 def _journal(data_dir):
-    from service.network.service import journal_path
-    from service.store.journal import Journal
+    from service.store.journal import open_journal
 
-    return Journal(journal_path(data_dir))
+    return open_journal(data_dir)
 
 
 def _cli(*args: str, timeout: float = 240) -> subprocess.CompletedProcess[str]:
@@ -177,11 +176,8 @@ def test_studies_that_go_away_between_query_and_retrieve_fail_with_the_reason(
     journal = _journal(data_dir)
     try:  # nothing half-done: no object of the vanished studies was recorded
         assert {o["study_uid"] for o in journal.objects()} == {kept}
-        from service.backfill.state import BackfillLog
-
-        log = BackfillLog(journal)
-        assert log.study(gone_before_listing)["state"] == "failed"
-        assert log.study(kept)["state"] == "done"
+        assert journal.backfill_study(gone_before_listing)["state"] == "failed"
+        assert journal.backfill_study(kept)["state"] == "done"
     finally:
         journal.close()
 
@@ -273,9 +269,7 @@ def test_ctrl_c_stops_after_the_study_in_hand_and_the_next_run_continues(orthanc
         for uid in uids:  # every study graded exactly once across the two runs
             assert len(journal.results(uid)) == 1, uid
         assert all(o["times_received"] == 1 for o in journal.objects())
-        from service.backfill.state import BackfillLog
-
-        runs = BackfillLog(journal).runs()
+        runs = journal.backfill_runs()
         assert [r["state"] for r in runs[:2]] == ["finished", "interrupted"]
     finally:
         journal.close()

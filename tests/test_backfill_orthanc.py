@@ -61,10 +61,9 @@ def _results_by_study(journal, study_uids):
 
 
 def _journal(data_dir):
-    from service.network.service import journal_path
-    from service.store.journal import Journal
+    from service.store.journal import open_journal
 
-    return Journal(journal_path(data_dir))
+    return open_journal(data_dir)
 
 
 def test_c_find_and_c_get_backfill_grades_each_study_once_and_the_results_land_in_orthanc(
@@ -207,7 +206,7 @@ def test_orthanc_stopped_in_the_middle_then_restarted_the_run_goes_on_to_the_end
 
     def stop_then_start():
         # when two studies are in the journal, the archive goes away for a while
-        from service.network.service import journal_path
+        from service.store.sqlite_journal import journal_path
 
         wait_for(lambda: journal_path(data_dir).exists(), 60)
         journal = _journal(data_dir)
@@ -251,7 +250,7 @@ def test_orthanc_gone_for_good_stops_the_run_and_the_next_run_finishes_it(orthan
     config = node_config(data_dir, forward=[orthanc.source])
 
     def stop_after_first():
-        from service.network.service import journal_path
+        from service.store.sqlite_journal import journal_path
 
         wait_for(lambda: journal_path(data_dir).exists(), 60)
         journal = _journal(data_dir)
@@ -271,11 +270,7 @@ def test_orthanc_gone_for_good_stops_the_run_and_the_next_run_finishes_it(orthan
         orthanc.start()
     journal = _journal(data_dir)
     try:
-        runs = (
-            __import__("service.backfill.state", fromlist=["BackfillLog"])
-            .BackfillLog(journal)
-            .runs()
-        )
+        runs = journal.backfill_runs()
         assert runs[0]["state"] == "stopped"
         done_first = {o["study_uid"] for o in journal.objects()}
         assert 1 <= len(done_first) < 4

@@ -2,7 +2,8 @@
 each study graded and its result delivered by the node's own grading and delivery.
 
 Nothing here grades.  Retrieved objects go through the node's intake
-(:class:`~service.network.listener.ObjectIntake`: checks, durable spool file, journal record),
+(:class:`~service.network.listener.ObjectIntake`: checks, object stored and recorded in the
+journal),
 exactly as objects received by C-STORE; the node's grading and delivery then take the study
 from the journal, with the same settle window, merge rules, result identity, routes, retries
 and failure reasons.  Who grades:
@@ -17,7 +18,7 @@ and failure reasons.  Who grades:
 One study at a time: its SR objects are listed (own results left out), retrieved in full
 into memory (an SR is small), and only then handed to the intake, so a study whose retrieve
 fails half-way records nothing and is tried again by the next run.  Progress is kept in the
-journal's backfill tables (:mod:`service.backfill.state`): a run stopped by Ctrl-C, by an
+journal's backfill tables (:mod:`service.store.backfill_journal`): a run stopped by Ctrl-C, by an
 archive that went away, or by a crash, is continued by the next run with the same arguments;
 studies done under the same rules are skipped.
 """
@@ -47,13 +48,12 @@ from service.archive.model import (
     StudyGone,
 )
 from service.backfill.progress import PlainProgress, Progress
-from service.backfill.state import BackfillLog, RunState
 from service.config import Config
 from service.errors import UserError
 from service.network.listener import Arrival, ObjectIntake, Received
 from service.observability.logs import event
-from service.store.journal import Journal
-from service.store.spool import Spool
+from service.store.backfill_journal import RunState
+from service.store.journal import Journal, open_journal
 
 log = logging.getLogger("diastolic_sr.backfill")
 
@@ -170,7 +170,6 @@ def own_result_series(config: Config, study_uid: str) -> str:
 @dataclass
 class Roles:
     journal: Journal
-    spool: Spool
     intake: ObjectIntake
     #: a node runs on the data directory (its grading and delivery do the work)
     node_running: bool
@@ -195,9 +194,9 @@ def node_running(data_dir: Path) -> bool:
 def open_roles(
     config: Config, *, move_to: str = "", grade_fn: Any = None, poll_seconds: float = 0.5
 ) -> Iterator[Roles]:
-    """The journal, spool and intake of the data directory, with the grading and delivery
-    roles started in this process when no node runs there."""
-    from service.network.service import Node, journal_path, status_path
+    """The journal and intake of the data directory, with the grading and delivery roles
+    started in this process when no node runs there."""
+    from service.network.service import Node, status_path
 
     data_dir = config.data_dir.resolve()
     holder = SimpleNamespace(config=config)
@@ -212,10 +211,9 @@ def open_roles(
                 f"--move-to {move_to}: the node running with data directory {data_dir} has AE "
                 f"title {node_ae}; backfill can only follow objects moved to that node"
             )
-        journal = Journal(journal_path(data_dir))
+        journal = open_journal(data_dir)
         try:
-            spool = Spool(data_dir / "spool")
-            yield Roles(journal, spool, ObjectIntake(holder, journal, spool), True, node_ae)
+            yield Roles(journal, ObjectIntake(holder, journal), True, node_ae)
         finally:
             journal.close()
         return
@@ -228,15 +226,14 @@ def open_roles(
     node = Node(config, listen=False, grade_fn=grade_fn, poll_seconds=poll_seconds)
     node.start()
     try:
-        assert node.journal is not None and node.spool is not None and node.assembler
+        assert node.journal is not None and node.assembler is not None
         intake = ObjectIntake(
             holder,
             node.journal,
-            node.spool,
             on_received=lambda _uid: node.assembler.wake() if node.assembler else None,
             metrics=node.metrics,
         )
-        yield Roles(node.journal, node.spool, intake, False, config.node.ae_title)
+        yield Roles(node.journal, intake, False, config.node.ae_title)
     finally:
         node.stop()
 
@@ -315,9 +312,9 @@ class Backfill:
 
     def _run(self, roles: Roles, studies: list[ArchivedStudy]) -> None:
         self.roles = roles
-        self.log = BackfillLog(roles.journal)
+        self.log = roles.journal
         opts = self.options
-        run_id = self.log.start_run(
+        run_id = self.log.backfill_start_run(
             self.archive.description,
             opts.since.isoformat() if opts.since else "",
             opts.until.isoformat() if opts.until else "",
@@ -325,14 +322,14 @@ class Backfill:
         state = RunState.finished
         try:
             self.summary.found = len(studies)
-            done = self.log.done_under(self.rules)
+            done = self.log.backfill_done_under(self.rules)
             todo = [s for s in studies if s.study_uid not in done]
             self._skip(len(studies) - len(todo), "already graded under the same rules")
             if opts.limit is not None and len(todo) > opts.limit:
                 self.summary.beyond_limit = len(todo) - opts.limit
                 todo = todo[: opts.limit]
             self.summary.to_do = len(todo)
-            self.log.found(run_id, self.archive.description, [s.study_uid for s in todo])
+            self.log.backfill_found(run_id, self.archive.description, [s.study_uid for s in todo])
             self.progress.start(len(todo), f"backfill from {self.archive.description}")
             self._advance()
             self._each(todo)
@@ -349,7 +346,7 @@ class Backfill:
             self._settle_left()
             self.summary.state = state.value
             with contextlib.suppress(Exception):
-                self.log.finish_run(run_id, state, self.summary.as_dict())
+                self.log.backfill_finish_run(run_id, state, self.summary.as_dict())
 
     # -- per study --------------------------------------------------------------------------------
 
@@ -375,17 +372,19 @@ class Backfill:
             i for i in found if i.series_uid != own and journal.result(i.sop_instance_uid) is None
         ]
         if not wanted:
-            self.log.done(uid, outcome="nothing to grade", reason="only results of this node")
+            self.log.backfill_done(
+                uid, outcome="nothing to grade", reason="only results of this node"
+            )
             self._skip(1, "only results of this node", progress=True)
             return
-        row = self.log.study(uid)
+        row = self.log.backfill_study(uid)
         have = {o["sop_instance_uid"] for o in journal.objects(uid)}
         wanted_uids = {i.sop_instance_uid for i in wanted}
         if wanted_uids <= have and row is not None and row["rules"] in ("", self.rules):
             # recorded by an earlier run (stopped before it saw the grading): no retrieve
             current = journal.study(uid)
             generation = int(current["generation"]) if current else 0
-            self.log.retrieved(
+            self.log.backfill_retrieved(
                 uid, rules=self.rules, sources=sorted(wanted_uids), generation=generation
             )
             self._watch[uid] = _Watch(generation)
@@ -477,7 +476,7 @@ class Backfill:
     def _handed_over(self, uid: str, sources: list[str]) -> None:
         current = self.roles.journal.study(uid)
         generation = int(current["generation"]) if current else 0
-        self.log.retrieved(uid, rules=self.rules, sources=sources, generation=generation)
+        self.log.backfill_retrieved(uid, rules=self.rules, sources=sources, generation=generation)
         self._watch[uid] = _Watch(generation)
         event(
             "backfill_retrieved",
@@ -507,13 +506,13 @@ class Backfill:
             result = journal.result(row["result_uid"]) if row["result_uid"] else None
             reason = str(row.get("reason") or "")
             if row["state"] == "failed" and not reason.startswith("delivery to "):
-                self.log.done(uid, outcome="not graded", reason=reason)
+                self.log.backfill_done(uid, outcome="not graded", reason=reason)
                 self.summary.outcomes["not graded"] = self.summary.outcomes.get("not graded", 0) + 1
                 self._fail(uid, f"not graded: {reason}", record=False)
                 del self._watch[uid]
                 continue
             outcome = str((result or {}).get("grade") or (result or {}).get("status") or "graded")
-            self.log.done(uid, outcome=outcome)
+            self.log.backfill_done(uid, outcome=outcome)
             self.summary.graded += 1
             self.summary.outcomes[outcome] = self.summary.outcomes.get(outcome, 0) + 1
             self._done += 1
@@ -587,7 +586,7 @@ class Backfill:
 
     def _fail(self, uid: str, reason: str, *, record: bool = True) -> None:
         if record:
-            self.log.failed(uid, reason)
+            self.log.backfill_failed(uid, reason)
         self.summary.failed.append((uid, reason))
         self._done += 1
         self._advance()
@@ -652,7 +651,7 @@ class Backfill:
     # -- dry run ---------------------------------------------------------------------------------
 
     def _dry_run(self) -> None:
-        from service.network.service import journal_path
+        from service.store.sqlite_journal import journal_path
 
         opts = self.options
         studies = self._patiently(
@@ -662,10 +661,10 @@ class Backfill:
         done: set[str] = set()
         results: Callable[[str], bool] = lambda _uid: False  # noqa: E731
         path = journal_path(self.config.data_dir.resolve())
-        journal = Journal(path) if path.exists() else None
+        journal = open_journal(self.config.data_dir.resolve()) if path.exists() else None
         try:
             if journal is not None:
-                done = BackfillLog(journal).done_under(self.rules)
+                done = journal.backfill_done_under(self.rules)
                 results = lambda uid: journal.result(uid) is not None  # noqa: E731
             todo = [s for s in studies if s.study_uid not in done]
             self._skip(len(studies) - len(todo), "already graded under the same rules")

@@ -53,14 +53,14 @@ def _when(ts: float | None) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
-    from service.network.service import journal_path
-    from service.store.journal import Journal
+    from service.store.journal import open_journal
+    from service.store.sqlite_journal import journal_path
 
     cfg = apply_overrides(load_config(args.config), data_dir=args.data_dir)
     path = journal_path(cfg.data_dir)
     if not path.exists():
         raise UserError(f"no journal at {path} (has the node run with this data directory?)")
-    journal = Journal(path)
+    journal = open_journal(cfg.data_dir)
     try:
         actions: list[str] = []
         for study in args.regrade:
@@ -79,7 +79,7 @@ def run(args: argparse.Namespace) -> int:
                     "retention.days is 0 (keep everything): nothing to purge; set it in the "
                     "configuration and pass --config"
                 )
-            done = purge(journal, cfg.data_dir / "spool", days)
+            done = purge(journal, days)
             actions.append(
                 f"{done.studies} finished stud{'y' if done.studies == 1 else 'ies'} older than "
                 f"{days:g} days purged ({done.files} spooled files)"

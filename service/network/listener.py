@@ -51,7 +51,6 @@ from service.observability.logs import event
 from service.observability.metrics import Metrics
 from service.sr.read import structure_problem
 from service.store.journal import Journal
-from service.store.spool import Spool
 
 log = logging.getLogger("diastolic_sr.listener")
 
@@ -238,16 +237,15 @@ class Received:
 
 
 class ObjectIntake:
-    """The one path of a received object into the node: checks, durable spool file, journal
-    record, then the wake-up of the grading.  The listener uses it for every C-STORE, and
-    ``backfill`` for what it retrieves, so a retrieved object is recorded exactly as a
-    received one."""
+    """The one path of a received object into the node: checks, the object stored and
+    recorded in the journal (durable), then the wake-up of the grading.  The listener uses it
+    for every C-STORE, and ``backfill`` for what it retrieves, so a retrieved object is
+    recorded exactly as a received one."""
 
     def __init__(
         self,
         owner: Any,
         journal: Journal,
-        spool: Spool,
         *,
         on_received: Callable[[str], None] = lambda study_uid: None,
         metrics: Metrics | None = None,
@@ -255,7 +253,6 @@ class ObjectIntake:
         #: ``owner.config`` is the configuration in force (it changes on a reload)
         self._owner = owner
         self.journal = journal
-        self.spool = spool
         self.on_received = on_received
         self.metrics = metrics or Metrics()
 
@@ -299,15 +296,13 @@ class ObjectIntake:
         if problem:
             return self._rejected(calling, affected, DOES_NOT_MATCH_SOP_CLASS, problem)
         try:
-            data = part10_bytes(arrival)
-            path = self.spool.write_object(study_uid, sop_uid, data)
-            self.journal.record_object(
+            self.journal.store_object(
                 sop_instance_uid=sop_uid,
                 study_uid=study_uid,
                 sop_class_uid=sop_class,
                 transfer_syntax=syntax,
                 calling_ae=calling,
-                path=path,
+                data=part10_bytes(arrival),
                 settle_seconds=config.assembly.settle_seconds,
             )
         except Exception as exc:
@@ -363,7 +358,6 @@ class Listener:
         self,
         config: Config,
         journal: Journal,
-        spool: Spool,
         *,
         on_received: Callable[[str], None] = lambda study_uid: None,
         metrics: Metrics | None = None,
@@ -371,12 +365,10 @@ class Listener:
         self.config = config
         self.metrics = metrics or Metrics()
         self.journal = journal
-        self.spool = spool
         self.on_received = on_received
         self.intake = ObjectIntake(
             self,
             journal,
-            spool,
             on_received=lambda uid: self.on_received(uid),
             metrics=self.metrics,
         )

@@ -1,0 +1,89 @@
+"""The SQLite journal's schema, one list of statements per version.
+
+The node creates the schema and moves an older journal forward: each version's statements run
+once, in one transaction with the new version number in ``meta``.  A change appends a version
+(never edits one that has shipped); the PostgreSQL schema gets the same version with its own
+types.
+"""
+
+from __future__ import annotations
+
+from service.store.backfill_journal import SQLITE_DDL as BACKFILL_DDL
+
+#: statements of each schema version, oldest first (version n is ``MIGRATIONS[n - 1]``)
+MIGRATIONS: list[list[str]] = [
+    # 1: objects, studies, results, deliveries, companions
+    [
+        """CREATE TABLE IF NOT EXISTS objects (
+            sop_instance_uid TEXT PRIMARY KEY,
+            study_uid TEXT NOT NULL,
+            sop_class_uid TEXT NOT NULL,
+            transfer_syntax TEXT NOT NULL,
+            calling_ae TEXT NOT NULL,
+            path TEXT NOT NULL,
+            state TEXT NOT NULL,
+            received_at REAL NOT NULL,
+            times_received INTEGER NOT NULL DEFAULT 1,
+            note TEXT NOT NULL DEFAULT ''  -- why the grading set it aside, if it did
+        )""",
+        "CREATE INDEX IF NOT EXISTS objects_study ON objects (study_uid)",
+        """CREATE TABLE IF NOT EXISTS studies (
+            study_uid TEXT PRIMARY KEY,
+            calling_ae TEXT NOT NULL,
+            state TEXT NOT NULL,
+            reason TEXT NOT NULL DEFAULT '',
+            first_received_at REAL NOT NULL,
+            last_received_at REAL NOT NULL,
+            due_at REAL NOT NULL,
+            generation INTEGER NOT NULL DEFAULT 1,
+            result_uid TEXT,
+            updated_at REAL NOT NULL
+        )""",
+        "CREATE INDEX IF NOT EXISTS studies_state ON studies (state, due_at)",
+        """CREATE TABLE IF NOT EXISTS results (
+            result_uid TEXT PRIMARY KEY,
+            study_uid TEXT NOT NULL,
+            series_uid TEXT NOT NULL,
+            sop_class_uid TEXT NOT NULL,
+            path TEXT NOT NULL,
+            status TEXT NOT NULL,
+            guideline TEXT,
+            grade TEXT,
+            filling_pressure TEXT,
+            sources TEXT NOT NULL,
+            predecessors TEXT NOT NULL,
+            created_at REAL NOT NULL
+        )""",
+        "CREATE INDEX IF NOT EXISTS results_study ON results (study_uid, created_at)",
+        """CREATE TABLE IF NOT EXISTS deliveries (
+            id INTEGER PRIMARY KEY AUTOINCREMENT,
+            result_uid TEXT NOT NULL,
+            destination TEXT NOT NULL,
+            target TEXT NOT NULL,
+            state TEXT NOT NULL,
+            attempts INTEGER NOT NULL DEFAULT 0,
+            next_attempt_at REAL NOT NULL,
+            last_error TEXT NOT NULL DEFAULT '',
+            created_at REAL NOT NULL,
+            updated_at REAL NOT NULL,
+            delivered_at REAL,
+            UNIQUE (result_uid, destination)
+        )""",
+        "CREATE INDEX IF NOT EXISTS deliveries_due ON deliveries (state, next_attempt_at)",
+        # objects that go with a result SR (the one-page summary PDF): delivered like it, and
+        # part of its study's delivery state
+        """CREATE TABLE IF NOT EXISTS companions (
+            result_uid TEXT NOT NULL,
+            companion_uid TEXT NOT NULL,
+            PRIMARY KEY (result_uid, companion_uid)
+        )""",
+        "CREATE INDEX IF NOT EXISTS companions_companion ON companions (companion_uid)",
+    ],
+    # 2: what backfill keeps between runs (service/store/backfill_journal.py)
+    BACKFILL_DDL,
+]
+
+#: the version this program writes
+SCHEMA_VERSION = len(MIGRATIONS)
+
+META = "CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL)"

@@ -23,6 +23,7 @@ installs in /etc/orthanc):
 
 from __future__ import annotations
 
+import base64
 import json
 import os
 import signal
@@ -62,8 +63,12 @@ class Orthanc:
         ae_title: str = ORTHANC_AE,
         modalities: dict[str, tuple[str, int]] | None = None,
         extra: dict[str, Any] | None = None,
+        user: tuple[str, str] | None = None,
     ) -> None:
         self.root = Path(root)
+        #: (user name, password) of HTTP basic authentication on its REST API and DICOMweb;
+        #: None: no authentication (loopback only)
+        self.user = user
         self.ae_title = ae_title
         self.dicom_port = free_port()
         self.http_port = free_port()
@@ -86,7 +91,8 @@ class Orthanc:
             "DicomPort": self.dicom_port,
             "HttpPort": self.http_port,
             "RemoteAccessAllowed": False,
-            "AuthenticationEnabled": False,
+            "AuthenticationEnabled": self.user is not None,
+            "RegisteredUsers": dict([self.user]) if self.user else {},
             "HttpServerEnabled": True,
             "DicomServerEnabled": True,
             "Plugins": [DICOMWEB_PLUGIN],
@@ -214,6 +220,9 @@ class Orthanc:
             else:
                 data = json.dumps(body).encode()
                 headers["Content-Type"] = "application/json"
+        if self.user is not None:
+            token = base64.b64encode(f"{self.user[0]}:{self.user[1]}".encode()).decode()
+            headers["Authorization"] = f"Basic {token}"
         req = urllib.request.Request(self.url + path, data=data, method=method, headers=headers)
         with urllib.request.urlopen(req, timeout=timeout) as resp:
             raw = resp.read()

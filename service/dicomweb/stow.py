@@ -16,6 +16,7 @@ from __future__ import annotations
 import io
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import pydicom
 import requests
@@ -50,42 +51,60 @@ def store_files(
     config: Config | None = None,
 ) -> list[StowOutcome]:
     """STOW-RS of ``files`` (Part 10 bytes) to ``destination``; one outcome per file, in
-    order.  Never raises for a failure of the peer or of the network."""
+    order.  Never raises for a failure of the peer or of the network.
+
+    The files go in one request.  A server that refuses the request as a whole (HTTP 4xx
+    without a response data set: Orthanc answers 400 when one object of the request is
+    unacceptable) is asked again one file per request, so that one bad object does not hold
+    back the others."""
     where = f"STOW-RS to {destination.url}"
-    datasets: list[Dataset] = []
-    outcomes: dict[int, StowOutcome] = {}
+    outcomes: list[StowOutcome | None] = [None] * len(files)
+    readable: list[tuple[int, Dataset]] = []
     for i, data in enumerate(files):
         try:
-            datasets.append(pydicom.dcmread(io.BytesIO(data)))
+            readable.append((i, pydicom.dcmread(io.BytesIO(data))))
         except Exception as exc:
             outcomes[i] = StowOutcome("", False, f"spooled object unreadable: {exc}")
-    uids = [str(ds.SOPInstanceUID) for ds in datasets]
-    if datasets:
-        try:
-            response = client_for(destination, config).store_instances(datasets)
-        except requests.HTTPError as exc:
-            response = _response_dataset(exc.response)
-            if response is None:
-                failed = http_failure(exc, where)
-                return _fill(files, outcomes, uids, lambda _uid: StowOutcome(_uid, False, failed))
-        except Exception as exc:
+    if readable:
+        client = client_for(destination, config)
+        batch = _store(client, [ds for _, ds in readable], where)
+        if batch.whole_request_refused and len(readable) > 1:
+            for i, ds in readable:
+                outcomes[i] = _store(client, [ds], where).outcomes[0]
+        else:
+            for (i, _ds), outcome in zip(readable, batch.outcomes, strict=True):
+                outcomes[i] = outcome
+    return [o for o in outcomes if o is not None]
+
+
+class _Batch:
+    def __init__(self, outcomes: list[StowOutcome], whole_request_refused: bool = False):
+        self.outcomes = outcomes
+        self.whole_request_refused = whole_request_refused
+
+
+def _store(client: Any, datasets: list[Dataset], where: str) -> _Batch:
+    """One STOW-RS request; an outcome per data set."""
+    uids = [str(ds.get("SOPInstanceUID", "") or "") for ds in datasets]
+    try:
+        response = client.store_instances(datasets)
+    except requests.HTTPError as exc:
+        response = _response_dataset(exc.response)
+        if response is None:
             failed = http_failure(exc, where)
-            return _fill(files, outcomes, uids, lambda _uid: StowOutcome(_uid, False, failed))
-        by_uid = _read_response(response, where)
-        return _fill(
-            files,
-            outcomes,
-            uids,
-            lambda uid: (
-                by_uid.get(uid) or StowOutcome(uid, False, f"{where}: instance not in the response")
-            ),
-        )
-    return [outcomes[i] for i in range(len(files))]
-
-
-def _fill(files, outcomes, uids, make) -> list[StowOutcome]:  # type: ignore[no-untyped-def]
-    it = iter(uids)
-    return [outcomes[i] if i in outcomes else make(next(it)) for i in range(len(files))]
+            code = exc.response.status_code if exc.response is not None else 0
+            refused = 400 <= code < 500 and code not in (401, 403, 408, 429)
+            return _Batch([StowOutcome(uid, False, failed) for uid in uids], refused)
+    except Exception as exc:
+        failed = http_failure(exc, where)
+        return _Batch([StowOutcome(uid, False, failed) for uid in uids])
+    by_uid = _read_response(response, where)
+    return _Batch(
+        [
+            by_uid.get(uid) or StowOutcome(uid, False, f"{where}: instance not in the response")
+            for uid in uids
+        ]
+    )
 
 
 def _response_dataset(response: requests.Response | None) -> Dataset | None:

@@ -287,3 +287,41 @@ def test_orthanc_gone_for_good_stops_the_run_and_the_next_run_finishes_it(orthan
         assert all(o["times_received"] == 1 for o in journal.objects())
     finally:
         journal.close()
+
+
+def test_under_other_rules_the_archive_is_graded_again_without_taking_its_results_for_sources(
+    orthanc, tmp_path
+):
+    day = date(2024, 6, 11)
+    studies = [echo_study(f"rules-{i}", day) for i in range(2)]
+    _put(orthanc, tmp_path, studies)
+    uids = [s[0].StudyInstanceUID for s in studies]
+    data_dir = tmp_path / "data"
+    first = node_config(data_dir, forward=[orthanc.source])
+    summary, _ = run_backfill(first, orthanc.source, since=day, until=day)
+    assert summary.graded == 2
+
+    # the lab compares guidelines: the same archive under ASE 2025
+    other = node_config(
+        data_dir, forward=[orthanc.source], extra={"grading": {"guideline": "ase-2025"}}
+    )
+    again, _ = run_backfill(other, orthanc.source, since=day, until=day)
+    assert (again.graded, again.skipped, again.objects) == (2, 0, 2), again
+    journal = _journal(data_dir)
+    try:
+        for uid in uids:
+            results = journal.results(uid)
+            assert [r["guideline"] for r in results] == ["ase-eacvi-2016", "ase-2025"]
+            # the first result, now in the archive, was not retrieved as a source
+            assert results[1]["sources"] == results[0]["sources"]
+            assert results[1]["predecessors"] == [results[0]["result_uid"]]
+            in_archive = {
+                sop for _s, sop, _c in find_in_archive(orthanc.dicom_port, orthanc.ae_title, uid)
+            }
+            assert {r["result_uid"] for r in results} <= in_archive
+        assert all(o["times_received"] == 2 for o in journal.objects())
+    finally:
+        journal.close()
+    # and under ASE 2025 a third run has nothing to do
+    third, _ = run_backfill(other, orthanc.source, since=day, until=day)
+    assert (third.skipped, third.graded) == (2, 0)

@@ -167,13 +167,52 @@ def own_result_series(config: Config, study_uid: str) -> str:
 # ---------------------------------------------------------------------------------------------
 
 
-@dataclass
 class Roles:
-    journal: Journal
-    intake: ObjectIntake
-    #: a node runs on the data directory (its grading and delivery do the work)
-    node_running: bool
-    node_ae: str = ""
+    """The journal of the data directory and the node's intake, with the grading and
+    delivery roles: those of the node running there, or started in this process (no
+    listener) the first time a study is handed over (:meth:`grading`), so a run with nothing
+    to grade starts nothing."""
+
+    def __init__(
+        self,
+        config: Config,
+        journal: Journal,
+        *,
+        node_running: bool,
+        node_ae: str = "",
+        grade_fn: Any = None,
+        poll_seconds: float = 0.5,
+    ) -> None:
+        self.config = config
+        self.journal = journal
+        #: a node runs on the data directory (its grading and delivery do the work)
+        self.node_running = node_running
+        self.node_ae = node_ae
+        self._grade_fn = grade_fn
+        self._poll = poll_seconds
+        self._node: Any = None
+        self._intake = ObjectIntake(SimpleNamespace(config=config), journal)
+
+    def grading(self) -> ObjectIntake:
+        """The intake, once the grading and delivery roles run."""
+        if self.node_running or self._node is not None:
+            return self._intake
+        from service.network.service import Node
+
+        node = Node(self.config, listen=False, grade_fn=self._grade_fn, poll_seconds=self._poll)
+        node.start()
+        self._node = node
+        assembler = node.assembler
+        self._intake.on_received = lambda _uid: assembler.wake() if assembler else None
+        self._intake.metrics = node.metrics
+        return self._intake
+
+    def close(self) -> None:
+        try:
+            if self._node is not None:
+                self._node.stop()
+        finally:
+            self.journal.close()
 
 
 def node_running(data_dir: Path) -> bool:
@@ -194,13 +233,14 @@ def node_running(data_dir: Path) -> bool:
 def open_roles(
     config: Config, *, move_to: str = "", grade_fn: Any = None, poll_seconds: float = 0.5
 ) -> Iterator[Roles]:
-    """The journal and intake of the data directory, with the grading and delivery roles
-    started in this process when no node runs there."""
-    from service.network.service import Node, status_path
+    """The journal and intake of the data directory, with the grading and delivery roles of
+    the node running there, or started in this process when needed (:meth:`Roles.grading`)."""
+    from service.network.service import status_path
 
     data_dir = config.data_dir.resolve()
-    holder = SimpleNamespace(config=config)
-    if node_running(data_dir):
+    running = node_running(data_dir)
+    node_ae = config.node.ae_title
+    if running:
         try:
             info = json.loads(status_path(data_dir).read_text())
         except (OSError, ValueError):
@@ -211,31 +251,24 @@ def open_roles(
                 f"--move-to {move_to}: the node running with data directory {data_dir} has AE "
                 f"title {node_ae}; backfill can only follow objects moved to that node"
             )
-        journal = open_journal(data_dir)
-        try:
-            yield Roles(journal, ObjectIntake(holder, journal), True, node_ae)
-        finally:
-            journal.close()
-        return
-    if move_to:
+    elif move_to:
         raise UserError(
             f"--move-to {move_to}: no node is running with data directory {data_dir}; start "
             f"the node with AE title {move_to} on it (diastolic-sr serve --data-dir "
             f"{data_dir}) so that it receives the moved objects and backfill can follow them"
         )
-    node = Node(config, listen=False, grade_fn=grade_fn, poll_seconds=poll_seconds)
-    node.start()
+    roles = Roles(
+        config,
+        open_journal(data_dir),
+        node_running=running,
+        node_ae=node_ae,
+        grade_fn=grade_fn,
+        poll_seconds=poll_seconds,
+    )
     try:
-        assert node.journal is not None and node.assembler is not None
-        intake = ObjectIntake(
-            holder,
-            node.journal,
-            on_received=lambda _uid: node.assembler.wake() if node.assembler else None,
-            metrics=node.metrics,
-        )
-        yield Roles(node.journal, intake, False, config.node.ae_title)
+        yield roles
     finally:
-        node.stop()
+        roles.close()
 
 
 # ---------------------------------------------------------------------------------------------
@@ -382,6 +415,7 @@ class Backfill:
         wanted_uids = {i.sop_instance_uid for i in wanted}
         if wanted_uids <= have and row is not None and row["rules"] in ("", self.rules):
             # recorded by an earlier run (stopped before it saw the grading): no retrieve
+            self.roles.grading()
             current = journal.study(uid)
             generation = int(current["generation"]) if current else 0
             self.log.backfill_retrieved(
@@ -426,8 +460,9 @@ class Backfill:
             return
         refused = []
         stored = []
+        intake = self.roles.grading()
         for sop_uid in sorted(staged):
-            received = self.roles.intake.receive(staged[sop_uid])
+            received = intake.receive(staged[sop_uid])
             (stored if received.stored else refused).append(received)
         self.summary.objects += len(stored)
         if not stored:

@@ -160,6 +160,9 @@ def test_studies_that_go_away_between_query_and_retrieve_fail_with_the_reason(
         def retrieve(self, study_uid, instances, sink):
             return self.archive.retrieve(study_uid, instances, sink)
 
+        def close(self):
+            self.archive.close()
+
     source = orthanc.source if protocol == "dimse" else orthanc.dicomweb_url
     data_dir = tmp_path / "data"
     summary, _ = run_backfill(

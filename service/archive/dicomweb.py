@@ -99,6 +99,9 @@ class DicomwebArchive:
             return ArchiveUnavailable(reason)
         return ArchiveRefused(reason)  # e.g. an answer that is not DICOM JSON
 
+    def close(self) -> None:
+        self._client._session.close()
+
     def find_studies(self, since: date | None, until: date | None) -> list[ArchivedStudy]:
         filters = {"ModalitiesInStudy": "SR"}
         if since or until:

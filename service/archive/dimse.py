@@ -14,7 +14,8 @@
 * Or by C-MOVE (Study Root ... - MOVE) at IMAGE level to ``move_to``: the archive opens its own
   association to the node with that AE title.
 
-One association per call; every wait is bounded by the node's ``[limits]`` timeouts
+One association for the study query, one per study for its objects' query and their
+retrieve; every wait is bounded by the node's ``[limits]`` timeouts
 (association set-up, each DIMSE message, the idle network).
 """
 
@@ -99,6 +100,11 @@ class DimseArchive:
         self.moves = bool(self.move_to)
         self.description = archive.target + (" (TLS)" if archive.tls else "")
         self.calling_ae = archive.calling_ae
+        #: where C-STORE sub-operations go during a C-GET
+        self._sink: Sink | None = None
+        #: (study, association) kept open from the query of a study's objects for their
+        #: retrieve: one association per study
+        self._held: tuple[str, Any] | None = None
 
     # -- associations -----------------------------------------------------------------------------
 
@@ -121,17 +127,13 @@ class DimseArchive:
                 roles.append(build_role(uid, scp_role=True))
         return ae, roles
 
-    @contextlib.contextmanager
-    def _association(self, *, retrieve: bool = False, sink: Sink | None = None) -> Any:
+    def _open(self, *, retrieve: bool) -> Any:
+        """An established association (raises when there is none)."""
         ae, roles = self._ae(retrieve=retrieve)
-        handlers: list[Any] = [(evt.EVT_CONN_OPEN, lambda ev: no_delay(ev.assoc))]
-        if sink is not None:
-            calling = self.calling_ae
-
-            def on_store(ev: Any) -> int:
-                return sink(store_arrival(ev, calling)).status
-
-            handlers.append((evt.EVT_C_STORE, on_store))
+        handlers: list[Any] = [
+            (evt.EVT_CONN_OPEN, lambda ev: no_delay(ev.assoc)),
+            (evt.EVT_C_STORE, self._on_store),
+        ]
         tls_args = None
         if self.archive.tls:
             from service.network.tls import client_context
@@ -147,12 +149,33 @@ class DimseArchive:
         )
         if not assoc.is_established:
             raise self._not_established(assoc)
+        return assoc
+
+    def _on_store(self, ev: Any) -> int:
+        """A C-STORE sub-operation of a C-GET: to the retrieve's sink."""
+        sink = self._sink
+        if sink is None:  # not asked for: refuse it (PS3.4 B.2.3, "cannot understand")
+            return 0xC000
+        return sink(store_arrival(ev, self.calling_ae)).status
+
+    @staticmethod
+    def _end(assoc: Any) -> None:
+        if assoc.is_established:
+            assoc.release()
+
+    @contextlib.contextmanager
+    def _association(self) -> Any:
+        assoc = self._open(retrieve=False)
         try:
             yield assoc
         finally:
-            if assoc.is_established:
-                assoc.release()
-            ae.shutdown()
+            self._end(assoc)
+
+    def close(self) -> None:
+        """Release the association kept from a study's query for its retrieve, if any."""
+        held, self._held = self._held, None
+        if held is not None:
+            self._end(held[1])
 
     def _not_established(self, assoc: Any) -> Exception:
         where = self.description
@@ -233,8 +256,16 @@ class DimseArchive:
         return sorted(studies.values(), key=lambda s: (s.study_date, s.study_uid))
 
     def find_sr_instances(self, study_uid: str) -> list[ArchivedInstance]:
-        with self._association() as assoc:
-            return self._sr_instances(assoc, study_uid)
+        """The study's SR objects, on an association kept open for their retrieve."""
+        self.close()
+        assoc = self._open(retrieve=True)
+        try:
+            found = self._sr_instances(assoc, study_uid)
+        except BaseException:
+            self._end(assoc)
+            raise
+        self._held = (study_uid, assoc)
+        return found
 
     def _sr_instances(self, assoc: Any, study_uid: str) -> list[ArchivedInstance]:
         q = Dataset()
@@ -280,7 +311,15 @@ class DimseArchive:
         by_series: dict[str, list[str]] = {}
         for inst in instances:
             by_series.setdefault(inst.series_uid, []).append(inst.sop_instance_uid)
-        with self._association(retrieve=True, sink=None if self.moves else counted) as assoc:
+        held, self._held = self._held, None
+        if held is not None and held[0] == study_uid and held[1].is_established:
+            assoc = held[1]
+        else:
+            if held is not None:
+                self._end(held[1])
+            assoc = self._open(retrieve=True)
+        self._sink = None if self.moves else counted
+        try:
             model = MOVE if self.moves else GET
             if not any(cx.abstract_syntax == model for cx in assoc.accepted_contexts):
                 kind = "C-MOVE" if self.moves else "C-GET"
@@ -299,6 +338,9 @@ class DimseArchive:
                 else:
                     responses = assoc.send_c_get(q, GET)
                 self._follow(responses, report, series_uid)
+        finally:
+            self._sink = None
+            self._end(assoc)
         return report
 
     def _follow(self, responses: Any, report: RetrieveReport, series_uid: str) -> None:

@@ -91,6 +91,9 @@ class Archive(Protocol):
         self, study_uid: str, instances: list[ArchivedInstance], sink: Sink
     ) -> RetrieveReport: ...
 
+    def close(self) -> None:
+        """Release what the client holds open (an association, HTTP connections)."""
+
 
 def date_range(since: date | None, until: date | None) -> str:
     """A DA range matching value (PS3.4 C.2.2.2.5.1): ``YYYYMMDD-YYYYMMDD``, open on either

@@ -341,6 +341,8 @@ class Backfill:
         finally:
             self.summary.elapsed = time.monotonic() - self._started
             self.progress.stop()
+            with contextlib.suppress(Exception):
+                self.archive.close()
         return self.summary
 
     def _run(self, roles: Roles, studies: list[ArchivedStudy]) -> None:

@@ -325,3 +325,50 @@ def test_under_other_rules_the_archive_is_graded_again_without_taking_its_result
     # and under ASE 2025 a third run has nothing to do
     third, _ = run_backfill(other, orthanc.source, since=day, until=day)
     assert (third.skipped, third.graded) == (2, 0)
+
+
+def test_a_c_find_answer_lost_on_the_way_is_asked_again_not_taken_as_complete(
+    orthanc, tmp_path, caplog
+):
+    """pynetdicom 3.0's association thread can take a C-FIND response off the queue before
+    the query sees it and drop it (it logs "Received unexpected C-FIND service message";
+    pynetdicom issue #875).  Here the first answer of the first series query is dropped the
+    same way, after it arrived: the study must still be retrieved with both its SR series."""
+    from service.archive.dimse import DimseArchive
+
+    day = date(2024, 7, 13)
+    study = echo_study("lost-answer", day, reports=2)
+    _put(orthanc, tmp_path, [study])
+    dropped = []
+
+    class DroppingArchive(DimseArchive):
+        def _open(self, *, retrieve):
+            assoc = super()._open(retrieve=retrieve)
+            send_c_find = assoc.send_c_find
+
+            def lossy(query, model):
+                for status, identifier in send_c_find(query, model):
+                    first = status.Status in (0xFF00, 0xFF01) and not dropped
+                    if first and query.QueryRetrieveLevel == "SERIES":
+                        dropped.append(identifier.SeriesInstanceUID)
+                        continue  # arrived, and never reaches the query
+                    yield status, identifier
+
+            assoc.send_c_find = lossy
+            return assoc
+
+    def wrap(archive):
+        return DroppingArchive(archive.archive, archive.config)
+
+    data_dir = tmp_path / "data"
+    summary, _ = run_backfill(
+        node_config(data_dir), orthanc.source, since=day, until=day, wrap=wrap
+    )
+    assert len(dropped) == 1
+    assert (summary.graded, summary.objects, summary.failed) == (1, 2, []), summary
+    assert any("3 responses arrived, 2 reached the query" in r.getMessage() for r in caplog.records)
+    journal = _journal(data_dir)
+    try:
+        assert len(journal.objects(study[0].StudyInstanceUID)) == 2
+    finally:
+        journal.close()

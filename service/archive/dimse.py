@@ -80,6 +80,20 @@ _MEANING = {
 }
 
 
+class LostResponse(ArchiveUnavailable):
+    """A C-FIND response arrived but did not reach the query.
+
+    pynetdicom (3.0) runs each association in a thread that takes incoming requests off the
+    message queue; it is paused while a query waits for its responses, but the pause can come
+    a moment too late, and that thread then takes a response, logs "Received unexpected C-FIND
+    service message" and drops it (pynetdicom issue #875).  A dropped pending response would
+    silently shorten the answer (a study's SR series missing), so every C-FIND response is
+    counted as it arrives (``EVT_DIMSE_RECV``) and a query that lost one is asked again, at
+    once (``immediate``)."""
+
+    immediate = True
+
+
 def _meaning(status: int) -> str:
     if status in _MEANING:
         return _MEANING[status]
@@ -102,6 +116,8 @@ class DimseArchive:
         self.calling_ae = archive.calling_ae
         #: where C-STORE sub-operations go during a C-GET
         self._sink: Sink | None = None
+        #: C-FIND responses received on this client's associations (see :meth:`_find`)
+        self._find_responses = 0
         #: (study, association) kept open from the query of a study's objects for their
         #: retrieve: one association per study
         self._held: tuple[str, Any] | None = None
@@ -133,6 +149,7 @@ class DimseArchive:
         handlers: list[Any] = [
             (evt.EVT_CONN_OPEN, lambda ev: no_delay(ev.assoc)),
             (evt.EVT_C_STORE, self._on_store),
+            (evt.EVT_DIMSE_RECV, self._on_dimse_recv),
         ]
         tls_args = None
         if self.archive.tls:
@@ -150,6 +167,12 @@ class DimseArchive:
         if not assoc.is_established:
             raise self._not_established(assoc)
         return assoc
+
+    def _on_dimse_recv(self, ev: Any) -> None:
+        """Count the C-FIND responses that arrive (pynetdicom's thread that reads them, before
+        they are queued for the query)."""
+        if type(ev.message).__name__ == "C_FIND_RSP":
+            self._find_responses += 1
 
     def _on_store(self, ev: Any) -> int:
         """A C-STORE sub-operation of a C-GET: to the retrieve's sink."""
@@ -217,6 +240,7 @@ class DimseArchive:
                 f"{self.description} does not accept Study Root C-FIND (no presentation context)"
             )
         out = []
+        before, consumed = self._find_responses, 0
         for status, identifier in assoc.send_c_find(query, FIND):
             code = int(status.Status) if "Status" in status else None
             if code is None:
@@ -225,11 +249,21 @@ class DimseArchive:
                     "did not answer in time (an archive that does not let calling AE title "
                     f"{self.config.node.ae_title} query or retrieve may abort)"
                 )
+            consumed += 1
             if code in PENDING:
-                if identifier is not None:
-                    out.append(identifier)
+                if identifier is None:  # pynetdicom could not decode it
+                    raise ArchiveRefused(
+                        f"{what} at {self.description}: an answer could not be decoded"
+                    )
+                out.append(identifier)
                 continue
             if code == SUCCESS:
+                if self._find_responses - before != consumed:
+                    raise LostResponse(
+                        f"{what} at {self.description}: {self._find_responses - before} "
+                        f"responses arrived, {consumed} reached the query (a known race in "
+                        "pynetdicom's association thread); the query is asked again"
+                    )
                 return out
             comment = f": {status.ErrorComment}" if "ErrorComment" in status else ""
             raise ArchiveRefused(

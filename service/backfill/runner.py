@@ -406,6 +406,9 @@ class Backfill:
         wanted = [
             i for i in found if i.series_uid != own and journal.result(i.sop_instance_uid) is None
         ]
+        if not found:
+            # the study-level query said it holds SR objects: none is listed now
+            raise StudyGone(f"study {uid} lists no SR object at {self.archive.description}")
         if not wanted:
             self.log.backfill_done(
                 uid, outcome="nothing to grade", reason="only results of this node"
@@ -665,15 +668,21 @@ class Backfill:
 
     def _patiently(self, call: Callable[[], T], what: str) -> T:
         """``call``, tried again while the archive is unavailable, for ``retry_for`` seconds
-        from the first failure (pauses doubling from 1 s, at most 15 s)."""
+        from the first failure (pauses doubling from 1 s, at most 15 s; none after an answer
+        the DICOM library lost, which is asked again at once, at most 5 times in a row)."""
         first: float | None = None
         pause = 1.0
+        lost = 0
         while True:
             if self.stop.is_set():
                 raise Stopped()
             try:
                 return call()
             except ArchiveUnavailable as exc:
+                if getattr(exc, "immediate", False) and lost < 5:
+                    lost += 1
+                    log.warning("%s", exc)
+                    continue
                 now = time.monotonic()
                 first = now if first is None else first
                 if now - first >= self.options.retry_for:

@@ -106,6 +106,8 @@ class Summary:
     outcomes: dict[str, int] = field(default_factory=dict)
     elapsed: float = 0.0
     note: str = ""
+    #: queries and retrieves asked again (an archive that stopped answering, a lost answer)
+    retries: int = 0
 
     def as_dict(self) -> dict[str, Any]:
         return {
@@ -125,6 +127,7 @@ class Summary:
             "beyond_limit": self.beyond_limit,
             "outcomes": dict(self.outcomes),
             "elapsed_seconds": round(self.elapsed, 3),
+            "retries": self.retries,
             "note": self.note,
         }
 
@@ -679,6 +682,7 @@ class Backfill:
             try:
                 return call()
             except ArchiveUnavailable as exc:
+                self.summary.retries += 1
                 if getattr(exc, "immediate", False) and lost < 5:
                     lost += 1
                     log.warning("%s", exc)

@@ -278,6 +278,8 @@ def summary_text(summary: Any, *, dry_run: bool = False) -> str:
     if s.beyond_limit:
         lines.append(f"  beyond --limit (later run)   {s.beyond_limit:>6}")
     lines.append(f"  SR objects retrieved         {s.objects:>6}")
+    if s.retries:
+        lines.append(f"  queries asked again          {s.retries:>6}")
     if s.note:
         lines.append(f"  {s.note}")
     return "\n".join(lines)

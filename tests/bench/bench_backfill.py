@@ -150,6 +150,7 @@ def run(n: int, work: Path) -> dict[str, Any]:
                 "graded": first["graded"],
                 "delivered": first["delivered"],
                 "failed": first["failed"],
+                "retries": first["retries"],
                 "second_run_seconds": round(second_s, 2),
                 "second_run_graded": second["graded"],
                 "second_run_skipped": second["skipped"],
@@ -162,8 +163,9 @@ def run(n: int, work: Path) -> dict[str, Any]:
             say(
                 f"{name:8s} {f['found']} studies in {first_s:.1f} s = {f['studies_per_s']} "
                 f"studies/s; graded {f['graded']}, delivered {f['delivered']}, failed "
-                f"{len(f['failed'])}; journal: {checks['studies_with_results']} studies with a "
-                f"result, at most {checks['max_results_per_study']} per study, objects received "
+                f"{len(f['failed'])}, queries asked again {f['retries']}; journal: "
+                f"{checks['studies_with_results']} studies with a result, at most "
+                f"{checks['max_results_per_study']} per study, objects received "
                 f"at most {checks['max_times_received']} time(s); Orthanc: "
                 f"{before['instances']} instances in {before['studies']} studies "
                 f"({before['instances_per_study']} per study); second run {second_s:.1f} s: "

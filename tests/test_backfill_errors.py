@@ -173,7 +173,7 @@ def test_studies_that_go_away_between_query_and_retrieve_fail_with_the_reason(
     reasons = dict(summary.failed)
     assert set(reasons) == {gone_before_listing, gone_before_retrieve}, summary.failed
     assert "no longer in the archive" in reasons[gone_before_listing]
-    assert "no SR series" in reasons[gone_before_listing]
+    assert "is no longer at" in reasons[gone_before_listing]
     assert reasons[gone_before_retrieve].startswith("the retrieve returned nothing")
     assert summary.graded == 1
     journal = _journal(data_dir)

@@ -33,6 +33,7 @@ from service.archive.model import (
     ArchivedStudy,
     ArchiveRefused,
     ArchiveUnavailable,
+    NoSrObjects,
     RetrieveReport,
     Sink,
     StudyGone,
@@ -133,7 +134,15 @@ class DicomwebArchive:
             raise self._fail(exc, f"QIDO-RS search for the series of study {study_uid}") from None
         series_uids = sorted({u for u in (_value(s, SERIES_UID) for s in series) if u})
         if not series_uids:
-            raise StudyGone(f"study {study_uid} has no SR series at {self.description} any more")
+            try:
+                still = self._client.search_for_studies(
+                    search_filters={"StudyInstanceUID": study_uid}
+                )
+            except Exception as exc:
+                raise self._fail(exc, f"QIDO-RS search for study {study_uid}") from None
+            if still:
+                raise NoSrObjects(f"study {study_uid} has no SR series at {self.description}")
+            raise StudyGone(f"study {study_uid} is no longer at {self.description}")
         out = []
         for series_uid in series_uids:
             try:

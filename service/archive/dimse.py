@@ -45,6 +45,7 @@ from service.archive.model import (
     ArchivedStudy,
     ArchiveRefused,
     ArchiveUnavailable,
+    NoSrObjects,
     RetrieveReport,
     Sink,
     StudyGone,
@@ -312,8 +313,12 @@ class DimseArchive:
             for ds in self._find(assoc, q, f"C-FIND of the series of study {study_uid}")
         ]
         if not series:
-            # the study-level query found it with SR objects: it went away since
-            raise StudyGone(f"study {study_uid} has no SR series at {self.description} any more")
+            q = Dataset()
+            q.QueryRetrieveLevel = "STUDY"
+            q.StudyInstanceUID = study_uid
+            if self._find(assoc, q, f"C-FIND of study {study_uid}"):
+                raise NoSrObjects(f"study {study_uid} has no SR series at {self.description}")
+            raise StudyGone(f"study {study_uid} is no longer at {self.description}")
         out = []
         for series_uid in sorted(filter(None, series)):
             q = Dataset()

@@ -39,6 +39,12 @@ class StudyGone(ArchiveError):
     """The study, found by an earlier query, is no longer in the archive."""
 
 
+class NoSrObjects(ArchiveError):
+    """The study is in the archive but holds no SR series: an archive that does not match
+    Modalities in Study (DCMTK's dcmqrscp, for one) answers the study query with every study
+    of the period."""
+
+
 @dataclass(frozen=True)
 class ArchivedStudy:
     study_uid: str

@@ -45,6 +45,7 @@ from service.archive.model import (
     ArchivedStudy,
     ArchiveError,
     ArchiveUnavailable,
+    NoSrObjects,
     StudyGone,
 )
 from service.backfill.progress import PlainProgress, Progress
@@ -399,6 +400,11 @@ class Backfill:
                 self._study(study)
             except StudyGone as exc:
                 self._fail(study.study_uid, f"no longer in the archive: {exc}")
+            except NoSrObjects:
+                self.log.backfill_done(
+                    study.study_uid, outcome="nothing to grade", reason="no SR", rules=self.rules
+                )
+                self._skip(1, "no SR object in the study", progress=True)
         self._poll_watched()
 
     def _study(self, study: ArchivedStudy) -> None:
@@ -414,7 +420,10 @@ class Backfill:
             raise StudyGone(f"study {uid} lists no SR object at {self.archive.description}")
         if not wanted:
             self.log.backfill_done(
-                uid, outcome="nothing to grade", reason="only results of this node"
+                uid,
+                outcome="nothing to grade",
+                reason="only results of this node",
+                rules=self.rules,
             )
             self._skip(1, "only results of this node", progress=True)
             return
@@ -732,6 +741,9 @@ class Backfill:
                     )
                 except StudyGone as exc:
                     self.summary.failed.append((study.study_uid, str(exc)))
+                    found = []
+                except NoSrObjects:
+                    self._skip(1, "no SR object in the study")
                     found = []
                 own = own_result_series(self.config, study.study_uid)
                 self.summary.objects += sum(

@@ -127,9 +127,16 @@ class BackfillRecords(abc.ABC):
 
     @abc.abstractmethod
     def backfill_done(
-        self, study_uid: str, *, outcome: str, reason: str = "", now: float | None = None
+        self,
+        study_uid: str,
+        *,
+        outcome: str,
+        reason: str = "",
+        rules: str | None = None,
+        now: float | None = None,
     ) -> None:
-        """The study is graded (or the pipeline said why not)."""
+        """The study is graded (or the pipeline said why not, or it holds nothing to grade:
+        then ``rules`` are those it was looked at under)."""
 
     @abc.abstractmethod
     def backfill_failed(self, study_uid: str, reason: str, *, now: float | None = None) -> None:
@@ -227,14 +234,20 @@ class SqlBackfillRecords(BackfillRecords):
             )
 
     def backfill_done(
-        self, study_uid: str, *, outcome: str, reason: str = "", now: float | None = None
+        self,
+        study_uid: str,
+        *,
+        outcome: str,
+        reason: str = "",
+        rules: str | None = None,
+        now: float | None = None,
     ) -> None:
         now = time.time() if now is None else now
         with self._tx(durable=False) as db:
             db.execute(
                 "UPDATE backfill_studies SET state = 'done', outcome = ?, reason = ?, "
-                "updated_at = ? WHERE study_uid = ?",
-                (outcome, reason, now, study_uid),
+                "rules = COALESCE(?, rules), updated_at = ? WHERE study_uid = ?",
+                (outcome, reason, rules, now, study_uid),
             )
 
     def backfill_failed(self, study_uid: str, reason: str, *, now: float | None = None) -> None:

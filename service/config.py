@@ -227,6 +227,13 @@ class DestinationConfig(Section):
     tls: bool = False
     #: also send the one-page summary (Encapsulated PDF) right after each result SR
     summary_pdf: bool = False
+    #: user identity negotiation (PS3.7 D.3.3.7) on associations to this peer: a username,
+    #: with a passcode when ``password`` is set; "" sends none
+    username: str = ""
+    #: the passcode sent with ``username`` (masked by check-config, never logged)
+    password: str = Field(default="", repr=False)
+    #: ask the peer to confirm the identity (positive response requested)
+    user_identity_response: bool = False
 
     @field_validator("ae_title")
     @classmethod
@@ -654,6 +661,9 @@ def _cross_check(cfg: Config) -> Iterable[str]:
     same_port = cfg.http.enabled and cfg.http.port and cfg.http.port == cfg.node.port
     if same_port and (cfg.http.bind in (cfg.node.bind, "", "0.0.0.0") or cfg.node.bind == ""):
         yield f"http.port: {cfg.http.port} is the DICOM port (node.port); choose another"
+    for name, dest in cfg.destinations.items():
+        if dest.password and not dest.username:
+            yield f"destinations.{name}.password: set destinations.{name}.username too"
     if cfg.delivery.backoff_max_seconds < cfg.delivery.backoff_initial_seconds:
         yield (
             f"delivery.backoff_max_seconds: {cfg.delivery.backoff_max_seconds} is below "

@@ -372,3 +372,29 @@ def test_a_c_find_answer_lost_on_the_way_is_asked_again_not_taken_as_complete(
         assert len(journal.objects(study[0].StudyInstanceUID)) == 2
     finally:
         journal.close()
+
+
+def test_a_study_the_pipeline_refuses_and_a_delivery_that_fails_are_told_apart(orthanc, tmp_path):
+    from netutil import free_port, simple_sr
+
+    day = date(2024, 8, 17)
+    echo = echo_study("undeliverable", day)
+    plain = simple_sr(patient_id="HVBF-plain")  # an SR with no echo measurement
+    plain.StudyDate = day.strftime("%Y%m%d")
+    plain.SeriesDescription = "Report"
+    _put(orthanc, tmp_path, [echo, [plain]])
+    nowhere = f"NOBODY@127.0.0.1:{free_port()}"  # a destination that is down
+    config = node_config(
+        tmp_path / "data", forward=[nowhere], extra={"delivery": {"max_attempts": 1}}
+    )
+
+    summary, _ = run_backfill(config, orthanc.source, since=day, until=day)
+
+    reasons = dict(summary.failed)
+    assert set(reasons) == {str(echo[0].StudyInstanceUID), str(plain.StudyInstanceUID)}
+    assert reasons[str(plain.StudyInstanceUID)].startswith("not graded: ")
+    assert (
+        "to FORWARD_1: gave up after 1 attempts: cannot connect"
+        in (reasons[str(echo[0].StudyInstanceUID)])
+    )
+    assert summary.graded == 1 and summary.outcomes.get("not graded") == 1

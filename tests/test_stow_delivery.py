@@ -97,7 +97,7 @@ def test_a_wrong_password_fails_with_the_http_status_and_is_retried_like_c_store
     study = str(ds.StudyInstanceUID)
     wait_for(lambda: (node.journal.study(study) or {}).get("state") == "failed", 120)
     row = node.journal.study(study)
-    assert "delivery to HV_WEB" in row["reason"]
+    assert "to HV_WEB: gave up after 2 attempts" in row["reason"]
     assert "HTTP 401" in row["reason"] and "check the username/password" in row["reason"]
     (web,) = [d for d in node.journal.deliveries() if d["destination"] == "HV_WEB"]
     assert web["attempts"] == 2 and web["last_error"].startswith("gave up after 2 attempts")

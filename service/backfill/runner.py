@@ -557,7 +557,7 @@ class Backfill:
             watch.graded = True
             result = journal.result(row["result_uid"]) if row["result_uid"] else None
             reason = str(row.get("reason") or "")
-            if row["state"] == "failed" and not reason.startswith("delivery to "):
+            if row["state"] == "failed" and not self._delivery_failed(uid):
                 self.log.backfill_done(uid, outcome="not graded", reason=reason)
                 self.summary.outcomes["not graded"] = self.summary.outcomes.get("not graded", 0) + 1
                 self._fail(uid, f"not graded: {reason}", record=False)
@@ -570,6 +570,13 @@ class Backfill:
             self._done += 1
             self._advance()
         return changed
+
+    def _delivery_failed(self, study_uid: str) -> bool:
+        """A delivery of the study's results failed (a study that failed otherwise was not
+        graded: the pipeline refused it)."""
+        return any(
+            d["study_uid"] == study_uid for d in self.roles.journal.deliveries(states=["failed"])
+        )
 
     def _wait_for_grading(self) -> None:
         last_change = time.monotonic()

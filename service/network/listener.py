@@ -49,6 +49,7 @@ from pynetdicom.transport import ThreadedAssociationServer
 from service.config import Config
 from service.observability.logs import event
 from service.observability.metrics import Metrics
+from service.sr.provenance import EQUIPMENT_TAGS, IGNORED_OWN_RESULT, received_own_result_reason
 from service.sr.read import structure_problem
 from service.store.journal import Journal
 
@@ -120,8 +121,17 @@ def _body(event: Any) -> bytes:
 #: grading processes decode the rest
 _LAST_IDENTIFYING_TAG = 0x0020000D
 #: what the listener reads: Specific Character Set, SOP Class UID, SOP Instance UID, Patient's
-#: Name, Patient ID, Study Instance UID (PS3.6 tags)
-_IDENTIFYING_TAGS = (0x00080005, 0x00080016, 0x00080018, 0x00100010, 0x00100020, 0x0020000D)
+#: Name, Patient ID, Study Instance UID (PS3.6 tags), and the equipment identity that tells
+#: the node's own results (service.sr.provenance)
+_IDENTIFYING_TAGS = (
+    0x00080005,
+    0x00080016,
+    0x00080018,
+    0x00100010,
+    0x00100020,
+    0x0020000D,
+    *EQUIPMENT_TAGS,
+)
 
 
 def identifying_attributes(body: bytes, transfer_syntax: str) -> Dataset:
@@ -230,10 +240,13 @@ class Received:
     sop_instance_uid: str = ""
     study_uid: str = ""
     reason: str = ""
+    #: kept and acknowledged, never graded (the node's own result coming back)
+    ignored: bool = False
 
     @property
     def stored(self) -> bool:
-        return self.status == SUCCESS and bool(self.study_uid)
+        """Recorded for grading."""
+        return self.status == SUCCESS and bool(self.study_uid) and not self.ignored
 
 
 class ObjectIntake:
@@ -255,6 +268,19 @@ class ObjectIntake:
         self.journal = journal
         self.on_received = on_received
         self.metrics = metrics or Metrics()
+
+    def _ignored(self, calling: str, uid: str, study_uid: str, reason: str) -> Received:
+        self.metrics.objects.labels(outcome="ignored").inc()
+        event(
+            "object_ignored",
+            f"C-STORE from {calling}: object {uid} of study {study_uid} kept, not graded "
+            f"({IGNORED_OWN_RESULT}: {reason}); answered 0x{SUCCESS:04X}",
+            calling_ae=calling,
+            sop_instance_uid=uid,
+            study_uid=study_uid,
+            reason=f"{IGNORED_OWN_RESULT}: {reason}",
+        )
+        return Received(SUCCESS, uid, study_uid, f"{IGNORED_OWN_RESULT}: {reason}", ignored=True)
 
     def receive(self, arrival: Arrival) -> Received:
         config: Config = self._owner.config
@@ -295,7 +321,20 @@ class ObjectIntake:
             problem = "Study Instance UID missing or malformed"
         if problem:
             return self._rejected(calling, affected, DOES_NOT_MATCH_SOP_CLASS, problem)
+        own = received_own_result_reason(
+            ds, arrival.body, implicit=syntax == ImplicitVRLittleEndian
+        )
         try:
+            if own is not None:  # kept and acknowledged, never graded nor forwarded
+                self.journal.store_ignored(
+                    sop_instance_uid=sop_uid,
+                    study_uid=study_uid,
+                    sop_class_uid=sop_class,
+                    calling_ae=calling,
+                    data=part10_bytes(arrival),
+                    reason=f"{IGNORED_OWN_RESULT}: {own}",
+                )
+                return self._ignored(calling, sop_uid, study_uid, own)
             self.journal.store_object(
                 sop_instance_uid=sop_uid,
                 study_uid=study_uid,

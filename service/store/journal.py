@@ -21,6 +21,8 @@ study:    received -> assembled -> graded -> delivered
           any state -> received again when a new object of the study arrives or an
           administrator asks for a re-grade (``generation`` counts these).
 delivery: pending -> delivered | failed (reason); ``requeue_failed`` puts failed ones back.
+ignored:  an object acknowledged and kept but never graded nor forwarded (the node's own
+          result coming back), with the reason; its study is not touched.
 
 Durability
 ----------
@@ -169,6 +171,28 @@ class Journal(BackfillRecords, abc.ABC):
         C-STORE success go out.  Raises on any failure (nothing is acknowledged then)."""
 
     @abc.abstractmethod
+    def store_ignored(
+        self,
+        *,
+        sop_instance_uid: str,
+        study_uid: str,
+        sop_class_uid: str,
+        calling_ae: str,
+        data: bytes,
+        reason: str,
+        now: float | None = None,
+    ) -> None:
+        """Keep a received object that is never to be graded nor forwarded (the node's own
+        result coming back), with the reason; durable when this returns (its C-STORE success
+        follows).  Its study is neither opened nor re-opened.  Purged by
+        :meth:`purge_finished` once older than its cut-off."""
+
+    @abc.abstractmethod
+    def ignored_objects(self, limit: int = 100) -> list[dict[str, Any]]:
+        """The objects kept by :meth:`store_ignored`, newest first: sop_instance_uid,
+        study_uid, sop_class_uid, calling_ae, reason, received_at, times_received."""
+
+    @abc.abstractmethod
     def object_data(self, sop_instance_uid: str) -> bytes:
         """The stored Part 10 bytes of a received object; OSError when they cannot be read."""
 
@@ -215,7 +239,9 @@ class Journal(BackfillRecords, abc.ABC):
     @abc.abstractmethod
     def recover(self, *, now: float | None = None) -> dict[str, int]:
         """On start: studies caught mid-grading go back to received (due now).  Returns the
-        counts of :meth:`counts` and ``resumed_grading``."""
+        counts of :meth:`counts`, ``resumed_grading`` (every study waiting to be graded: those
+        caught mid-grading and those whose settle window had not ended) and
+        ``interrupted_grading`` (those of them caught mid-grading)."""
 
     @abc.abstractmethod
     def request_regrade(self, study_uid: str, *, now: float | None = None) -> bool:
@@ -232,14 +258,22 @@ class Journal(BackfillRecords, abc.ABC):
     # -- delivering -------------------------------------------------------------------------------
 
     @abc.abstractmethod
-    def due_deliveries(self, *, now: float | None = None, limit: int = 100) -> list[DueDelivery]:
-        """Pending deliveries whose next attempt is due, oldest first."""
+    def due_deliveries(
+        self, *, now: float | None = None, limit: int = 100, destination: str | None = None
+    ) -> list[DueDelivery]:
+        """Pending deliveries whose next attempt is due (to ``destination`` only, when
+        given), oldest first."""
+
+    @abc.abstractmethod
+    def due_destinations(self, *, now: float | None = None) -> list[str]:
+        """The destinations that have a pending delivery due now."""
 
     @abc.abstractmethod
     def delivered_to(self, result_uid: str, destination: str) -> bool: ...
 
     @abc.abstractmethod
-    def next_delivery_at(self) -> float | None: ...
+    def next_delivery_at(self, *, destination: str | None = None) -> float | None:
+        """When the next pending delivery (to ``destination``, when given) is due."""
 
     @abc.abstractmethod
     def mark_delivered(self, delivery_id: int, *, now: float | None = None) -> None: ...
@@ -316,7 +350,8 @@ class Journal(BackfillRecords, abc.ABC):
         Finished: ``delivered`` (every delivery done), or ``failed`` with nothing pending or
         failed to deliver (a study that could not be graded).  Studies waiting to be graded,
         results waiting to be delivered and failed deliveries (which an administrator may
-        re-queue) are never purged."""
+        re-queue) are never purged.  Objects kept by :meth:`store_ignored` before
+        ``older_than`` go too."""
 
     def __enter__(self) -> Journal:
         return self

@@ -146,6 +146,43 @@ class SqlJournal(SqlBackfillRecords, Journal):
                 (study_uid, calling_ae, now, now, now + settle_seconds, now),
             )
 
+    def store_ignored(
+        self,
+        *,
+        sop_instance_uid: str,
+        study_uid: str,
+        sop_class_uid: str,
+        calling_ae: str,
+        data: bytes,
+        reason: str,
+        now: float | None = None,
+    ) -> None:
+        path = self._put_object(study_uid, sop_instance_uid, data)
+        now = time.time() if now is None else now
+        with self._tx() as db:
+            db.execute(
+                """INSERT INTO ignored_objects (sop_instance_uid, study_uid, sop_class_uid,
+                       calling_ae, path, reason, received_at)
+                   VALUES (?, ?, ?, ?, ?, ?, ?)
+                   ON CONFLICT (sop_instance_uid) DO UPDATE SET
+                       calling_ae = excluded.calling_ae, path = excluded.path,
+                       reason = excluded.reason, received_at = excluded.received_at,
+                       times_received = ignored_objects.times_received + 1""",
+                (sop_instance_uid, study_uid, sop_class_uid, calling_ae, path, reason, now),
+            )
+            self._put_object_in_tx(db, sop_instance_uid, data)
+
+    def ignored_objects(self, limit: int = 100) -> list[dict[str, Any]]:
+        rows = self._query(
+            "SELECT * FROM ignored_objects ORDER BY received_at DESC LIMIT ?", (limit,)
+        )
+        return [dict(r) for r in rows]
+
+    def _purge_ignored_bytes(self, db: Cursor, sop_instance_uids: Sequence[str]) -> int:
+        """Inside a purge's transaction: drop the bytes of these ignored objects held in the
+        database; returns how many.  Nothing by default."""
+        return 0
+
     def object_data(self, sop_instance_uid: str) -> bytes:
         rows = self._query("SELECT * FROM objects WHERE sop_instance_uid = ?", (sop_instance_uid,))
         if not rows:
@@ -345,8 +382,14 @@ class SqlJournal(SqlBackfillRecords, Journal):
                 (now, now, now),
             ).rowcount
             db.execute("UPDATE objects SET state = 'received' WHERE state = 'assembled'")
+            # every study not yet graded resumes: those caught mid-grading and those whose
+            # settle window had not ended (or had ended unclaimed) when the node stopped
+            waiting = db.execute(
+                "SELECT COUNT(*) AS n FROM studies WHERE state = 'received'"
+            ).fetchone()[0]
         counts = self.counts()
-        counts["resumed_grading"] = studies
+        counts["resumed_grading"] = int(waiting)
+        counts["interrupted_grading"] = studies
         return counts
 
     def request_regrade(self, study_uid: str, *, now: float | None = None) -> bool:
@@ -371,17 +414,23 @@ class SqlJournal(SqlBackfillRecords, Journal):
 
     # -- delivering -------------------------------------------------------------------------------
 
-    def due_deliveries(self, *, now: float | None = None, limit: int = 100) -> list[DueDelivery]:
+    def due_deliveries(
+        self, *, now: float | None = None, limit: int = 100, destination: str | None = None
+    ) -> list[DueDelivery]:
         now = time.time() if now is None else now
+        where, params = "", [now]
+        if destination is not None:
+            where, params = " AND d.destination = ?", [now, destination]
         rows = self._query(
             """SELECT d.id, d.result_uid, r.study_uid, d.destination, d.attempts,
                       r.sop_class_uid,
                       (SELECT c.result_uid FROM companions c
                        WHERE c.companion_uid = d.result_uid LIMIT 1) AS parent_uid
                FROM deliveries d JOIN results r ON r.result_uid = d.result_uid
-               WHERE d.state = 'pending' AND d.next_attempt_at <= ?
-               ORDER BY d.next_attempt_at, d.id LIMIT ?""",
-            (now, limit),
+               WHERE d.state = 'pending' AND d.next_attempt_at <= ?"""
+            + where
+            + " ORDER BY d.next_attempt_at, d.id LIMIT ?",
+            (*params, limit),
         )
         return [
             DueDelivery(
@@ -404,10 +453,26 @@ class SqlJournal(SqlBackfillRecords, Journal):
         )
         return bool(rows)
 
-    def next_delivery_at(self) -> float | None:
+    def due_destinations(self, *, now: float | None = None) -> list[str]:
+        now = time.time() if now is None else now
         rows = self._query(
-            "SELECT MIN(next_attempt_at) AS due FROM deliveries WHERE state = 'pending'"
+            "SELECT DISTINCT destination FROM deliveries WHERE state = 'pending' "
+            "AND next_attempt_at <= ?",
+            (now,),
         )
+        return sorted(r[0] for r in rows)
+
+    def next_delivery_at(self, *, destination: str | None = None) -> float | None:
+        if destination is None:
+            rows = self._query(
+                "SELECT MIN(next_attempt_at) AS due FROM deliveries WHERE state = 'pending'"
+            )
+        else:
+            rows = self._query(
+                "SELECT MIN(next_attempt_at) AS due FROM deliveries WHERE state = 'pending' "
+                "AND destination = ?",
+                (destination,),
+            )
         return rows[0][0] if rows else None
 
     def mark_delivered(self, delivery_id: int, *, now: float | None = None) -> None:
@@ -503,15 +568,21 @@ class SqlJournal(SqlBackfillRecords, Journal):
         if study["result_uid"] is None:
             return
         rows = db.execute(
-            "SELECT destination, state, last_error FROM deliveries WHERE result_uid = ? "
-            "OR result_uid IN (SELECT companion_uid FROM companions WHERE result_uid = ?)",
+            "SELECT d.destination, d.state, d.last_error, d.result_uid, r.sop_class_uid "
+            "FROM deliveries d LEFT JOIN results r ON r.result_uid = d.result_uid "
+            "WHERE d.result_uid = ? "
+            "OR d.result_uid IN (SELECT companion_uid FROM companions WHERE result_uid = ?)",
             (study["result_uid"], study["result_uid"]),
         ).fetchall()
         failed = [r for r in rows if r["state"] == "failed"]
         pending = [r for r in rows if r["state"] == "pending"]
         if failed:
             state = "failed"
-            reason = "; ".join(f"delivery to {r['destination']}: {r['last_error']}" for r in failed)
+            reason = "; ".join(
+                f"delivery of {_kind(r['sop_class_uid'])} {r['result_uid']} to "
+                f"{r['destination']}: {r['last_error']}"
+                for r in failed
+            )
         elif pending or not rows:
             state, reason = "graded", ""
         else:
@@ -662,8 +733,24 @@ class SqlJournal(SqlBackfillRecords, Journal):
                 db.execute("DELETE FROM results WHERE study_uid = ?", (study,))
                 db.execute("DELETE FROM objects WHERE study_uid = ?", (study,))
                 db.execute("DELETE FROM studies WHERE study_uid = ?", (study,))
+            ignored = db.execute(
+                "SELECT sop_instance_uid, path FROM ignored_objects WHERE received_at < ?",
+                (older_than,),
+            ).fetchall()
+            if ignored:
+                paths += [r[1] for r in ignored]
+                files += self._purge_ignored_bytes(db, [r[0] for r in ignored])
+                db.execute("DELETE FROM ignored_objects WHERE received_at < ?", (older_than,))
         files += self._after_purge([p for p in paths if p])
         return Purged(studies=studies, files=files)
+
+
+#: Encapsulated PDF Storage (PS3.4 Annex B.5): the summary delivered with a result SR
+_ENCAPSULATED_PDF = "1.2.840.10008.5.1.4.1.1.104.1"
+
+
+def _kind(sop_class_uid: str | None) -> str:
+    return "summary PDF" if sop_class_uid == _ENCAPSULATED_PDF else "result SR"
 
 
 def _result_row(row: Any, *, decode: bool = False) -> dict[str, Any]:

@@ -79,7 +79,21 @@ MIGRATIONS: list[list[str]] = [
         )""",
         "CREATE INDEX IF NOT EXISTS companions_companion ON companions (companion_uid)",
     ],
-    # 2: what backfill keeps between runs (service/store/backfill_journal.py)
+    # 2: objects acknowledged and kept but never graded (the node's own results coming back)
+    [
+        """CREATE TABLE IF NOT EXISTS ignored_objects (
+            sop_instance_uid TEXT PRIMARY KEY,
+            study_uid TEXT NOT NULL,
+            sop_class_uid TEXT NOT NULL,
+            calling_ae TEXT NOT NULL,
+            path TEXT NOT NULL,
+            reason TEXT NOT NULL,
+            received_at REAL NOT NULL,
+            times_received INTEGER NOT NULL DEFAULT 1
+        )""",
+        "CREATE INDEX IF NOT EXISTS ignored_objects_received ON ignored_objects (received_at)",
+    ],
+    # 3: what backfill keeps between runs (service/store/backfill_journal.py)
     BACKFILL_DDL,
 ]
 

@@ -398,3 +398,29 @@ def test_a_study_the_pipeline_refuses_and_a_delivery_that_fails_are_told_apart(o
         in (reasons[str(echo[0].StudyInstanceUID)])
     )
     assert summary.graded == 1 and summary.outcomes.get("not graded") == 1
+
+
+def test_a_result_of_this_software_in_the_archive_is_kept_but_never_graded(orthanc, tmp_path):
+    """A result SR written by diastolic-sr elsewhere (another UID root, so its series is not
+    the one this node would derive) is retrieved, recognised by its provenance
+    (service.sr.provenance), kept and not graded; the study is skipped."""
+    from service.pipeline import GradeOptions, grade_study
+
+    day = date(2024, 9, 19)
+    source = echo_study("foreign-result", day)[0]
+    outcome = grade_study([source], GradeOptions(uid_root="1.2.826.0.1.3680043.10.543"))
+    result = outcome.result
+    assert result is not None
+    _put(orthanc, tmp_path, [[result]])  # only the result is in the archive
+    data_dir = tmp_path / "data"
+
+    summary, _ = run_backfill(node_config(data_dir), orthanc.source, since=day, until=day)
+
+    assert (summary.found, summary.graded, summary.objects) == (1, 0, 0), summary
+    assert summary.skipped_reasons == {"only results of this node": 1}
+    assert summary.failed == []
+    journal = _journal(data_dir)
+    try:
+        assert journal.objects() == [] and journal.results() == []
+    finally:
+        journal.close()

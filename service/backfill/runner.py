@@ -475,13 +475,22 @@ class Backfill:
                 + "; nothing recorded",
             )
             return
-        refused = []
-        stored = []
         intake = self.roles.grading()
-        for sop_uid in sorted(staged):
-            received = intake.receive(staged[sop_uid])
-            (stored if received.stored else refused).append(received)
+        received = [intake.receive(staged[sop_uid]) for sop_uid in sorted(staged)]
+        stored = [r for r in received if r.stored]
+        # the node's own results (recognised by service.sr.provenance) are kept, not graded
+        ignored = [r for r in received if r.ignored]
+        refused = [r for r in received if not r.stored and not r.ignored]
         self.summary.objects += len(stored)
+        if not stored and ignored and not refused:
+            self.log.backfill_done(
+                uid,
+                outcome="nothing to grade",
+                reason="only results of this node",
+                rules=self.rules,
+            )
+            self._skip(1, "only results of this node", progress=True)
+            return
         if not stored:
             self._fail(
                 uid,

@@ -114,6 +114,7 @@ def run_backfill(
     grade_fn: Any = None,
     stop: Any = None,
     wrap: Any = None,
+    poll_seconds: float = 0.05,
     **opts: Any,
 ):
     """One in-process backfill run; (summary, progress text).  ``wrap``: a function that
@@ -135,7 +136,7 @@ def run_backfill(
         progress=PlainProgress(out, every=0.0),
         grade_fn=grade_fn,
         stop=stop,
-        poll_seconds=0.05,
+        poll_seconds=poll_seconds,
     )
     summary = runner.run()
     return summary, out.getvalue()

@@ -109,6 +109,9 @@ class Summary:
     note: str = ""
     #: queries and retrieves asked again (an archive that stopped answering, a lost answer)
     retries: int = 0
+    #: seconds from the start until the last study was retrieved (the rest of ``elapsed`` is
+    #: the grading and delivery of the last studies)
+    retrieve_seconds: float = 0.0
 
     def as_dict(self) -> dict[str, Any]:
         return {
@@ -129,6 +132,7 @@ class Summary:
             "outcomes": dict(self.outcomes),
             "elapsed_seconds": round(self.elapsed, 3),
             "retries": self.retries,
+            "retrieve_seconds": round(self.retrieve_seconds, 3),
             "note": self.note,
         }
 
@@ -372,6 +376,7 @@ class Backfill:
             self.progress.start(len(todo), f"backfill from {self.archive.description}")
             self._advance()
             self._each(todo)
+            self.summary.retrieve_seconds = time.monotonic() - self._started
             self._wait_for_grading()
             self._wait_for_delivery()
         except Stopped:

@@ -151,6 +151,8 @@ def run(n: int, work: Path) -> dict[str, Any]:
                 "delivered": first["delivered"],
                 "failed": first["failed"],
                 "retries": first["retries"],
+                "run_seconds": first["elapsed_seconds"],
+                "retrieve_seconds": first["retrieve_seconds"],
                 "second_run_seconds": round(second_s, 2),
                 "second_run_graded": second["graded"],
                 "second_run_skipped": second["skipped"],
@@ -162,7 +164,9 @@ def run(n: int, work: Path) -> dict[str, Any]:
             f = figures[name]
             say(
                 f"{name:8s} {f['found']} studies in {first_s:.1f} s = {f['studies_per_s']} "
-                f"studies/s; graded {f['graded']}, delivered {f['delivered']}, failed "
+                f"studies/s (the run {f['run_seconds']:.1f} s, of which retrieving "
+                f"{f['retrieve_seconds']:.1f} s); graded {f['graded']}, delivered "
+                f"{f['delivered']}, failed "
                 f"{len(f['failed'])}, queries asked again {f['retries']}; journal: "
                 f"{checks['studies_with_results']} studies with a result, at most "
                 f"{checks['max_results_per_study']} per study, objects received "

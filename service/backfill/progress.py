@@ -106,15 +106,17 @@ class RichProgress:
             TimeRemainingColumn,
         )
 
+        self.console.print(
+            f"{what}: {total} stud{'y' if total == 1 else 'ies'} to do", highlight=False
+        )
         self._progress = Progress(
-            TextColumn("[bold]{task.description}"),
-            BarColumn(),
+            BarColumn(bar_width=24),
             MofNCompleteColumn(),
             TextColumn("studies"),
             TextColumn("{task.fields[rate]}"),
             TimeElapsedColumn(),
-            TextColumn("left"),
             TimeRemainingColumn(),
+            TextColumn("left"),
             TextColumn("{task.fields[detail]}"),
             console=self.console,
             transient=False,
@@ -134,7 +136,7 @@ class RichProgress:
             return
         task = self._progress.tasks[0]
         speed = task.finished_speed or task.speed
-        rate = f"{speed:.2f}/s" if speed else ""
+        rate = f"{speed:.2f}/s" if speed else "-/s"
         self._progress.update(self._task, completed=done, rate=rate, detail=detail)
 
     def note(self, text: str) -> None:

@@ -382,6 +382,9 @@ class Backfill:
         except Stopped:
             state = RunState.interrupted
             self.summary.note = "stopped by request; run the same command again to continue"
+            with contextlib.suppress(Exception):
+                self._poll_watched()
+                self._tally_delivery()
         except ArchiveError as exc:
             state = RunState.stopped
             self.summary.note = f"{exc}; run the same command again to continue"
@@ -632,6 +635,11 @@ class Backfill:
             elif time.monotonic() - last_change > self.options.wait_seconds:
                 break
             self._sleep(self._poll)
+        self._tally_delivery()
+
+    def _tally_delivery(self) -> None:
+        """Delivered, failed and still pending, among the studies graded in this run (as the
+        journal has them now)."""
         retrying, untried = self._delivery_state()
         journal = self.roles.journal
         for uid, watch in self._watch.items():

@@ -10,6 +10,7 @@ retries on its own terms (the sender's back-off in the journal, backfill's resum
 from __future__ import annotations
 
 import logging
+import re
 from typing import Any
 
 import requests
@@ -74,10 +75,17 @@ def http_failure(exc: BaseException, where: str) -> str:
     if isinstance(exc, requests.exceptions.SSLError):
         return f"{where}: TLS verification failed ({_first_line(exc)})"
     if isinstance(exc, requests.ConnectionError):
-        return f"cannot connect to {where}: {_first_line(exc)}"
+        return f"cannot connect to {where}: {_socket_error(exc)}"
     if isinstance(exc, requests.Timeout):
         return f"{where}: no answer in time ({_first_line(exc)})"
     return f"{where}: {type(exc).__name__}: {_first_line(exc)}"
+
+
+def _socket_error(exc: BaseException) -> str:
+    """The operating system's reason inside a connection error (``[Errno 111] Connection
+    refused``), rather than the connection pool's whole account of it."""
+    m = re.search(r"\[Errno -?\d+\] [^'\"()]+", str(exc))
+    return m.group(0).strip() if m else _first_line(exc)
 
 
 def _first_line(exc: BaseException) -> str:

@@ -427,3 +427,27 @@ def test_a_result_of_this_software_in_the_archive_is_kept_but_never_graded(ortha
         assert journal.objects() == [] and journal.results() == []
     finally:
         journal.close()
+
+
+def test_limit_leaves_the_rest_for_a_later_run_and_rate_spaces_the_studies(orthanc, tmp_path):
+    day = date(2024, 10, 21)
+    studies = [echo_study(f"limit-{i}", day) for i in range(4)]
+    _put(orthanc, tmp_path, studies)
+    data_dir = tmp_path / "data"
+    config = node_config(data_dir)
+
+    # at most 3 studies, at 30 a minute: each starts at least 2 s after the one before
+    first, _ = run_backfill(config, orthanc.source, since=day, until=day, limit=3, rate=30)
+    assert (first.found, first.to_do, first.graded, first.beyond_limit) == (4, 3, 3, 1), first
+    assert first.left == 0 and first.failed == []
+    journal = _journal(data_dir)
+    try:
+        received = sorted(o["received_at"] for o in journal.objects())
+    finally:
+        journal.close()
+    # the second and third studies were recorded about 2 s apart (a lower bound, with room
+    # for a slow retrieve of the second; the first waited for the grading roles to start)
+    assert received[2] - received[1] >= 1.0, received
+
+    second, _ = run_backfill(config, orthanc.source, since=day, until=day, limit=3)
+    assert (second.to_do, second.graded, second.skipped, second.beyond_limit) == (1, 1, 3, 0)

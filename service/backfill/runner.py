@@ -438,9 +438,14 @@ class Backfill:
         row = self.log.backfill_study(uid)
         have = {o["sop_instance_uid"] for o in journal.objects(uid)}
         wanted_uids = {i.sop_instance_uid for i in wanted}
-        if wanted_uids <= have and row is not None and row["rules"] in ("", self.rules):
-            # recorded by an earlier run (stopped before it saw the grading): no retrieve
+        if wanted_uids <= have:
+            # the journal holds every object already: nothing is retrieved again
             self.roles.grading()
+            if row is None or row["rules"] not in ("", self.rules):
+                # received earlier (by the node, or by a run under other rules): graded again
+                # from the stored objects under the rules in force
+                journal.request_regrade(uid)
+            # else recorded by an earlier run that stopped before it saw the grading
             current = journal.study(uid)
             generation = int(current["generation"]) if current else 0
             self.log.backfill_retrieved(

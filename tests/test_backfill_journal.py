@@ -1,5 +1,5 @@
 """The backfill part of the journal (service/store/backfill_journal.py) on SQLite: its tables
-come as schema version 3 (an existing version-1 journal is moved forward and keeps its rows),
+come as schema version 4 (an existing version-1 journal is moved forward and keeps its rows),
 and its methods keep what a run needs to skip done studies and resume the others."""
 
 from __future__ import annotations
@@ -39,7 +39,7 @@ def test_a_version_1_journal_gets_the_backfill_tables_and_keeps_its_rows(tmp_pat
     j = SqliteJournal(path)
     try:
         version = j._query("SELECT value FROM meta WHERE key = 'schema_version'")[0][0]
-        assert int(version) == 3 == sqlite_schema.SCHEMA_VERSION
+        assert int(version) == 4 == sqlite_schema.SCHEMA_VERSION
         assert j.study("1.2.3")["state"] == "delivered"
         assert j.backfill_runs() == [] and j.backfill_counts() == {}
     finally:

@@ -585,7 +585,11 @@ class Backfill:
                 self._fail(uid, f"not graded: {reason}", record=False)
                 del self._watch[uid]
                 continue
-            outcome = str((result or {}).get("grade") or (result or {}).get("status") or "graded")
+            # the Outcome token the journal records for the result (service.model.Outcome),
+            # else its grade as recorded with it
+            outcome = (journal.outcome_of(row["result_uid"]) if row["result_uid"] else None) or str(
+                (result or {}).get("grade") or (result or {}).get("status") or "graded"
+            )
             self.log.backfill_done(uid, outcome=outcome)
             self.summary.graded += 1
             self.summary.outcomes[outcome] = self.summary.outcomes.get(outcome, 0) + 1

@@ -6,7 +6,7 @@ intake, as the listener does).
 :class:`BackfillRecords` is the contract (part of :class:`~service.store.journal.Journal`);
 :class:`SqlBackfillRecords` its statements, shared by every SQL backend
 (:class:`~service.store.sql_journal.SqlJournal`); the tables are in each backend's schema
-module (:data:`SQLITE_DDL` for SQLite, schema version 3).
+module (:data:`SQLITE_DDL` for SQLite, schema version 4).
 
 Study states::
 

@@ -93,7 +93,15 @@ MIGRATIONS: list[list[str]] = [
         )""",
         "CREATE INDEX IF NOT EXISTS ignored_objects_received ON ignored_objects (received_at)",
     ],
-    # 3: what backfill keeps between runs (service/store/backfill_journal.py)
+    # 3: what each result concluded, as a service.model.Outcome token (kept apart from the
+    # results table: Journal.record_outcome / outcome_of)
+    [
+        """CREATE TABLE IF NOT EXISTS result_outcomes (
+            result_uid TEXT PRIMARY KEY,
+            outcome TEXT NOT NULL
+        )""",
+    ],
+    # 4: what backfill keeps between runs (service/store/backfill_journal.py)
     BACKFILL_DDL,
 ]
 

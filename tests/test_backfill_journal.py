@@ -81,3 +81,25 @@ def test_done_under_the_same_rules_is_what_a_later_run_skips(journal):
     assert journal.backfill_study("1.3")["state"] == "failed"
     assert journal.backfill_study("1.4")["state"] == "found"
     assert journal.backfill_study("1.1")["run_id"] == later
+
+
+def test_the_queue_command_lists_the_latest_backfill_runs(tmp_path, capsys):
+    from service.cli import main as cli_main
+    from service.store.journal import open_journal
+
+    journal = open_journal(tmp_path)
+    run = journal.backfill_start_run("HV_PACS@pacs.example:104", "2025-01-01", "")
+    journal.backfill_finish_run(
+        run,
+        RunState.interrupted,
+        {"found": 12, "graded": 5, "skipped": 2, "failed": [{"study": "1.2", "reason": "x"}]},
+    )
+    journal.close()
+    assert cli_main(["queue", "--data-dir", str(tmp_path), "--json"]) == 0
+    import json
+
+    (listed,) = json.loads(capsys.readouterr().out)["backfill_runs"]
+    assert listed["source"] == "HV_PACS@pacs.example:104" and listed["state"] == "interrupted"
+    assert (listed["found"], listed["graded"], listed["skipped"], listed["failed"]) == (12, 5, 2, 1)
+    assert cli_main(["queue", "--data-dir", str(tmp_path)]) == 0
+    assert "backfill runs (latest first): 1" in capsys.readouterr().out

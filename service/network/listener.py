@@ -2,7 +2,8 @@
 
 * Verification (C-ECHO) and C-STORE of the SR storage SOP classes, in implicit and explicit VR
   little endian and deflated explicit VR little endian.
-* Optionally every image storage class too, accepted and discarded (``access.accept_images``).
+* Optionally every image storage class too, accepted and discarded (``access.accept_images``);
+  a summary PDF the node wrote itself is kept and recorded as ignored, like an own result SR.
 * The called AE title must match ours (pynetdicom rejects others); calling AE titles may be
   limited to an allow-list, and an AE title may be pinned to addresses: both are checked on the
   association request against the configuration in force, so a reload (SIGHUP) applies to the
@@ -33,6 +34,7 @@ from pydicom import Dataset
 from pydicom.filereader import read_dataset
 from pydicom.uid import (
     DeflatedExplicitVRLittleEndian,
+    EncapsulatedPDFStorage,
     ExplicitVRLittleEndian,
     ImplicitVRLittleEndian,
 )
@@ -269,6 +271,43 @@ class ObjectIntake:
         self.on_received = on_received
         self.metrics = metrics or Metrics()
 
+    def _keep_own_summary(self, arrival: Arrival) -> Received | None:
+        """A summary PDF this node (any version) wrote, sent back to it (``accept_images``
+        accepts Encapsulated PDF Storage): kept and recorded as ignored, like an own result
+        SR, so that ``queue`` lists it.  None for any other PDF (discarded as before)."""
+        syntax = arrival.transfer_syntax
+        try:
+            # little endian: the identifying attributes only; otherwise pynetdicom decodes it
+            le = syntax in _LE_SYNTAXES
+            ds = identifying_attributes(arrival.body, syntax) if le else arrival.decode()
+            own = received_own_result_reason(
+                ds, arrival.body, implicit=syntax == ImplicitVRLittleEndian
+            )
+            sop_uid = str(ds.get("SOPInstanceUID", "") or "")
+            study_uid = str(ds.get("StudyInstanceUID", "") or "")
+        except Exception:  # not decodable: not recognisably ours
+            return None
+        if own is None or not valid_uid(sop_uid) or not valid_uid(study_uid):
+            return None
+        try:
+            self.journal.store_ignored(
+                sop_instance_uid=sop_uid,
+                study_uid=study_uid,
+                sop_class_uid=EncapsulatedPDFStorage,
+                calling_ae=arrival.calling_ae,
+                data=part10_bytes(arrival),
+                reason=f"{IGNORED_OWN_RESULT}: {own}",
+            )
+        except Exception as exc:
+            return self._rejected(
+                arrival.calling_ae,
+                sop_uid or arrival.affected,
+                OUT_OF_RESOURCES,
+                f"could not be stored ({type(exc).__name__}: {exc})",
+                study_uid,
+            )
+        return self._ignored(arrival.calling_ae, sop_uid, study_uid, own)
+
     def _ignored(self, calling: str, uid: str, study_uid: str, reason: str) -> Received:
         self.metrics.objects.labels(outcome="ignored").inc()
         event(
@@ -288,6 +327,10 @@ class ObjectIntake:
         context_class = arrival.context_class
         affected = arrival.affected
         if context_class not in SR_STORAGE_CLASSES:
+            if context_class == EncapsulatedPDFStorage:  # the class of the node's summaries
+                kept = self._keep_own_summary(arrival)
+                if kept is not None:
+                    return kept
             # accept_images: the object is acknowledged and discarded, by design
             self.metrics.objects.labels(outcome="discarded").inc()
             log.info("discarded non-SR object of class %s from %s", context_class, calling)

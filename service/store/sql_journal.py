@@ -19,6 +19,7 @@ from contextlib import AbstractContextManager
 from typing import Any
 
 from service.errors import UserError
+from service.store.backfill_journal import SqlBackfillRecords
 from service.store.journal import (
     Companion,
     DeliveryState,
@@ -40,7 +41,7 @@ class Cursor(abc.ABC):
         and its rows can be read by column name and by position."""
 
 
-class SqlJournal(Journal):
+class SqlJournal(SqlBackfillRecords, Journal):
     #: ORDER BY of results: oldest first, in the order they were recorded
     RESULT_ORDER = "created_at, rowid"
     #: appended to the SELECT that picks rows to claim (rows other transactions hold are

@@ -281,6 +281,16 @@ class HttpConfig(Section):
     min_free_disk_mb: int = Field(default=500, ge=0)
 
 
+class AuditConfig(Section):
+    """What the node records for the quality audit (``diastolic-sr audit``, ``/audit``)."""
+
+    #: record patient name and ID with each study's audit facts, and show them where studies
+    #: are listed (off: studies are counted, and listed by Study Instance UID only on request)
+    include_patient_identifiers: bool = False
+    #: the status page's /audit covers this many days back by default
+    default_days: int = Field(default=30, ge=1, le=3660)
+
+
 class Config(Section):
     node: NodeConfig = Field(default_factory=NodeConfig)
     limits: LimitsConfig = Field(default_factory=LimitsConfig)
@@ -295,6 +305,7 @@ class Config(Section):
     retention: RetentionConfig = Field(default_factory=RetentionConfig)
     logging: LoggingConfig = Field(default_factory=LoggingConfig)
     http: HttpConfig = Field(default_factory=HttpConfig)
+    audit: AuditConfig = Field(default_factory=AuditConfig)
     #: folder of the configuration file (relative paths are resolved from it); not a TOML key
     base_dir: str = Field(default="", exclude=True)
 

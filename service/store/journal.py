@@ -45,6 +45,8 @@ from enum import StrEnum
 from pathlib import Path
 from typing import Any
 
+from service.store.audit_records import AUDIT_SCHEMA, AuditRecords
+
 SCHEMA_VERSION = 1
 
 
@@ -202,7 +204,7 @@ def backoff_delay(attempt: int, initial: float, maximum: float) -> float:
     return min(initial * 2 ** (attempt - 1), maximum)
 
 
-class Journal:
+class Journal(AuditRecords):
     def __init__(self, path: Path, *, timeout: float = 30.0) -> None:
         self.path = Path(path)
         self.path.parent.mkdir(parents=True, exist_ok=True)
@@ -218,6 +220,7 @@ class Journal:
             self._db.execute("PRAGMA synchronous=FULL")
             self._db.execute(f"PRAGMA busy_timeout={int(timeout * 1000)}")
             self._db.executescript(_SCHEMA)
+            self._db.executescript(AUDIT_SCHEMA)
             self._db.execute(
                 "INSERT OR IGNORE INTO meta VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),)
             )
@@ -356,6 +359,7 @@ class Journal:
         failure: str = "",
         object_notes: dict[str, str] | None = None,
         companions: Sequence[Companion] = (),
+        audit: Any = None,
         now: float | None = None,
     ) -> bool:
         """Record the outcome of grading ``claim``.
@@ -364,7 +368,10 @@ class Journal:
         identical study), and one pending delivery per ``(destination, target)`` unless that
         destination already has this result UID; the same for each companion object, queued
         after the result so that it follows the result on the same association.  Without: the
-        study fails with ``failure``.  Returns True when new deliveries were queued."""
+        study fails with ``failure``.  ``audit``: the study's audit facts
+        (:class:`service.audit.facts.StudyFacts`), recorded in the same transaction (a row that
+        records the failure when there are none).  Returns True when new deliveries were
+        queued."""
         now = time.time() if now is None else now
         queued = False
         with self._tx(durable=False) as db:
@@ -399,6 +406,14 @@ class Journal:
                     (result.result_uid, now, claim.study_uid),
                 )
             if same_generation:
+                self._audit_graded(
+                    db,
+                    claim.study_uid,
+                    audit,
+                    calling_ae=claim.calling_ae,
+                    failure="" if result is not None else (failure or "not graded"),
+                    now=now,
+                )
                 if result is None:
                     db.execute(
                         "UPDATE studies SET state = 'failed', reason = ?, updated_at = ? "
@@ -647,6 +662,7 @@ class Journal:
             "UPDATE studies SET state = ?, reason = ?, updated_at = ? WHERE study_uid = ?",
             (state, reason, now, study_uid),
         )
+        self._audit_settled(db, study_uid, state, reason, now)
 
     # -- reading ----------------------------------------------------------------------------------
 
@@ -792,6 +808,7 @@ class Journal:
                         (uid, uid),
                     )
                 db.execute("DELETE FROM results WHERE study_uid = ?", (study,))
+                self._audit_forget(db, (study,))
                 db.execute("DELETE FROM objects WHERE study_uid = ?", (study,))
                 db.execute("DELETE FROM studies WHERE study_uid = ?", (study,))
         return Purged(studies=studies, paths=tuple(paths))

@@ -1,0 +1,316 @@
+"""The journal's audit tables: one row of facts per study, written in the same transaction that
+records the study's grading, updated when its deliveries settle, read by ``audit`` and the
+status page.
+
+* ``audit_studies``: what the audit needs about each study at grading time (outcome, pathway,
+  guideline, measures present, borderline cut-offs, guideline comparison, which missing measure
+  would or could have decided it, sending device) and its times (last object received, graded,
+  result delivered) and current failure, if any.  No patient identity.  Kept when retention
+  purges a finished study's files and journal rows: the audit covers a longer period than the
+  spool keeps.
+* ``audit_identities``: patient name and ID of a study, only written when the configuration
+  allows (``audit.include_patient_identifiers``), and purged with the study.
+
+Separate from the node's work tables on purpose, in plain SQL that PostgreSQL also runs (upserts
+with ``ON CONFLICT``; only the ``?`` placeholders differ).
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import sqlite3
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+AUDIT_SCHEMA = """
+CREATE TABLE IF NOT EXISTS audit_studies (
+    study_uid TEXT PRIMARY KEY,
+    graded_at REAL NOT NULL,
+    last_received_at REAL,
+    delivered_at REAL,
+    status TEXT NOT NULL,            -- graded, not-gradable, rejected, error
+    outcome TEXT,                    -- service.model.Outcome token
+    pathway TEXT,
+    guideline TEXT,
+    device TEXT NOT NULL,            -- calling AE, else Station Name, else manufacturer + model
+    calling_ae TEXT NOT NULL DEFAULT '',
+    station_name TEXT NOT NULL DEFAULT '',
+    manufacturer TEXT NOT NULL DEFAULT '',
+    model TEXT NOT NULL DEFAULT '',
+    measures TEXT NOT NULL DEFAULT '[]',    -- JSON: canonical measure names present
+    borderline TEXT NOT NULL DEFAULT '[]',  -- JSON: cut-offs a value sat on
+    missing TEXT NOT NULL DEFAULT '[]',     -- JSON: missing measures that would/could decide
+    compared INTEGER NOT NULL DEFAULT 0,    -- number of guidelines compared
+    disagreement INTEGER,                   -- 1/0, NULL when not compared
+    failure TEXT NOT NULL DEFAULT '',       -- why the study failed, while it does
+    facts_version INTEGER NOT NULL DEFAULT 1
+);
+CREATE INDEX IF NOT EXISTS audit_studies_graded ON audit_studies (graded_at);
+CREATE TABLE IF NOT EXISTS audit_identities (
+    study_uid TEXT PRIMARY KEY,
+    patient_name TEXT NOT NULL,
+    patient_id TEXT NOT NULL
+);
+"""
+
+_COLUMNS = (
+    "study_uid",
+    "graded_at",
+    "last_received_at",
+    "delivered_at",
+    "status",
+    "outcome",
+    "pathway",
+    "guideline",
+    "device",
+    "calling_ae",
+    "station_name",
+    "manufacturer",
+    "model",
+    "measures",
+    "borderline",
+    "missing",
+    "compared",
+    "disagreement",
+    "failure",
+    "facts_version",
+)
+
+#: insert or replace a study's row (an upsert both SQLite and PostgreSQL run)
+INSERT_AUDIT = (
+    f"INSERT INTO audit_studies ({', '.join(_COLUMNS)}) "
+    f"VALUES ({', '.join('?' * len(_COLUMNS))}) ON CONFLICT (study_uid) DO UPDATE SET "
+    + ", ".join(f"{c} = excluded.{c}" for c in _COLUMNS[1:])
+)
+
+
+@dataclass(frozen=True)
+class AuditRow:
+    """One study's audit record as read back (lists decoded)."""
+
+    study_uid: str
+    graded_at: float
+    last_received_at: float | None
+    delivered_at: float | None
+    status: str
+    outcome: str | None
+    pathway: str | None
+    guideline: str | None
+    device: str
+    calling_ae: str
+    station_name: str
+    manufacturer: str
+    model: str
+    measures: tuple[str, ...]
+    borderline: tuple[dict[str, Any], ...]
+    missing: tuple[dict[str, Any], ...]
+    compared: int
+    disagreement: bool | None
+    failure: str
+    patient_name: str = ""
+    patient_id: str = ""
+
+
+def audit_values(
+    study_uid: str,
+    facts: Any,
+    *,
+    calling_ae: str,
+    failure: str,
+    graded_at: float,
+    last_received_at: float | None,
+) -> tuple[Any, ...]:
+    """The row of ``audit_studies`` for a study just graded.  ``facts``: its StudyFacts, or
+    None when the grading failed before any could be built (then the row records the failure
+    and the calling AE)."""
+    if facts is None:
+        status = "rejected" if failure.startswith(("no usable source", "rejected")) else "error"
+        return (
+            study_uid,
+            graded_at,
+            last_received_at,
+            None,
+            status,
+            None,
+            None,
+            None,
+            calling_ae.strip() or "unknown device",
+            calling_ae.strip(),
+            "",
+            "",
+            "",
+            "[]",
+            "[]",
+            "[]",
+            0,
+            None,
+            failure,
+            1,
+        )
+    d = facts.device
+    data = facts.model_dump(mode="json")
+    return (
+        study_uid,
+        graded_at,
+        last_received_at,
+        None,
+        facts.status,
+        None if facts.outcome is None else facts.outcome.value,
+        None if facts.pathway is None else facts.pathway.value,
+        None if facts.guideline is None else facts.guideline.value,
+        d.key,
+        d.calling_ae,
+        d.station_name,
+        d.manufacturer,
+        d.model,
+        json.dumps(data["measures"]),
+        json.dumps(data["borderline"], ensure_ascii=False),
+        json.dumps(data["missing"]),
+        len(facts.compared),
+        None if facts.disagreement is None else int(facts.disagreement),
+        failure,
+        facts.version,
+    )
+
+
+def _row(r: Any, identity: dict[str, tuple[str, str]] | None = None) -> AuditRow:
+    name, pid = (identity or {}).get(r["study_uid"], ("", ""))
+    return AuditRow(
+        study_uid=r["study_uid"],
+        graded_at=r["graded_at"],
+        last_received_at=r["last_received_at"],
+        delivered_at=r["delivered_at"],
+        status=r["status"],
+        outcome=r["outcome"],
+        pathway=r["pathway"],
+        guideline=r["guideline"],
+        device=r["device"],
+        calling_ae=r["calling_ae"],
+        station_name=r["station_name"],
+        manufacturer=r["manufacturer"],
+        model=r["model"],
+        measures=tuple(json.loads(r["measures"])),
+        borderline=tuple(json.loads(r["borderline"])),
+        missing=tuple(json.loads(r["missing"])),
+        compared=int(r["compared"]),
+        disagreement=None if r["disagreement"] is None else bool(r["disagreement"]),
+        failure=r["failure"],
+        patient_name=name,
+        patient_id=pid,
+    )
+
+
+#: the study's own failure reason, without the details that differ between studies
+_ATTEMPTS = re.compile(r"gave up after \d+ attempts?: ")
+
+
+def failure_kind(reason: str) -> str:
+    """A failure reason shortened to what studies failing the same way share, e.g.
+    "delivery to PACS: cannot connect to PACS@10.0.0.5:104: [Errno 111] Connection refused"
+    -> "delivery to PACS: cannot connect to PACS@10.0.0.5"."""
+    text = _ATTEMPTS.sub("", reason.strip())
+    parts = []
+    for clause in text.split("; "):
+        head, sep, rest = clause.partition(": ")
+        if head.startswith("delivery to ") and sep:
+            detail = rest.split(" (", 1)[0].split(": ", 1)[0]
+            parts.append(f"{head}: {detail.rsplit(':', 1)[0] if '@' in detail else detail}")
+        else:
+            parts.append(clause.split(" (", 1)[0].split(": ", 1)[0])
+    out = "; ".join(dict.fromkeys(p.strip() for p in parts if p.strip()))
+    return out[:160] or "unknown"
+
+
+class AuditRecords:
+    """Audit methods of the journal (mixed into :class:`service.store.journal.Journal`)."""
+
+    def _query(self, sql: str, params: Sequence[Any] = ()) -> list[Any]:  # pragma: no cover
+        raise NotImplementedError
+
+    # -- writing (inside the journal's own transactions) --------------------------------------
+
+    @staticmethod
+    def _audit_graded(
+        db: sqlite3.Connection,
+        study_uid: str,
+        facts: Any,
+        *,
+        calling_ae: str,
+        failure: str,
+        now: float,
+    ) -> None:
+        """Record (or replace, on a re-grade) a study's audit row; patient identity only when
+        the facts carry it."""
+        row = db.execute(
+            "SELECT last_received_at FROM studies WHERE study_uid = ?", (study_uid,)
+        ).fetchone()
+        last = None if row is None else row[0]
+        db.execute(
+            INSERT_AUDIT,
+            audit_values(
+                study_uid,
+                facts,
+                calling_ae=calling_ae,
+                failure=failure,
+                graded_at=now,
+                last_received_at=last,
+            ),
+        )
+        if facts is not None and (facts.patient_name or facts.patient_id):
+            db.execute(
+                "INSERT INTO audit_identities VALUES (?, ?, ?) ON CONFLICT (study_uid) DO UPDATE "
+                "SET patient_name = excluded.patient_name, patient_id = excluded.patient_id",
+                (study_uid, facts.patient_name, facts.patient_id),
+            )
+        else:
+            db.execute("DELETE FROM audit_identities WHERE study_uid = ?", (study_uid,))
+
+    @staticmethod
+    def _audit_settled(
+        db: sqlite3.Connection, study_uid: str, state: str, reason: str, now: float
+    ) -> None:
+        """A study's deliveries settled: the time its result was delivered, or why it failed."""
+        db.execute(
+            "UPDATE audit_studies SET "
+            "delivered_at = CASE WHEN ? = 'delivered' THEN COALESCE(delivered_at, ?) END, "
+            "failure = CASE WHEN ? = 'failed' THEN ? ELSE '' END WHERE study_uid = ?",
+            (state, now, state, reason, study_uid),
+        )
+
+    @staticmethod
+    def _audit_forget(db: sqlite3.Connection, study_uids: Iterable[str]) -> None:
+        """Patient identity of purged studies goes with them (their facts stay)."""
+        for uid in study_uids:
+            db.execute("DELETE FROM audit_identities WHERE study_uid = ?", (uid,))
+
+    # -- reading --------------------------------------------------------------------------------
+
+    def audit_rows(
+        self,
+        since: float | None = None,
+        until: float | None = None,
+        *,
+        identities: bool = False,
+    ) -> list[AuditRow]:
+        """Audit rows of the studies graded in [since, until) (epoch seconds), oldest first;
+        patient identity only with ``identities`` (and only where it was recorded)."""
+        sql = "SELECT * FROM audit_studies WHERE 1=1"
+        params: list[Any] = []
+        if since is not None:
+            sql += " AND graded_at >= ?"
+            params.append(since)
+        if until is not None:
+            sql += " AND graded_at < ?"
+            params.append(until)
+        rows = self._query(sql + " ORDER BY graded_at, study_uid", params)
+        identity: dict[str, tuple[str, str]] | None = None
+        if identities:
+            identity = {
+                r[0]: (r[1], r[2])
+                for r in self._query(
+                    "SELECT study_uid, patient_name, patient_id FROM audit_identities"
+                )
+            }
+        return [_row(r, identity) for r in rows]

@@ -270,7 +270,8 @@ class LoggingConfig(Section):
 
 
 class HttpConfig(Section):
-    """The health and metrics endpoint (/healthz, /metrics)."""
+    """The node's HTTP endpoint: /healthz, /metrics, and the status page (/) with the audit
+    (/audit)."""
 
     enabled: bool = True
     #: loopback by default: expose it deliberately (e.g. "0.0.0.0" in a container)
@@ -279,6 +280,20 @@ class HttpConfig(Section):
     port: int = Field(default=DEFAULT_HTTP_PORT, ge=0, le=65535)
     #: /healthz fails below this much free space in the data directory, megabytes
     min_free_disk_mb: int = Field(default=500, ge=0)
+    #: serve the status page (/) and the audit (/audit)
+    status_page: bool = True
+    #: HTTP basic authentication for every path but /healthz: give both user name and
+    #: password, or neither (no authentication); the password is masked by check-config and
+    #: never logged
+    username: str = ""
+    password: str = Field(default="", repr=False)
+
+    @field_validator("username")
+    @classmethod
+    def _user(cls, v: str) -> str:
+        if ":" in v or any(not ch.isprintable() for ch in v):
+            raise ValueError("a user name has no colon and no control characters (RFC 7617)")
+        return v
 
 
 class AuditConfig(Section):
@@ -371,7 +386,10 @@ class Config(Section):
 
 
 #: (section, key) of every secret: never printed or logged
-SECRET_KEYS: tuple[tuple[str, str], ...] = (("tls", "private_key_password"),)
+SECRET_KEYS: tuple[tuple[str, str], ...] = (
+    ("tls", "private_key_password"),
+    ("http", "password"),
+)
 
 #: sections and keys that only take effect on a restart (a reload keeps the running values)
 RESTART_ONLY: tuple[str, ...] = (
@@ -499,6 +517,11 @@ def _cross_check(cfg: Config) -> Iterable[str]:
     same_port = cfg.http.enabled and cfg.http.port and cfg.http.port == cfg.node.port
     if same_port and (cfg.http.bind in (cfg.node.bind, "", "0.0.0.0") or cfg.node.bind == ""):
         yield f"http.port: {cfg.http.port} is the DICOM port (node.port); choose another"
+    if bool(cfg.http.username) != bool(cfg.http.password):
+        yield (
+            "http.username and http.password: give both (basic authentication) or neither; got "
+            + ("a user name only" if cfg.http.username else "a password only")
+        )
     if cfg.delivery.backoff_max_seconds < cfg.delivery.backoff_initial_seconds:
         yield (
             f"delivery.backoff_max_seconds: {cfg.delivery.backoff_max_seconds} is below "

@@ -12,6 +12,7 @@ import io
 import re
 import threading
 from collections.abc import Sequence
+from datetime import datetime, timedelta
 
 from matplotlib.figure import Figure, FigureBase
 from matplotlib.patches import Patch
@@ -482,14 +483,17 @@ def disagreement(report: AuditReport, into: FigureBase | None = None) -> FigureB
 
 
 def per_day(report: AuditReport, into: FigureBase | None = None) -> FigureBase:
-    """Studies graded per day."""
+    """Studies graded per day, every calendar day of the span shown (days without a study as
+    gaps)."""
     days = report.processing.per_day
     fig = _figure(7.2, 2.4, into)
     if not days:
         return _empty(fig, "No study in this period")
     ax = fig.add_subplot()
-    labels = list(days)
-    ax.bar(range(len(labels)), list(days.values()), color=BLUE, width=0.8)
+    first = datetime.strptime(min(days), "%Y-%m-%d").date()
+    last = datetime.strptime(max(days), "%Y-%m-%d").date()
+    labels = [str(first + timedelta(days=i)) for i in range((last - first).days + 1)]
+    ax.bar(range(len(labels)), [days.get(d, 0) for d in labels], color=BLUE, width=0.8)
     step = max(1, len(labels) // 10)
     ticks = list(range(0, len(labels), step))
     ax.set_xticks(ticks, [labels[i][5:] for i in ticks])

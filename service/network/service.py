@@ -86,7 +86,9 @@ class Node:
         self.assembler: Assembler | None = None
         self.sender: Sender | None = None
         self.port: int | None = None
+        self.started_at: float | None = None
         self._stopped = threading.Event()
+        self._pages: Any = None
 
     def start(self) -> int:
         """Open the store, resume pending work, start listening; returns the port."""
@@ -145,9 +147,13 @@ class Node:
             target=self._retention_loop, name="retention", daemon=True
         )
         self._retention_thread.start()
-        self._started_at = time.time()
+        self._started_at = self.started_at = time.time()
         self._write_status()
         return self.port
+
+    @property
+    def stopped(self) -> bool:
+        return self._stopped.is_set()
 
     def _write_status(self) -> None:
         durable_write(
@@ -169,9 +175,20 @@ class Node:
         cfg = self.config.http
         if not cfg.enabled:
             return
+        pages = {}
+        if cfg.status_page:
+            from service.observability.status_page import StatusPages
+
+            self._pages = StatusPages(self)
+            pages = self._pages.pages()
         try:
             self.http = HttpEndpoint(
-                cfg.bind, cfg.port, health=self.health, metrics=self.metrics.exposition
+                cfg.bind,
+                cfg.port,
+                health=self.health,
+                metrics=self.metrics.exposition,
+                pages=pages,
+                auth=(cfg.username, cfg.password) if cfg.username else None,
             )
         except OSError as exc:
             # the DICOM service goes on; the missing endpoint shows in monitoring
@@ -185,9 +202,11 @@ class Node:
             )
             return
         self.http_port = self.http.start()
+        what = "status page, audit, health and metrics" if pages else "health and metrics"
         event(
             "http_listening",
-            f"health and metrics on http://{cfg.bind}:{self.http_port}/healthz and /metrics",
+            f"{what} on http://{cfg.bind}:{self.http_port}/"
+            + (" (basic authentication)" if cfg.username else ""),
             bind=cfg.bind,
             port=self.http_port,
         )
@@ -291,6 +310,8 @@ class Node:
             self._retention_thread.join(30)
         if self.http is not None:
             self.http.stop()
+        if self._pages is not None:
+            self._pages.close()
         if self.assembler is not None:
             self.assembler.stop()
         if self.sender is not None:

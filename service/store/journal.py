@@ -45,6 +45,7 @@ from enum import StrEnum
 from pathlib import Path
 from typing import Any
 
+from service.store.activity import ActivityQueries
 from service.store.audit_records import AUDIT_SCHEMA, AuditRecords
 
 SCHEMA_VERSION = 1
@@ -204,7 +205,7 @@ def backoff_delay(attempt: int, initial: float, maximum: float) -> float:
     return min(initial * 2 ** (attempt - 1), maximum)
 
 
-class Journal(AuditRecords):
+class Journal(AuditRecords, ActivityQueries):
     def __init__(self, path: Path, *, timeout: float = 30.0) -> None:
         self.path = Path(path)
         self.path.parent.mkdir(parents=True, exist_ok=True)

@@ -16,7 +16,8 @@ class ActivityQueries:
 
     def activity_since(self, since: float) -> dict[str, Any]:
         """What happened since ``since`` (epoch seconds): objects received, studies graded by
-        outcome (and not assessed), results delivered, deliveries failed."""
+        outcome (and not assessed), deliveries done (per destination; the results folder is
+        one) and failed."""
         objects = self._query("SELECT COUNT(*) FROM objects WHERE received_at >= ?", (since,))
         graded = self._query(
             "SELECT COALESCE(outcome, ''), COUNT(*) FROM audit_studies WHERE graded_at >= ? "
@@ -24,20 +25,25 @@ class ActivityQueries:
             (since,),
         )
         delivered = self._query(
-            "SELECT COUNT(*) FROM deliveries WHERE state = 'delivered' AND delivered_at >= ?",
+            "SELECT destination, COUNT(*) FROM deliveries WHERE state = 'delivered' "
+            "AND delivered_at >= ? GROUP BY destination ORDER BY destination",
             (since,),
         )
         failed = self._query(
             "SELECT COUNT(*) FROM deliveries WHERE state = 'failed' AND updated_at >= ?",
             (since,),
         )
-        outcomes = {r[0]: int(r[1]) for r in graded if r[0]}
+        from service.model import Outcome
+
+        counted = {r[0]: int(r[1]) for r in graded if r[0]}
+        outcomes = {o.value: counted[o.value] for o in Outcome if o.value in counted}
         return {
             "objects_received": int(objects[0][0]),
             "studies_graded": sum(outcomes.values()),
             "outcomes": outcomes,
             "not_assessed": sum(int(r[1]) for r in graded if not r[0]),
-            "deliveries_done": int(delivered[0][0]),
+            "deliveries_done": sum(int(r[1]) for r in delivered),
+            "delivered_to": {r[0]: int(r[1]) for r in delivered},
             "deliveries_failed": int(failed[0][0]),
         }
 

@@ -207,9 +207,11 @@ _ATTEMPTS = re.compile(r"gave up after \d+ attempts?: ")
 
 
 def failure_kind(reason: str) -> str:
-    """A failure reason shortened to what studies failing the same way share, e.g.
-    "delivery to PACS: cannot connect to PACS@10.0.0.5:104: [Errno 111] Connection refused"
-    -> "delivery to PACS: cannot connect to PACS@10.0.0.5"."""
+    """A failure reason shortened to what studies failing the same way share: the attempt
+    count, the port, exception texts and parenthesised details go, e.g.
+    "delivery to PACS: gave up after 10 attempts: cannot connect to PACS@10.0.0.5:104: [Errno
+    111] Connection refused" -> "delivery to PACS: cannot connect to PACS@10.0.0.5";
+    "internal error while grading: boom" -> "internal error while grading"."""
     text = _ATTEMPTS.sub("", reason.strip())
     parts = []
     for clause in text.split("; "):
@@ -217,8 +219,10 @@ def failure_kind(reason: str) -> str:
         if head.startswith("delivery to ") and sep:
             detail = rest.split(" (", 1)[0].split(": ", 1)[0]
             parts.append(f"{head}: {detail.rsplit(':', 1)[0] if '@' in detail else detail}")
+        elif head.startswith("internal error"):
+            parts.append(head)
         else:
-            parts.append(clause.split(" (", 1)[0].split(": ", 1)[0])
+            parts.append(": ".join(clause.split(" (", 1)[0].split(": ")[:3]))
     out = "; ".join(dict.fromkeys(p.strip() for p in parts if p.strip()))
     return out[:160] or "unknown"
 

@@ -7,8 +7,8 @@ from pathlib import Path
 
 import pytest
 
-from service.audit.facts import BorderlineCut, Device, StudyFacts
 from service.audit.counterfactual import MissingEffect
+from service.audit.facts import BorderlineCut, Device, StudyFacts
 from service.model import Comparison, Guideline, Measure, Outcome, Pathway
 from service.store.audit_records import failure_kind
 from service.store.journal import Journal, NewResult

@@ -206,3 +206,19 @@ def test_retention_keeps_the_facts_and_forgets_the_patient(journal):
 )
 def test_failure_kinds(reason, kind):
     assert failure_kind(reason) == kind
+
+
+def test_rows_are_read_page_by_page_in_order(journal):
+    """Keyset pages (time graded, then study UID) give every row once, ties included."""
+    times = [1000.0, 1000.0, 1000.0, 2000.0, 2000.0, 3000.0, 4000.0]
+    for n, t in enumerate(times):
+        study = f"{STUDY}.{n}"
+        _receive(journal, f"2.25.{n}", study=study, now=t)
+        (claim,) = journal.claim_due(now=t + 10)
+        journal.finish_grading(claim, result=None, failure="internal error", now=t)
+    whole = [(r.graded_at, r.study_uid) for r in journal.audit_rows()]
+    assert whole == sorted(whole) and len(whole) == 7
+    for page in (1, 2, 3, 7, 8):
+        paged = [(r.graded_at, r.study_uid) for r in journal.iter_audit_rows(page=page)]
+        assert paged == whole
+    assert len(list(journal.iter_audit_rows(1000.0, 2000.0, page=2))) == 3

@@ -203,6 +203,26 @@ def _local(ts: float) -> datetime:
     return datetime.fromtimestamp(ts)
 
 
+#: seconds per bucket of the day/month cache: every time zone's offset is a multiple of it
+_QUARTER_HOUR = 900
+
+
+class _Calendar:
+    """Local day and month of a time, computed once per quarter hour (time zones differ from
+    UTC by whole quarter hours)."""
+
+    def __init__(self) -> None:
+        self._cache: dict[int, tuple[str, str]] = {}
+
+    def __call__(self, ts: float) -> tuple[str, str]:
+        key = int(ts // _QUARTER_HOUR)
+        hit = self._cache.get(key)
+        if hit is None:
+            local = _local(key * _QUARTER_HOUR)
+            hit = self._cache[key] = (local.strftime("%Y-%m-%d"), local.strftime("%Y-%m"))
+        return hit
+
+
 def percentile(values: Sequence[float], q: int) -> float | None:
     """The q-th percentile (1-99) by linear interpolation between closest ranks
     (``statistics.quantiles(method="inclusive")``, numpy's default method); None when empty."""
@@ -238,9 +258,10 @@ def build_report(
     studies = not_assessed = borderline = compared = disagree = undecided = 0
     delivered = failed = 0
     listed: list[Study] = []
+    calendar = _Calendar()
     for r in rows:
-        day = _local(r.graded_at)
-        per_day[day.strftime("%Y-%m-%d")] += 1
+        day, month = calendar(r.graded_at)
+        per_day[day] += 1
         if r.failure:
             failed += 1
             failures[failure_kind(r.failure)] += 1
@@ -252,12 +273,12 @@ def build_report(
         else:
             studies += 1
             outcomes[r.outcome] += 1
-            by_month[day.strftime("%Y-%m")][r.outcome] += 1
+            by_month[month][r.outcome] += 1
             if r.pathway:
                 by_pathway[r.pathway][r.outcome] += 1
             if r.guideline:
                 guidelines[r.guideline] += 1
-            present = set(r.measures)
+            present = r.measures  # each measure once
             measure_counts.update(present)
             dev = devices.setdefault(
                 r.device,
@@ -290,7 +311,7 @@ def build_report(
             listed.append(
                 Study(
                     study_uid=r.study_uid,
-                    graded=day.strftime("%Y-%m-%d %H:%M"),
+                    graded=_local(r.graded_at).strftime("%Y-%m-%d %H:%M"),
                     device=r.device,
                     outcome=r.outcome,
                     pathway=r.pathway,

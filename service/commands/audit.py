@@ -86,10 +86,14 @@ def run(args: argparse.Namespace) -> int:
     identities = cfg.audit.include_patient_identifiers and args.list_studies
     journal = Journal(path)
     try:
-        rows = journal.audit_rows(since, until, identities=identities)
+        report = build_report(
+            journal.iter_audit_rows(since, until, identities=identities),
+            since=since,
+            until=until,
+            list_studies=args.list_studies,
+        )
     finally:
         journal.close()
-    report = build_report(rows, since=since, until=until, list_studies=args.list_studies)
     written = []
     if args.html is not None:
         _write(args.html, audit_html(report, node=cfg.node.ae_title, identities=identities))

@@ -132,8 +132,7 @@ class StatusPages:
                 )
         since = None if days is None else now - days * 86400
         with self._lock:
-            rows = self._reader().audit_rows(since, None)
-        report = build_report(rows, since=since, now=now)
+            report = build_report(self._reader().iter_audit_rows(since, None), since=since, now=now)
         links = tuple((f"last {d} days", f"/audit?days={d}") for d in AUDIT_PERIODS)
         return 200, audit_html(
             report,

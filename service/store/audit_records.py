@@ -17,10 +17,11 @@ with ``ON CONFLICT``; only the ``?`` placeholders differ).
 
 from __future__ import annotations
 
+import functools
 import json
 import re
 import sqlite3
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -79,6 +80,9 @@ _COLUMNS = (
 )
 
 #: insert or replace a study's row (an upsert both SQLite and PostgreSQL run)
+#: rows read from the journal at a time
+AUDIT_PAGE = 5000
+
 INSERT_AUDIT = (
     f"INSERT INTO audit_studies ({', '.join(_COLUMNS)}) "
     f"VALUES ({', '.join('?' * len(_COLUMNS))}) ON CONFLICT (study_uid) DO UPDATE SET "
@@ -175,8 +179,17 @@ def audit_values(
     )
 
 
-def _row(r: Any, identity: dict[str, tuple[str, str]] | None = None) -> AuditRow:
-    name, pid = (identity or {}).get(r["study_uid"], ("", ""))
+@functools.lru_cache(maxsize=8192)
+def _decoded(text: str) -> tuple[Any, ...]:
+    """A JSON list column as a tuple; the same few lists recur in thousands of rows (the
+    measures a device sends, the cut-offs met), so each distinct text is decoded once.  The
+    decoded values are shared between rows: read them, never change them."""
+    return tuple(json.loads(text))
+
+
+def _row(r: Any, identities: bool = False) -> AuditRow:
+    name = (r["patient_name"] or "") if identities else ""
+    pid = (r["patient_id"] or "") if identities else ""
     return AuditRow(
         study_uid=r["study_uid"],
         graded_at=r["graded_at"],
@@ -191,9 +204,9 @@ def _row(r: Any, identity: dict[str, tuple[str, str]] | None = None) -> AuditRow
         station_name=r["station_name"],
         manufacturer=r["manufacturer"],
         model=r["model"],
-        measures=tuple(json.loads(r["measures"])),
-        borderline=tuple(json.loads(r["borderline"])),
-        missing=tuple(json.loads(r["missing"])),
+        measures=_decoded(r["measures"]),
+        borderline=_decoded(r["borderline"]),
+        missing=_decoded(r["missing"]),
         compared=int(r["compared"]),
         disagreement=None if r["disagreement"] is None else bool(r["disagreement"]),
         failure=r["failure"],
@@ -300,21 +313,45 @@ class AuditRecords:
     ) -> list[AuditRow]:
         """Audit rows of the studies graded in [since, until) (epoch seconds), oldest first;
         patient identity only with ``identities`` (and only where it was recorded)."""
-        sql = "SELECT * FROM audit_studies WHERE 1=1"
+        return list(self.iter_audit_rows(since, until, identities=identities))
+
+    def iter_audit_rows(
+        self,
+        since: float | None = None,
+        until: float | None = None,
+        *,
+        identities: bool = False,
+        page: int = AUDIT_PAGE,
+    ) -> Iterator[AuditRow]:
+        """:meth:`audit_rows` one page at a time (keyset pagination on the time graded and the
+        study UID): memory stays bounded however long the period, and no read holds the
+        journal for long."""
+        columns = "a.*"
+        source = "audit_studies a"
+        if identities:
+            columns += ", i.patient_name, i.patient_id"
+            source += " LEFT JOIN audit_identities i ON i.study_uid = a.study_uid"
+        where = ["1=1"]
         params: list[Any] = []
         if since is not None:
-            sql += " AND graded_at >= ?"
+            where.append("a.graded_at >= ?")
             params.append(since)
         if until is not None:
-            sql += " AND graded_at < ?"
+            where.append("a.graded_at < ?")
             params.append(until)
-        rows = self._query(sql + " ORDER BY graded_at, study_uid", params)
-        identity: dict[str, tuple[str, str]] | None = None
-        if identities:
-            identity = {
-                r[0]: (r[1], r[2])
-                for r in self._query(
-                    "SELECT study_uid, patient_name, patient_id FROM audit_identities"
-                )
-            }
-        return [_row(r, identity) for r in rows]
+        after: tuple[float, str] | None = None
+        while True:
+            keyset = []
+            if after is not None:
+                keyset = ["(a.graded_at > ? OR (a.graded_at = ? AND a.study_uid > ?))"]
+            sql = (
+                f"SELECT {columns} FROM {source} WHERE {' AND '.join(where + keyset)} "
+                "ORDER BY a.graded_at, a.study_uid LIMIT ?"
+            )
+            extra = [] if after is None else [after[0], after[0], after[1]]
+            rows = self._query(sql, [*params, *extra, page])
+            for r in rows:
+                yield _row(r, identities)
+            if len(rows) < page:
+                return
+            after = (rows[-1]["graded_at"], rows[-1]["study_uid"])

@@ -44,8 +44,9 @@ def _wait(condition, timeout: float, what: str):  # type: ignore[no-untyped-def]
     raise UserError(f"timed out after {timeout:g} s waiting for {what}")
 
 
-def browser_shots(pages: list[tuple[str, Path]], *, width: int = 1100) -> None:
-    """Open each URL in headless Chromium and save a full-page screenshot."""
+def browser_shots(pages: list[tuple[str, Path, int | None]], *, width: int = 1100) -> None:
+    """Open each URL in headless Chromium and save a screenshot: the whole page, or its top
+    ``height`` pixels."""
     try:
         from playwright.sync_api import sync_playwright
     except ImportError:
@@ -58,9 +59,13 @@ def browser_shots(pages: list[tuple[str, Path]], *, width: int = 1100) -> None:
         browser = p.chromium.launch(executable_path=CHROMIUM, args=list(CHROMIUM_ARGS))
         try:
             page = browser.new_page(viewport={"width": width, "height": 900})
-            for url, out in pages:
+            for url, out, height in pages:
                 page.goto(url, wait_until="load")
-                page.screenshot(path=str(out), full_page=True)
+                if height is None:
+                    page.screenshot(path=str(out), full_page=True)
+                else:
+                    clip = {"x": 0, "y": 0, "width": width, "height": height}
+                    page.screenshot(path=str(out), full_page=True, clip=clip)
         finally:
             browser.close()
 
@@ -129,14 +134,15 @@ def make_screenshots(out_dir: Path, *, history: int = 400) -> list[Path]:
             send_datasets([late[1].dataset], port, called_ae=cfg.node.ae_title, calling_ae=ae)
             base = f"http://{LOOPBACK}:{node.http_port}"
             shots = [
-                (f"{base}/", out_dir / "status-page.png"),
-                (f"{base}/audit?days=200", out_dir / "audit-page.png"),
+                (f"{base}/", out_dir / "status-page.png", None),
+                # the top of the audit: key figures, outcomes, outcomes by pathway
+                (f"{base}/audit?days=200", out_dir / "audit-page.png", 2300),
             ]
             browser_shots(shots)
         finally:
             node.stop()
             pacs.stop()
-    return [p for _, p in shots]
+    return [p for _, p, _ in shots]
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -48,7 +48,7 @@ CREATE TABLE IF NOT EXISTS audit_studies (
     failure TEXT NOT NULL DEFAULT '',       -- why the study failed, while it does
     facts_version INTEGER NOT NULL DEFAULT 1
 );
-CREATE INDEX IF NOT EXISTS audit_studies_graded ON audit_studies (graded_at);
+CREATE INDEX IF NOT EXISTS audit_studies_time ON audit_studies (graded_at, study_uid);
 CREATE TABLE IF NOT EXISTS audit_identities (
     study_uid TEXT PRIMARY KEY,
     patient_name TEXT NOT NULL,
@@ -341,14 +341,12 @@ class AuditRecords:
             params.append(until)
         after: tuple[float, str] | None = None
         while True:
-            keyset = []
-            if after is not None:
-                keyset = ["(a.graded_at > ? OR (a.graded_at = ? AND a.study_uid > ?))"]
+            keyset = [] if after is None else ["(a.graded_at, a.study_uid) > (?, ?)"]
             sql = (
                 f"SELECT {columns} FROM {source} WHERE {' AND '.join(where + keyset)} "
                 "ORDER BY a.graded_at, a.study_uid LIMIT ?"
             )
-            extra = [] if after is None else [after[0], after[0], after[1]]
+            extra = [] if after is None else list(after)
             rows = self._query(sql, [*params, *extra, page])
             for r in rows:
                 yield _row(r, identities)

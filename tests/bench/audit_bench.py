@@ -105,6 +105,34 @@ def _timed(fn: Any) -> tuple[Any, float]:
     return value, time.perf_counter() - started
 
 
+def _command(data_dir: Path, page: Path) -> tuple[float, int]:
+    """Seconds and peak resident memory (KiB) of ``diastolic-sr audit --html --json`` in a
+    new process.  GNU time measures the memory where it is installed (a process started from
+    this one would count the pages it shares with this one before exec); else the command
+    reports its own high-water mark, an upper bound."""
+    args = ["audit", "--data-dir", str(data_dir), "--html", str(page), "--json"]
+    gnu_time = Path("/usr/bin/time")
+    if gnu_time.exists():
+        command = [str(gnu_time), "-f", "%M", sys.executable, "-m", "service.cli", *args]
+    else:
+        command = [
+            sys.executable,
+            "-c",
+            "import resource, sys\n"
+            "from service.cli import main\n"
+            "code = main(sys.argv[1:])\n"
+            "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, file=sys.stderr)\n"
+            "sys.exit(code)",
+            *args,
+        ]
+    started = time.perf_counter()
+    proc = subprocess.run(command, cwd=REPO, capture_output=True, text=True, check=False)
+    seconds = time.perf_counter() - started
+    if proc.returncode != 0:
+        raise SystemExit(f"audit command failed: {proc.stderr}")
+    return seconds, int(proc.stderr.strip().splitlines()[-1])
+
+
 def run(studies: int, work: Path, *, pool_size: int, seed: int) -> dict[str, Any]:
     from service.audit.pdf import audit_pdf
     from service.audit.render import audit_html
@@ -127,29 +155,7 @@ def run(studies: int, work: Path, *, pool_size: int, seed: int) -> dict[str, Any
     html, html_s = _timed(lambda: audit_html(report))
     _, pdf_s = _timed(lambda: audit_pdf(report, work / "audit.pdf"))
     page = work / "audit.html"
-    # the command in a new process, which reports its own peak resident memory when done
-    # (a child's counter would include the pages it shared with this process before exec)
-    command = [
-        sys.executable,
-        "-c",
-        "import resource, sys\n"
-        "from service.cli import main\n"
-        "code = main(sys.argv[1:])\n"
-        "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, file=sys.stderr)\n"
-        "sys.exit(code)",
-        "audit",
-        "--data-dir",
-        str(data_dir),
-        "--html",
-        str(page),
-        "--json",
-    ]
-    started = time.perf_counter()
-    proc = subprocess.run(command, cwd=REPO, capture_output=True, text=True, check=False)
-    cli_s = time.perf_counter() - started
-    if proc.returncode != 0:
-        raise SystemExit(f"audit command failed: {proc.stderr}")
-    peak_kib = int(proc.stderr.strip().splitlines()[-1])
+    cli_s, peak_kib = _command(data_dir, page)
     return {
         "studies": studies,
         "assessed": report.studies,

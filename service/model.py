@@ -74,6 +74,9 @@ class Observation(Frozen):
     qualifier: Code | None = None  # Numeric Value Qualifier, when present
     modifiers: tuple[Modifier, ...] = ()  # own modifiers first, then inherited ones
     source_uid: str = ""  # SOP Instance UID of the SR it came from
+    #: why the item's value cannot be used although it is there (several values, values that
+    #: disagree, an invalid Value Type); "" when it can
+    problem: str = ""
 
     def modifier(self, name: Code) -> Code | None:
         """Value of the nearest modifier with this concept name (own beats inherited)."""

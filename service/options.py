@@ -57,10 +57,49 @@ def add_grading_arguments(p: argparse.ArgumentParser) -> None:
     g.add_argument("--uid-root", metavar="ROOT", help="UID root for result UIDs (default 2.25)")
 
 
+#: command-line option of each key of the configuration's [grading] table it sets
+OPTION_OF_KEY = {
+    "guideline": "--guideline",
+    "lvef_reduced_below": "--lvef-reduced-below",
+    "uid_root": "--uid-root",
+    "compare": "--compare",
+}
+
+
+def check_grading_options(args: argparse.Namespace) -> None:
+    """Check the grading options with the configuration's own model
+    (:class:`service.config.GradingConfig`), so that the command line and the configuration
+    file accept exactly the same values; a refused value is a :class:`UserError` (exit status
+    2) naming the option, the value and what is allowed, raised before any file is read."""
+    from pydantic import ValidationError
+
+    from service.config import GradingConfig
+    from service.errors import UserError
+
+    given = {
+        "guideline": args.guideline,
+        "lvef_reduced_below": args.lvef_reduced_below,
+        "uid_root": args.uid_root if args.uid_root is not None else "",
+        "compare": args.compare,
+    }
+    try:
+        GradingConfig.model_validate(given)
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        key = str(err["loc"][0]) if err["loc"] else ""
+        option = OPTION_OF_KEY.get(key, key)
+        value = given.get(key, err.get("input"))
+        shown = f"{value:g}" if isinstance(value, float) else str(value)
+        allowed = str(err["msg"]).removeprefix("Value error, ")
+        allowed = allowed[:1].lower() + allowed[1:]
+        raise UserError(f"{option} {shown}: not allowed; {allowed}") from None
+
+
 def grade_options_from_args(args: argparse.Namespace) -> GradeOptions:
     from service.errors import UserError
     from service.grading import IMPLEMENTED_GUIDELINES, NOT_AVAILABLE
 
+    check_grading_options(args)
     guideline = Guideline(args.guideline)
     if guideline not in IMPLEMENTED_GUIDELINES:
         why = NOT_AVAILABLE.get(guideline, f"guideline {guideline.value} is not implemented")

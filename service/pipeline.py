@@ -47,6 +47,7 @@ class GradeStatus(StrEnum):
     graded = "graded"
     not_gradable = "not-gradable"
     rejected = "rejected"
+    skipped = "skipped"  # deliberately not graded (e.g. a result this software wrote)
 
 
 class StudyOutcome(Frozen):

@@ -15,8 +15,7 @@ import pytest
 
 from service.cli import main
 from service.demo.history import fill_history
-from service.network.service import journal_path
-from service.store.journal import Journal
+from service.store.journal import open_journal
 
 NOW = datetime(2026, 11, 30, 18, 0).timestamp()
 
@@ -71,7 +70,7 @@ def test_json_figures_match_the_journal(data_dir, capsys):
     code, out, _ = _run(capsys, "--data-dir", str(data_dir), "--json")
     assert code == 0
     data = json.loads(out)
-    journal = Journal(journal_path(data_dir))
+    journal = open_journal(data_dir)
     try:
         rows = journal.audit_rows()
     finally:
@@ -96,7 +95,7 @@ def test_period_selects_by_the_day_graded(data_dir, capsys):
     data = json.loads(out)
     since = datetime(2026, 11, 1).timestamp()
     until = datetime(2026, 11, 16).timestamp()  # --until DATE includes that day
-    journal = Journal(journal_path(data_dir))
+    journal = open_journal(data_dir)
     try:
         expected = [r for r in journal.audit_rows() if since <= r.graded_at < until and r.outcome]
     finally:

@@ -3,8 +3,6 @@ when retention purges a study (patient identity purged with it), read back by pe
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import pytest
 
 from service.audit.counterfactual import MissingEffect
@@ -12,25 +10,26 @@ from service.audit.facts import BorderlineCut, Device, StudyFacts
 from service.model import Comparison, Guideline, Measure, Outcome, Pathway
 from service.store.audit_records import failure_kind
 from service.store.journal import Journal, NewResult
+from service.store.sqlite_journal import SqliteJournal
 
 STUDY = "1.2.826.0.1.3680043.10.999.17"
 
 
 @pytest.fixture
 def journal(tmp_path):
-    j = Journal(tmp_path / "journal.sqlite3")
+    j = SqliteJournal(tmp_path / "journal.sqlite3")
     yield j
     j.close()
 
 
 def _receive(j: Journal, sop: str, *, study: str = STUDY, now: float) -> None:
-    j.record_object(
+    j.store_object(
         sop_instance_uid=sop,
         study_uid=study,
         sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
         transfer_syntax="1.2.840.10008.1.2.1",
         calling_ae="HV_ECHO_2",
-        path=Path(f"/spool/{sop}.dcm"),
+        data=b"DICM (stand-in bytes)",
         settle_seconds=5.0,
         now=now,
     )
@@ -41,13 +40,13 @@ def _result(uid: str) -> NewResult:
         result_uid=uid,
         series_uid="2.25.77",
         sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
-        path=Path(f"/spool/{uid}.dcm"),
         status="graded",
         guideline="ase-eacvi-2016",
         grade="indeterminate",
         filling_pressure="indeterminate",
         sources=("2.25.1",),
         predecessors=(),
+        data=b"DICM (stand-in result bytes)",
     )
 
 
@@ -126,8 +125,10 @@ def test_a_failed_delivery_is_the_study_s_failure_until_it_is_delivered(journal)
         now=1010.0,
     )
     (row,) = journal.audit_rows()
-    assert row.failure.startswith("delivery to PACS: gave up after 1 attempts: cannot connect")
-    assert failure_kind(row.failure) == "delivery to PACS: cannot connect to PACS@127.0.0.1"
+    assert row.failure.startswith("delivery of result SR 2.25.900 to PACS: gave up after 1")
+    assert failure_kind(row.failure) == (
+        "delivery of the result SR to PACS: cannot connect to PACS@127.0.0.1"
+    )
     assert row.delivered_at is None
     journal.requeue_failed(now=1100.0)
     (d,) = journal.deliveries(states=["pending"])
@@ -190,6 +191,11 @@ def test_retention_keeps_the_facts_and_forgets_the_patient(journal):
             "delivery to PACS: association rejected by PACS@10.0.0.5",
         ),
         (
+            "delivery of summary PDF 2.25.77 to ARCHIVE: gave up after 2 attempts: C-STORE "
+            "status 0xA700 from ARCHIVE@10.0.0.6:104 (out of resources)",
+            "delivery of the summary PDF to ARCHIVE: C-STORE status 0xA700 from ARCHIVE@10.0.0.6",
+        ),
+        (
             "delivery to PACS: gave up after 3 attempts: C-STORE status 0xA700 from "
             "PACS@10.0.0.5:104 (out of resources)",
             "delivery to PACS: C-STORE status 0xA700 from PACS@10.0.0.5",
@@ -222,3 +228,21 @@ def test_rows_are_read_page_by_page_in_order(journal):
         paged = [(r.graded_at, r.study_uid) for r in journal.iter_audit_rows(page=page)]
         assert paged == whole
     assert len(list(journal.iter_audit_rows(1000.0, 2000.0, page=2))) == 3
+
+
+def test_a_journal_of_the_previous_schema_gets_the_audit_tables(tmp_path):
+    from service.store import sqlite_schema
+
+    path = tmp_path / "journal.sqlite3"
+    j = SqliteJournal(path)
+    j._db.execute("DROP TABLE audit_studies")
+    j._db.execute("DROP TABLE audit_identities")
+    j._db.execute("UPDATE meta SET value = '2' WHERE key = 'schema_version'")
+    j.close()
+    j = SqliteJournal(path)
+    try:
+        version = j._query("SELECT value FROM meta WHERE key = 'schema_version'")[0][0]
+        assert int(version) == sqlite_schema.SCHEMA_VERSION >= 3
+        assert j.audit_rows() == []
+    finally:
+        j.close()

@@ -82,9 +82,10 @@ def test_receivers_latency_and_memory_sections(tmp_path):
 def _hot_path_statements(tmp_path: Path) -> dict[str, str]:
     """Every SQL statement one study's trip through the node runs (receive, claim, grade,
     deliver), captured from the journal's connection."""
-    from service.store.journal import Journal, NewResult
+    from service.store.journal import NewResult
+    from service.store.sqlite_journal import SqliteJournal
 
-    j = Journal(tmp_path / "journal.sqlite3")
+    j = SqliteJournal(tmp_path / "journal.sqlite3")
     seen: dict[str, str] = {}
 
     def trace(sql: str) -> None:
@@ -93,13 +94,13 @@ def _hot_path_statements(tmp_path: Path) -> dict[str, str]:
             seen.setdefault(" ".join(sql.split()), sql)
 
     j._db.set_trace_callback(trace)
-    j.record_object(
+    j.store_object(
         sop_instance_uid="2.25.11",
         study_uid="2.25.1",
         sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
         transfer_syntax="1.2.840.10008.1.2.1",
         calling_ae="SCANNER1",
-        path=tmp_path / "x.dcm",
+        data=b"object",
         settle_seconds=0,
         now=1.0,
     )
@@ -109,7 +110,7 @@ def _hot_path_statements(tmp_path: Path) -> dict[str, str]:
         result_uid="2.25.19",
         series_uid="2.25.18",
         sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
-        path=tmp_path / "r.dcm",
+        data=b"result",
         status="graded",
         guideline="ase-eacvi-2016",
         grade="normal",

@@ -212,10 +212,13 @@ def test_worker_processes_give_the_same_rows_in_the_same_order(demo_dir: Path):
     serial = run_cli("grade", demo_dir, "--json", "--jobs", "1")
     parallel = run_cli("grade", demo_dir, "--json", "--jobs", "2")
     assert serial.returncode == parallel.returncode == 0, parallel.stderr
-    keys = ("input", "status", "grade", "filling_pressure", "result_uid")
-    a = [tuple(json.loads(x)[k] for k in keys) for x in serial.stdout.splitlines()]
-    b = [tuple(json.loads(x)[k] for k in keys) for x in parallel.stdout.splitlines()]
-    assert a == b and len(a) == len(list(demo_dir.glob("*.dcm")))
+    keys = ("input", "inputs", "status", "grade", "filling_pressure", "result_uid")
+    a = [tuple(str(json.loads(x)[k]) for k in keys) for x in serial.stdout.splitlines()]
+    b = [tuple(str(json.loads(x)[k]) for k in keys) for x in parallel.stdout.splitlines()]
+    assert a == b
+    # one row per study; every file in one of them
+    files = [f for x in serial.stdout.splitlines() for f in json.loads(x)["inputs"]]
+    assert sorted(files) == sorted(str(p) for p in demo_dir.glob("*.dcm"))
 
 
 def test_negative_jobs_is_refused(demo_dir: Path):

@@ -61,8 +61,16 @@ def test_demo_command_runs_end_to_end():
     assert "Traceback" not in proc.stderr
     studies = len({c.key for c in CASES})
     assert f"{studies} of {studies} studies: result SR delivered" in proc.stdout
+    sent = sum(2 if c.follow_up else 1 for c in CASES)
+    # the first line says how many SRs and studies, and which study is sent as two SRs
+    first = proc.stdout.splitlines()[0]
+    assert f"Sending {sent} demo SRs of {studies} studies" in first
+    assert "two-reports: one study sent as two SRs" in first
+    lines = proc.stdout.splitlines()
+    assert lines[1].startswith("scenario")
     for case in CASES:
-        assert case.patient.id in proc.stdout
+        # each row names its scenario beside its patient
+        assert any(case.title in x and case.patient.id in x for x in lines), case.key
     assert CAUTION in proc.stdout
 
 

@@ -362,7 +362,8 @@ def test_disk_full_while_grading_recovers_without_manual_action(tmp_path, monkey
     node = Node(cfg, poll_seconds=0.05)
     node.start()
     try:
-        real = node.spool.write_result
+        spool = node.journal.spool
+        real = spool.write_result
         failures = {"left": 2}
 
         def full_then_space(*args, **kwargs):
@@ -371,7 +372,7 @@ def test_disk_full_while_grading_recovers_without_manual_action(tmp_path, monkey
                 raise OSError(28, "No space left on device")
             return real(*args, **kwargs)
 
-        monkeypatch.setattr(node.spool, "write_result", full_then_space)
+        monkeypatch.setattr(spool, "write_result", full_then_space)
         files = write_studies(tmp_path / "load", 1, run="grading-disk-full")
         import pydicom
         from netutil import send

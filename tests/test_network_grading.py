@@ -40,8 +40,7 @@ from service.network.service import Node
 from service.pipeline import GradeOptions, GradeStatus, grade_study
 from service.sr.encode import file_bytes
 from service.sr.read import read_document
-from service.store.journal import Journal
-from service.store.spool import Spool
+from service.store.sqlite_journal import SqliteJournal
 
 pytestmark = pytest.mark.network
 
@@ -92,13 +91,11 @@ def test_a_job_notes_unreadable_spooled_files_in_the_claims_order(tmp_path):
     good = simple_sr()
     good_path = tmp_path / "good.dcm"
     good.save_as(good_path, enforce_file_format=True)
-    broken_path = tmp_path / "broken.dcm"
-    broken_path.write_bytes(b"not DICOM at all")
-    missing_path = tmp_path / "missing.dcm"
     job = GradeJob(
         study_uid=str(good.StudyInstanceUID),
         object_uids=("1.2.3.1", str(good.SOPInstanceUID), "1.2.3.2"),
-        object_paths=(missing_path, good_path, broken_path),
+        # missing from the store, whole, not DICOM at all
+        objects=("FileNotFoundError: gone", good_path.read_bytes(), b"not DICOM at all"),
         options=GradeOptions(),
         mapping_paths=(),
     )
@@ -169,68 +166,20 @@ class _AlwaysCrashing(Assembler):
         raise WorkerCrashed("the grading process ended unexpectedly (test)")
 
 
-def test_a_kept_summary_is_one_the_journal_records_not_a_crash_leftover(tmp_path):
-    # a new spool file is written under its own name, so a crash can leave it short before the
-    # journal records it; such a file must be written anew, a recorded one kept
-    from types import SimpleNamespace
-
-    from service.network.grading_worker import EncodedObject
-    from service.store.journal import NewResult
-
-    journal = Journal(tmp_path / "journal.sqlite3")
-    spool = Spool(tmp_path / "spool")
-    assembler = Assembler(config_from_dict({}), journal, spool, grade_fn=fake_grade)
-    claim = SimpleNamespace(study_uid="2.25.10")
-    pdf = EncodedObject("2.25.11", "2.25.12", "1.2.840.10008.5.1.4.1.1.104.1", b"%PDF-new")
-    left = spool.result_path("2.25.10", "2.25.11")
-    left.parent.mkdir(parents=True)
-    left.write_bytes(b"")  # created, never written: the process died here
-    assert assembler._spool(claim, pdf, keep=True).read_bytes() == b"%PDF-new"
-
-    journal.record_object(
-        sop_instance_uid="2.25.13",
-        study_uid="2.25.10",
-        sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
-        transfer_syntax=ExplicitVRLittleEndian,
-        calling_ae="SCANNER1",
-        path=tmp_path / "x.dcm",
-        settle_seconds=0,
-    )
-    (study_claim,) = journal.claim_due()
-    recorded = NewResult(
-        result_uid="2.25.11",
-        series_uid="2.25.12",
-        sop_class_uid="1.2.840.10008.5.1.4.1.1.104.1",
-        path=left,
-        status="summary",
-        guideline=None,
-        grade=None,
-        filling_pressure=None,
-        sources=("2.25.13",),
-        predecessors=(),
-    )
-    journal.finish_grading(study_claim, result=recorded)
-    again = EncodedObject("2.25.11", "2.25.12", "1.2.840.10008.5.1.4.1.1.104.1", b"%PDF-later")
-    assert assembler._spool(claim, again, keep=True).read_bytes() == b"%PDF-new"
-    journal.close()
-
-
 def test_a_study_that_keeps_killing_its_worker_fails_with_the_reason(tmp_path):
     cfg = config_from_dict({})
-    journal = Journal(tmp_path / "journal.sqlite3")
-    spool = Spool(tmp_path / "spool")
+    journal = SqliteJournal(tmp_path / "journal.sqlite3")
     ds = simple_sr()
-    path = spool.write_object(str(ds.StudyInstanceUID), str(ds.SOPInstanceUID), b"")
-    journal.record_object(
+    journal.store_object(
         sop_instance_uid=str(ds.SOPInstanceUID),
         study_uid=str(ds.StudyInstanceUID),
         sop_class_uid=str(ds.SOPClassUID),
         transfer_syntax=ExplicitVRLittleEndian,
         calling_ae="SCANNER1",
-        path=path,
+        data=b"",
         settle_seconds=0,
     )
-    assembler = _AlwaysCrashing(cfg, journal, spool, grade_fn=fake_grade, poll_seconds=0.02)
+    assembler = _AlwaysCrashing(cfg, journal, grade_fn=fake_grade, poll_seconds=0.02)
     assembler.start()
     try:
         wait_for(lambda: journal.study(str(ds.StudyInstanceUID))["state"] == "failed", 30)
@@ -238,7 +187,7 @@ def test_a_study_that_keeps_killing_its_worker_fails_with_the_reason(tmp_path):
         assembler.stop()
         journal.close()
     assert _AlwaysCrashing.attempts == MAX_WORKER_CRASHES  # given back until then
-    reason = Journal(tmp_path / "journal.sqlite3").study(str(ds.StudyInstanceUID))["reason"]
+    reason = SqliteJournal(tmp_path / "journal.sqlite3").study(str(ds.StudyInstanceUID))["reason"]
     assert "grading process ended unexpectedly" in reason
 
 

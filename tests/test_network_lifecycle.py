@@ -28,6 +28,7 @@ from netutil import (
 from pynetdicom import AE
 
 from service.store.journal import Journal
+from service.store.sqlite_journal import SqliteJournal
 
 pytestmark = [
     pytest.mark.network,
@@ -79,7 +80,7 @@ class BatchSender(threading.Thread):
 
 
 def _journal_view(data_dir: Path) -> Journal:
-    return Journal(data_dir / "journal.sqlite3")
+    return SqliteJournal(data_dir / "journal.sqlite3")
 
 
 def _all_settled(data_dir: Path, study_uids):

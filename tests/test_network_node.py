@@ -252,24 +252,25 @@ def test_store_failure_answers_out_of_resources_and_nothing_is_acknowledged(
     start_node, monkeypatch
 ):
     node = start_node(grade_fn=fake_grade)
-    real_write = node.spool.write_object
+    spool = node.journal.spool
+    real_write = spool.write_object
 
     def disk_full(*args, **kwargs):
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr(node.spool, "write_object", disk_full)
+    monkeypatch.setattr(spool, "write_object", disk_full)
     first, second = simple_sr(), simple_sr()
     assert send([first], node.port) == [0xA700]  # PS3.4 B.2.3: Out of Resources
     assert node.journal.objects() == []
-    real_record = node.journal.record_object
+    real_tx = node.journal._tx
 
     def journal_broken(**kwargs):
         raise sqlite3.OperationalError("disk I/O error")
 
-    monkeypatch.setattr(node.spool, "write_object", real_write)
-    monkeypatch.setattr(node.journal, "record_object", journal_broken)
+    monkeypatch.setattr(spool, "write_object", real_write)
+    monkeypatch.setattr(node.journal, "_tx", journal_broken)
     assert send([first], node.port) == [0xA700]
-    monkeypatch.setattr(node.journal, "record_object", real_record)
+    monkeypatch.setattr(node.journal, "_tx", real_tx)
     assert send([second], node.port) == [0x0000]
     assert [o["sop_instance_uid"] for o in node.journal.objects()] == [second.SOPInstanceUID]
 

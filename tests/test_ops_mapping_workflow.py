@@ -15,7 +15,7 @@ from netutil import NodeProcess, send, wait_for, write_config
 
 from service.cli import main as cli_main
 from service.demo.scenario import CASES, case_datasets
-from service.store.journal import Journal
+from service.store.sqlite_journal import SqliteJournal
 
 pytestmark = pytest.mark.network
 
@@ -47,7 +47,7 @@ def test_private_code_taught_on_a_running_node(tmp_path, capsys):
         assert send([source], port) == [0]
 
         def results():
-            j = Journal(data / "journal.sqlite3")
+            j = SqliteJournal(data / "journal.sqlite3")
             try:
                 return j.results(study)
             finally:

@@ -163,6 +163,6 @@ def test_healthz_fails_when_the_journal_cannot_take_a_write(start_node):
         assert status == 503
         assert json.loads(body)["checks"]["journal"]["ok"] is False
     finally:
-        from service.store.journal import Journal
+        from service.store.sqlite_journal import SqliteJournal
 
-        node.journal = Journal(node.journal.path)  # let the fixture stop the node cleanly
+        node.journal = SqliteJournal(node.journal.path)  # let the fixture stop the node cleanly

@@ -10,45 +10,45 @@ import pytest
 
 from service.store.journal import Journal, NewResult
 from service.store.retention import DAY, purge
-from service.store.spool import Spool
+from service.store.sqlite_journal import SqliteJournal
 
 T0 = 1_900_000_000.0  # an arbitrary fixed epoch time
 
 
 @pytest.fixture
 def store(tmp_path):
-    journal = Journal(tmp_path / "journal.sqlite3")
-    spool = Spool(tmp_path / "spool")
-    yield journal, spool
+    journal = SqliteJournal(tmp_path / "journal.sqlite3")
+    yield journal
     journal.close()
 
 
-def _receive(journal: Journal, spool: Spool, study: str, sop: str, now: float) -> Path:
-    path = spool.write_object(study, sop, b"object " + sop.encode())
-    journal.record_object(
+def _receive(journal: Journal, study: str, sop: str, now: float, settle: float = 0) -> Path:
+    """A received object; its spool file."""
+    journal.store_object(
         sop_instance_uid=sop,
         study_uid=study,
         sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
         transfer_syntax="1.2.840.10008.1.2.1",
         calling_ae="HV_ECHO1",
-        path=path,
-        settle_seconds=0,
+        data=b"object " + sop.encode(),
+        settle_seconds=settle,
         now=now,
     )
-    return path
+    (row,) = [o for o in journal.objects(study) if o["sop_instance_uid"] == sop]
+    return Path(row["path"])
 
 
-def _grade(journal: Journal, spool: Spool, study: str, now: float, dests=("PACS",)) -> Path:
+def _grade(journal: Journal, study: str, now: float, dests=("PACS",)) -> Path:
+    """The study graded; its result's spool file."""
     (claim,) = journal.claim_due(now=now)
     result_uid = f"{study}.9"
-    path = spool.write_result(study, result_uid, b"result")
     journal.finish_grading(
         claim,
         result=NewResult(
             result_uid=result_uid,
             series_uid=f"{study}.8",
             sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
-            path=path,
+            data=b"result",
             status="graded",
             guideline="ase-eacvi-2016",
             grade="normal",
@@ -59,7 +59,7 @@ def _grade(journal: Journal, spool: Spool, study: str, now: float, dests=("PACS"
         destinations=[(d, "X@127.0.0.1:104") for d in dests],
         now=now,
     )
-    return path
+    return Path(journal.result(result_uid)["path"])
 
 
 def _deliver_all(journal: Journal, study: str, now: float) -> None:
@@ -69,45 +69,36 @@ def _deliver_all(journal: Journal, study: str, now: float) -> None:
 
 
 def test_purges_finished_studies_and_never_pending_work(store):
-    journal, spool = store
+    journal = store
     old = T0 - 40 * DAY
     # 1. delivered 40 days ago: purged
-    src1 = _receive(journal, spool, "1.2.1", "1.2.1.1", old)
-    res1 = _grade(journal, spool, "1.2.1", old)
+    src1 = _receive(journal, "1.2.1", "1.2.1.1", old)
+    res1 = _grade(journal, "1.2.1", old)
     _deliver_all(journal, "1.2.1", old)
     # 2. not gradable 40 days ago, nothing to deliver: purged
-    src2 = _receive(journal, spool, "1.2.2", "1.2.2.1", old)
+    src2 = _receive(journal, "1.2.2", "1.2.2.1", old)
     (claim,) = journal.claim_due(now=old)
     journal.finish_grading(claim, result=None, failure="rejected: no echo measurement", now=old)
     # 3. graded 40 days ago, delivery still pending: kept
-    src3 = _receive(journal, spool, "1.2.3", "1.2.3.1", old)
-    _grade(journal, spool, "1.2.3", old)
+    src3 = _receive(journal, "1.2.3", "1.2.3.1", old)
+    _grade(journal, "1.2.3", old)
     # 4. received 40 days ago, never graded (settle window far ahead): kept
-    journal.record_object(
-        sop_instance_uid="1.2.4.1",
-        study_uid="1.2.4",
-        sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
-        transfer_syntax="1.2.840.10008.1.2.1",
-        calling_ae="HV_ECHO1",
-        path=spool.write_object("1.2.4", "1.2.4.1", b"x"),
-        settle_seconds=10 * 365 * DAY,
-        now=old,
-    )
+    _receive(journal, "1.2.4", "1.2.4.1", old, settle=10 * 365 * DAY)
     # 5. delivery failed for good 40 days ago: kept (an administrator may re-queue it)
-    _receive(journal, spool, "1.2.5", "1.2.5.1", old)
-    _grade(journal, spool, "1.2.5", old)
+    _receive(journal, "1.2.5", "1.2.5.1", old)
+    _grade(journal, "1.2.5", old)
     (d,) = [x for x in journal.due_deliveries(now=old) if x.study_uid == "1.2.5"]
     journal.mark_attempt_failed(
         d.id, "refused", max_attempts=1, backoff_initial=1, backoff_max=1, now=old
     )
     # 6. delivered 2 days ago: kept (younger than the retention)
     recent = T0 - 2 * DAY
-    src6 = _receive(journal, spool, "1.2.6", "1.2.6.1", recent)
-    _grade(journal, spool, "1.2.6", recent)
+    src6 = _receive(journal, "1.2.6", "1.2.6.1", recent)
+    _grade(journal, "1.2.6", recent)
     _deliver_all(journal, "1.2.6", recent)
     assert journal.study("1.2.3")["state"] == "graded"  # its delivery was never attempted
 
-    report = purge(journal, spool.root, 30, now=T0)
+    report = purge(journal, 30, now=T0)
 
     assert report.studies == 2
     assert not src1.exists() and not res1.exists() and not src2.exists()
@@ -121,33 +112,24 @@ def test_purges_finished_studies_and_never_pending_work(store):
 
 
 def test_zero_days_keeps_everything(store):
-    journal, spool = store
+    journal = store
     old = T0 - 400 * DAY
-    src = _receive(journal, spool, "1.3.1", "1.3.1.1", old)
-    _grade(journal, spool, "1.3.1", old, dests=())
+    src = _receive(journal, "1.3.1", "1.3.1.1", old)
+    _grade(journal, "1.3.1", old, dests=())
     assert journal.study("1.3.1")["state"] == "graded"
-    assert purge(journal, spool.root, 0, now=T0).studies == 0
+    assert purge(journal, 0, now=T0).studies == 0
     assert src.exists()
 
 
 def test_a_late_object_reopens_the_study_and_protects_it(store):
-    journal, spool = store
+    journal = store
     old = T0 - 40 * DAY
-    _receive(journal, spool, "1.4.1", "1.4.1.1", old)
-    _grade(journal, spool, "1.4.1", old)
+    _receive(journal, "1.4.1", "1.4.1.1", old)
+    _grade(journal, "1.4.1", old)
     _deliver_all(journal, "1.4.1", old)
-    late = _receive(journal, spool, "1.4.1", "1.4.1.2", T0 - 40 * DAY + 1)
-    journal.record_object(  # a re-send today: the study is pending again
-        sop_instance_uid="1.4.1.2",
-        study_uid="1.4.1",
-        sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
-        transfer_syntax="1.2.840.10008.1.2.1",
-        calling_ae="HV_ECHO1",
-        path=late,
-        settle_seconds=60,
-        now=T0,
-    )
-    assert purge(journal, spool.root, 30, now=T0).studies == 0
+    late = _receive(journal, "1.4.1", "1.4.1.2", T0 - 40 * DAY + 1)
+    _receive(journal, "1.4.1", "1.4.1.2", T0, settle=60)  # a re-send today: pending again
+    assert purge(journal, 30, now=T0).studies == 0
     assert late.exists()
 
 
@@ -188,13 +170,12 @@ def test_queue_purge_command(tmp_path, capsys):
     from service.cli import main as cli_main
 
     data = tmp_path / "data"
-    journal = Journal(data / "journal.sqlite3")
-    spool = Spool(data / "spool")
+    journal = SqliteJournal(data / "journal.sqlite3")
     import time
 
     old = time.time() - 40 * DAY  # the command purges relative to the real clock
-    src = _receive(journal, spool, "1.5.1", "1.5.1.1", old)
-    _grade(journal, spool, "1.5.1", old)
+    src = _receive(journal, "1.5.1", "1.5.1.1", old)
+    _grade(journal, "1.5.1", old)
     _deliver_all(journal, "1.5.1", old)
     journal.close()
     cfg = tmp_path / "node.toml"

@@ -138,7 +138,9 @@ def test_a_failed_summary_delivery_fails_the_study_with_its_reason(tmp_path):
         study = str(source.StudyInstanceUID)
         wait_for(lambda: (node.journal.study(study) or {}).get("state") == "failed", 60)
         assert [str(ds.SOPClassUID) for ds in pacs.received] == [COMPREHENSIVE_SR]
-        assert "delivery to PACS_MAIN" in node.journal.study(study)["reason"]
+        reason = node.journal.study(study)["reason"]
+        # the reason names the object whose delivery failed (its kind and UID)
+        assert reason.startswith("delivery of summary PDF ") and " to PACS_MAIN: " in reason
     finally:
         if node is not None:
             node.stop()
@@ -180,6 +182,22 @@ def test_the_summary_never_goes_where_its_result_sr_did_not_arrive(tmp_path):
         assert len(failed) == 2  # the SR and its summary, both with reasons
         assert any("is not delivered there yet" in d["last_error"] for d in failed)
         assert any("0xA700" in d["last_error"] for d in failed)
+        # the queue names each object (kind and UID) with its own reason
+        from service.commands.queue import build_report
+
+        report = build_report(node.journal, recent=5)
+        listed = {(d["kind"], d["uid"]): d["reason"] for d in report["deliveries_failed"]}
+        result_uid = node.journal.study(study)["result_uid"]
+        [pdf_uid] = [uid for kind, uid in listed if kind == "summary PDF"]
+        assert set(listed) == {("result SR", result_uid), ("summary PDF", pdf_uid)}
+        assert "0xA700" in listed[("result SR", result_uid)]
+        assert "not delivered there yet" in listed[("summary PDF", pdf_uid)]
+        [entry] = report["failed"]
+        assert entry["result_uid"] == result_uid
+        lines = entry["failed_deliveries"]
+        assert len(lines) == 2
+        assert any(x.startswith(f"result SR {result_uid} to PACS_MAIN: ") for x in lines)
+        assert any(x.startswith(f"summary PDF {pdf_uid} to PACS_MAIN: ") for x in lines)
     finally:
         if node is not None:
             node.stop()

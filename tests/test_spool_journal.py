@@ -17,16 +17,17 @@ from service.store.journal import (
     NewResult,
 )
 from service.store.spool import Spool, durable_write, safe_name
+from service.store.sqlite_journal import SqliteJournal
 
 STUDY = "1.2.826.0.1.3680043.10.999.1"
 
 
-def _result(uid: str, sources: tuple[str, ...], path: Path) -> NewResult:
+def _result(uid: str, sources: tuple[str, ...], data: bytes = b"result") -> NewResult:
     return NewResult(
         result_uid=uid,
         series_uid="2.25.77",
         sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
-        path=path,
+        data=data,
         status="graded",
         guideline="ase-eacvi-2016",
         grade="grade-1",
@@ -38,19 +39,19 @@ def _result(uid: str, sources: tuple[str, ...], path: Path) -> NewResult:
 
 @pytest.fixture
 def journal(tmp_path):
-    j = Journal(tmp_path / "journal.sqlite3")
+    j = SqliteJournal(tmp_path / "journal.sqlite3")
     yield j
     j.close()
 
 
 def _receive(j: Journal, sop: str, *, study: str = STUDY, now: float = 1000.0, settle=5.0):
-    j.record_object(
+    j.store_object(
         sop_instance_uid=sop,
         study_uid=study,
         sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
         transfer_syntax="1.2.840.10008.1.2.1",
         calling_ae="ECHO1",
-        path=Path(f"/spool/{sop}.dcm"),
+        data=b"object " + sop.encode(),
         settle_seconds=settle,
         now=now,
     )
@@ -203,7 +204,7 @@ def test_what_is_acknowledged_is_on_disk_and_progress_is_committed_lazily(journa
     assert _sync_of_commits(journal, lambda: claims.extend(journal.claim_due(now=1010.0))) == [
         "NORMAL"
     ]
-    result = _result("2.25.1", ("1.1",), tmp_path / "r.dcm")
+    result = _result("2.25.1", ("1.1",))
     grade = lambda: journal.finish_grading(  # noqa: E731
         claims[0], result=result, destinations=[("PACS", "PACS")], now=1011.0
     )
@@ -221,12 +222,12 @@ def test_lazily_committed_progress_survives_a_crash_of_the_process(tmp_path):
     # a new connection sees what the old one committed with NORMAL (the WAL holds it; only a
     # power loss can roll it back, SQLite docs as above)
     path = tmp_path / "journal.sqlite3"
-    j = Journal(path)
+    j = SqliteJournal(path)
     _receive(j, "1.1", now=1000.0)
     (claim,) = j.claim_due(now=1010.0)
     j.finish_grading(claim, result=None, failure="rejected: no echo measurement recognised")
     # no close(): the process "dies" with the connection open
-    again = Journal(path)
+    again = SqliteJournal(path)
     assert again.study(STUDY)["state"] == "failed"
     again.close()
     j.close()
@@ -242,7 +243,7 @@ def test_settle_window_then_claim_then_graded_then_delivered(journal, tmp_path):
     assert {o["state"] for o in journal.objects(STUDY)} == {"assembled"}
     queued = journal.finish_grading(
         claim,
-        result=_result("2.25.1", claim.object_uids, tmp_path / "r.dcm"),
+        result=_result("2.25.1", claim.object_uids),
         destinations=[("PACS", "PACS@127.0.0.1:104"), (FOLDER_DESTINATION, "/out")],
         now=1008.0,
     )
@@ -264,7 +265,7 @@ def test_object_arriving_during_grading_reopens_the_study(journal, tmp_path):
     _receive(journal, "1.2", now=1000.5, settle=0)  # while the first grading runs
     journal.finish_grading(
         claim,
-        result=_result("2.25.1", claim.object_uids, tmp_path / "r.dcm"),
+        result=_result("2.25.1", claim.object_uids),
         destinations=[("PACS", "x")],
         now=1001.0,
     )
@@ -278,7 +279,7 @@ def test_object_arriving_during_grading_reopens_the_study(journal, tmp_path):
 def test_same_result_uid_is_not_delivered_twice(journal, tmp_path):
     _receive(journal, "1.1", now=1000.0, settle=0)
     [claim] = journal.claim_due(now=1000.0)
-    r = _result("2.25.1", ("1.1",), tmp_path / "r.dcm")
+    r = _result("2.25.1", ("1.1",))
     assert journal.finish_grading(claim, result=r, destinations=[("PACS", "x")], now=1000.0)
     [d] = journal.due_deliveries(now=1000.0)
     journal.mark_delivered(d.id, now=1000.0)
@@ -296,7 +297,7 @@ def test_backoff_doubles_up_to_the_cap_then_fails_with_reason(journal, tmp_path)
     _receive(journal, "1.1", now=0.0, settle=0)
     [claim] = journal.claim_due(now=0.0)
     journal.finish_grading(
-        claim, result=_result("2.25.1", ("1.1",), tmp_path / "r"), destinations=[("P", "x")], now=0
+        claim, result=_result("2.25.1", ("1.1",)), destinations=[("P", "x")], now=0
     )
     now = 0.0
     delays = []
@@ -345,14 +346,17 @@ def test_grading_failure_is_recorded_with_reason(journal):
 
 def test_recover_after_crash_mid_grading_and_state_survives_reopen(tmp_path):
     path = tmp_path / "j.sqlite3"
-    j = Journal(path)
+    j = SqliteJournal(path)
     _receive(j, "1.1", now=0.0, settle=0)
     _receive(j, "2.1", study="1.2.9", now=0.0, settle=100)
     j.claim_due(now=0.0)  # then the process dies (no finish_grading)
     j._db.close()  # no clean close of the journal object
-    j2 = Journal(path)
+    j2 = SqliteJournal(path)
     counts = j2.recover(now=50.0)
-    assert counts["resumed_grading"] == 1
+    # both studies resume (one caught mid-grading, one still in its settle window): the count
+    # the restart log shows is the number of studies that will be graded
+    assert counts["resumed_grading"] == 2
+    assert counts["interrupted_grading"] == 1
     assert j2.study(STUDY)["state"] == "received"
     [claim] = j2.claim_due(now=50.0)  # due again at once
     assert claim.study_uid == STUDY
@@ -364,7 +368,7 @@ def test_regrade_request_from_another_connection(tmp_path, journal):
     _receive(journal, "1.1", now=0.0, settle=0)
     [claim] = journal.claim_due(now=0.0)
     journal.finish_grading(claim, result=None, failure="x", now=0.0)
-    other = Journal(journal.path)  # e.g. the queue command while the node runs
+    other = SqliteJournal(journal.path)  # e.g. the queue command while the node runs
     assert other.request_regrade(STUDY, now=10.0)
     assert not other.request_regrade("9.9.9")
     other.close()
@@ -387,3 +391,75 @@ def test_claim_given_back_for_a_retry_is_not_due_before_its_time(journal):
     assert again.object_uids == claim.object_uids
     journal.release_claim(again, now=1011.0)  # shutdown: due as it was
     assert journal.claim_due(now=1011.0)
+
+
+def test_result_bytes_a_crash_left_unrecorded_are_written_anew_recorded_ones_kept(journal):
+    # a new spool file is written under its own name, so a crash can leave it short before the
+    # journal records it; such a file must be written anew, a recorded one kept
+    left = journal.spool.result_path(STUDY, "2.25.11")
+    left.parent.mkdir(parents=True)
+    left.write_bytes(b"")  # created, never written: the process died here
+    _receive(journal, "1.1", now=0.0, settle=0)
+    (claim,) = journal.claim_due(now=0.0)
+    journal.finish_grading(claim, result=_result("2.25.11", ("1.1",), b"%PDF-new"), now=1.0)
+    assert left.read_bytes() == b"%PDF-new"
+    assert journal.result_data("2.25.11") == b"%PDF-new"
+    assert journal.result_stored("2.25.11")
+    _receive(journal, "1.2", now=2.0, settle=0)
+    (again,) = journal.claim_due(now=2.0)
+    journal.finish_grading(again, result=_result("2.25.11", ("1.1",), b"%PDF-later"), now=3.0)
+    assert left.read_bytes() == b"%PDF-new"
+
+
+def test_a_result_said_to_be_stored_that_is_not_raises_and_records_nothing(journal):
+    _receive(journal, "1.1", now=0.0, settle=0)
+    (claim,) = journal.claim_due(now=0.0)
+    with pytest.raises(FileNotFoundError):
+        journal.finish_grading(claim, result=_result("2.25.11", ("1.1",), None), now=1.0)
+    assert journal.results() == []
+    assert journal.study(STUDY)["state"] == "assembled"
+
+
+def test_received_bytes_are_in_the_spool_before_the_row_and_read_back(journal):
+    order: list[str] = []
+    real_write = journal.spool.write_object
+
+    def write(*args):
+        order.append("file")
+        return real_write(*args)
+
+    journal.spool.write_object = write
+    journal._db.set_trace_callback(lambda sql: order.append(sql.split()[0].upper()))
+    try:
+        _receive(journal, "1.1", now=0.0)
+    finally:
+        journal._db.set_trace_callback(None)
+    assert order[0] == "file" and "COMMIT" in order
+    assert journal.object_data("1.1") == b"object 1.1"
+    row = journal.objects(STUDY)[0]
+    assert Path(row["path"]) == journal.spool.object_path(STUDY, "1.1")
+    with pytest.raises(FileNotFoundError):
+        journal.object_data("9.9")
+
+
+def test_schema_version_is_recorded_and_a_newer_journal_is_refused(tmp_path):
+    from service.store import sqlite_schema
+    from service.store.sql_journal import SchemaTooNew
+
+    path = tmp_path / "journal.sqlite3"
+    j = SqliteJournal(path)
+    version = j._query("SELECT value FROM meta WHERE key = 'schema_version'")[0][0]
+    assert int(version) == sqlite_schema.SCHEMA_VERSION
+    j._db.execute("UPDATE meta SET value = '999' WHERE key = 'schema_version'")
+    j.close()
+    with pytest.raises(SchemaTooNew, match="schema version 999"):
+        SqliteJournal(path)
+
+
+def test_open_journal_gives_the_interface(tmp_path):
+    from service.store.journal import open_journal
+
+    j = open_journal(tmp_path)
+    assert isinstance(j, Journal)
+    assert j.location == str(tmp_path / "journal.sqlite3")
+    j.close()

@@ -72,8 +72,8 @@ def run(args: argparse.Namespace) -> int:
     from service.audit.render import audit_html
     from service.audit.report import build_report, report_json
     from service.config import apply_overrides, load_config
-    from service.network.service import journal_path
-    from service.store.journal import Journal
+    from service.store.journal import open_journal
+    from service.store.sqlite_journal import journal_path
 
     since = None if args.since is None else parse_when(args.since, end=False)
     until = None if args.until is None else parse_when(args.until, end=True)
@@ -84,7 +84,7 @@ def run(args: argparse.Namespace) -> int:
     if not path.exists():
         raise UserError(f"no journal at {path} (has the node run with this data directory?)")
     identities = cfg.audit.include_patient_identifiers and args.list_studies
-    journal = Journal(path)
+    journal = open_journal(cfg.data_dir)
     try:
         report = build_report(
             journal.iter_audit_rows(since, until, identities=identities),

@@ -24,8 +24,13 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from service.errors import UserError
+    from service.model import Measure
     from service.vocabulary.mapper import load_mapping_table
 
+    known = [m.value for m in Measure]
+    if args.measure is not None and args.measure not in known:
+        raise UserError(f"--measure {args.measure}: unknown measure; known: {', '.join(known)}")
     table = load_mapping_table(args.mapping or ())
     entries = [e for e in table.entries if not args.measure or e.measure == args.measure]
     if args.json:

@@ -49,12 +49,21 @@ def run_demo_data(args: argparse.Namespace) -> int:
 
 def run_demo(args: argparse.Namespace) -> int:
     """The demo node knows the fictional scanner's private codes (its site mapping table)."""
-    from service.demo.scenario import SITE_MAPPING, demo_datasets
+    from service.demo.scenario import CASES, SITE_MAPPING, case_datasets
     from service.network.demo_loop import run_network_demo
 
     logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
-    datasets = demo_datasets()
-    print(f"Sending {len(datasets)} demo SRs to a diastolic-sr node on loopback ...", flush=True)
+    sent = [(case, case_datasets(case)) for case in CASES]
+    datasets = [ds for _, objects in sent for ds in objects]
+    scenarios = {str(objects[0].StudyInstanceUID): case.title for case, objects in sent}
+    split = [case.key for case, objects in sent if len(objects) > 1]
+    print(
+        f"Sending {len(datasets)} demo SRs of {len(sent)} studies to a diastolic-sr node on "
+        "loopback"
+        + (f" ({', '.join(split)}: one study sent as two SRs, graded together)" if split else "")
+        + " ...",
+        flush=True,
+    )
     if args.workdir:
         args.workdir.mkdir(parents=True, exist_ok=True)
         rows = run_network_demo(
@@ -65,17 +74,23 @@ def run_demo(args: argparse.Namespace) -> int:
             rows = run_network_demo(
                 datasets, Path(tmp), timeout=args.timeout, mapping_files=[SITE_MAPPING]
             )
-    print_rows(rows)
+    print_rows(rows, scenarios)
     delivered = sum(1 for r in rows if r["delivered"])
     print(f"\n{delivered} of {len(rows)} studies: result SR delivered to the loopback PACS.")
     print(CAUTION)
     return 0 if delivered == len(rows) else 1
 
 
-def print_rows(rows: list[dict]) -> None:
+def print_rows(rows: list[dict], scenarios: dict[str, str] | None = None) -> None:
+    """One line per study; with ``scenarios`` (study UID -> what the demo case shows) a
+    column naming each row's scenario."""
+    scenarios = scenarios or {}
     headers = ("patient", "study", "guideline", "grade", "filling pressure", "result instance")
-    table = [
-        (
+    if scenarios:
+        headers = ("scenario", *headers)
+    table = []
+    for r in rows:
+        cells = (
             f"{r['patient_name'].replace('^', ', ')} ({r['patient_id']})",
             "…" + r["study_uid"][-12:],
             r["guideline"] or "-",
@@ -83,6 +98,5 @@ def print_rows(rows: list[dict]) -> None:
             r["filling_pressure"] or "-",
             r["result_uid"] or (r.get("reason") or "-"),
         )
-        for r in rows
-    ]
+        table.append((scenarios.get(r["study_uid"], "-"), *cells) if scenarios else cells)
     print_columns(headers, table)

@@ -6,11 +6,14 @@ import argparse
 import json
 import multiprocessing
 import os
+import stat
 import sys
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 from typing import Any, NamedTuple
+
+from pydicom import Dataset
 
 from service.commands.columns import print_columns
 from service.model import CAUTION
@@ -24,11 +27,25 @@ def register(sub: argparse._SubParsersAction) -> None:
         "grade",
         help="grade echo measurement SR files (no network)",
         description="Grade LV diastolic function from echo measurement SR files. PATH may be "
-        "files or folders (searched recursively). One result SR is written per graded source "
-        "when --out is given.",
+        "files or folders (searched recursively; a DICOMDIR's referenced files are followed). "
+        "Files of one study (Study Instance UID) are graded together, as the node grades "
+        "them; one result SR is written per study when --out is given. Results this "
+        "software wrote are skipped, never graded again.",
     )
     p.add_argument("paths", nargs="+", metavar="PATH", help="SR file or folder")
-    p.add_argument("--out", type=Path, metavar="DIR", help="write result SRs into DIR")
+    p.add_argument(
+        "--out",
+        type=Path,
+        metavar="DIR",
+        help="write result SRs into DIR, at each input's path inside the folder given "
+        "(NAME.result.dcm; NAME.2.result.dcm, ... when a name is already taken in the run)",
+    )
+    p.add_argument(
+        "--per-file",
+        action="store_true",
+        help="grade each file alone instead of grading the files of one study together "
+        "(as the node does)",
+    )
     p.add_argument("--json", action="store_true", help="one JSON object per input, per line")
     p.add_argument(
         "--pdf",
@@ -47,7 +64,19 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(func=run)
 
 
-def iter_inputs(paths: list[str]) -> Iterator[Path]:
+#: Media Storage Directory Storage (PS3.4 Annex F.1; PS3.10 8.6): a DICOMDIR
+MEDIA_DIRECTORY = "1.2.840.10008.1.3.10"
+_LAST_HEADER_TAG = 0x0020000D  # Study Instance UID: the last attribute the scan reads
+
+
+class _Entry(NamedTuple):
+    """One input file and the command-line argument it was found under."""
+
+    path: Path
+    root: Path  # the folder argument it was found in, or the file argument itself
+
+
+def iter_inputs(paths: list[str]) -> Iterator[_Entry]:
     """Files in the order given; folders searched recursively in sorted order."""
     for raw in paths:
         path = Path(raw)
@@ -55,9 +84,138 @@ def iter_inputs(paths: list[str]) -> Iterator[Path]:
             for root, dirs, files in os.walk(path):
                 dirs.sort()
                 for name in sorted(files):
-                    yield Path(root) / name
+                    yield _Entry(Path(root) / name, path)
         else:
-            yield path
+            yield _Entry(path, path)
+
+
+def not_regular(path: Path) -> str | None:
+    """What a path is when it is neither a regular file nor missing (a missing file is reported
+    by the reader); reading a named pipe, socket or device could block forever."""
+    try:
+        mode = path.stat().st_mode
+    except OSError:
+        return None
+    if stat.S_ISREG(mode):
+        return None
+    kinds = (
+        (stat.S_ISFIFO, "a named pipe"),
+        (stat.S_ISSOCK, "a socket"),
+        (stat.S_ISCHR, "a character device"),
+        (stat.S_ISBLK, "a block device"),
+        (stat.S_ISDIR, "a folder"),
+    )
+    kind = next((name for test, name in kinds if test(mode)), "not a regular file")
+    return f"{kind}, not a regular file: not read"
+
+
+def _header(path: Path) -> tuple[str, str] | None:
+    """(Media Storage SOP Class UID, Study Instance UID) from the start of a DICOM file, None
+    when it cannot be read that far (the reader reports why when the file is graded)."""
+    import pydicom.filereader
+
+    try:
+        with open(path, "rb") as fh:
+            ds = pydicom.filereader.read_partial(
+                fh, stop_when=lambda tag, vr, length: tag > _LAST_HEADER_TAG
+            )
+            meta = getattr(ds, "file_meta", None)
+            sop_class = str(meta.get("MediaStorageSOPClassUID", "")) if meta else ""
+            study = str(ds.get("StudyInstanceUID", "") or "")
+    except Exception:
+        return None
+    return sop_class, study
+
+
+def _media_directory(path: Path) -> tuple[list[Path], str]:
+    """The files a DICOMDIR references (pydicom's FileSet, PS3.10 8.6), and the line that
+    says so; ([], reason) when it cannot be read."""
+    from pydicom.fileset import FileSet
+
+    try:
+        files = [Path(instance.path) for instance in FileSet(path)]
+    except Exception as exc:
+        return [], f"media directory (DICOMDIR) that cannot be read ({type(exc).__name__})"
+    return files, (
+        f"media directory (DICOMDIR): its {len(files)} referenced "
+        f"file{'' if len(files) == 1 else 's'} are graded, not the directory itself"
+    )
+
+
+class _Unit(NamedTuple):
+    """What one worker call does: grade the files of one study together (or one file with
+    --per-file), or hand back rows already made (inputs that are not read)."""
+
+    files: tuple[Path, ...] = ()
+    #: output path without its suffix (".result.dcm", ".summary.dcm"); None without --out
+    out_base: Path | None = None
+    rows: tuple[dict, ...] = ()
+
+
+def plan_units(
+    paths: list[str], options: GradeOptions, out_dir: Path | None, *, per_file: bool
+) -> list[_Unit]:
+    """The run's work in input order: files grouped by Study Instance UID (unless
+    ``per_file``), each group named an output that no other group of the run shares."""
+    items: list[dict | tuple[_Entry, str]] = []  # a row already made, or (file, study)
+    seen: set[Path] = set()
+    pending = list(iter_inputs(paths))
+    while pending:
+        entry = pending.pop(0)
+        key = Path(os.path.abspath(entry.path))
+        if key in seen:  # given twice, or also listed by a DICOMDIR: graded once
+            continue
+        seen.add(key)
+        why = not_regular(entry.path)
+        if why is not None:
+            items.append(skipped_row(entry.path, options, why))
+            continue
+        header = _header(entry.path)
+        if header is not None and header[0] == MEDIA_DIRECTORY:
+            files, why = _media_directory(entry.path)
+            items.append(skipped_row(entry.path, options, why))
+            pending[:0] = [_Entry(f, entry.root) for f in files]
+            continue
+        items.append((entry, "" if header is None else header[1]))
+    groups: dict[str, list[_Entry]] = {}
+    order: list[dict | str] = []
+    for item in items:
+        if isinstance(item, dict):
+            order.append(item)
+            continue
+        entry, study = item
+        key = f"file:{entry.path}" if per_file or not study else f"study:{study}"
+        if key not in groups:
+            groups[key] = []
+            order.append(key)
+        groups[key].append(entry)
+    used: set[str] = set()
+    units: list[_Unit] = []
+    for o in order:
+        if isinstance(o, dict):
+            units.append(_Unit(rows=(o,)))
+            continue
+        group = groups[o]
+        base = None if out_dir is None else _unique_base(out_dir, group[0], used)
+        units.append(_Unit(files=tuple(e.path for e in group), out_base=base))
+    return units
+
+
+def _unique_base(out_dir: Path, entry: _Entry, used: set[str]) -> Path:
+    """``out_dir`` / the input's path inside the folder argument it was found in, without its
+    suffix; ".2", ".3", ... added when an earlier study of the same run already has that name
+    (export folders often name every study's file alike)."""
+    if entry.root == entry.path:
+        relative = Path(entry.path.name)
+    else:
+        relative = entry.path.relative_to(entry.root)
+    first = out_dir / relative.parent / relative.stem
+    base, n = first, 1
+    while str(base) in used:
+        n += 1
+        base = first.with_name(f"{first.name}.{n}")
+    used.add(str(base))
+    return base
 
 
 class _Job(NamedTuple):
@@ -72,24 +230,24 @@ class _Job(NamedTuple):
 
 
 class _Graded(NamedTuple):
-    """One graded file as handed back: its row, or (JSON mode) only its status and JSON line,
-    so that the workers, not the printing process, turn rows into text."""
+    """One unit as handed back: its rows, or (JSON mode) only whether one is a rejection and
+    the JSON lines, so that the workers, not the printing process, turn rows into text."""
 
     rejected: bool
-    row: dict | None
-    line: str | None
+    rows: list[dict] | None
+    lines: list[str] | None
 
 
 def _json_line(row: dict) -> str:
     return json.dumps(row, ensure_ascii=False)
 
 
-def _graded_file(path: Path, job: _Job) -> _Graded:
-    row = grade_one(path, job)
-    rejected = row["status"] == GradeStatus.rejected.value
+def _graded_unit(unit: _Unit, job: _Job) -> _Graded:
+    rows = list(unit.rows) if unit.rows else grade_unit(unit, job)
+    rejected = any(r["status"] == GradeStatus.rejected.value for r in rows)
     if job.json_lines:
-        return _Graded(rejected, None, _json_line(row))
-    return _Graded(rejected, row, None)
+        return _Graded(rejected, None, [_json_line(r) for r in rows])
+    return _Graded(rejected, rows, None)
 
 
 _WORKER_JOB: _Job | None = None
@@ -100,9 +258,9 @@ def _init_worker(job: _Job) -> None:
     _WORKER_JOB = job
 
 
-def _grade_in_worker(path: Path) -> _Graded:
+def _grade_in_worker(unit: _Unit) -> _Graded:
     assert _WORKER_JOB is not None
-    return _graded_file(path, _WORKER_JOB)
+    return _graded_unit(unit, _WORKER_JOB)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -122,96 +280,167 @@ def run(args: argparse.Namespace) -> int:
         page_size=args.page_size,
         json_lines=args.json,
     )
-    if args.out:
-        args.out.mkdir(parents=True, exist_ok=True)
-    paths = list(iter_inputs(args.paths))
-    if not paths:
+    units = plan_units(args.paths, options, args.out, per_file=args.per_file)
+    if not units:
         print("diastolic-sr: no input files found", file=sys.stderr)
         return 1
+    if args.out:
+        args.out.mkdir(parents=True, exist_ok=True)
     rows: list[dict[str, Any]] = []
     any_rejected = False
-    for done in _graded(paths, job, args.jobs or os.cpu_count() or 1):
+    for done in _graded(units, job, args.jobs or os.cpu_count() or 1):
         any_rejected |= done.rejected
-        if done.line is not None:
-            print(done.line, flush=True)
-        elif done.row is not None:
-            rows.append(done.row)
+        if done.lines is not None:
+            for line in done.lines:
+                print(line, flush=True)
+        elif done.rows is not None:
+            rows.extend(done.rows)
     if not args.json:
-        print_table(rows)
+        print_table(rows, compare=options.compare, outputs=args.out is not None)
     return 1 if any_rejected else 0
 
 
-def _graded(paths: list[Path], job: _Job, jobs: int) -> Iterator[_Graded]:
-    """Results in input order; several files at a time in worker processes when asked (each
+def _graded(units: list[_Unit], job: _Job, jobs: int) -> Iterator[_Graded]:
+    """Results in input order; several units at a time in worker processes when asked (each
     worker inherits the loaded mapping table; results are written by the workers)."""
-    jobs = min(jobs, len(paths))
+    jobs = min(jobs, sum(1 for u in units if u.files))
     if jobs <= 1 or "fork" not in multiprocessing.get_all_start_methods():
-        yield from (_graded_file(p, job) for p in paths)
+        yield from (_graded_unit(u, job) for u in units)
         return
     context = multiprocessing.get_context("fork")
-    # files go to the workers in small batches (one round trip per batch, not per file) while
+    # units go to the workers in small batches (one round trip per batch, not per unit) while
     # keeping the batches small enough that both workers stay busy to the end
-    chunk = max(1, min(8, len(paths) // (jobs * 8)))
+    chunk = max(1, min(8, len(units) // (jobs * 8)))
     with ProcessPoolExecutor(
         jobs, mp_context=context, initializer=_init_worker, initargs=(job,)
     ) as pool:
-        yield from pool.map(_grade_in_worker, paths, chunksize=chunk)
+        yield from pool.map(_grade_in_worker, units, chunksize=chunk)
 
 
-def grade_one(path: Path, job: _Job) -> dict:
-    """Grade one file; never raises (an unexpected failure is a rejected row with its reason)."""
+def grade_unit(unit: _Unit, job: _Job) -> list[dict]:
+    """Grade one unit; never raises (an unexpected failure is a rejected row with its
+    reason)."""
     try:
-        return _grade_file(path, job)
-    except Exception as exc:  # the run goes on with the next file
-        return rejected_row(
-            path, job.options, f"internal error while grading: {type(exc).__name__}: {exc}"
-        )
+        return _grade_files(unit, job)
+    except Exception as exc:  # the run goes on with the next unit
+        return [
+            rejected_row(
+                unit.files[0],
+                job.options,
+                f"internal error while grading: {type(exc).__name__}: {exc}",
+                inputs=unit.files,
+            )
+        ]
 
 
-def _grade_file(path: Path, job: _Job) -> dict:
+def _grade_files(unit: _Unit, job: _Job) -> list[dict]:
+    """The files of one study graded together, as the node grades a study
+    (:func:`service.pipeline.grade_study`); a file that cannot be read, or that is a result
+    this software wrote, gets a row of its own."""
     from service.errors import RejectedInput
+    from service.sr.provenance import IGNORED_OWN_RESULT, own_result_reason
     from service.sr.read import load_path
 
-    options, out_dir = job.options, job.out_dir
+    options = job.options
+    rows: list[dict] = []
+    loaded: list[tuple[Path, Dataset]] = []
+    for path in unit.files:
+        try:
+            ds = load_path(path)
+        except RejectedInput as exc:
+            rows.append(rejected_row(path, options, str(exc)))
+            continue
+        own = own_result_reason(ds)
+        if own is not None:
+            rows.append(skipped_row(path, options, f"{IGNORED_OWN_RESULT}: {own}"))
+            continue
+        loaded.append((path, ds))
+    if not loaded:
+        return rows
+    datasets = [ds for _, ds in loaded]
+    outcome = grade_study(datasets, options, table=job.table)
+    aside = dict(outcome.set_aside)
+    by_uid = {_sop_uid(ds): path for path, ds in loaded}
+    used = [p for p, ds in loaded if _sop_uid(ds) not in aside]
+    if outcome.status is GradeStatus.rejected and (not used or len(loaded) == 1):
+        # nothing usable: each file says why (one file: the reader's own reason)
+        if len(loaded) == 1 or not aside:
+            paths = [p for p, _ in loaded]
+            return [*rows, rejected_row(paths[0], options, outcome.reason, outcome, paths)]
+        return rows + [
+            rejected_row(by_uid.get(uid, loaded[0][0]), options, why) for uid, why in aside.items()
+        ]
+    study_row = _study_row(
+        [(p, ds) for p, ds in loaded if _sop_uid(ds) not in aside], outcome, unit, job
+    )
+    set_aside_rows = [
+        rejected_row(by_uid.get(uid, loaded[0][0]), options, f"set aside: {why}")
+        for uid, why in aside.items()
+    ]
+    return [study_row, *rows, *set_aside_rows]
+
+
+def _sop_uid(ds: Dataset) -> str:
     try:
-        ds = load_path(path)
-    except RejectedInput as exc:
-        return rejected_row(path, options, str(exc))
-    # the content tree is read once, by grade_study (a content-tree rejection there gives the
-    # same row as read_path's would)
-    outcome = grade_study([ds], options, table=job.table)
+        return str(ds.get("SOPInstanceUID", "") or "")
+    except Exception:
+        return ""
+
+
+def _study_row(
+    used: list[tuple[Path, Dataset]], outcome: StudyOutcome, unit: _Unit, job: _Job
+) -> dict:
+    options = job.options
+    paths = [p for p, _ in used]
     if outcome.status is GradeStatus.rejected:
-        return rejected_row(path, options, outcome.reason, outcome)
+        return rejected_row(paths[0], options, outcome.reason, outcome, paths)
     output = None
-    if out_dir is not None and outcome.result is not None:
-        target = out_dir / f"{path.stem}.result.dcm"
+    base = unit.out_base
+    if base is not None and outcome.result is not None:
+        target = base.with_name(base.name + ".result.dcm")
+        target.parent.mkdir(parents=True, exist_ok=True)
         target.write_bytes(file_bytes(outcome.result))
         output = str(target)
-    row = outcome_row(path, options, outcome, output)
-    if job.pdf and out_dir is not None:
+    row = outcome_row(paths[0], options, outcome, output, paths)
+    if job.pdf and base is not None:
         from service.pipeline import build_summary
 
-        summary = build_summary(outcome, [ds], page_size=job.page_size, uid_root=options.uid_root)
+        summary = build_summary(
+            outcome, [ds for _, ds in used], page_size=job.page_size, uid_root=options.uid_root
+        )
         if summary is not None:
-            target = out_dir / f"{path.stem}.summary.dcm"
+            target = base.with_name(base.name + ".summary.dcm")
             summary.save_as(target, enforce_file_format=True)
             row["summary"] = str(target)
     return row
 
 
 def rejected_row(
-    path: Path, options: GradeOptions, reason: str, outcome: StudyOutcome | None = None
+    path: Path,
+    options: GradeOptions,
+    reason: str,
+    outcome: StudyOutcome | None = None,
+    inputs: Sequence[Path] = (),
 ) -> dict:
-    row = empty_row(path, options)
+    row = empty_row(path, options, inputs)
     row.update(status=GradeStatus.rejected.value, reason=reason)
     if outcome is not None and outcome.measurements is not None:
         row["excluded"] = [e.model_dump(mode="json") for e in outcome.measurements.excluded]
     return row
 
 
-def empty_row(path: Path, options: GradeOptions) -> dict:
+def skipped_row(path: Path, options: GradeOptions, reason: str) -> dict:
+    """An input deliberately not graded (not a regular file, a media directory, a result this
+    software wrote): said so, and no reason for a non-zero exit status."""
+    row = empty_row(path, options)
+    row.update(status=GradeStatus.skipped.value, reason=reason)
+    return row
+
+
+def empty_row(path: Path, options: GradeOptions, inputs: Sequence[Path] = ()) -> dict:
     return {
         "input": str(path),
+        "inputs": [str(p) for p in inputs] or [str(path)],
         "status": None,
         "reason": None,
         "guideline": options.guideline.value,
@@ -227,11 +456,17 @@ def empty_row(path: Path, options: GradeOptions) -> dict:
     }
 
 
-def outcome_row(path: Path, options: GradeOptions, outcome: StudyOutcome, output: str | None):
+def outcome_row(
+    path: Path,
+    options: GradeOptions,
+    outcome: StudyOutcome,
+    output: str | None,
+    inputs: Sequence[Path] = (),
+):
     a = outcome.assessment
     m = outcome.measurements
     assert a is not None and m is not None
-    row = empty_row(path, options)
+    row = empty_row(path, options, inputs)
     row.update(
         status=outcome.status.value,
         reason=outcome.reason or None,
@@ -261,11 +496,13 @@ def outcome_row(path: Path, options: GradeOptions, outcome: StudyOutcome, output
         caution=a.caution,
     )
     if outcome.assessments and outcome.assessments.others:
+        row["outcome"] = a.outcome.value
         row["compared"] = [
             {
                 "guideline": o.guideline.value,
                 "pathway": o.pathway.value,
                 "grade": o.grade.value,
+                "outcome": o.outcome.value,
                 "filling_pressure": o.filling_pressure.value,
             }
             for o in outcome.assessments.others
@@ -274,23 +511,48 @@ def outcome_row(path: Path, options: GradeOptions, outcome: StudyOutcome, output
     return row
 
 
-def print_table(rows: list[dict]) -> None:
-    headers = ("input", "status", "grade", "filling pressure", "pathway", "note")
+def _input_cell(row: dict) -> str:
+    more = len(row.get("inputs") or ()) - 1
+    return row["input"] + (f" (+{more} more of the study)" if more > 0 else "")
+
+
+def print_table(rows: list[dict], *, compare: bool = False, outputs: bool = False) -> None:
+    """The table; with ``compare`` a column with each other guideline's outcome and, under the
+    table, each study where the guidelines differ in plain words; with ``outputs`` where each
+    result went."""
+    headers = ["input", "status", "grade", "filling pressure", "pathway"]
+    if compare:
+        headers.append("other guidelines")
+    if outputs:
+        headers.append("result")
+    headers.append("note")
     table = []
     for r in rows:
         note = r.get("reason") or ""
         if r.get("borderline"):
             note = "borderline: " + ", ".join(b["measure"] for b in r["borderline"])
-        table.append(
-            (
-                r["input"],
-                r["status"] or "",
-                r["grade"] or "-",
-                r["filling_pressure"] or "-",
-                r["pathway"] or "-",
-                note,
-            )
-        )
+        cells = [
+            _input_cell(r),
+            r["status"] or "",
+            r["grade"] or "-",
+            r["filling_pressure"] or "-",
+            r["pathway"] or "-",
+        ]
+        if compare:
+            others = r.get("compared") or ()
+            cells.append(", ".join(f"{o['guideline']}: {o['outcome']}" for o in others) or "-")
+        if outputs:
+            cells.append(r.get("output") or "-")
+        table.append((*cells, note))
     print_columns(headers, table, pad_last=False)  # the note column is free text
+    differing = [r for r in rows if r.get("disagreements")]
+    if compare:
+        print()
+        if not differing:
+            print("The guidelines compared agree on every graded study.")
+        for r in differing:
+            print(f"Guidelines differ for {_input_cell(r)}:")
+            for sentence in r["disagreements"]:
+                print(f"  {sentence}")
     print()
     print(CAUTION)

@@ -25,7 +25,9 @@ def register(sub: argparse._SubParsersAction) -> None:
         "source code and path in the content tree), those excluded and why, and every "
         "numeric item not recognised, with a ready-to-paste mapping rule for each.",
     )
-    p.add_argument("files", nargs="+", type=Path, metavar="FILE")
+    p.add_argument(
+        "files", nargs="+", metavar="PATH", help="SR file or folder (searched recursively)"
+    )
     p.add_argument(
         "--mapping", action="append", type=Path, metavar="FILE", help="site mapping TOML file"
     )
@@ -34,20 +36,37 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from service.commands.grade import iter_inputs, not_regular
+    from service.sr.provenance import IGNORED_OWN_RESULT, own_result_reason
     from service.sr.read import read_path
     from service.vocabulary.mapper import build_measurements, load_mapping_table
 
     table = load_mapping_table(args.mapping or ())
     status = 0
-    for path in args.files:
+    for path in (entry.path for entry in iter_inputs(args.files)):
+        why = not_regular(path)
+        if why is not None:
+            if args.json:
+                print(json.dumps({"input": str(path), "skipped": why}))
+            else:
+                print(f"== {path}\nskipped: {why}\n")
+            continue
         try:
-            _, doc = read_path(path)
+            ds, doc = read_path(path)
         except RejectedInput as exc:
             status = 1
             if args.json:
                 print(json.dumps({"input": str(path), "rejected": str(exc)}))
             else:
                 print(f"== {path}\nrejected: {exc}\n")
+            continue
+        own = own_result_reason(ds)
+        if own is not None:  # never graded: nothing to map
+            why = f"{IGNORED_OWN_RESULT}: {own}"
+            if args.json:
+                print(json.dumps({"input": str(path), "skipped": why}))
+            else:
+                print(f"== {path}\nskipped: {why}\n")
             continue
         m = build_measurements([doc], table)
         if args.json:

@@ -53,14 +53,14 @@ def _when(ts: float | None) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
-    from service.network.service import journal_path
-    from service.store.journal import Journal
+    from service.store.journal import open_journal
+    from service.store.sqlite_journal import journal_path
 
     cfg = apply_overrides(load_config(args.config), data_dir=args.data_dir)
     path = journal_path(cfg.data_dir)
     if not path.exists():
         raise UserError(f"no journal at {path} (has the node run with this data directory?)")
-    journal = Journal(path)
+    journal = open_journal(cfg.data_dir)
     try:
         actions: list[str] = []
         for study in args.regrade:
@@ -79,7 +79,7 @@ def run(args: argparse.Namespace) -> int:
                     "retention.days is 0 (keep everything): nothing to purge; set it in the "
                     "configuration and pass --config"
                 )
-            done = purge(journal, cfg.data_dir / "spool", days)
+            done = purge(journal, days)
             actions.append(
                 f"{done.studies} finished stud{'y' if done.studies == 1 else 'ies'} older than "
                 f"{days:g} days purged ({done.files} spooled files)"
@@ -96,12 +96,51 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
+#: Encapsulated PDF Storage (PS3.4 Annex B.5): the one-page summary sent with a result SR
+_ENCAPSULATED_PDF = "1.2.840.10008.5.1.4.1.1.104.1"
+
+
+def object_kind(sop_class_uid: str) -> str:
+    """What a result object is, in the words the queue uses."""
+    return "summary PDF" if sop_class_uid == _ENCAPSULATED_PDF else "result SR"
+
+
+def _delivery(journal: Any, d: dict[str, Any]) -> dict[str, Any]:
+    """One delivery: which object (kind and UID), for which study, where, and its own state."""
+    row = journal.result(d["result_uid"]) or {}
+    return {
+        "kind": object_kind(str(row.get("sop_class_uid", ""))),
+        "uid": d["result_uid"],
+        "study_uid": d["study_uid"],
+        "destination": d["destination"],
+        "target": d["target"],
+        "attempts": d["attempts"],
+    }
+
+
+def _failed_study(journal: Any, s: dict[str, Any], failed: list[dict[str, Any]]) -> dict:
+    """A failed study: its result SR, and either each failed delivery of its objects (with that
+    object's kind, UID and own reason) or, when it was never graded, the grading's reason."""
+    mine = [d for d in failed if d["study_uid"] == s["study_uid"]]
+    out: dict[str, Any] = {"study_uid": s["study_uid"], "result_uid": s["result_uid"]}
+    if mine:
+        out["failed_deliveries"] = [
+            f"{d['kind']} {d['uid']} to {d['destination']}: {d['reason']}" for d in mine
+        ]
+    else:
+        out["reason"] = s["reason"]
+    return out
+
+
 def build_report(journal: Any, *, recent: int) -> dict[str, Any]:
     now = time.time()
     waiting = journal.studies(states=["received", "assembled"])
     failed_studies = journal.studies(states=["failed"])
     pending = journal.deliveries(states=["pending"])
-    failed = journal.deliveries(states=["failed"])
+    failed = [
+        {**_delivery(journal, d), "reason": d["last_error"]}
+        for d in journal.deliveries(states=["failed"])
+    ]
     return {
         "counts": journal.counts(),
         "studies_waiting": [
@@ -115,30 +154,14 @@ def build_report(journal: Any, *, recent: int) -> dict[str, Any]:
         ],
         "deliveries_pending": [
             {
-                "result_uid": d["result_uid"],
-                "study_uid": d["study_uid"],
-                "destination": d["destination"],
-                "target": d["target"],
-                "attempts": d["attempts"],
+                **_delivery(journal, d),
                 "next_attempt": _when(d["next_attempt_at"]),
                 "last_error": d["last_error"],
             }
             for d in pending
         ],
-        "failed": [
-            {"study_uid": s["study_uid"], "reason": s["reason"], "result_uid": s["result_uid"]}
-            for s in failed_studies
-        ],
-        "deliveries_failed": [
-            {
-                "result_uid": d["result_uid"],
-                "destination": d["destination"],
-                "target": d["target"],
-                "attempts": d["attempts"],
-                "reason": d["last_error"],
-            }
-            for d in failed
-        ],
+        "failed": [_failed_study(journal, s, failed) for s in failed_studies],
+        "deliveries_failed": failed,
         "objects_set_aside": [
             {
                 "sop_instance_uid": o["sop_instance_uid"],
@@ -146,6 +169,18 @@ def build_report(journal: Any, *, recent: int) -> dict[str, Any]:
                 "note": o["note"],
             }
             for o in journal.objects_set_aside()
+        ],
+        "objects_ignored": [
+            {
+                "kind": object_kind(o["sop_class_uid"]),
+                "sop_instance_uid": o["sop_instance_uid"],
+                "study_uid": o["study_uid"],
+                "calling_ae": o["calling_ae"],
+                "received": _when(o["received_at"]),
+                "times_received": o["times_received"],
+                "reason": o["reason"],
+            }
+            for o in journal.ignored_objects()
         ],
         "recent": [_recent(journal, s) for s in journal.studies(limit=recent)],
     }
@@ -174,9 +209,14 @@ def print_report(report: dict[str, Any]) -> None:
         ("failed studies", report["failed"]),
         ("failed deliveries", report["deliveries_failed"]),
         ("objects set aside", report["objects_set_aside"]),
+        ("objects ignored (never graded)", report["objects_ignored"]),
         ("recent studies", report["recent"]),
     ]
     for title, rows in sections:
         print(f"\n{title}: {len(rows)}")
         for row in rows:
-            print("  " + "  ".join(f"{k}={v}" for k, v in row.items() if v not in (None, "")))
+            lines = row.get("failed_deliveries", ())
+            fields = {k: v for k, v in row.items() if k != "failed_deliveries"}
+            print("  " + "  ".join(f"{k}={v}" for k, v in fields.items() if v not in (None, "")))
+            for line in lines:
+                print(f"    {line}")

@@ -234,17 +234,14 @@ def fill_history(
     invented times.  Returns the number recorded."""
     from service.audit.facts import study_facts
     from service.demo.scenario import SITE_MAPPING
-    from service.network.service import journal_path
     from service.pipeline import GradeOptions, grade_study
     from service.sr.encode import file_bytes
-    from service.store.journal import Journal, NewResult
-    from service.store.spool import Spool
+    from service.store.journal import NewResult, open_journal
     from service.vocabulary.mapper import load_mapping_table
 
     data_dir = Path(data_dir)
     table = load_mapping_table([SITE_MAPPING])
-    spool = Spool(data_dir / "spool")
-    journal = Journal(journal_path(data_dir))
+    journal = open_journal(data_dir)
     rng = random.Random(seed + 1)
     recorded = 0
     try:
@@ -252,15 +249,14 @@ def fill_history(
             ds = h.dataset
             study_uid = str(ds.StudyInstanceUID)
             sop_uid = str(ds.SOPInstanceUID)
-            path = spool.write_object(study_uid, sop_uid, file_bytes(ds))
             t0 = h.received_at
-            journal.record_object(
+            journal.store_object(
                 sop_instance_uid=sop_uid,
                 study_uid=study_uid,
                 sop_class_uid=str(ds.SOPClassUID),
                 transfer_syntax=str(ds.file_meta.TransferSyntaxUID),
                 calling_ae=h.scanner.calling_ae,
-                path=path,
+                data=file_bytes(ds),
                 settle_seconds=10.0,
                 now=t0,
             )
@@ -289,7 +285,6 @@ def fill_history(
                     result_uid=result_uid,
                     series_uid=str(result.SeriesInstanceUID),
                     sop_class_uid=str(result.SOPClassUID),
-                    path=spool.result_path(study_uid, result_uid),
                     status=outcome.status.value,
                     guideline=outcome.assessment.guideline.value if outcome.assessment else None,
                     grade=outcome.assessment.grade.value if outcome.assessment else None,
@@ -298,6 +293,7 @@ def fill_history(
                     ),
                     sources=(sop_uid,),
                     predecessors=(),
+                    data=file_bytes(result),
                 ),
                 destinations=[destination],
                 audit=facts,

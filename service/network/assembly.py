@@ -1,7 +1,7 @@
 """Study assembly: wait for a study's settle window, then grade all its objects together.
 
 One scheduler thread watches the journal for studies whose settle window is over and hands
-each to one of ``assembly.workers`` grading slots.  The per-study work (read every spooled
+each to one of ``assembly.workers`` grading slots.  The per-study work (decode every stored
 object of the study, grade, encode the result SR, and the one-page summary PDF when a
 destination of the study asks for it, ``summary_pdf``) runs in a pool of grading processes
 (:mod:`service.network.grading_worker`), so the listener's network threads keep this
@@ -9,14 +9,14 @@ process's interpreter to themselves and every core is used.  Grading reads every
 study, also those graded before: a late SR triggers a re-grade of the whole study, so the
 merged result uses all sources, the more recently created SR winning per measure.
 
-Back in this process, the grading slot stores the result SR (and the summary) durably in the
-spool and records it with its deliveries in the journal in one transaction; the summary is
-recorded as a companion of the result, delivered right after it to the destinations that want
-it and to the results folder.  A grading process that dies (killed, out of memory) never loses
-the study: the claim is given back, the pool is replaced and the study graded again; a study
-that keeps killing its grading process fails with that reason.  An injected grading function
-(tests) runs in this process, on the grading slot's thread.  The network threads never do any
-of this.
+Back in this process, the grading slot hands the result SR (and the summary) with its
+deliveries to the journal, which stores the bytes durably and records them in one transaction;
+the summary is recorded as a companion of the result, delivered right after it to the
+destinations that want it and to the results folder.  A grading process that dies (killed,
+out of memory) never loses the study: the claim is given back, the pool is replaced and the
+study graded again; a study that keeps killing its grading process fails with that reason.  An
+injected grading function (tests) runs in this process, on the grading slot's thread.  The
+network threads never do any of this.
 """
 
 from __future__ import annotations
@@ -36,7 +36,6 @@ from service.config import Config
 from service.model import InstanceRef
 from service.network.grading_worker import (
     PRELOAD,
-    EncodedObject,
     GradeJob,
     GradeRecord,
     TableCache,
@@ -55,7 +54,6 @@ from service.store.journal import (
     StudyClaim,
     backoff_delay,
 )
-from service.store.spool import Spool
 
 log = logging.getLogger("diastolic_sr.assembly")
 
@@ -157,7 +155,6 @@ class Assembler:
         self,
         config: Config,
         journal: Journal,
-        spool: Spool,
         *,
         grade_fn: GradeFunction | None = None,
         on_result: Callable[[], None] = lambda: None,
@@ -169,7 +166,6 @@ class Assembler:
         self._tables = TableCache()
         self.metrics = metrics or Metrics()
         self.journal = journal
-        self.spool = spool
         self._grade_fn = grade_fn
         self._on_result = on_result
         self._poll = poll_seconds
@@ -381,12 +377,12 @@ class Assembler:
         spooled = frozenset(
             r["result_uid"]
             for r in claim.earlier_results
-            if self.spool.result_path(claim.study_uid, r["result_uid"]).exists()
+            if self.journal.result_stored(r["result_uid"])
         )
         return GradeJob(
             study_uid=claim.study_uid,
             object_uids=tuple(claim.object_uids),
-            object_paths=tuple(claim.object_paths),
+            objects=tuple(self._object_data(uid) for uid in claim.object_uids),
             options=grade_options(self.config, claim.calling_ae),
             mapping_paths=tuple(self.config.mapping_paths),
             predecessors=predecessors,
@@ -396,6 +392,13 @@ class Assembler:
             calling_ae=claim.calling_ae,
             audit_patient_identity=self.config.audit.include_patient_identifiers,
         )
+
+    def _object_data(self, uid: str) -> bytes | str:
+        """An object's stored bytes, or why they cannot be read (the grading notes it)."""
+        try:
+            return self.journal.object_data(uid)
+        except OSError as exc:
+            return f"{type(exc).__name__}: {exc.strerror or exc}"
 
     def _run_job(self, job: GradeJob) -> GradeRecord:
         if self._grade_fn is not None:
@@ -448,13 +451,12 @@ class Assembler:
             self._graded(claim, status, reason=reason)
             return
         result_uid = record.result.uid
-        path = self._spool(claim, record.result)
         predecessors = [r["result_uid"] for r in claim.earlier_results]
         new = NewResult(
             result_uid=result_uid,
             series_uid=record.result.series_uid,
             sop_class_uid=record.result.sop_class_uid,
-            path=path,
+            data=record.result.data,
             status=status,
             guideline=record.guideline,
             grade=record.grade,
@@ -485,19 +487,6 @@ class Assembler:
         if queued:
             self._on_result()
 
-    def _spool(self, claim: StudyClaim, obj: EncodedObject, *, keep: bool = False) -> Any:
-        """The result object durably in the spool; its path.  ``keep``: a file the journal
-        already records is not written again (one a crash left before it was recorded may be
-        incomplete, and is written anew)."""
-        path = self.spool.result_path(claim.study_uid, obj.uid)
-        if obj.data is None:  # spooled by an earlier grading of this study
-            if not path.exists():
-                raise FileNotFoundError(f"spooled result {path} vanished")
-            return path
-        if keep and path.exists() and self.journal.result(obj.uid) is not None:
-            return path
-        return self.spool.write_result(claim.study_uid, obj.uid, obj.data)
-
     def _graded(self, claim: StudyClaim, outcome: str, **fields: Any) -> None:
         self.metrics.studies.labels(outcome=outcome).inc()
         detail = fields.get("reason") or fields.get("result_uid") or ""
@@ -527,14 +516,13 @@ class Assembler:
         pdf, result = record.summary, record.result
         if pdf is None or result is None:
             return []
-        path = self._spool(claim, pdf, keep=True)
         return [
             Companion(
                 result=NewResult(
                     result_uid=pdf.uid,
                     series_uid=pdf.series_uid,
                     sop_class_uid=pdf.sop_class_uid,
-                    path=path,
+                    data=pdf.data,
                     status="summary",
                     guideline=None,
                     grade=None,

@@ -1,4 +1,4 @@
-"""The per-study work of the node, run in grading processes: read the spooled objects of a
+"""The per-study work of the node, run in grading processes: decode the stored objects of a
 study, grade them together, encode the result SR (and the summary PDF when wanted) as Part 10
 bytes.  Nothing here writes a file or touches the journal: the node's process does that with
 the :class:`GradeRecord` this returns, so durability and the journal stay in one place.
@@ -12,6 +12,7 @@ function is injected (tests).
 from __future__ import annotations
 
 import contextlib
+import io
 import os
 import signal
 import threading
@@ -32,11 +33,12 @@ class GradeJob:
 
     study_uid: str
     object_uids: tuple[str, ...]
-    object_paths: tuple[Path, ...]
+    #: per object, its stored Part 10 bytes, or why they could not be read
+    objects: tuple[bytes | str, ...]
     options: Any  # service.pipeline.GradeOptions
     mapping_paths: tuple[Path, ...]
     predecessors: tuple[Any, ...] = ()  # service.model.InstanceRef, oldest first
-    #: result UIDs already spooled for this study: not encoded again
+    #: result UIDs the journal holds already for this study: not encoded again
     spooled: frozenset[str] = frozenset()
     #: build the summary PDF (page size), or None
     summary_page_size: str | None = None
@@ -112,15 +114,18 @@ class TableCache:
 
 def run_job(job: GradeJob, grade_fn: Callable[..., Any], table: Any) -> GradeRecord:
     """Grade one study.  Exceptions of the grading function propagate (the node records an
-    internal error); spooled files that cannot be read and sources the reader refuses are set
-    aside with a note."""
+    internal error); stored objects that cannot be read or decoded and sources the reader
+    refuses are set aside with a note."""
     import pydicom
 
     notes: dict[str, str] = {}
     usable: list[tuple[str, Any]] = []
-    for uid, path in zip(job.object_uids, job.object_paths, strict=True):
+    for uid, data in zip(job.object_uids, job.objects, strict=True):
+        if isinstance(data, str):
+            notes[uid] = f"set aside: spooled file unreadable ({data})"
+            continue
         try:
-            ds = pydicom.dcmread(path)
+            ds = pydicom.dcmread(io.BytesIO(data))
         except Exception as exc:  # spooled file unreadable: say so, do not guess
             notes[uid] = f"set aside: spooled file unreadable ({type(exc).__name__}: {exc})"
         else:

@@ -48,9 +48,9 @@ from pynetdicom.transport import ThreadedAssociationServer
 from service.config import Config
 from service.observability.logs import event
 from service.observability.metrics import Metrics
+from service.sr.provenance import EQUIPMENT_TAGS, IGNORED_OWN_RESULT, received_own_result_reason
 from service.sr.read import structure_problem
 from service.store.journal import Journal
-from service.store.spool import Spool
 
 log = logging.getLogger("diastolic_sr.listener")
 
@@ -120,8 +120,17 @@ def _body(event: Any) -> bytes:
 #: grading processes decode the rest
 _LAST_IDENTIFYING_TAG = 0x0020000D
 #: what the listener reads: Specific Character Set, SOP Class UID, SOP Instance UID, Patient's
-#: Name, Patient ID, Study Instance UID (PS3.6 tags)
-_IDENTIFYING_TAGS = (0x00080005, 0x00080016, 0x00080018, 0x00100010, 0x00100020, 0x0020000D)
+#: Name, Patient ID, Study Instance UID (PS3.6 tags), and the equipment identity that tells
+#: the node's own results (service.sr.provenance)
+_IDENTIFYING_TAGS = (
+    0x00080005,
+    0x00080016,
+    0x00080018,
+    0x00100010,
+    0x00100020,
+    0x0020000D,
+    *EQUIPMENT_TAGS,
+)
 
 
 def identifying_attributes(body: bytes, transfer_syntax: str) -> Dataset:
@@ -201,7 +210,6 @@ class Listener:
         self,
         config: Config,
         journal: Journal,
-        spool: Spool,
         *,
         on_received: Callable[[str], None] = lambda study_uid: None,
         metrics: Metrics | None = None,
@@ -209,7 +217,6 @@ class Listener:
         self.config = config
         self.metrics = metrics or Metrics()
         self.journal = journal
-        self.spool = spool
         self.on_received = on_received
         self.server: ThreadedAssociationServer | None = None
         self._closed = False
@@ -377,6 +384,19 @@ class Listener:
         )
         return status
 
+    def _object_ignored(self, calling: str, uid: str, study_uid: str, reason: str) -> int:
+        self.metrics.objects.labels(outcome="ignored").inc()
+        event(
+            "object_ignored",
+            f"C-STORE from {calling}: object {uid} of study {study_uid} kept, not graded "
+            f"({IGNORED_OWN_RESULT}: {reason}); answered 0x{SUCCESS:04X}",
+            calling_ae=calling,
+            sop_instance_uid=uid,
+            study_uid=study_uid,
+            reason=f"{IGNORED_OWN_RESULT}: {reason}",
+        )
+        return SUCCESS
+
     def _on_echo(self, ev: Any) -> int:
         return SUCCESS
 
@@ -417,16 +437,25 @@ class Listener:
             problem = "Study Instance UID missing or malformed"
         if problem:
             return self._object_rejected(calling, affected, DOES_NOT_MATCH_SOP_CLASS, problem)
+        own = received_own_result_reason(ds, _body(ev), implicit=syntax == ImplicitVRLittleEndian)
         try:
-            data = part10_bytes(ev)
-            path = self.spool.write_object(study_uid, sop_uid, data)
-            self.journal.record_object(
+            if own is not None:  # kept and acknowledged, never graded nor forwarded
+                self.journal.store_ignored(
+                    sop_instance_uid=sop_uid,
+                    study_uid=study_uid,
+                    sop_class_uid=sop_class,
+                    calling_ae=calling,
+                    data=part10_bytes(ev),
+                    reason=f"{IGNORED_OWN_RESULT}: {own}",
+                )
+                return self._object_ignored(calling, sop_uid, study_uid, own)
+            self.journal.store_object(
                 sop_instance_uid=sop_uid,
                 study_uid=study_uid,
                 sop_class_uid=sop_class,
                 transfer_syntax=str(ev.context.transfer_syntax),
                 calling_ae=calling,
-                path=path,
+                data=part10_bytes(ev),
                 settle_seconds=self.config.assembly.settle_seconds,
             )
         except Exception as exc:

@@ -171,7 +171,7 @@ class Sender:
             try:
                 if folder is None:
                     raise OSError("no results folder configured")
-                data = Path(d.path).read_bytes()
+                data = self.journal.result_data(d.result_uid)
                 durable_write(Path(folder) / f"{safe_name(d.result_uid)}.dcm", data)
             except OSError as exc:
                 self._failed(d, f"cannot write to results folder: {exc}")
@@ -256,7 +256,7 @@ class Sender:
         out = []
         for d in items:
             try:
-                data = Path(d.path).read_bytes()
+                data = self.journal.result_data(d.result_uid)
             except OSError as exc:
                 meta, why = None, f"{type(exc).__name__}: {exc.strerror or exc}"
             else:

@@ -43,17 +43,11 @@ from service.network.sender import Sender
 from service.observability.http import HttpEndpoint
 from service.observability.logs import event, set_level
 from service.observability.metrics import Metrics
-from service.store.journal import Journal
+from service.store.journal import Journal, open_journal
 from service.store.retention import purge
-from service.store.spool import Spool, durable_write
+from service.store.spool import durable_write
 
 log = logging.getLogger("diastolic_sr.service")
-
-JOURNAL_NAME = "journal.sqlite3"
-
-
-def journal_path(data_dir: Path) -> Path:
-    return Path(data_dir) / JOURNAL_NAME
 
 
 def status_path(data_dir: Path) -> Path:
@@ -81,7 +75,6 @@ class Node:
         self._poll = poll_seconds
         self._lock_file: IO[str] | None = None
         self.journal: Journal | None = None
-        self.spool: Spool | None = None
         self.listener: Listener | None = None
         self.assembler: Assembler | None = None
         self.sender: Sender | None = None
@@ -105,10 +98,9 @@ class Node:
             raise UserError(
                 f"data directory {self.data_dir} is in use by another running node"
             ) from None
-        self.spool = Spool(self.data_dir / "spool")
-        self.journal = Journal(journal_path(self.data_dir))
+        self.journal = open_journal(self.data_dir)
         counts = self.journal.recover()
-        log.info("journal %s opened: %s", self.journal.path, _summary(counts))
+        log.info("journal %s opened: %s", self.journal.location, _summary(counts))
         self.metrics.watch_queue(self.journal.queue_depth)
         self.sender = Sender(
             self.config, self.journal, poll_seconds=self._poll, metrics=self.metrics
@@ -116,7 +108,6 @@ class Node:
         self.assembler = Assembler(
             self.config,
             self.journal,
-            self.spool,
             grade_fn=self._grade_fn,
             on_result=self.sender.wake,
             poll_seconds=self._poll,
@@ -125,7 +116,6 @@ class Node:
         self.listener = Listener(
             self.config,
             self.journal,
-            self.spool,
             on_received=lambda _study: self.assembler.wake() if self.assembler else None,
             metrics=self.metrics,
         )
@@ -237,9 +227,9 @@ class Node:
 
     def purge_now(self, *, now: float | None = None) -> int:
         """Run the retention purge once; returns the number of studies purged."""
-        if self.journal is None or self.spool is None:
+        if self.journal is None:
             return 0
-        report = purge(self.journal, self.spool.root, self.config.retention.days, now=now)
+        report = purge(self.journal, self.config.retention.days, now=now)
         if report.studies:
             event(
                 "retention_purge",

@@ -1,7 +1,8 @@
 """Prometheus metrics of one node, in a registry of its own (``prometheus-client``).
 
 * ``diastolic_sr_associations_total{outcome}``: accepted / rejected
-* ``diastolic_sr_objects_received_total{outcome}``: stored / rejected / discarded (images)
+* ``diastolic_sr_objects_received_total{outcome}``: stored / rejected / discarded (images) /
+  ignored (the node's own results coming back)
 * ``diastolic_sr_studies_graded_total{outcome}``: graded / not-gradable / rejected / error
 * ``diastolic_sr_deliveries_total{outcome,kind}``: delivered / retry / failed, of a result SR
   or a summary PDF

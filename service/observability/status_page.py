@@ -17,7 +17,7 @@ import time
 from typing import Any
 
 from service import __version__
-from service.store.journal import Journal
+from service.store.journal import Journal, open_journal
 from service.web import render
 
 #: how far back the "last hour" counts go, seconds
@@ -36,9 +36,7 @@ class StatusPages:
 
     def _reader(self) -> Journal:
         if self._journal is None:
-            from service.network.service import journal_path
-
-            self._journal = Journal(journal_path(self.node.data_dir))
+            self._journal = open_journal(self.node.data_dir)
         return self._journal
 
     def close(self) -> None:

@@ -42,12 +42,41 @@ _SH, _LO = 16, 64
 _CHECKED: set[tuple[str, str, str, str | None]] = set()
 
 
+#: control characters each text VR allows (PS3.5 6.2, Table 6.2-1): none in SH and LO (ESC only
+#: for ISO 2022 code extensions, which a UTF-8 document does not use); TAB, LF, FF and CR in
+#: ST, LT and UT.  SH and LO values must not hold a backslash (the value delimiter).
+_ALLOWED_CONTROLS = {"SH": "", "LO": "", "ST": "\t\n\f\r", "LT": "\t\n\f\r", "UT": "\t\n\f\r"}
+_CONTROLS = frozenset(chr(c) for c in (*range(0x20), *range(0x7F, 0xA0)))
+
+
+def clean_text(value: str, vr: str) -> str:
+    """``value`` with every character its VR does not allow (control characters; a backslash
+    in SH or LO) replaced by a space: text copied from a source (a code meaning, a note) may
+    hold them, and a result must not."""
+    allowed = _ALLOWED_CONTROLS[vr]
+    banned = _CONTROLS | ({"\\"} if vr in ("SH", "LO") else set())
+    if not any(ch in banned and ch not in allowed for ch in value):
+        return value
+    cleaned = "".join(" " if ch in banned and ch not in allowed else ch for ch in value)
+    return cleaned if cleaned.strip() else "?"
+
+
+def _clean_code(code: Code) -> Code:
+    """The code with its meaning cleaned for LO (the other parts are identifiers: refused by
+    the checks below when they are not valid)."""
+    meaning = clean_text(code.meaning, "LO")
+    if meaning == code.meaning:
+        return code
+    return Code(code.value, code.scheme_designator, meaning, code.scheme_version)
+
+
 def _check_code(code: Code, what: str) -> Code:
     if not isinstance(code, Code):
         raise TypeError(f"{what} must be a pydicom Code, not {type(code).__name__}")
     key = (code.value, code.scheme_designator, code.meaning, code.scheme_version)
     if key in _CHECKED:
         return code
+    code = _clean_code(code)
     if not code.value or not code.scheme_designator or not code.meaning:
         raise ValueError(f"{what} needs a code value, a scheme designator and a meaning: {code}")
     if len(code.scheme_designator) > _SH:
@@ -56,7 +85,7 @@ def _check_code(code: Code, what: str) -> Code:
         raise ValueError(f"{what}: code meaning {code.meaning!r} is over 64 characters")
     if code.scheme_version is not None and len(code.scheme_version) > _SH:
         raise ValueError(f"{what}: scheme version {code.scheme_version!r} is over 16 characters")
-    _CHECKED.add(key)
+    _CHECKED.add((code.value, code.scheme_designator, code.meaning, code.scheme_version))
     return code
 
 
@@ -96,6 +125,8 @@ class Item:
         if vt not in VALUE_TYPES:
             raise ValueError(f"value type {vt!r} is not one of {sorted(VALUE_TYPES)}")
         name = _check_code(self.name, "concept name")
+        if name is not self.name:
+            object.__setattr__(self, "name", name)
         _check_rel(self.relationship, root_allowed=vt == "CONTAINER")
         if self.relationship is not None and not isinstance(self.relationship, Rel):
             object.__setattr__(self, "relationship", Rel(self.relationship))
@@ -109,15 +140,20 @@ class Item:
         elif vt == "TEXT":
             if not isinstance(value, str) or not value:
                 raise ValueError(f"TEXT item {name.meaning!r} needs a non-empty text value")
+            object.__setattr__(self, "value", clean_text(value, "UT"))  # Text Value is UT
         elif vt == "CODE":
-            _check_code(value, "coded value")  # type: ignore[arg-type]
+            code = _check_code(value, "coded value")  # type: ignore[arg-type]
+            if code is not value:
+                object.__setattr__(self, "value", code)
         elif vt == "NUM":
             number, unit = value  # type: ignore[misc]
             if isinstance(number, bool) or not isinstance(number, int | float):
                 raise TypeError(f"NUM item {name.meaning!r}: value must be int or float")
             if not math.isfinite(number):
                 raise ValueError(f"NUM item {name.meaning!r}: value {number!r} is not finite")
-            _check_code(unit, "unit")
+            checked = _check_code(unit, "unit")
+            if checked is not unit:
+                object.__setattr__(self, "value", (number, checked))
         elif vt == "UIDREF":
             _check_uid(value, "UIDREF value")  # type: ignore[arg-type]
         else:  # COMPOSITE

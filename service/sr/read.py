@@ -136,32 +136,84 @@ def _children(item: Dataset, path: str, w: _Walk) -> list[Dataset]:
         return []
 
 
-def _num(item: Dataset, path: str, w: _Walk) -> tuple[float | None, Code | None]:
+def _values(raw: Any) -> list[Any]:
+    """The values of an element as a list ([] when absent or empty)."""
+    if raw is None:
+        return []
+    if isinstance(raw, str | bytes):
+        return [raw] if _text(raw) != "" else []
+    if hasattr(raw, "__len__"):
+        return list(raw)
+    return [raw]
+
+
+def _number(raw: Any) -> float | None:
+    try:
+        value = float(raw) if _text(raw) != "" else None
+    except (TypeError, ValueError):
+        return None
+    return value
+
+
+def _agree(fp: float, numeric: float, text: str) -> bool:
+    """A Floating Point Value agrees with the Numeric Value when it rounds to it: the decimal
+    string holds the same number with fewer digits (PS3.3 C.18.1, Numeric Measurement Macro;
+    from memory)."""
+    text = text.strip().lower()
+    if "e" in text:  # exponent form: agree to 6 significant digits
+        tolerance = 1e-6 * max(abs(numeric), abs(fp))
+    else:  # half a unit of the last decimal written
+        decimals = len(text.split(".")[1]) if "." in text else 0
+        tolerance = 0.5 * 10.0**-decimals
+    return abs(fp - numeric) <= tolerance * (1 + 1e-9) + 1e-12
+
+
+def _num(item: Dataset, path: str, w: _Walk) -> tuple[float | None, Code | None, str]:
+    """(value, unit, problem): ``problem`` says why a value that is there cannot be used."""
     seq = item.get("MeasuredValueSequence")
     if seq is None or len(seq) == 0:
-        return None, None
+        return None, None, ""
     mv = seq[0]
     unit = read_code(mv.get("MeasurementUnitsCodeSequence"))
-    value: float | None = None
     try:
-        raw = mv.get("FloatingPointValue")
-        if raw is None or (hasattr(raw, "__len__") and not isinstance(raw, str) and len(raw) == 0):
-            raw = mv.get("NumericValue")
+        fps = _values(mv.get("FloatingPointValue"))
+        numerics = _values(mv.get("NumericValue"))
     except Exception as exc:  # e.g. a DS element that is not a number
         w.warnings.append(f"{path}: unreadable measured value ({exc}); value ignored")
-        return None, unit
-    if raw is not None:
-        if not isinstance(raw, str | bytes) and hasattr(raw, "__len__"):
-            raw = raw[0] if len(raw) else None
-        try:
-            value = float(raw) if raw is not None and _text(raw) != "" else None
-        except (TypeError, ValueError):
-            w.warnings.append(f"{path}: non-numeric measured value {raw!r}; value ignored")
-            value = None
-        if value is not None and not math.isfinite(value):
-            w.warnings.append(f"{path}: non-finite measured value {raw!r}; value ignored")
-            value = None
-    return value, unit
+        return None, unit, ""
+    for name, values in (("Numeric Value", numerics), ("Floating Point Value", fps)):
+        if len(values) > 1:
+            shown = ", ".join(_text(v) for v in values)
+            return (
+                None,
+                unit,
+                (
+                    f"{len(values)} values in {name} ({shown}); a measurement has one "
+                    "(PS3.3 C.18.1, value multiplicity 1)"
+                ),
+            )
+    raw = fps[0] if fps else (numerics[0] if numerics else None)
+    if raw is None:
+        return None, unit, ""
+    value = _number(raw)
+    if value is None:
+        w.warnings.append(f"{path}: non-numeric measured value {raw!r}; value ignored")
+        return None, unit, ""
+    if not math.isfinite(value):
+        w.warnings.append(f"{path}: non-finite measured value {raw!r}; value ignored")
+        return None, unit, ""
+    if fps and numerics:
+        numeric = _number(numerics[0])
+        if numeric is not None and not _agree(value, numeric, _text(numerics[0])):
+            return (
+                None,
+                unit,
+                (
+                    f"Floating Point Value {value:g} and Numeric Value {_text(numerics[0])} "
+                    "disagree; it is not known which one is right"
+                ),
+            )
+    return value, unit, ""
 
 
 def _walk(items: list[Dataset], inherited: list[Modifier], path: str, w: _Walk, depth: int) -> None:
@@ -184,6 +236,9 @@ def _visit(item: Dataset, inherited: list[Modifier], p: str, w: _Walk, depth: in
     if not vt:
         w.warnings.append(f"{p}: content item without Value Type skipped")
         return
+    if vt not in VALUE_TYPES:
+        _invalid_value_type(item, vt, inherited, p, w)
+        return
     rel = _text(item.get("RelationshipType"))
     if vt == "CODE" and rel in MODIFIER_RELATIONSHIPS:
         # read as a modifier of its parent; a Cardiac Rhythm is also kept as a coded item
@@ -199,7 +254,7 @@ def _visit(item: Dataset, inherited: list[Modifier], p: str, w: _Walk, depth: in
         if concept is None:
             w.warnings.append(f"{p}: NUM without a usable concept name skipped")
         else:
-            value, unit = _num(item, p, w)
+            value, unit, problem = _num(item, p, w)
             qualifier = read_code(item.get("NumericValueQualifierCodeSequence"))
             w.observations.append(
                 Observation(
@@ -210,6 +265,7 @@ def _visit(item: Dataset, inherited: list[Modifier], p: str, w: _Walk, depth: in
                     qualifier=qualifier,
                     modifiers=tuple(mods),
                     source_uid=w.uid,
+                    problem=problem,
                 )
             )
     elif vt == "CODE":
@@ -237,6 +293,56 @@ def _visit(item: Dataset, inherited: list[Modifier], p: str, w: _Walk, depth: in
         passed = list(inherited)
     # modifier children were consumed above; walk the rest (containers, NUMs, nested items)
     _walk(children, passed, p, w, depth + 1)
+
+
+#: the Value Types of SR content items (PS3.3 C.17.3.2.1, Table C.17-9 and its extensions)
+VALUE_TYPES = frozenset(
+    {
+        "TEXT",
+        "NUM",
+        "CODE",
+        "DATETIME",
+        "DATE",
+        "TIME",
+        "UIDREF",
+        "PNAME",
+        "COMPOSITE",
+        "IMAGE",
+        "WAVEFORM",
+        "SCOORD",
+        "SCOORD3D",
+        "TCOORD",
+        "CONTAINER",
+        "TABLE",
+    }
+)
+
+
+def _invalid_value_type(
+    item: Dataset, vt: str, inherited: list[Modifier], p: str, w: _Walk
+) -> None:
+    """A content item whose Value Type is not one of PS3.3's: when it carries a measured value
+    it is reported (and excluded) with the reason, never dropped; otherwise a warning."""
+    why = (
+        f"invalid Value Type {vt!r} (PS3.3 C.17.3.2.1: one of the defined terms, upper case, "
+        "e.g. NUM); its value is not used"
+    )
+    concept = read_code(item.get("ConceptNameCodeSequence"))
+    if item.get("MeasuredValueSequence") is None or concept is None:
+        w.warnings.append(f"{p}: content item with {why}")
+        return
+    value, unit, _ = _num(item, p, w)
+    w.observations.append(
+        Observation(
+            path=p,
+            concept=concept,
+            value=value,
+            unit=unit,
+            modifiers=tuple(_own_modifiers(item, p, w) + list(inherited)),
+            source_uid=w.uid,
+            problem=why,
+        )
+    )
 
 
 def _rel_of(item: Dataset, mod: Modifier) -> str:
@@ -745,32 +851,41 @@ class _Broken(Exception):
     pass
 
 
-def _dataset_end(buf: bytes, pos: int, end: int, implicit: bool, depth: int, *, item: bool) -> int:
+def _dataset_end(
+    buf: bytes, pos: int, end: int, implicit: bool, depth: int, *, item: bool, order: str = "<"
+) -> int:
     """Walk the elements from ``pos``; return where they stop.  ``item``: an undefined-length
-    item, ended by an Item Delimitation Item; otherwise the elements fill ``pos..end``."""
+    item, ended by an Item Delimitation Item; otherwise the elements fill ``pos..end``.
+    ``order``: "<" little endian, ">" big endian (PS3.5 7.3)."""
     if depth > _MAX_NESTING:
         raise _Broken(f"sequences nested deeper than {_MAX_NESTING}")
+    tag_format, short, long = f"{order}HH", f"{order}H", f"{order}I"
     while item or pos < end:
         if pos + 8 > end:
             raise _Broken(f"element header cut at byte {pos}")
-        group, elem = struct.unpack_from("<HH", buf, pos)
+        group, elem = struct.unpack_from(tag_format, buf, pos)
         if group == 0xFFFE:
             if item and elem == _ITEM_END:
                 return pos + 8
             raise _Broken(f"unexpected delimiter (FFFE,{elem:04X}) at byte {pos}")
+        vr = b""
         if implicit:
-            (length,) = struct.unpack_from("<I", buf, pos + 4)
+            (length,) = struct.unpack_from(long, buf, pos + 4)
             pos += 8
-        elif buf[pos + 4 : pos + 6] in _LONG_VRS:
+        elif (vr := buf[pos + 4 : pos + 6]) in _LONG_VRS:
             if pos + 12 > end:
                 raise _Broken(f"element header cut at byte {pos}")
-            (length,) = struct.unpack_from("<I", buf, pos + 8)
+            (length,) = struct.unpack_from(long, buf, pos + 8)
             pos += 12
         else:
-            (length,) = struct.unpack_from("<H", buf, pos + 6)
+            (length,) = struct.unpack_from(short, buf, pos + 6)
             pos += 8
-        if length == _UNDEFINED:
-            pos = _sequence_end(buf, pos, end, implicit, depth + 1)
+        if length == _UNDEFINED and vr == b"UN":
+            # PS3.5 6.2.2: the value of an undefined-length UN element (a sequence relayed by
+            # a system that did not know its VR) is encoded in implicit VR little endian
+            pos = _sequence_end(buf, pos, end, True, depth + 1, "<")
+        elif length == _UNDEFINED:
+            pos = _sequence_end(buf, pos, end, implicit, depth + 1, order)
         elif pos + length > end:
             raise _Broken(
                 f"element ({group:04X},{elem:04X}) needs {length} bytes, {end - pos} left"
@@ -780,23 +895,30 @@ def _dataset_end(buf: bytes, pos: int, end: int, implicit: bool, depth: int, *, 
     return pos
 
 
-def _sequence_end(buf: bytes, pos: int, end: int, implicit: bool, depth: int) -> int:
+def _sequence_end(
+    buf: bytes, pos: int, end: int, implicit: bool, depth: int, order: str = "<"
+) -> int:
     """Items of an undefined-length sequence from ``pos``; where its delimiter ends."""
+    head = f"{order}HHI"
     while True:
         if pos + 8 > end:
             raise _Broken("sequence without its end (Sequence Delimitation Item)")
-        group, elem, length = struct.unpack_from("<HHI", buf, pos)
+        group, elem, length = struct.unpack_from(head, buf, pos)
         pos += 8
         if group == 0xFFFE and elem == _SEQ_END:
             return pos
         if group != 0xFFFE or elem != _ITEM:
             raise _Broken(f"({group:04X},{elem:04X}) where a sequence item was expected")
         if length == _UNDEFINED:
-            pos = _dataset_end(buf, pos, end, implicit, depth + 1, item=True)
+            pos = _dataset_end(buf, pos, end, implicit, depth + 1, item=True, order=order)
         elif pos + length > end:
             raise _Broken(f"sequence item needs {length} bytes, {end - pos} left")
         else:
             pos += length
+
+
+#: Explicit VR Big Endian (PS3.5 A.3; retired, still found in old archives)
+EXPLICIT_VR_BE = "1.2.840.10008.1.2.2"
 
 
 def structure_problem(data: bytes, transfer_syntax: str, start: int = 0) -> str | None:
@@ -805,11 +927,21 @@ def structure_problem(data: bytes, transfer_syntax: str, start: int = 0) -> str 
 
     pydicom reads a file that ends inside a sequence without complaint and returns the items
     it found: a truncated measurement SR would then be graded from part of its content.
-    Checked for (implicit and explicit) VR little endian; other transfer syntaxes: None."""
-    if transfer_syntax not in (IMPLICIT_VR_LE, EXPLICIT_VR_LE):
+    Checked for implicit and explicit VR little endian and explicit VR big endian; other
+    transfer syntaxes (deflated, compressed): None."""
+    if transfer_syntax not in (IMPLICIT_VR_LE, EXPLICIT_VR_LE, EXPLICIT_VR_BE):
         return None
+    order = ">" if transfer_syntax == EXPLICIT_VR_BE else "<"
     try:
-        _dataset_end(data, start, len(data), transfer_syntax == IMPLICIT_VR_LE, 0, item=False)
+        _dataset_end(
+            data,
+            start,
+            len(data),
+            transfer_syntax == IMPLICIT_VR_LE,
+            0,
+            item=False,
+            order=order,
+        )
     except (_Broken, struct.error) as exc:
         return str(exc) or "damaged"
     return None

@@ -11,8 +11,10 @@ status page.
 * ``audit_identities``: patient name and ID of a study, only written when the configuration
   allows (``audit.include_patient_identifiers``), and purged with the study.
 
-Separate from the node's work tables on purpose, in plain SQL that PostgreSQL also runs (upserts
-with ``ON CONFLICT``; only the ``?`` placeholders differ).
+Separate from the node's work tables on purpose: the statements here are plain SQL that SQLite
+and PostgreSQL both run (upserts with ``ON CONFLICT``, ``?`` parameters which the PostgreSQL
+backend turns into its own); the tables are created by each backend's schema module
+(``sqlite_schema.py``, version 3).
 """
 
 from __future__ import annotations
@@ -20,41 +22,9 @@ from __future__ import annotations
 import functools
 import json
 import re
-import sqlite3
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any
-
-AUDIT_SCHEMA = """
-CREATE TABLE IF NOT EXISTS audit_studies (
-    study_uid TEXT PRIMARY KEY,
-    graded_at REAL NOT NULL,
-    last_received_at REAL,
-    delivered_at REAL,
-    status TEXT NOT NULL,            -- graded, not-gradable, rejected, error
-    outcome TEXT,                    -- service.model.Outcome token
-    pathway TEXT,
-    guideline TEXT,
-    device TEXT NOT NULL,            -- calling AE, else Station Name, else manufacturer + model
-    calling_ae TEXT NOT NULL DEFAULT '',
-    station_name TEXT NOT NULL DEFAULT '',
-    manufacturer TEXT NOT NULL DEFAULT '',
-    model TEXT NOT NULL DEFAULT '',
-    measures TEXT NOT NULL DEFAULT '[]',    -- JSON: canonical measure names present
-    borderline TEXT NOT NULL DEFAULT '[]',  -- JSON: cut-offs a value sat on
-    missing TEXT NOT NULL DEFAULT '[]',     -- JSON: missing measures that would/could decide
-    compared INTEGER NOT NULL DEFAULT 0,    -- number of guidelines compared
-    disagreement INTEGER,                   -- 1/0, NULL when not compared
-    failure TEXT NOT NULL DEFAULT '',       -- why the study failed, while it does
-    facts_version INTEGER NOT NULL DEFAULT 1
-);
-CREATE INDEX IF NOT EXISTS audit_studies_time ON audit_studies (graded_at, study_uid);
-CREATE TABLE IF NOT EXISTS audit_identities (
-    study_uid TEXT PRIMARY KEY,
-    patient_name TEXT NOT NULL,
-    patient_id TEXT NOT NULL
-);
-"""
 
 _COLUMNS = (
     "study_uid",
@@ -217,19 +187,23 @@ def _row(r: Any, identities: bool = False) -> AuditRow:
 
 #: the study's own failure reason, without the details that differ between studies
 _ATTEMPTS = re.compile(r"gave up after \d+ attempts?: ")
+#: "delivery of result SR 2.25.9 to PACS" (the study's reason names the object's UID)
+_DELIVERY_OF = re.compile(r"^delivery of (?P<kind>.+?) [0-9.]+ to ")
 
 
 def failure_kind(reason: str) -> str:
-    """A failure reason shortened to what studies failing the same way share: the attempt
-    count, the port, exception texts and parenthesised details go, e.g.
-    "delivery to PACS: gave up after 10 attempts: cannot connect to PACS@10.0.0.5:104: [Errno
-    111] Connection refused" -> "delivery to PACS: cannot connect to PACS@10.0.0.5";
+    """A failure reason shortened to what studies failing the same way share: the object's
+    UID, the attempt count, the port, exception texts and parenthesised details go, e.g.
+    "delivery of result SR 2.25.9 to PACS: gave up after 10 attempts: cannot connect to
+    PACS@10.0.0.5:104: [Errno 111] Connection refused" -> "delivery of the result SR to PACS:
+    cannot connect to PACS@10.0.0.5";
     "internal error while grading: boom" -> "internal error while grading"."""
     text = _ATTEMPTS.sub("", reason.strip())
     parts = []
     for clause in text.split("; "):
+        clause = _DELIVERY_OF.sub(r"delivery of the \g<kind> to ", clause)
         head, sep, rest = clause.partition(": ")
-        if head.startswith("delivery to ") and sep:
+        if head.startswith(("delivery to ", "delivery of the ")) and sep:
             detail = rest.split(" (", 1)[0].split(": ", 1)[0]
             parts.append(f"{head}: {detail.rsplit(':', 1)[0] if '@' in detail else detail}")
         elif head.startswith("internal error"):
@@ -250,7 +224,7 @@ class AuditRecords:
 
     @staticmethod
     def _audit_graded(
-        db: sqlite3.Connection,
+        db: Any,
         study_uid: str,
         facts: Any,
         *,
@@ -285,9 +259,7 @@ class AuditRecords:
             db.execute("DELETE FROM audit_identities WHERE study_uid = ?", (study_uid,))
 
     @staticmethod
-    def _audit_settled(
-        db: sqlite3.Connection, study_uid: str, state: str, reason: str, now: float
-    ) -> None:
+    def _audit_settled(db: Any, study_uid: str, state: str, reason: str, now: float) -> None:
         """A study's deliveries settled: the time its result was delivered, or why it failed."""
         db.execute(
             "UPDATE audit_studies SET "
@@ -297,7 +269,7 @@ class AuditRecords:
         )
 
     @staticmethod
-    def _audit_forget(db: sqlite3.Connection, study_uids: Iterable[str]) -> None:
+    def _audit_forget(db: Any, study_uids: Iterable[str]) -> None:
         """Patient identity of purged studies goes with them (their facts stay)."""
         for uid in study_uids:
             db.execute("DELETE FROM audit_identities WHERE study_uid = ?", (uid,))

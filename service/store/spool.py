@@ -122,13 +122,16 @@ def safe_name(uid: str) -> str:
 
 
 class Spool:
-    def __init__(self, root: Path) -> None:
+    def __init__(self, root: Path, *, clean: bool = True) -> None:
+        """``clean``: remove the temporary files a crash left (only the node, on start: any
+        other opener could remove a file being written)."""
         self.root = Path(root)
         self.objects = self.root / "objects"
         self.results = self.root / "results"
         for folder in (self.objects, self.results):
             make_dirs(folder)
-        self.clean_temporaries()
+        if clean:
+            self.clean_temporaries()
 
     def clean_temporaries(self) -> int:
         """Remove half-written temporary files left by a crash (they were never acknowledged)."""

@@ -253,6 +253,11 @@ def _recognise(state: _State, table: MappingTable) -> dict[Quantity, list[_Cand]
     for doc_i, doc in enumerate(state.docs):
         for obs in doc.observations:
             rule = table.match(obs)
+            if obs.problem:  # a value is there but cannot be used: say why, whatever it is
+                state.exclude(
+                    obs, None if rule is None else parse_quantity(rule.quantity), obs.problem
+                )
+                continue
             if rule is None:
                 state.unrecognised.append(
                     Unrecognised(

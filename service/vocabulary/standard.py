@@ -127,6 +127,10 @@ CODES: dict[str, KnownCode] = {
     "cw_doppler": _k("261198000", "SCT", "Doppler Continuous Wave", 12224),
     "tdi": _k("439858009", "SCT", "Tissue Doppler Imaging", 12224),
     "regurgitant_flow": _k("397417004", "SCT", "Regurgitant Flow", 12221),
+    # the same SNOMED CT concepts are "Antegrade/Retrograde Flow" in CID 12221 (TID 5200) and
+    # "Antegrade/Retrograde Direction" in CID 12306 (TID 5302 Flow Direction)
+    "antegrade_flow": _k("263677008", "SCT", "Antegrade Flow", 12221, 12306),
+    "retrograde_flow": _k("312004007", "SCT", "Retrograde Flow", 12221, 12306),
     "e_wave_phase": _k("444392003", "SCT", "Diastolic Rapid Inflow (E-wave)", 12307),
     "a_wave_phase": _k("59972007", "SCT", "Atrial systole, function (observable entity)"),
     "early_diastole": _k("444389002", "SCT", "Early Diastole"),
@@ -184,7 +188,13 @@ E_PHASE = where("cardiac_phase", "e_wave_phase")
 A_PHASE = where("cardiac_phase", "a_wave_phase")
 S_PHASE = where("cardiac_phase", "s_wave_phase")
 D_PHASE = where("cardiac_phase", "d_wave_phase")
-REGURGITANT = where("flow_direction", "regurgitant_flow")
+#: backward flow: Regurgitant Flow (CID 12221) or Retrograde Flow (CID 12221; Retrograde
+#: Direction in CID 12306, the value set of TID 5302's Flow Direction)
+REGURGITANT = where("flow_direction", "regurgitant_flow", "retrograde_flow")
+#: forward flow or no direction: a backward-flagged velocity at the mitral valve is mitral
+#: regurgitation and one in the pulmonary veins is the atrial reversal (Ar) wave, never the
+#: E, A, S or D wave
+NOT_BACKWARD = where("flow_direction", "regurgitant_flow", "retrograde_flow", negate=True)
 CW_OR_NONE = where("image_mode", "cw_doppler", absent=True)
 
 
@@ -338,6 +348,7 @@ STANDARD_RULES: tuple[Rule, ...] = (
         M.mitral_e,
         SITE_MV,
         E_PHASE,
+        NOT_BACKWARD,
         source=SRC_POST,
         priority=2,
     ),
@@ -347,6 +358,7 @@ STANDARD_RULES: tuple[Rule, ...] = (
         M.mitral_a,
         SITE_MV,
         A_PHASE,
+        NOT_BACKWARD,
         source=SRC_POST,
         priority=2,
     ),
@@ -356,6 +368,7 @@ STANDARD_RULES: tuple[Rule, ...] = (
         C.pv_s_velocity,
         SITE_PV,
         S_PHASE,
+        NOT_BACKWARD,
         source=SRC_POST,
         priority=2,
     ),
@@ -365,6 +378,7 @@ STANDARD_RULES: tuple[Rule, ...] = (
         C.pv_d_velocity,
         SITE_PV,
         D_PHASE,
+        NOT_BACKWARD,
         source=SRC_POST,
         priority=2,
     ),
@@ -440,6 +454,7 @@ STANDARD_RULES: tuple[Rule, ...] = (
         _mp("peak_blood_velocity"),
         SITE_MV,
         E_PHASE,
+        NOT_BACKWARD,
         source=SRC_5302,
         priority=3,
     ),
@@ -450,6 +465,7 @@ STANDARD_RULES: tuple[Rule, ...] = (
         _mp("peak_blood_velocity"),
         SITE_MV,
         A_PHASE,
+        NOT_BACKWARD,
         source=SRC_5302,
         priority=3,
     ),
@@ -470,6 +486,7 @@ STANDARD_RULES: tuple[Rule, ...] = (
         _mp("peak_blood_velocity"),
         SITE_PV,
         S_PHASE,
+        NOT_BACKWARD,
         source=SRC_5302,
         priority=3,
     ),
@@ -480,6 +497,7 @@ STANDARD_RULES: tuple[Rule, ...] = (
         _mp("peak_blood_velocity"),
         SITE_PV,
         D_PHASE,
+        NOT_BACKWARD,
         source=SRC_5302,
         priority=3,
     ),

@@ -61,10 +61,10 @@ def _pool(size: int, seed: int) -> list[Any]:
 
 def fill(journal_file: Path, studies: int, pool: list[Any], *, now: float, seed: int) -> float:
     """Record ``studies`` studies' audit rows in one transaction; returns seconds taken."""
-    from service.store.journal import Journal
+    from service.store.sqlite_journal import SqliteJournal
 
     rng = random.Random(seed)
-    journal = Journal(journal_file)
+    journal = SqliteJournal(journal_file)
     started = time.perf_counter()
     try:
         with journal._tx(durable=False) as db:
@@ -137,7 +137,7 @@ def run(studies: int, work: Path, *, pool_size: int, seed: int) -> dict[str, Any
     from service.audit.pdf import audit_pdf
     from service.audit.render import audit_html
     from service.audit.report import build_report, report_json
-    from service.store.journal import Journal
+    from service.store.sqlite_journal import SqliteJournal
 
     data_dir = work / "node"
     data_dir.mkdir(parents=True, exist_ok=True)
@@ -145,7 +145,7 @@ def run(studies: int, work: Path, *, pool_size: int, seed: int) -> dict[str, Any
     now = time.time()
     pool, pool_s = _timed(lambda: _pool(pool_size, seed))
     fill_s = fill(journal_file, studies, pool, now=now, seed=seed)
-    journal = Journal(journal_file)
+    journal = SqliteJournal(journal_file)
     try:
         rows, read_s = _timed(lambda: journal.audit_rows(now - 366 * DAY, None))
     finally:

@@ -549,7 +549,7 @@ def bench_sender(work: Path, n: int) -> dict[str, Any]:
         job = GradeJob(
             study_uid=f"sender-{i}",
             object_uids=(f"o{i}",),
-            object_paths=(path,),
+            objects=(path.read_bytes(),),
             options=GradeOptions(),
             mapping_paths=(),
         )
@@ -656,11 +656,11 @@ def bench_memory(work: Path, marks: Sequence[int], workers: int, batch: int) -> 
 
 
 def bench_journal(work: Path, sizes: Sequence[int], repeats: int = 30) -> dict[str, Any]:
-    from service.store.journal import Journal
+    from service.store.sqlite_journal import SqliteJournal
 
     say(f"\n== journal: query times as it grows ({', '.join(map(str, sizes))} studies) ==")
     path = work / "journal-bench.sqlite3"
-    j = Journal(path)
+    j = SqliteJournal(path)
     statements: dict[str, str] = {}
 
     def trace(sql: str) -> None:
@@ -685,14 +685,14 @@ def bench_journal(work: Path, sizes: Sequence[int], repeats: int = 30) -> dict[s
         for k in range(repeats):
             uid = f"2.25.9{size}{k}"
             timed(
-                "record_object",
-                lambda uid=uid: j.record_object(
+                "store_object",
+                lambda uid=uid: j.store_object(
                     sop_instance_uid=uid + ".1",
                     study_uid=uid,
                     sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
                     transfer_syntax="1.2.840.10008.1.2.1",
                     calling_ae="SCANNER1",
-                    path=Path("/nonexistent"),
+                    data=b"object",
                     settle_seconds=0,
                     now=time.time() - 1,
                 ),
@@ -706,7 +706,7 @@ def bench_journal(work: Path, sizes: Sequence[int], repeats: int = 30) -> dict[s
                     result_uid=uid + ".9",
                     series_uid=uid + ".8",
                     sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
-                    path=Path("/nonexistent"),
+                    data=b"result",
                     status="graded",
                     guideline="ase-eacvi-2016",
                     grade="normal",

@@ -1,0 +1,779 @@
+"""The journal's statements, written once for every backend.
+
+:class:`SqlJournal` implements :class:`~service.store.journal.Journal` in SQL that SQLite and
+PostgreSQL both accept (``INSERT ... ON CONFLICT``, ``CASE``, ``COALESCE``, ``?`` parameters,
+which the PostgreSQL backend turns into its own).  A backend supplies the connection and its
+transactions (:meth:`SqlJournal._tx`, :meth:`SqlJournal._query`), where the objects' bytes live
+(the ``_put_*``, ``_read_*`` and purge hooks) and the few phrases where the dialects
+differ (:attr:`SqlJournal.RESULT_ORDER`, :attr:`SqlJournal.LOCK_ROWS`).  Its schema lives in a
+schema module of its own (``sqlite_schema.py``, ...).
+"""
+
+from __future__ import annotations
+
+import abc
+import json
+import time
+from collections.abc import Sequence
+from contextlib import AbstractContextManager
+from typing import Any
+
+from service.errors import UserError
+from service.store.activity import ActivityQueries
+from service.store.audit_records import AuditRecords
+from service.store.journal import (
+    Companion,
+    DeliveryState,
+    DueDelivery,
+    Journal,
+    NewResult,
+    Purged,
+    StudyClaim,
+    backoff_delay,
+)
+
+
+class Cursor(abc.ABC):
+    """What the shared statements use of a backend's connection inside a transaction."""
+
+    @abc.abstractmethod
+    def execute(self, sql: str, params: Sequence[Any] = ()) -> Any:
+        """Run one statement; the result has ``fetchone()``, ``fetchall()`` and ``rowcount``,
+        and its rows can be read by column name and by position."""
+
+
+class SqlJournal(AuditRecords, ActivityQueries, Journal):
+    #: ORDER BY of results: oldest first, in the order they were recorded
+    RESULT_ORDER = "created_at, rowid"
+    #: appended to the SELECT that picks rows to claim (rows other transactions hold are
+    #: skipped); "" where a write transaction excludes every other writer
+    LOCK_ROWS = ""
+
+    # -- what a backend supplies ------------------------------------------------------------
+
+    @abc.abstractmethod
+    def _tx(self, *, durable: bool = True) -> AbstractContextManager[Cursor]:
+        """One write transaction, committed on exit: durable when the commit returns
+        (``durable``), or lazily (see "Durability" in :mod:`service.store.journal`)."""
+
+    @abc.abstractmethod
+    def _query(self, sql: str, params: Sequence[Any] = ()) -> list[Any]:
+        """Rows of one read-only statement."""
+
+    @abc.abstractmethod
+    def _put_object(self, study_uid: str, sop_instance_uid: str, data: bytes) -> str:
+        """Store an object's bytes before its record is written (durably); the ``path`` its
+        row keeps ('' when the bytes go in with the row, :meth:`_put_object_in_tx`)."""
+
+    def _put_object_in_tx(self, db: Cursor, sop_instance_uid: str, data: bytes) -> None:
+        """Store an object's bytes in the transaction that records it (databases that hold
+        the bytes); nothing by default."""
+
+    @abc.abstractmethod
+    def _read_object(self, row: Any) -> bytes:
+        """The bytes of the object whose row is ``row``."""
+
+    @abc.abstractmethod
+    def _put_result(self, study_uid: str, result_uid: str, data: bytes) -> str:
+        """As :meth:`_put_object`, for a result object."""
+
+    def _put_result_in_tx(self, db: Cursor, result_uid: str, data: bytes) -> None:
+        """As :meth:`_put_object_in_tx`, for a result object."""
+
+    @abc.abstractmethod
+    def _read_result(self, row: Any) -> bytes:
+        """The bytes of the result whose row is ``row``."""
+
+    @abc.abstractmethod
+    def _result_bytes_present(self, row: Any) -> bool:
+        """The bytes of the recorded result ``row`` are there."""
+
+    def _purge_study_bytes(self, db: Cursor, study_uid: str) -> int:
+        """Inside a purge's transaction, before the study's rows go: drop the bytes of its
+        objects and results held in the database; returns how many.  Nothing by default."""
+        return 0
+
+    def _after_purge(self, paths: list[str]) -> int:
+        """After a purge's commit: delete bytes held outside the database; returns how many."""
+        return 0
+
+    # -- receiving ------------------------------------------------------------------------------
+
+    def store_object(
+        self,
+        *,
+        sop_instance_uid: str,
+        study_uid: str,
+        sop_class_uid: str,
+        transfer_syntax: str,
+        calling_ae: str,
+        data: bytes,
+        settle_seconds: float,
+        now: float | None = None,
+    ) -> None:
+        path = self._put_object(study_uid, sop_instance_uid, data)
+        now = time.time() if now is None else now
+        with self._tx() as db:
+            db.execute(
+                """INSERT INTO objects (sop_instance_uid, study_uid, sop_class_uid,
+                       transfer_syntax, calling_ae, path, state, received_at)
+                   VALUES (?, ?, ?, ?, ?, ?, 'received', ?)
+                   ON CONFLICT (sop_instance_uid) DO UPDATE SET
+                       study_uid = excluded.study_uid, sop_class_uid = excluded.sop_class_uid,
+                       transfer_syntax = excluded.transfer_syntax,
+                       calling_ae = excluded.calling_ae, path = excluded.path,
+                       state = 'received', received_at = excluded.received_at,
+                       times_received = objects.times_received + 1, note = ''""",
+                (
+                    sop_instance_uid,
+                    study_uid,
+                    sop_class_uid,
+                    transfer_syntax,
+                    calling_ae,
+                    path,
+                    now,
+                ),
+            )
+            self._put_object_in_tx(db, sop_instance_uid, data)
+            db.execute(
+                """INSERT INTO studies (study_uid, calling_ae, state, first_received_at,
+                       last_received_at, due_at, updated_at)
+                   VALUES (?, ?, 'received', ?, ?, ?, ?)
+                   ON CONFLICT (study_uid) DO UPDATE SET
+                       calling_ae = excluded.calling_ae, state = 'received', reason = '',
+                       last_received_at = excluded.last_received_at,
+                       due_at = excluded.due_at, generation = studies.generation + 1,
+                       updated_at = excluded.updated_at""",
+                (study_uid, calling_ae, now, now, now + settle_seconds, now),
+            )
+
+    def store_ignored(
+        self,
+        *,
+        sop_instance_uid: str,
+        study_uid: str,
+        sop_class_uid: str,
+        calling_ae: str,
+        data: bytes,
+        reason: str,
+        now: float | None = None,
+    ) -> None:
+        path = self._put_object(study_uid, sop_instance_uid, data)
+        now = time.time() if now is None else now
+        with self._tx() as db:
+            db.execute(
+                """INSERT INTO ignored_objects (sop_instance_uid, study_uid, sop_class_uid,
+                       calling_ae, path, reason, received_at)
+                   VALUES (?, ?, ?, ?, ?, ?, ?)
+                   ON CONFLICT (sop_instance_uid) DO UPDATE SET
+                       calling_ae = excluded.calling_ae, path = excluded.path,
+                       reason = excluded.reason, received_at = excluded.received_at,
+                       times_received = ignored_objects.times_received + 1""",
+                (sop_instance_uid, study_uid, sop_class_uid, calling_ae, path, reason, now),
+            )
+            self._put_object_in_tx(db, sop_instance_uid, data)
+
+    def ignored_objects(self, limit: int = 100) -> list[dict[str, Any]]:
+        rows = self._query(
+            "SELECT * FROM ignored_objects ORDER BY received_at DESC LIMIT ?", (limit,)
+        )
+        return [dict(r) for r in rows]
+
+    def _purge_ignored_bytes(self, db: Cursor, sop_instance_uids: Sequence[str]) -> int:
+        """Inside a purge's transaction: drop the bytes of these ignored objects held in the
+        database; returns how many.  Nothing by default."""
+        return 0
+
+    def object_data(self, sop_instance_uid: str) -> bytes:
+        rows = self._query("SELECT * FROM objects WHERE sop_instance_uid = ?", (sop_instance_uid,))
+        if not rows:
+            raise FileNotFoundError(f"object {sop_instance_uid} is not in the journal")
+        return self._read_object(rows[0])
+
+    # -- assembling and grading -----------------------------------------------------------------
+
+    def next_due_at(self) -> float | None:
+        rows = self._query("SELECT MIN(due_at) AS due FROM studies WHERE state = 'received'")
+        return rows[0][0] if rows else None
+
+    def claim_due(self, *, now: float | None = None, limit: int = 1) -> list[StudyClaim]:
+        now = time.time() if now is None else now
+        claims = []
+        with self._tx(durable=False) as db:
+            studies = db.execute(
+                """SELECT study_uid, calling_ae, generation FROM studies
+                   WHERE state = 'received' AND due_at <= ? ORDER BY due_at LIMIT ?"""
+                + self.LOCK_ROWS,
+                (now, limit),
+            ).fetchall()
+            for s in studies:
+                objs = db.execute(
+                    "SELECT sop_instance_uid FROM objects WHERE study_uid = ? "
+                    "ORDER BY received_at, sop_instance_uid",
+                    (s["study_uid"],),
+                ).fetchall()
+                earlier = db.execute(
+                    f"SELECT * FROM results WHERE study_uid = ? ORDER BY {self.RESULT_ORDER}",
+                    (s["study_uid"],),
+                ).fetchall()
+                db.execute(
+                    "UPDATE studies SET state = 'assembled', updated_at = ? WHERE study_uid = ?",
+                    (now, s["study_uid"]),
+                )
+                db.execute(
+                    "UPDATE objects SET state = 'assembled' WHERE study_uid = ? "
+                    "AND state = 'received'",
+                    (s["study_uid"],),
+                )
+                claims.append(
+                    StudyClaim(
+                        study_uid=s["study_uid"],
+                        calling_ae=s["calling_ae"],
+                        generation=s["generation"],
+                        object_uids=tuple(o["sop_instance_uid"] for o in objs),
+                        earlier_results=tuple(_result_row(r) for r in earlier),
+                    )
+                )
+        return claims
+
+    def finish_grading(
+        self,
+        claim: StudyClaim,
+        *,
+        result: NewResult | None,
+        destinations: Sequence[tuple[str, str]] = (),
+        failure: str = "",
+        object_notes: dict[str, str] | None = None,
+        companions: Sequence[Companion] = (),
+        audit: Any = None,
+        now: float | None = None,
+    ) -> bool:
+        # the bytes first, durably: a row never names bytes that are not whole
+        paths: dict[str, str] = {}
+        held: list[NewResult] = []
+        for new in ([result] if result is not None else []) + [c.result for c in companions]:
+            if new.data is None or self.result_stored(new.result_uid):
+                rows = self._query("SELECT * FROM results WHERE result_uid = ?", (new.result_uid,))
+                if not rows or not self._result_bytes_present(rows[0]):
+                    raise FileNotFoundError(f"stored result {new.result_uid} vanished")
+                paths[new.result_uid] = rows[0]["path"]
+            else:
+                paths[new.result_uid] = self._put_result(claim.study_uid, new.result_uid, new.data)
+                held.append(new)
+        now = time.time() if now is None else now
+        queued = False
+        with self._tx(durable=False) as db:
+            current = db.execute(
+                "SELECT generation FROM studies WHERE study_uid = ?", (claim.study_uid,)
+            ).fetchone()
+            same_generation = current is not None and current["generation"] == claim.generation
+            if claim.object_uids:
+                marks = ",".join("?" * len(claim.object_uids))
+                db.execute(
+                    f"UPDATE objects SET state = 'graded' WHERE sop_instance_uid IN ({marks}) "
+                    "AND state = 'assembled'",
+                    claim.object_uids,
+                )
+            for uid, note in (object_notes or {}).items():
+                db.execute("UPDATE objects SET note = ? WHERE sop_instance_uid = ?", (note, uid))
+            for new in held:
+                self._put_result_in_tx(db, new.result_uid, new.data or b"")
+            if result is not None:
+                queued = self._insert_result(
+                    db, claim.study_uid, result, paths[result.result_uid], destinations, now
+                )
+                for comp in companions:
+                    queued = (
+                        self._insert_result(
+                            db,
+                            claim.study_uid,
+                            comp.result,
+                            paths[comp.result.result_uid],
+                            comp.destinations,
+                            now,
+                        )
+                        or queued
+                    )
+                    db.execute(
+                        "INSERT INTO companions VALUES (?, ?) ON CONFLICT DO NOTHING",
+                        (result.result_uid, comp.result.result_uid),
+                    )
+                db.execute(
+                    "UPDATE studies SET result_uid = ?, updated_at = ? WHERE study_uid = ?",
+                    (result.result_uid, now, claim.study_uid),
+                )
+            if same_generation:
+                self._audit_graded(
+                    db,
+                    claim.study_uid,
+                    audit,
+                    calling_ae=claim.calling_ae,
+                    failure="" if result is not None else (failure or "not graded"),
+                    now=now,
+                )
+                if result is None:
+                    db.execute(
+                        "UPDATE studies SET state = 'failed', reason = ?, updated_at = ? "
+                        "WHERE study_uid = ?",
+                        (failure or "not graded", now, claim.study_uid),
+                    )
+                else:
+                    db.execute(
+                        "UPDATE studies SET state = 'graded', reason = '', updated_at = ? "
+                        "WHERE study_uid = ?",
+                        (now, claim.study_uid),
+                    )
+                    self._settle_study_state(db, claim.study_uid, now)
+            # else: a newer object arrived while grading; the study is 'received' again
+        return queued
+
+    @staticmethod
+    def _insert_result(
+        db: Cursor,
+        study_uid: str,
+        result: NewResult,
+        path: str,
+        destinations: Sequence[tuple[str, str]],
+        now: float,
+    ) -> bool:
+        db.execute(
+            """INSERT INTO results (result_uid, study_uid, series_uid,
+                   sop_class_uid, path, status, guideline, grade, filling_pressure,
+                   sources, predecessors, created_at)
+               VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT DO NOTHING""",
+            (
+                result.result_uid,
+                study_uid,
+                result.series_uid,
+                result.sop_class_uid,
+                path,
+                result.status,
+                result.guideline,
+                result.grade,
+                result.filling_pressure,
+                json.dumps(list(result.sources)),
+                json.dumps(list(result.predecessors)),
+                now,
+            ),
+        )
+        queued = False
+        for name, target in destinations:
+            cur = db.execute(
+                """INSERT INTO deliveries (result_uid, destination, target,
+                       state, next_attempt_at, created_at, updated_at)
+                   VALUES (?, ?, ?, 'pending', ?, ?, ?) ON CONFLICT DO NOTHING""",
+                (result.result_uid, name, target, now, now, now),
+            )
+            queued = queued or cur.rowcount > 0
+        return queued
+
+    def release_claim(
+        self, claim: StudyClaim, *, retry_at: float | None = None, now: float | None = None
+    ) -> None:
+        now = time.time() if now is None else now
+        with self._tx(durable=False) as db:
+            db.execute(
+                "UPDATE studies SET state = 'received', updated_at = ?, "
+                "due_at = COALESCE(?, due_at) WHERE study_uid = ? AND state = 'assembled'",
+                (now, retry_at, claim.study_uid),
+            )
+            db.execute(
+                "UPDATE objects SET state = 'received' WHERE study_uid = ? AND state = 'assembled'",
+                (claim.study_uid,),
+            )
+
+    def recover(self, *, now: float | None = None) -> dict[str, int]:
+        now = time.time() if now is None else now
+        with self._tx() as db:
+            studies = db.execute(
+                "UPDATE studies SET state = 'received', "
+                "due_at = CASE WHEN due_at < ? THEN due_at ELSE ? END, "
+                "updated_at = ? WHERE state = 'assembled'",
+                (now, now, now),
+            ).rowcount
+            db.execute("UPDATE objects SET state = 'received' WHERE state = 'assembled'")
+            # every study not yet graded resumes: those caught mid-grading and those whose
+            # settle window had not ended (or had ended unclaimed) when the node stopped
+            waiting = db.execute(
+                "SELECT COUNT(*) AS n FROM studies WHERE state = 'received'"
+            ).fetchone()[0]
+        counts = self.counts()
+        counts["resumed_grading"] = int(waiting)
+        counts["interrupted_grading"] = studies
+        return counts
+
+    def request_regrade(self, study_uid: str, *, now: float | None = None) -> bool:
+        now = time.time() if now is None else now
+        with self._tx() as db:
+            n = db.execute(
+                "UPDATE studies SET state = 'received', reason = '', due_at = ?, "
+                "generation = generation + 1, updated_at = ? WHERE study_uid = ?",
+                (now, now, study_uid),
+            ).rowcount
+        return n > 0
+
+    def result_stored(self, result_uid: str) -> bool:
+        rows = self._query("SELECT * FROM results WHERE result_uid = ?", (result_uid,))
+        return bool(rows) and self._result_bytes_present(rows[0])
+
+    def result_data(self, result_uid: str) -> bytes:
+        rows = self._query("SELECT * FROM results WHERE result_uid = ?", (result_uid,))
+        if not rows:
+            raise FileNotFoundError(f"result {result_uid} is not in the journal")
+        return self._read_result(rows[0])
+
+    # -- delivering -------------------------------------------------------------------------------
+
+    def due_deliveries(self, *, now: float | None = None, limit: int = 100) -> list[DueDelivery]:
+        now = time.time() if now is None else now
+        rows = self._query(
+            """SELECT d.id, d.result_uid, r.study_uid, d.destination, d.attempts,
+                      r.sop_class_uid,
+                      (SELECT c.result_uid FROM companions c
+                       WHERE c.companion_uid = d.result_uid LIMIT 1) AS parent_uid
+               FROM deliveries d JOIN results r ON r.result_uid = d.result_uid
+               WHERE d.state = 'pending' AND d.next_attempt_at <= ?
+               ORDER BY d.next_attempt_at, d.id LIMIT ?""",
+            (now, limit),
+        )
+        return [
+            DueDelivery(
+                id=r["id"],
+                result_uid=r["result_uid"],
+                study_uid=r["study_uid"],
+                destination=r["destination"],
+                attempts=r["attempts"],
+                parent_uid=r["parent_uid"],
+                sop_class_uid=r["sop_class_uid"],
+            )
+            for r in rows
+        ]
+
+    def delivered_to(self, result_uid: str, destination: str) -> bool:
+        rows = self._query(
+            "SELECT 1 FROM deliveries WHERE result_uid = ? AND destination = ? "
+            "AND state = 'delivered'",
+            (result_uid, destination),
+        )
+        return bool(rows)
+
+    def next_delivery_at(self) -> float | None:
+        rows = self._query(
+            "SELECT MIN(next_attempt_at) AS due FROM deliveries WHERE state = 'pending'"
+        )
+        return rows[0][0] if rows else None
+
+    def mark_delivered(self, delivery_id: int, *, now: float | None = None) -> None:
+        now = time.time() if now is None else now
+        with self._tx(durable=False) as db:
+            db.execute(
+                "UPDATE deliveries SET state = 'delivered', attempts = attempts + 1, "
+                "last_error = '', delivered_at = ?, updated_at = ? WHERE id = ?",
+                (now, now, delivery_id),
+            )
+            self._settle_study_of_delivery(db, delivery_id, now)
+
+    def mark_attempt_failed(
+        self,
+        delivery_id: int,
+        error: str,
+        *,
+        max_attempts: int,
+        backoff_initial: float,
+        backoff_max: float,
+        now: float | None = None,
+    ) -> DeliveryState:
+        now = time.time() if now is None else now
+        with self._tx(durable=False) as db:
+            row = db.execute(
+                "SELECT attempts FROM deliveries WHERE id = ?", (delivery_id,)
+            ).fetchone()
+            attempts = (row["attempts"] if row else 0) + 1
+            if attempts >= max_attempts:
+                state = DeliveryState.failed
+                reason = f"gave up after {attempts} attempts: {error}"
+                db.execute(
+                    "UPDATE deliveries SET state = 'failed', attempts = ?, last_error = ?, "
+                    "updated_at = ? WHERE id = ?",
+                    (attempts, reason, now, delivery_id),
+                )
+                self._settle_study_of_delivery(db, delivery_id, now)
+            else:
+                state = DeliveryState.pending
+                delay = backoff_delay(attempts, backoff_initial, backoff_max)
+                db.execute(
+                    "UPDATE deliveries SET attempts = ?, last_error = ?, next_attempt_at = ?, "
+                    "updated_at = ? WHERE id = ?",
+                    (attempts, error, now + delay, now, delivery_id),
+                )
+        return state
+
+    def mark_failed(self, delivery_id: int, reason: str, *, now: float | None = None) -> None:
+        now = time.time() if now is None else now
+        with self._tx(durable=False) as db:
+            db.execute(
+                "UPDATE deliveries SET state = 'failed', attempts = attempts + 1, "
+                "last_error = ?, updated_at = ? WHERE id = ?",
+                (reason, now, delivery_id),
+            )
+            self._settle_study_of_delivery(db, delivery_id, now)
+
+    def requeue_failed(self, *, now: float | None = None) -> int:
+        now = time.time() if now is None else now
+        with self._tx() as db:
+            studies = [
+                r[0]
+                for r in db.execute(
+                    "SELECT DISTINCT r.study_uid FROM deliveries d JOIN results r "
+                    "ON r.result_uid = d.result_uid WHERE d.state = 'failed'"
+                ).fetchall()
+            ]
+            n = db.execute(
+                "UPDATE deliveries SET state = 'pending', attempts = 0, next_attempt_at = ?, "
+                "updated_at = ? WHERE state = 'failed'",
+                (now, now),
+            ).rowcount
+            for study in studies:
+                self._settle_study_state(db, study, now)
+        return n
+
+    def _settle_study_of_delivery(self, db: Cursor, delivery_id: int, now: float) -> None:
+        row = db.execute(
+            "SELECT r.study_uid FROM deliveries d JOIN results r ON r.result_uid = d.result_uid "
+            "WHERE d.id = ?",
+            (delivery_id,),
+        ).fetchone()
+        if row:
+            self._settle_study_state(db, row[0], now)
+
+    def _settle_study_state(self, db: Cursor, study_uid: str, now: float) -> None:
+        """graded/delivered/failed of a study from the deliveries of its current result."""
+        study = db.execute(
+            "SELECT state, result_uid FROM studies WHERE study_uid = ?", (study_uid,)
+        ).fetchone()
+        if study is None or study["state"] not in ("graded", "delivered", "failed"):
+            return
+        if study["result_uid"] is None:
+            return
+        rows = db.execute(
+            "SELECT d.destination, d.state, d.last_error, d.result_uid, r.sop_class_uid "
+            "FROM deliveries d LEFT JOIN results r ON r.result_uid = d.result_uid "
+            "WHERE d.result_uid = ? "
+            "OR d.result_uid IN (SELECT companion_uid FROM companions WHERE result_uid = ?)",
+            (study["result_uid"], study["result_uid"]),
+        ).fetchall()
+        failed = [r for r in rows if r["state"] == "failed"]
+        pending = [r for r in rows if r["state"] == "pending"]
+        if failed:
+            state = "failed"
+            reason = "; ".join(
+                f"delivery of {_kind(r['sop_class_uid'])} {r['result_uid']} to "
+                f"{r['destination']}: {r['last_error']}"
+                for r in failed
+            )
+        elif pending or not rows:
+            state, reason = "graded", ""
+        else:
+            state, reason = "delivered", ""
+        db.execute(
+            "UPDATE studies SET state = ?, reason = ?, updated_at = ? WHERE study_uid = ?",
+            (state, reason, now, study_uid),
+        )
+        self._audit_settled(db, study_uid, state, reason, now)
+
+    # -- reading ----------------------------------------------------------------------------------
+
+    def counts(self) -> dict[str, int]:
+        out: dict[str, int] = {}
+        for table in ("objects", "studies", "deliveries"):
+            for row in self._query(f"SELECT state, COUNT(*) AS n FROM {table} GROUP BY state"):
+                out[f"{table}.{row[0]}"] = int(row[1])
+        return out
+
+    def study(self, study_uid: str) -> dict[str, Any] | None:
+        rows = self._query("SELECT * FROM studies WHERE study_uid = ?", (study_uid,))
+        return dict(rows[0]) if rows else None
+
+    def studies(self, *, states: Sequence[str] = (), limit: int = 1000) -> list[dict[str, Any]]:
+        if states:
+            marks = ",".join("?" * len(states))
+            rows = self._query(
+                f"SELECT * FROM studies WHERE state IN ({marks}) ORDER BY updated_at DESC LIMIT ?",
+                (*states, limit),
+            )
+        else:
+            rows = self._query("SELECT * FROM studies ORDER BY updated_at DESC LIMIT ?", (limit,))
+        return [dict(r) for r in rows]
+
+    def objects(self, study_uid: str | None = None) -> list[dict[str, Any]]:
+        if study_uid is None:
+            rows = self._query("SELECT * FROM objects ORDER BY received_at")
+        else:
+            rows = self._query(
+                "SELECT * FROM objects WHERE study_uid = ? ORDER BY received_at", (study_uid,)
+            )
+        return [dict(r) for r in rows]
+
+    def results(self, study_uid: str | None = None) -> list[dict[str, Any]]:
+        if study_uid is None:
+            rows = self._query(f"SELECT * FROM results ORDER BY {self.RESULT_ORDER}")
+        else:
+            rows = self._query(
+                f"SELECT * FROM results WHERE study_uid = ? ORDER BY {self.RESULT_ORDER}",
+                (study_uid,),
+            )
+        return [_result_row(r, decode=True) for r in rows]
+
+    def result(self, result_uid: str) -> dict[str, Any] | None:
+        rows = self._query("SELECT * FROM results WHERE result_uid = ?", (result_uid,))
+        return _result_row(rows[0], decode=True) if rows else None
+
+    def objects_set_aside(self, limit: int = 100) -> list[dict[str, Any]]:
+        rows = self._query(
+            "SELECT * FROM objects WHERE note != '' ORDER BY received_at DESC LIMIT ?", (limit,)
+        )
+        return [dict(r) for r in rows]
+
+    def deliveries(
+        self, *, states: Sequence[str] = (), result_uid: str | None = None
+    ) -> list[dict[str, Any]]:
+        sql = (
+            "SELECT d.*, r.study_uid FROM deliveries d JOIN results r "
+            "ON r.result_uid = d.result_uid WHERE 1=1"
+        )
+        params: list[Any] = []
+        if states:
+            sql += f" AND d.state IN ({','.join('?' * len(states))})"
+            params += list(states)
+        if result_uid is not None:
+            sql += " AND d.result_uid = ?"
+            params.append(result_uid)
+        return [dict(r) for r in self._query(sql + " ORDER BY d.id", params)]
+
+    def queue_depth(self) -> dict[str, int]:
+        studies = self._query(
+            "SELECT COUNT(*) AS n FROM studies WHERE state IN ('received', 'assembled')"
+        )[0][0]
+        rows = self._query(
+            "SELECT state, COUNT(*) AS n FROM deliveries WHERE state IN ('pending', 'failed') "
+            "GROUP BY state"
+        )
+        by_state = {r[0]: int(r[1]) for r in rows}
+        return {
+            "studies_waiting": int(studies),
+            "deliveries_pending": by_state.get("pending", 0),
+            "deliveries_failed": by_state.get("failed", 0),
+        }
+
+    def pending_work(self) -> int:
+        a = self._query(
+            "SELECT COUNT(*) AS n FROM studies WHERE state IN ('received', 'assembled')"
+        )[0][0]
+        b = self._query("SELECT COUNT(*) AS n FROM deliveries WHERE state = 'pending'")[0][0]
+        return int(a) + int(b)
+
+    def check_writable(self, *, now: float | None = None) -> None:
+        now = time.time() if now is None else now
+        with self._tx() as db:
+            db.execute(
+                "INSERT INTO meta VALUES ('health_checked_at', ?) "
+                "ON CONFLICT (key) DO UPDATE SET value = excluded.value",
+                (str(now),),
+            )
+
+    # -- retention ---------------------------------------------------------------------------
+
+    def purge_finished(self, older_than: float) -> Purged:
+        with self._tx() as db:
+            rows = db.execute(
+                """SELECT s.study_uid FROM studies s
+                   WHERE s.updated_at < ? AND (s.state = 'delivered' OR (s.state = 'failed'
+                     AND NOT EXISTS (SELECT 1 FROM deliveries d JOIN results r
+                         ON r.result_uid = d.result_uid
+                         WHERE r.study_uid = s.study_uid AND d.state IN ('pending', 'failed'))))
+                   AND NOT EXISTS (SELECT 1 FROM objects o WHERE o.study_uid = s.study_uid
+                         AND o.state IN ('received', 'assembled'))""",
+                (older_than,),
+            ).fetchall()
+            studies = tuple(r[0] for r in rows)
+            paths: list[str] = []
+            files = 0
+            for study in studies:
+                paths += [
+                    r[0]
+                    for r in db.execute(
+                        "SELECT path FROM objects WHERE study_uid = ?", (study,)
+                    ).fetchall()
+                ]
+                results = [
+                    (r[0], r[1])
+                    for r in db.execute(
+                        "SELECT result_uid, path FROM results WHERE study_uid = ?", (study,)
+                    ).fetchall()
+                ]
+                paths += [p for _, p in results]
+                for uid, _ in results:
+                    db.execute("DELETE FROM deliveries WHERE result_uid = ?", (uid,))
+                    db.execute(
+                        "DELETE FROM companions WHERE result_uid = ? OR companion_uid = ?",
+                        (uid, uid),
+                    )
+                files += self._purge_study_bytes(db, study)
+                db.execute("DELETE FROM results WHERE study_uid = ?", (study,))
+                self._audit_forget(db, (study,))
+                db.execute("DELETE FROM objects WHERE study_uid = ?", (study,))
+                db.execute("DELETE FROM studies WHERE study_uid = ?", (study,))
+            ignored = db.execute(
+                "SELECT sop_instance_uid, path FROM ignored_objects WHERE received_at < ?",
+                (older_than,),
+            ).fetchall()
+            if ignored:
+                paths += [r[1] for r in ignored]
+                files += self._purge_ignored_bytes(db, [r[0] for r in ignored])
+                db.execute("DELETE FROM ignored_objects WHERE received_at < ?", (older_than,))
+        files += self._after_purge([p for p in paths if p])
+        return Purged(studies=studies, files=files)
+
+
+#: Encapsulated PDF Storage (PS3.4 Annex B.5): the summary delivered with a result SR
+_ENCAPSULATED_PDF = "1.2.840.10008.5.1.4.1.1.104.1"
+
+
+def _kind(sop_class_uid: str | None) -> str:
+    return "summary PDF" if sop_class_uid == _ENCAPSULATED_PDF else "result SR"
+
+
+def _result_row(row: Any, *, decode: bool = False) -> dict[str, Any]:
+    d = dict(row)
+    if decode:
+        d["sources"] = json.loads(d["sources"])
+        d["predecessors"] = json.loads(d["predecessors"])
+    return d
+
+
+class SchemaTooNew(UserError):
+    """The journal was written by a newer version of the program."""
+
+
+def migrate(db: Cursor, migrations: Sequence[Sequence[str]]) -> tuple[int, int]:
+    """Inside a write transaction (the ``meta`` table exists): run the statements of every
+    schema version the journal does not have yet and record the new version.  Returns (version
+    found, version now).  Raises :class:`SchemaTooNew` for a journal of a newer program."""
+    row = db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
+    found = int(row[0]) if row else 0
+    latest = len(migrations)
+    if found > latest:
+        raise SchemaTooNew(
+            f"the journal has schema version {found}; this program knows versions up to "
+            f"{latest} (was it written by a newer version?)"
+        )
+    for statements in migrations[found:]:
+        for statement in statements:
+            db.execute(statement)
+    if found != latest:
+        db.execute(
+            "INSERT INTO meta VALUES ('schema_version', ?) "
+            "ON CONFLICT (key) DO UPDATE SET value = excluded.value",
+            (str(latest),),
+        )
+    return found, latest

@@ -1,0 +1,265 @@
+"""``grade``, ``inspect`` and ``codes`` on what hospital export folders really hold: the same
+file name in every study folder, a study split over several SRs, named pipes and media
+directories; options checked before any file is read; ``--compare`` in the table."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pydicom
+import pytest
+from netutil import (
+    DCMTK_REASON,
+    SKIP_WITHOUT_DCMTK,
+    echo_sr,
+    run_storescu,
+    wait_for,
+)
+
+from service.model import Measure
+
+CLI = [sys.executable, "-m", "service.cli"]
+
+#: the two halves of one study, as a scanner and a workstation might export them
+FIRST_HALF = {"mitral_e": 80.0, "mitral_a": 60.0, "e_prime_septal": 6.0}
+SECOND_HALF = {"e_prime_lateral": 8.0, "tr_peak_velocity": 3.0, "lavi": 40.0, "lvef": 60.0}
+
+
+def run_cli(*args: object, timeout: float = 120) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [*CLI, *map(str, args)], capture_output=True, text=True, timeout=timeout, check=False
+    )
+
+
+def json_rows(proc: subprocess.CompletedProcess) -> list[dict]:
+    return [json.loads(line) for line in proc.stdout.splitlines()]
+
+
+def _save(ds: pydicom.Dataset, path: Path) -> Path:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    ds.save_as(path, enforce_file_format=True)
+    return path
+
+
+# -- output names never collide --------------------------------------------------------------
+
+
+def test_same_file_name_in_two_folders_gives_two_results(tmp_path: Path):
+    a = _save(echo_sr("folder-a", patient_id="HV-A-0001"), tmp_path / "a" / "report.dcm")
+    b = _save(
+        echo_sr("folder-b", patient_id="HV-B-0002", values={**FIRST_HALF, **SECOND_HALF}),
+        tmp_path / "b" / "report.dcm",
+    )
+    out = tmp_path / "out"
+    proc = run_cli("grade", tmp_path / "a", tmp_path / "b", "--out", out, "--pdf", "--json")
+    assert proc.returncode == 0, proc.stderr
+    rows = json_rows(proc)
+    assert [r["input"] for r in rows] == [str(a), str(b)]
+    outputs = [Path(r["output"]) for r in rows]
+    summaries = [Path(r["summary"]) for r in rows]
+    assert len(set(outputs)) == 2 and len(set(summaries)) == 2  # nothing overwritten
+    for row, output in zip(rows, outputs, strict=True):
+        written = pydicom.dcmread(output)
+        assert written.SOPInstanceUID == row["result_uid"]
+        assert written.PatientID == pydicom.dcmread(row["input"]).PatientID
+    # the table says where each result went
+    table = run_cli("grade", tmp_path / "a", tmp_path / "b", "--out", tmp_path / "t")
+    assert table.returncode == 0, table.stderr
+    assert "result" in table.stdout.splitlines()[0]
+    for name in ("report.result.dcm", "report.2.result.dcm"):
+        assert str(tmp_path / "t" / name) in table.stdout
+
+
+def test_output_mirrors_the_folders_inside_the_folder_given(tmp_path: Path):
+    export = tmp_path / "export"
+    _save(echo_sr("mirror-1", patient_id="HV-M-0001"), export / "p1" / "report.dcm")
+    _save(echo_sr("mirror-2", patient_id="HV-M-0002"), export / "p2" / "report.dcm")
+    out = tmp_path / "out"
+    rows = json_rows(run_cli("grade", export, "--out", out, "--json"))
+    assert [r["output"] for r in rows] == [
+        str(out / "p1" / "report.result.dcm"),
+        str(out / "p2" / "report.result.dcm"),
+    ]
+
+
+# -- one study, one result: offline as on the node --------------------------------------------
+
+
+def test_study_split_over_two_srs_is_graded_once_with_the_nodes_merge(tmp_path: Path):
+    from service.pipeline import GradeOptions, grade_study
+
+    first = echo_sr("split", instance=1, content_time="101500", values=FIRST_HALF)
+    second = echo_sr("split", instance=2, content_time="103000", values=SECOND_HALF)
+    assert first.StudyInstanceUID == second.StudyInstanceUID
+    p1 = _save(first, tmp_path / "in" / "part1.dcm")
+    p2 = _save(second, tmp_path / "in" / "part2.dcm")
+    proc = run_cli("grade", tmp_path / "in", "--json", "--out", tmp_path / "out")
+    assert proc.returncode == 0, proc.stderr
+    [row] = json_rows(proc)
+    assert row["input"] == str(p1) and row["inputs"] == [str(p1), str(p2)]
+    assert row["grade"] not in (None, "not-gradable")  # the merge made it gradable
+    # the node grades a study with service.pipeline.grade_study on all of its objects
+    merged = grade_study([first, second], GradeOptions())
+    assert row["result_uid"] == merged.result_uid
+    result = pydicom.dcmread(row["output"])
+    evidence = {
+        str(i.ReferencedSOPInstanceUID)
+        for s in result.CurrentRequestedProcedureEvidenceSequence
+        for r in s.ReferencedSeriesSequence
+        for i in r.ReferencedSOPSequence
+    }
+    assert evidence == {first.SOPInstanceUID, second.SOPInstanceUID}
+    # --per-file keeps grading each file alone
+    alone = json_rows(run_cli("grade", tmp_path / "in", "--json", "--per-file"))
+    assert [r["input"] for r in alone] == [str(p1), str(p2)]
+    assert all(r["inputs"] == [r["input"]] for r in alone)
+    assert row["result_uid"] not in {r["result_uid"] for r in alone}
+
+
+# -- options are checked before any file is read ---------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("option", "value", "allowed"),
+    [
+        ("--lvef-reduced-below", "200", "less than 100"),
+        ("--lvef-reduced-below", "-5", "greater than 0"),
+        ("--uid-root", "1.2.abc", "dotted digits"),
+    ],
+)
+def test_bad_grading_option_is_one_usage_error_before_any_file(
+    tmp_path: Path, option: str, value: str, allowed: str
+):
+    from service.config import config_from_dict
+    from service.errors import UserError
+
+    source = _save(echo_sr("options"), tmp_path / "in" / "x.dcm")
+    out = tmp_path / "out"
+    proc = run_cli("grade", source, "--out", out, f"{option}={value}")
+    assert proc.returncode == 2
+    assert proc.stdout == ""
+    [line] = proc.stderr.splitlines()
+    assert option in line and value in line and allowed in line
+    assert not out.exists()  # nothing written
+    # the configuration file refuses the same value (one validation)
+    key = option.removeprefix("--").replace("-", "_")
+    typed = float(value) if key == "lvef_reduced_below" else value
+    with pytest.raises(UserError, match=f"grading.{key}"):
+        config_from_dict({"grading": {key: typed}})
+
+
+def test_codes_with_an_unknown_measure_says_so_and_lists_the_known_ones():
+    proc = run_cli("codes", "--measure", "foo")
+    assert proc.returncode == 2
+    assert "foo" in proc.stderr and "unknown measure" in proc.stderr
+    assert all(m.value in proc.stderr for m in Measure)
+    assert run_cli("codes", "--measure", "mitral_e").returncode == 0
+
+
+def test_inspect_a_folder_inspects_each_file(tmp_path: Path):
+    _save(echo_sr("inspect-1"), tmp_path / "in" / "a.dcm")
+    _save(echo_sr("inspect-2"), tmp_path / "in" / "sub" / "b.dcm")
+    proc = run_cli("inspect", tmp_path / "in", "--json")
+    assert proc.returncode == 0, proc.stderr
+    rows = json_rows(proc)
+    assert [Path(r["input"]).name for r in rows] == ["a.dcm", "b.dcm"]
+    assert all("mitral_e" in r["recognised"] for r in rows)
+
+
+# -- what export folders hold ----------------------------------------------------------------
+
+
+@pytest.mark.skipif(not hasattr(os, "mkfifo"), reason="named pipes need POSIX")
+def test_named_pipe_is_skipped_with_a_line_and_does_not_block(tmp_path: Path):
+    folder = tmp_path / "in"
+    source = _save(echo_sr("fifo"), folder / "a.dcm")
+    os.mkfifo(folder / "b.pipe")  # nobody ever writes to it: reading it would block
+    # bounded: a hang fails the test through the timeout instead of stalling the suite
+    proc = run_cli("grade", folder, "--json", timeout=60)
+    assert proc.returncode == 0, proc.stderr
+    rows = json_rows(proc)
+    assert [(Path(r["input"]).name, r["status"]) for r in rows] == [
+        ("a.dcm", "graded"),
+        ("b.pipe", "skipped"),
+    ]
+    assert "named pipe" in rows[1]["reason"] and "not a regular file" in rows[1]["reason"]
+    assert rows[0]["inputs"] == [str(source)]
+    inspected = run_cli("inspect", folder, timeout=60)
+    assert inspected.returncode == 0 and "named pipe" in inspected.stdout
+
+
+def _media_folder(tmp_path: Path) -> Path:
+    """A DICOM File-set (PS3.10 section 8) written by pydicom's FileSet: DICOMDIR plus the
+    referenced files in its own folder layout."""
+    from pydicom.fileset import FileSet
+
+    fs = FileSet()
+    for seed in ("media-1", "media-2"):
+        fs.add(echo_sr(seed, patient_id=f"HV-{seed}"))
+    media = tmp_path / "media"
+    fs.write(media)
+    return media
+
+
+def test_dicomdir_is_skipped_and_the_files_it_references_are_graded(tmp_path: Path):
+    media = _media_folder(tmp_path)
+    dicomdir = media / "DICOMDIR"
+    # PS3.10 8.6 / PS3.4 Annex F: Media Storage Directory Storage
+    assert pydicom.dcmread(dicomdir).file_meta.MediaStorageSOPClassUID == "1.2.840.10008.1.3.10"
+    for target in (media, dicomdir):  # the folder, or the DICOMDIR alone
+        proc = run_cli("grade", target, "--json")
+        assert proc.returncode == 0, proc.stderr
+        rows = json_rows(proc)
+        statuses = sorted((Path(r["input"]).name == "DICOMDIR", r["status"]) for r in rows)
+        assert statuses == [(False, "graded"), (False, "graded"), (True, "skipped")], rows
+        [directory] = [r for r in rows if Path(r["input"]).name == "DICOMDIR"]
+        assert "media directory" in directory["reason"]
+
+
+# -- --compare shows its answer in the table -------------------------------------------------
+
+
+def test_compare_table_has_a_column_and_a_plain_words_line_per_disagreement(tmp_path: Path):
+    demo = tmp_path / "demo"
+    assert run_cli("demo-data", demo).returncode == 0
+    # the demo's indeterminate case: ASE/EACVI 2016 indeterminate, ASE 2025 normal
+    # (service/demo/scenario.py; published cut-offs in service/grading/thresholds_*.py)
+    proc = run_cli("grade", demo / "indeterminate.dcm", demo / "normal.dcm", "--compare")
+    assert proc.returncode == 0, proc.stderr
+    lines = proc.stdout.splitlines()
+    assert "other guidelines" in lines[0]
+    row = next(x for x in lines if "indeterminate.dcm" in x)
+    assert "ase-2025: normal" in row
+    assert any(x.startswith("Guidelines differ for") and "indeterminate.dcm" in x for x in lines)
+    assert not any(x.startswith("Guidelines differ for") and "normal.dcm" in x for x in lines)
+    plain = run_cli("grade", demo / "indeterminate.dcm")
+    assert "other guidelines" not in plain.stdout and "Guidelines differ" not in plain.stdout
+
+
+@pytest.mark.network
+@pytest.mark.skipif(SKIP_WITHOUT_DCMTK, reason=DCMTK_REASON)
+def test_split_study_gives_the_same_result_offline_and_on_the_node(tmp_path: Path, loopback_nodes):
+    first = echo_sr("split-node", instance=1, content_time="101500", values=FIRST_HALF)
+    second = echo_sr("split-node", instance=2, content_time="103000", values=SECOND_HALF)
+    files = [_save(first, tmp_path / "in" / "a.dcm"), _save(second, tmp_path / "in" / "b.dcm")]
+    [row] = json_rows(run_cli("grade", tmp_path / "in", "--json"))
+    node = loopback_nodes.start({"http": {"port": 0}}, settle=2.0)
+    # DCMTK storescu, -R: propose the files' own SOP classes
+    assert run_storescu(files, node.port).returncode == 0
+    study = str(first.StudyInstanceUID)
+
+    def merged_and_done():
+        row = node.journal.study(study)
+        if row is None or row["state"] not in ("delivered", "failed") or not row["result_uid"]:
+            return None
+        result = node.journal.result(row["result_uid"])
+        return row if result and len(result["sources"]) == 2 else None
+
+    done = wait_for(merged_and_done, 60)
+    # one study, one result: the same instance offline and on the node
+    assert done["state"] == "delivered"
+    assert done["result_uid"] == row["result_uid"]

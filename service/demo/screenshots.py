@@ -4,10 +4,10 @@
 What it does, all on loopback and in a temporary folder: records an invented six-month history
 of the fictional Harbour Vale Cardiac Centre's three scanners (:mod:`service.demo.history`),
 starts a node with its status page on that journal and a loopback PACS, sends the demo SRs as
-the scanners would, stops the PACS and sends one more study, whose delivery then fails, and
-sends a last one that waits for its settle window; then opens ``/`` and ``/audit`` in headless
-Chromium and saves a screenshot of each.  Needs Playwright (the test extra) and Chromium
-(``/usr/bin/chromium``, or ``CHROMIUM`` in the environment).
+two of the scanners would, stops the PACS and sends one more study, whose delivery then fails,
+and sends a last one that waits in its settle window (the queue); then opens ``/`` and
+``/audit`` in headless Chromium and saves a screenshot of each.  Needs Playwright (the test
+extra) and Chromium (``/usr/bin/chromium``, or ``CHROMIUM`` in the environment).
 """
 
 from __future__ import annotations
@@ -131,7 +131,12 @@ def make_screenshots(out_dir: Path, *, history: int = 400) -> list[Path]:
                 90,
                 "the delivery to the stopped PACS to fail",
             )
+            # the last study waits in its settle window while the pictures are taken
+            data = node.config.model_dump(mode="json")
+            data["assembly"]["settle_seconds"] = 3600
+            node.reload(node.config.model_validate({**data, "base_dir": node.config.base_dir}))
             send_datasets([late[1].dataset], port, called_ae=cfg.node.ae_title, calling_ae=ae)
+            _wait(lambda: journal.queue_depth()["studies_waiting"] == 1, 30, "the queue")
             base = f"http://{LOOPBACK}:{node.http_port}"
             shots = [
                 (f"{base}/", out_dir / "status-page.png", None),

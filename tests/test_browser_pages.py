@@ -218,3 +218,63 @@ def test_pages_need_no_javascript_and_fit_a_small_screen(loopback_nodes, tmp_pat
             assert_clean(log)
     finally:
         pacs.stop()
+
+
+def test_after_the_demo_the_audit_shows_every_figure_for_the_demo_studies(tmp_path):
+    """``diastolic-sr demo`` (the node with its grading processes), then ``audit --html`` and
+    ``--json`` on its data directory: the outcomes are those the offline pipeline gives the
+    same demo studies, and the page shows every figure, in Chromium."""
+    from service.demo.scenario import SITE_MAPPING
+    from service.pipeline import GradeOptions
+    from service.vocabulary.mapper import load_mapping_table
+
+    work = tmp_path / "demo"
+    demo = subprocess.run(
+        [sys.executable, "-m", "service.cli", "demo", "--workdir", str(work)],
+        capture_output=True, text=True, timeout=300,
+    )  # fmt: skip
+    assert demo.returncode == 0, demo.stdout + demo.stderr
+    page_file = tmp_path / "audit.html"
+    run = subprocess.run(
+        [sys.executable, "-m", "service.cli", "audit", "--data-dir", str(work / "node"),
+         "--html", str(page_file), "--json"],
+        capture_output=True, text=True, timeout=120,
+    )  # fmt: skip
+    assert run.returncode == 0, run.stderr
+    data = json.loads(run.stdout)
+    table = load_mapping_table([SITE_MAPPING])
+    expected: dict[str, int] = {}
+    for case in CASES:
+        outcome = grade_study(case_datasets(case), GradeOptions(), table=table)
+        token = outcome.assessment.outcome.value
+        expected[token] = expected.get(token, 0) + 1
+    assert data["studies"] == len(CASES)
+    assert {k: v for k, v in data["outcomes"].items() if v} == expected
+    assert data["borderline"]["studies"]["count"] >= 1  # the demo's borderline case
+    assert data["undecided"] == expected.get("indeterminate", 0) + expected.get("not-gradable", 0)
+    assert data["processing"]["delivered"] == len(CASES)
+    assert data["processing"]["latency_p50_seconds"] > 0
+    with chromium() as (page, log):
+        page.goto(page_file.as_uri(), wait_until="load")
+        assert page.locator('[data-figure="studies"]').inner_text() == str(len(CASES))
+        for section in (
+            "outcomes",
+            "by-pathway",
+            "by-month",
+            "indeterminate",
+            "measures",
+            "devices",
+            "missing",
+            "borderline",
+            "disagreement",
+            "processing",
+        ):
+            heading = page.locator(f"section#{section} h2")
+            assert heading.count() == 1 and heading.is_visible()
+            assert page.locator(f"section#{section} svg").count() == 1
+        rows = page.locator('table[data-table="outcomes"] tr[data-outcome]').all()
+        shown = {r.get_attribute("data-outcome"): int(r.locator("td.num").first.inner_text())
+                 for r in rows}  # fmt: skip
+        assert {k: v for k, v in shown.items() if v} == expected
+        screenshot(page, tmp_path / "audit-after-demo.png")
+        assert_clean(log)

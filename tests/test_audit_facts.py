@@ -70,6 +70,10 @@ def test_guideline_comparison_matches_the_result_s_own_comparison(case):
     outcome, compared = _facts(case, GradeOptions(compare=True))
     assert plain.compared == compared.compared == (Guideline.ase_eacvi_2016, Guideline.ase_2025)
     assert plain.disagreement == compared.disagreement == bool(outcome.assessments.disagreements)
+    # what the other guideline concluded, where it differed
+    other = outcome.assessments.others[0]
+    expected = {Guideline.ase_2025: other.outcome} if plain.disagreement else {}
+    assert plain.other_outcomes == compared.other_outcomes == expected
 
 
 def test_special_situation_outcome():

@@ -66,6 +66,7 @@ FACTS = StudyFacts(
     ),
     compared=(Guideline.ase_eacvi_2016, Guideline.ase_2025),
     disagreement=True,
+    other_outcomes={Guideline.ase_2025: Outcome.grade_1},
     missing=(MissingEffect(measure=Measure.tr_peak_velocity, always=False, sometimes=True),),
     device=Device(
         calling_ae="HV_ECHO_2", station_name="HV-ECHO-2", manufacturer="HV", model="HV-Echo 5"
@@ -101,6 +102,7 @@ def test_grading_records_the_facts_and_delivery_their_time(journal):
     assert row.borderline[0]["label"] == "LAVI > 34 mL/m²"
     assert row.missing == ({"measure": "tr_peak_velocity", "always": False, "sometimes": True},)
     assert (row.compared, row.disagreement) == (2, True)
+    assert row.other_outcomes == (("ase-2025", "grade-1"),)
     assert (row.device, row.station_name, row.model) == ("HV_ECHO_2", "HV-ECHO-2", "HV-Echo 5")
     assert (row.last_received_at, row.graded_at, row.delivered_at) == (1000.0, 1005.5, None)
     assert (row.patient_name, row.patient_id) == ("", "")  # identity only on request

@@ -32,6 +32,7 @@ def row(
     disagreement: bool | None = False,
     failure: str = "",
     latency: float | None = 12.0,
+    other_outcomes=(),
 ) -> AuditRow:
     graded = _t(day) + n
     return AuditRow(
@@ -54,6 +55,7 @@ def row(
         compared=compared,
         disagreement=disagreement,
         failure=failure,
+        other_outcomes=tuple(other_outcomes),
     )
 
 
@@ -68,7 +70,14 @@ def rows():
         row(1, "normal", latency=10),
         row(2, "normal", device="HV_ECHO_2", measures=NO_TR, latency=20),
         row(3, "grade-1", pathway="reduced-lvef-or-myocardial-disease", borderline=[E_E]),
-        row(4, "indeterminate", day="2026-12-01", borderline=[E_E, LAVI], disagreement=True),
+        row(
+            4,
+            "indeterminate",
+            day="2026-12-01",
+            borderline=[E_E, LAVI],
+            disagreement=True,
+            other_outcomes=[("ase-2025", "grade-1")],
+        ),
         row(
             5,
             "indeterminate",
@@ -174,6 +183,14 @@ def test_borderline_disagreement_and_processing(rows):
     ]
     assert (r.disagreement.compared, r.disagreement.disagree.count) == (7, 1)
     assert r.disagreement.assessed_without_comparison == 1
+    (pair,) = r.disagreement.pairs
+    assert (pair.guideline, pair.outcome, pair.other_guideline, pair.other_outcome) == (
+        "ase-eacvi-2016",
+        "indeterminate",
+        "ase-2025",
+        "grade-1",
+    )
+    assert pair.studies == 1
     p = r.processing
     assert p.per_day == {"2026-11-02": 3, "2026-12-01": 6}
     assert p.delivered == 7

@@ -83,6 +83,8 @@ class StudyFacts(Frozen):
     compared: tuple[Guideline, ...] = ()
     #: whether grade or filling pressure differ between them (None: not compared)
     disagreement: bool | None = None
+    #: the outcome each other guideline gave, when they disagree
+    other_outcomes: dict[Guideline, Outcome] = Field(default_factory=dict)
     missing: tuple[MissingEffect, ...] = ()
     device: Device = Field(default_factory=Device)
     patient_name: str = ""
@@ -116,7 +118,7 @@ def device_of(datasets: Sequence[Any], calling_ae: str = "") -> Device:
 
 def _compared(
     assessments: Any, measurements: Measurements, context: Context, switches: Any
-) -> tuple[tuple[Guideline, ...], bool | None]:
+) -> tuple[tuple[Guideline, ...], bool | None, dict[Guideline, Outcome]]:
     """The guidelines compared and whether they disagree: the result's own comparison when
     grading made one, else every implemented guideline evaluated here (the audit's figure
     does not depend on ``grading.compare``)."""
@@ -133,9 +135,10 @@ def _compared(
             if g != primary.guideline
         )
     if not others:
-        return (), None
-    differs = any(disagreement(primary, o, measurements) is not None for o in others)
-    return (primary.guideline, *(o.guideline for o in others)), differs
+        return (), None, {}
+    differing = [o for o in others if disagreement(primary, o, measurements) is not None]
+    guidelines = (primary.guideline, *(o.guideline for o in others))
+    return guidelines, bool(differing), {o.guideline: o.outcome for o in differing}
 
 
 def study_facts(
@@ -184,7 +187,9 @@ def study_facts(
                     label=c.label,
                 )
             )
-    compared, differs = _compared(assessments, measurements, context, options.switches)
+    compared, differs, other_outcomes = _compared(
+        assessments, measurements, context, options.switches
+    )
     missing = missing_effects(
         measurements, context, primary.guideline, options.switches, outcome=primary.outcome
     )
@@ -196,6 +201,7 @@ def study_facts(
         borderline=tuple(cuts),
         compared=compared,
         disagreement=differs,
+        other_outcomes=other_outcomes,
         missing=missing,
     )
 

@@ -142,10 +142,21 @@ class Borderline(Model):
     cutoffs: list[Cutoff]
 
 
+class OutcomePair(Model):
+    """Studies where the primary guideline gave one outcome and another guideline another."""
+
+    guideline: str  # the primary guideline
+    outcome: str
+    other_guideline: str
+    other_outcome: str  # the same as outcome when only the filling pressure differed
+    studies: int
+
+
 class Disagreement(Model):
     compared: int  # studies evaluated by more than one guideline
     disagree: Share  # of compared
     assessed_without_comparison: int
+    pairs: list[OutcomePair] = Field(default_factory=list)  # most frequent first
 
 
 class Processing(Model):
@@ -252,6 +263,7 @@ def build_report(
     missing_would: Counter[str] = Counter()
     missing_could: Counter[str] = Counter()
     cutoffs: Counter[tuple[str, str]] = Counter()
+    pairs: Counter[tuple[str, str, str, str]] = Counter()
     per_day: Counter[str] = Counter()
     failures: Counter[str] = Counter()
     latencies: list[float] = []
@@ -300,6 +312,8 @@ def build_report(
             if r.compared > 1:
                 compared += 1
                 disagree += bool(r.disagreement)
+                for other, other_outcome in r.other_outcomes:
+                    pairs[(r.guideline or "", r.outcome, other, other_outcome)] += 1
             if r.outcome in UNDECIDED:
                 undecided += 1
                 for effect in r.missing:
@@ -412,6 +426,10 @@ def build_report(
             compared=compared,
             disagree=share(disagree, compared),
             assessed_without_comparison=studies - compared,
+            pairs=[
+                OutcomePair(guideline=g, outcome=o, other_guideline=og, other_outcome=oo, studies=n)
+                for (g, o, og, oo), n in sorted(pairs.items(), key=lambda kv: (-kv[1], kv[0]))
+            ],
         ),
         processing=Processing(
             days=len(days),

@@ -45,6 +45,7 @@ _COLUMNS = (
     "missing",
     "compared",
     "disagreement",
+    "other_outcomes",
     "failure",
     "facts_version",
 )
@@ -83,6 +84,8 @@ class AuditRow:
     compared: int
     disagreement: bool | None
     failure: str
+    #: {guideline: outcome} of the guidelines that disagreed with the primary
+    other_outcomes: tuple[tuple[str, str], ...] = ()
     patient_name: str = ""
     patient_id: str = ""
 
@@ -120,6 +123,7 @@ def audit_values(
             "[]",
             0,
             None,
+            "{}",
             failure,
             1,
         )
@@ -144,6 +148,7 @@ def audit_values(
         json.dumps(data["missing"]),
         len(facts.compared),
         None if facts.disagreement is None else int(facts.disagreement),
+        json.dumps(data["other_outcomes"], sort_keys=True),
         failure,
         facts.version,
     )
@@ -155,6 +160,12 @@ def _decoded(text: str) -> tuple[Any, ...]:
     measures a device sends, the cut-offs met), so each distinct text is decoded once.  The
     decoded values are shared between rows: read them, never change them."""
     return tuple(json.loads(text))
+
+
+@functools.lru_cache(maxsize=1024)
+def _pairs(text: str) -> tuple[tuple[str, str], ...]:
+    """A JSON object column as sorted (key, value) pairs, decoded once per distinct text."""
+    return tuple(sorted(json.loads(text).items()))
 
 
 def _row(r: Any, identities: bool = False) -> AuditRow:
@@ -180,6 +191,7 @@ def _row(r: Any, identities: bool = False) -> AuditRow:
         compared=int(r["compared"]),
         disagreement=None if r["disagreement"] is None else bool(r["disagreement"]),
         failure=r["failure"],
+        other_outcomes=_pairs(r["other_outcomes"]),
         patient_name=name,
         patient_id=pid,
     )

@@ -113,6 +113,7 @@ MIGRATIONS: list[list[str]] = [
             missing TEXT NOT NULL DEFAULT '[]',     -- JSON: missing measures that would decide
             compared INTEGER NOT NULL DEFAULT 0,    -- number of guidelines compared
             disagreement INTEGER,                   -- 1/0, NULL when not compared
+            other_outcomes TEXT NOT NULL DEFAULT '{}',  -- JSON: {guideline: outcome} differing
             failure TEXT NOT NULL DEFAULT '',       -- why the study failed, while it does
             facts_version INTEGER NOT NULL DEFAULT 1
         )""",

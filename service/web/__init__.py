@@ -35,6 +35,14 @@ def when(ts: float | None) -> str:
     return datetime.fromtimestamp(ts).strftime("%Y-%m-%d %H:%M:%S")
 
 
+def _lower_first(text: str) -> str:
+    """A label inside a sentence: "Septal e′" -> "septal e′"; "LVEF", "TR peak velocity" and
+    "E/A ratio" stay as they are."""
+    if len(text) > 1 and text[0].isupper() and text[1].islower():
+        return text[0].lower() + text[1:]
+    return text
+
+
 @functools.cache
 def environment() -> Environment:
     env = Environment(
@@ -53,6 +61,7 @@ def environment() -> Environment:
         pathway=pathway_label,
         pathway_short=lambda t: pathway_label(t, short=True),
         measure=measure_label,
+        measure_lower=lambda t: _lower_first(measure_label(t)),
         guideline=guideline_label,
     )
     return env

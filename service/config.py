@@ -219,6 +219,13 @@ class DestinationConfig(Section):
     tls: bool = False
     #: also send the one-page summary (Encapsulated PDF) right after each result SR
     summary_pdf: bool = False
+    #: user identity negotiation (PS3.7 D.3.3.7) on associations to this peer: a username,
+    #: with a passcode when ``password`` is set; "" sends none
+    username: str = ""
+    #: the passcode sent with ``username`` (masked by check-config, never logged)
+    password: str = Field(default="", repr=False)
+    #: ask the peer to confirm the identity (positive response requested)
+    user_identity_response: bool = False
 
     @field_validator("ae_title")
     @classmethod
@@ -382,6 +389,10 @@ class Config(Section):
         for section, key in SECRET_KEYS:
             if data.get(section, {}).get(key):
                 data[section][key] = MASK
+        for dest in data.get("destinations", {}).values():
+            for key in DESTINATION_SECRET_KEYS:
+                if dest.get(key):
+                    dest[key] = MASK
         return data
 
 
@@ -390,6 +401,8 @@ SECRET_KEYS: tuple[tuple[str, str], ...] = (
     ("tls", "private_key_password"),
     ("http", "password"),
 )
+#: keys of every destination that are secrets
+DESTINATION_SECRET_KEYS: tuple[str, ...] = ("password",)
 
 #: sections and keys that only take effect on a restart (a reload keeps the running values)
 RESTART_ONLY: tuple[str, ...] = (
@@ -522,6 +535,9 @@ def _cross_check(cfg: Config) -> Iterable[str]:
             "http.username and http.password: give both (basic authentication) or neither; got "
             + ("a user name only" if cfg.http.username else "a password only")
         )
+    for name, dest in cfg.destinations.items():
+        if dest.password and not dest.username:
+            yield f"destinations.{name}.password: set destinations.{name}.username too"
     if cfg.delivery.backoff_max_seconds < cfg.delivery.backoff_initial_seconds:
         yield (
             f"delivery.backoff_max_seconds: {cfg.delivery.backoff_max_seconds} is below "

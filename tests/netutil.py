@@ -462,3 +462,167 @@ def send(
         if assoc.is_established:
             assoc.release()
     return out
+
+
+# ---------------------------------------------------------------------------------------------
+# Peers that misbehave on the wire
+# ---------------------------------------------------------------------------------------------
+
+
+class TricklingPeer:
+    """A raw TCP server on loopback that answers an association request with the header of an
+    A-ASSOCIATE-AC PDU announcing ``length`` bytes (PS3.8 9.3.3), then trickles them one byte
+    every ``interval`` seconds: a peer that never stalls outright and never finishes."""
+
+    def __init__(self, *, length: int = 4096, interval: float = 0.2) -> None:
+        import threading
+
+        self.length = length
+        self.interval = interval
+        self._stop = threading.Event()
+        self._server = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+        self._server.bind((LOOPBACK, 0))
+        self._server.listen(8)
+        self._server.settimeout(0.2)
+        self.port = int(self._server.getsockname()[1])
+        self.connections = 0
+        self._threads: list[Any] = []
+        self._thread = threading.Thread(target=self._accept, daemon=True)
+
+    def __enter__(self) -> TricklingPeer:
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self._stop.set()
+        self._thread.join(5)
+        for t in self._threads:
+            t.join(5)
+        self._server.close()
+
+    def _accept(self) -> None:
+        import threading
+
+        while not self._stop.is_set():
+            try:
+                conn, _ = self._server.accept()
+            except OSError:
+                continue
+            self.connections += 1
+            t = threading.Thread(target=self._trickle, args=(conn,), daemon=True)
+            t.start()
+            self._threads.append(t)
+
+    def _trickle(self, conn: socket.socket) -> None:
+        import struct
+
+        with conn:
+            try:
+                conn.settimeout(5)
+                conn.recv(65536)  # the A-ASSOCIATE-RQ
+                conn.sendall(struct.pack(">BBL", 0x02, 0x00, self.length))
+                for _ in range(self.length):
+                    if self._stop.wait(self.interval):
+                        return
+                    conn.sendall(b"\x00")
+            except OSError:
+                return
+
+
+class TricklingProxy:
+    """A TCP relay on loopback in front of a DICOM peer: what the requestor sends passes at
+    once; of what the peer answers, the first ``fast_pdus`` PDUs pass at once (the
+    A-ASSOCIATE-AC) and everything after them one byte every ``interval`` seconds."""
+
+    def __init__(self, target_port: int, *, fast_pdus: int = 1, interval: float = 0.2) -> None:
+        import threading
+
+        self.target_port = target_port
+        self.fast_pdus = fast_pdus
+        self.interval = interval
+        self._stop = threading.Event()
+        self._server = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+        self._server.bind((LOOPBACK, 0))
+        self._server.listen(8)
+        self._server.settimeout(0.2)
+        self.port = int(self._server.getsockname()[1])
+        self._threads: list[Any] = []
+        self._thread = threading.Thread(target=self._accept, daemon=True)
+
+    def __enter__(self) -> TricklingProxy:
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self._stop.set()
+        self._thread.join(5)
+        for t in self._threads:
+            t.join(5)
+        self._server.close()
+
+    def _accept(self) -> None:
+        import threading
+
+        while not self._stop.is_set():
+            try:
+                client, _ = self._server.accept()
+            except OSError:
+                continue
+            try:
+                upstream = socket.create_connection((LOOPBACK, self.target_port), timeout=5)
+            except OSError:
+                client.close()
+                continue
+            for target in (self._forward, self._backward):
+                t = threading.Thread(target=target, args=(client, upstream), daemon=True)
+                t.start()
+                self._threads.append(t)
+
+    def _forward(self, client: socket.socket, upstream: socket.socket) -> None:
+        with contextlib.suppress(OSError):
+            client.settimeout(0.2)
+            while not self._stop.is_set():
+                try:
+                    data = client.recv(65536)
+                except TimeoutError:
+                    continue
+                if not data:
+                    break
+                upstream.sendall(data)
+        with contextlib.suppress(OSError):
+            upstream.shutdown(socket.SHUT_WR)
+
+    def _backward(self, client: socket.socket, upstream: socket.socket) -> None:
+        import struct
+
+        buf = b""
+        fast = self.fast_pdus
+        try:
+            upstream.settimeout(0.2)
+            while not self._stop.is_set():
+                while fast and len(buf) >= 6:
+                    (length,) = struct.unpack(">L", buf[2:6])
+                    if len(buf) < 6 + length:
+                        break
+                    client.sendall(buf[: 6 + length])
+                    buf = buf[6 + length :]
+                    fast -= 1
+                if not fast and buf:
+                    client.sendall(buf[:1])
+                    buf = buf[1:]
+                    if self._stop.wait(self.interval):
+                        break
+                    continue
+                try:
+                    data = upstream.recv(65536)
+                except TimeoutError:
+                    continue
+                if not data:
+                    break
+                buf += data
+        except OSError:
+            pass
+        finally:
+            for s in (client, upstream):
+                with contextlib.suppress(OSError):
+                    s.close()

@@ -72,7 +72,7 @@ def test_receivers_latency_and_memory_sections(tmp_path):
     assert lat["delivered"] == 4 and lat["p50_ms"] <= lat["p95_ms"] <= lat["p99_ms"]
     sender = figures["sender"]
     assert sender["n"] >= 1
-    for key in ("store_association", "pynetdicom"):
+    for key in ("store_scu", "pynetdicom_file"):
         assert sender[key]["objects_per_s"] > 0 and sender[key]["cpu_ms_per_object"] > 0
     mem = figures["memory"]["marks"]
     assert set(mem) == {"3", "6"} and all(v["rss_kib"] > 0 for v in mem.values())

@@ -191,6 +191,26 @@ def test_check_config_masks_secrets(tmp_path, capsys):
     assert "s3cret-Harbour" not in effective_toml(load_config(f))
 
 
+def test_check_config_masks_a_destinations_password(tmp_path, capsys):
+    f = tmp_path / "node.toml"
+    f.write_text(
+        '[destinations.PACS_MAIN]\nae_title = "PACS"\nhost = "127.0.0.1"\nport = 104\n'
+        'username = "hv-node"\npassword = "s3cret-Harbour"\n'
+    )
+    assert cli_main(["check-config", str(f)]) == 0
+    out = capsys.readouterr().out
+    assert "s3cret-Harbour" not in out and f'password = "{MASK}"' in out
+    assert 'username = "hv-node"' in out
+    f.write_text(
+        '[destinations.PACS_MAIN]\nae_title = "PACS"\nhost = "127.0.0.1"\nport = 104\n'
+        'password = "s3cret-Harbour"\n'
+    )
+    assert cli_main(["check-config", str(f)]) == 2
+    err = capsys.readouterr().err
+    assert "destinations.PACS_MAIN.password: set destinations.PACS_MAIN.username too" in err
+    assert "s3cret-Harbour" not in err
+
+
 def test_check_config_fails_with_the_key_path(tmp_path, capsys):
     f = tmp_path / "bad.toml"
     f.write_text(

@@ -86,7 +86,7 @@ def test_implementation_identifiers_are_the_codes(text):
     # PS3.7 D.3.3.2: what the node announces in its association requests and answers
     from pynetdicom import PYNETDICOM_IMPLEMENTATION_UID, PYNETDICOM_IMPLEMENTATION_VERSION
 
-    from service.network.store_association import (
+    from service.network.store_scu import (
         IMPLEMENTATION_CLASS_UID,
         IMPLEMENTATION_VERSION_NAME,
     )

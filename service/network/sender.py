@@ -1,58 +1,44 @@
-"""Delivery of result SRs (and their summary PDFs): C-STORE (SCU) to the configured
-destinations, over TLS where a destination asks for it, and the results folder.
+"""Delivery of result SRs (and their summary PDFs): C-STORE (SCU, through pynetdicom) to the
+configured destinations, over TLS where a destination asks for it, and the results folder.
 
-One thread takes due deliveries from the journal's outbox, groups them by destination, opens
-one association per destination and sends each result, as it is encoded in the spool; results
-that fall due while the association is open follow on it (bounded).  A failed attempt
-(destination down, association rejected, failure status) backs off exponentially
-(``backoff_initial_seconds * 2**(attempts-1)``, at most ``backoff_max_seconds``); past
-``max_attempts`` the delivery is marked failed with its reason, never dropped.  Everything is in
-the journal, so the outbox survives restarts.
+Each destination has a worker thread of its own, and every step of an association has a total
+deadline (:mod:`service.network.store_scu`), so a destination that is down, slow or trickling
+delays nobody else: its own deliveries wait and back off, the others go on.  A worker takes its
+destination's due deliveries from the journal's outbox, opens one association and sends each
+result as it is stored; results that fall due while the association is open follow on it
+(bounded).  A failed attempt (destination down, association rejected, failure status, no
+answer in time) backs off exponentially (``backoff_initial_seconds * 2**(attempts-1)``, at most
+``backoff_max_seconds``); past ``max_attempts`` the delivery is marked failed with its reason,
+never dropped.  A warning status (PS3.7 Annex C: 0001, 0107, 0116, Bxxx) means the peer stored
+the object: the delivery is done and the warning logged.  Everything is in the journal, so the
+outbox survives restarts.
 """
 
 from __future__ import annotations
 
-import io
 import logging
 import threading
 import time
-from collections import defaultdict
 from dataclasses import dataclass
 from pathlib import Path
 
-import pydicom
-from pydicom.filebase import DicomBytesIO
-from pydicom.filewriter import write_dataset
-from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
-
 from service.config import Config, DestinationConfig
-from service.network.store_association import (
+from service.network.store_scu import (
     AssociationFailed,
-    CannotConnect,
-    Proposal,
-    StoreAssociation,
-    StoreResponse,
+    StoreSession,
     Timeouts,
+    UserIdentity,
 )
 from service.observability.logs import event
 from service.observability.metrics import Metrics
-from service.sr.read import file_body_start, file_meta_uids
+from service.sr.read import file_meta_uids
 from service.store.journal import FOLDER_DESTINATION, DueDelivery, Journal
 from service.store.spool import durable_write, safe_name
 
 log = logging.getLogger("diastolic_sr.sender")
 
-#: C-STORE response statuses that mean the peer has the object (PS3.4 Annex B.2.3: success
-#: and the warnings "coercion of data elements", "elements discarded", "data set does not
-#: match SOP class")
-_STORED = {0x0000, 0xB000, 0xB006, 0xB007}
-
 #: Encapsulated PDF Storage (PS3.4 Annex B.5): the summary
 ENCAPSULATED_PDF = "1.2.840.10008.5.1.4.1.1.104.1"
-
-#: transfer syntaxes proposed for every SOP class: the node writes explicit VR little endian;
-#: implicit VR little endian is the default every peer supports (PS3.5 section 10.1)
-_PROPOSED_SYNTAXES = (ExplicitVRLittleEndian, ImplicitVRLittleEndian)
 
 #: objects sent over one association at most (results that fall due while it is open follow
 #: on it up to this number; then it is released and the next round opens a new one)
@@ -60,6 +46,10 @@ MAX_PER_ASSOCIATION = 200
 
 
 class Sender:
+    """The delivery workers of a node: one per destination (and one for the results folder),
+    started as deliveries for it appear; a dispatcher fails deliveries to destinations that
+    are no longer configured."""
+
     def __init__(
         self,
         config: Config,
@@ -74,6 +64,8 @@ class Sender:
         self._poll = poll_seconds
         self._wake = threading.Event()
         self._stop = threading.Event()
+        self._workers: dict[str, _Worker] = {}
+        self._lock = threading.Lock()
         self._thread = threading.Thread(target=self._run, name="sender", daemon=True)
 
     def start(self) -> None:
@@ -81,44 +73,57 @@ class Sender:
 
     def wake(self) -> None:
         self._wake.set()
+        with self._lock:
+            workers = list(self._workers.values())
+        for w in workers:
+            w.wake.set()
 
     def stop(self, timeout: float = 30.0) -> None:
-        """Stop after the association in progress (pending deliveries stay in the outbox)."""
+        """Stop after the C-STORE in progress (pending deliveries stay in the outbox); an
+        association still open is released, or cut when its peer does not answer."""
         self._stop.set()
-        self._wake.set()
-        self._thread.join(timeout)
+        self.wake()
+        deadline = time.monotonic() + timeout
+        self._thread.join(max(0.0, deadline - time.monotonic()))
+        with self._lock:
+            workers = list(self._workers.values())
+        for w in workers:
+            w.join(max(0.0, deadline - time.monotonic()))
+        for w in workers:
+            if w.is_alive():
+                w.cut()
+                w.join(5)
+
+    @property
+    def stopping(self) -> bool:
+        return self._stop.is_set()
 
     def _run(self) -> None:
         while not self._stop.is_set():
             self._wake.clear()
-            wait = self._poll
             try:
-                self.deliver_due()
-                nxt = self.journal.next_delivery_at()
-                if nxt is not None:
-                    wait = max(0.05, min(wait, nxt - time.time()))
+                self._dispatch()
             except Exception:
                 log.exception("delivery loop error; retrying")
-            self._wake.wait(wait)
+            self._wake.wait(self._poll)
 
-    def deliver_due(self) -> int:
-        """Send every delivery that is due now; returns how many were attempted."""
-        due = self.journal.due_deliveries()
-        by_dest: dict[str, list[DueDelivery]] = defaultdict(list)
-        for d in due:
-            by_dest[d.destination].append(d)
-        for name, items in by_dest.items():
-            if self._stop.is_set():
-                break
-            if name == FOLDER_DESTINATION:
-                self._to_folder(items)
-            elif name in self.config.destinations:
-                self._to_peer(self.config.destinations[name], items)
-            else:
-                for d in items:
+    def _dispatch(self) -> None:
+        """A worker for every destination with due deliveries; deliveries to a destination
+        that is no longer configured fail with that reason."""
+        for name in self.journal.due_destinations():
+            if name != FOLDER_DESTINATION and name not in self.config.destinations:
+                for d in self.journal.due_deliveries(destination=name):
                     self.journal.mark_failed(d.id, f'destination "{name}" is no longer configured')
                     log.error("result %s: destination %s not configured", d.result_uid, name)
-        return len(due)
+                continue
+            with self._lock:
+                worker = self._workers.get(name)
+                if worker is None or not worker.is_alive():
+                    worker = self._workers[name] = _Worker(self, name)
+                    worker.start()
+            worker.wake.set()
+
+    # -- recording outcomes (any worker) ----------------------------------------------------
 
     def _failed(self, d: DueDelivery, error: str, kind: str = "result") -> None:
         cfg = self.config.delivery
@@ -144,16 +149,20 @@ class Sender:
             reason=error,
         )
 
-    def _delivered(self, d: DueDelivery, where: str, kind: str) -> None:
+    def _delivered(self, d: DueDelivery, where: str, kind: str, warning: str = "") -> None:
         self.journal.mark_delivered(d.id)
         self.metrics.deliveries.labels(outcome="delivered", kind=kind).inc()
+        fields = {"warning": warning} if warning else {}
         event(
             "result_delivered",
-            f"{kind} {d.result_uid} delivered to {where}",
+            f"{kind} {d.result_uid} delivered to {where}"
+            + (f", stored with a warning: {warning}" if warning else ""),
+            level=logging.WARNING if warning else logging.INFO,
             result_uid=d.result_uid,
             study_uid=d.study_uid,
             destination=d.destination,
             kind=kind,
+            **fields,
         )
 
     def _waits_for_parent(self, d: DueDelivery, kind: str) -> bool:
@@ -163,96 +172,8 @@ class Sender:
         self._failed(d, f"its result SR {d.parent_uid} is not delivered there yet", kind)
         return True
 
-    def _to_folder(self, items: list[DueDelivery]) -> None:
-        folder = self.config.results_dir
-        for d in items:
-            if self._waits_for_parent(d, "file"):
-                continue
-            try:
-                if folder is None:
-                    raise OSError("no results folder configured")
-                data = self.journal.result_data(d.result_uid)
-                durable_write(Path(folder) / f"{safe_name(d.result_uid)}.dcm", data)
-            except OSError as exc:
-                self._failed(d, f"cannot write to results folder: {exc}")
-                continue
-            self._delivered(d, "the results folder", "file")
-
-    def _to_peer(self, dest: DestinationConfig, items: list[DueDelivery]) -> None:
-        """Send ``items`` over one association; results that fall due meanwhile for the same
-        destination follow on it (at most ``MAX_PER_ASSOCIATION`` objects), then it is
-        released."""
-        batch = self._readable(items)
-        if not batch:
-            return
-        limits = self.config.limits
-        where = f"{dest.ae_title}@{dest.host}:{dest.port}" + (" (TLS)" if dest.tls else "")
-        proposals = [
-            Proposal(sop_class, _PROPOSED_SYNTAXES)
-            for sop_class in sorted({o.sop_class for o in batch})
-        ]
-        try:
-            tls = None
-            if dest.tls:
-                from service.network.tls import client_context
-
-                tls = client_context(self.config)
-            assoc = StoreAssociation.open(
-                dest.host,
-                dest.port,
-                calling_ae=self.config.node.ae_title,
-                called_ae=dest.ae_title,
-                proposals=proposals,
-                max_pdu=limits.max_pdu,
-                timeouts=Timeouts(
-                    connect=limits.acse_timeout,
-                    acse=limits.acse_timeout,
-                    dimse=limits.dimse_timeout,
-                    network=limits.network_timeout,
-                ),
-                tls=tls,
-            )
-        except AssociationFailed as exc:
-            if isinstance(exc, CannotConnect):
-                why = f"cannot connect to {where}: {exc}"
-            elif exc.rejected:
-                why = f"association rejected by {where}: {exc}"
-            else:
-                why = f"cannot associate with {where}: {exc}"
-            for o in batch:
-                self._failed(o.due, why, o.kind)
-            return
-        except Exception as exc:  # TLS set-up and the like
-            for o in batch:
-                self._failed(o.due, f"cannot associate with {where}: {exc}", o.kind)
-            return
-        accepted = {cx.abstract_syntax for cx in assoc.accepted_contexts}
-        seen = {o.due.id for o in batch}
-        budget = MAX_PER_ASSOCIATION
-        try:
-            while batch and budget > 0:
-                for o in batch:
-                    if self._stop.is_set() or not assoc.is_established:
-                        return
-                    budget -= 1
-                    self._send(assoc, o, where)
-                if self._stop.is_set() or not assoc.is_established:
-                    return
-                # results graded while these went out: on the same association
-                more = [
-                    d
-                    for d in self.journal.due_deliveries()
-                    if d.destination == items[0].destination
-                    and d.id not in seen
-                    and d.sop_class_uid in accepted
-                ][:budget]
-                seen.update(d.id for d in more)
-                batch = self._readable(more)
-        finally:
-            assoc.release()
-
     def _readable(self, items: list[DueDelivery]) -> list[_Outgoing]:
-        """The spooled objects of ``items`` with their file meta; an unreadable one fails."""
+        """The stored objects of ``items`` with their file meta; an unreadable one fails."""
         out = []
         for d in items:
             try:
@@ -268,67 +189,176 @@ class Sender:
                 continue
             sop_class = meta["MediaStorageSOPClassUID"]
             kind = "summary" if sop_class == ENCAPSULATED_PDF else "result"
-            out.append(
-                _Outgoing(
-                    d,
-                    sop_class,
-                    meta["MediaStorageSOPInstanceUID"],
-                    meta["TransferSyntaxUID"],
-                    kind,
-                    data,
-                )
-            )
+            out.append(_Outgoing(d, sop_class, kind, data))
         return out
 
-    def _send(self, assoc: StoreAssociation, o: _Outgoing, where: str) -> None:
+
+class _Worker(threading.Thread):
+    """Delivers the results due to one destination, one association at a time."""
+
+    def __init__(self, sender: Sender, destination: str) -> None:
+        super().__init__(name=f"sender-{destination}", daemon=True)
+        self.sender = sender
+        self.destination = destination
+        self.wake = threading.Event()
+        self._session: StoreSession | None = None
+
+    @property
+    def journal(self) -> Journal:
+        return self.sender.journal
+
+    @property
+    def config(self) -> Config:
+        return self.sender.config
+
+    def cut(self) -> None:
+        """End the association in progress now (a stop that cannot wait for the peer)."""
+        session = self._session
+        if session is not None:
+            session.cut()
+
+    def run(self) -> None:
+        while not self.sender.stopping:
+            self.wake.clear()
+            wait = self.sender._poll
+            try:
+                if not self.deliver_due():
+                    return  # the destination is no longer configured
+                nxt = self.journal.next_delivery_at(destination=self.destination)
+                if nxt is not None:
+                    wait = max(0.05, min(wait, nxt - time.time()))
+            except Exception:
+                log.exception("delivery to %s: error; retrying", self.destination)
+            self.wake.wait(wait)
+
+    def deliver_due(self) -> bool:
+        """Send what is due now; False when this destination is no longer configured."""
+        name = self.destination
+        if name != FOLDER_DESTINATION and name not in self.config.destinations:
+            return False
+        items = self.journal.due_deliveries(destination=name)
+        if not items:
+            return True
+        if name == FOLDER_DESTINATION:
+            self._to_folder(items)
+        else:
+            self._to_peer(self.config.destinations[name], items)
+        return True
+
+    def _to_folder(self, items: list[DueDelivery]) -> None:
+        folder = self.config.results_dir
+        for d in items:
+            if self.sender.stopping:
+                return
+            if self.sender._waits_for_parent(d, "file"):
+                continue
+            try:
+                if folder is None:
+                    raise OSError("no results folder configured")
+                data = self.journal.result_data(d.result_uid)
+                durable_write(Path(folder) / f"{safe_name(d.result_uid)}.dcm", data)
+            except OSError as exc:
+                self.sender._failed(d, f"cannot write to results folder: {exc}")
+                continue
+            self.sender._delivered(d, "the results folder", "file")
+
+    def _to_peer(self, dest: DestinationConfig, items: list[DueDelivery]) -> None:
+        """Send ``items`` over one association; results that fall due meanwhile for the same
+        destination follow on it (at most ``MAX_PER_ASSOCIATION`` objects), then it is
+        released."""
+        sender = self.sender
+        batch = sender._readable(items)
+        if not batch:
+            return
+        limits = self.config.limits
+        where = f"{dest.ae_title}@{dest.host}:{dest.port}" + (" (TLS)" if dest.tls else "")
+        try:
+            tls = None
+            if dest.tls:
+                from service.network.tls import client_context
+
+                tls = client_context(self.config)
+            session = StoreSession.open(
+                dest.host,
+                dest.port,
+                calling_ae=self.config.node.ae_title,
+                called_ae=dest.ae_title,
+                sop_classes=sorted({o.sop_class for o in batch}),
+                timeouts=Timeouts(
+                    connect=limits.acse_timeout,
+                    acse=limits.acse_timeout,
+                    dimse=limits.dimse_timeout,
+                    network=limits.network_timeout,
+                ),
+                max_pdu=limits.max_pdu,
+                tls=tls,
+                identity=(
+                    UserIdentity(dest.username, dest.password, dest.user_identity_response)
+                    if dest.username
+                    else None
+                ),
+            )
+        except AssociationFailed as exc:
+            for o in batch:
+                sender._failed(o.due, str(exc), o.kind)
+            return
+        except Exception as exc:  # TLS set-up and the like
+            for o in batch:
+                sender._failed(o.due, f"cannot associate with {where}: {exc}", o.kind)
+            return
+        self._session = session
+        seen = {o.due.id for o in batch}
+        budget = MAX_PER_ASSOCIATION
+        try:
+            while batch and budget > 0:
+                for o in batch:
+                    if sender.stopping or not session.is_established:
+                        return
+                    budget -= 1
+                    self._send(session, o, where)
+                if sender.stopping or not session.is_established:
+                    return
+                # results graded while these went out: on the same association
+                more = [
+                    d
+                    for d in self.journal.due_deliveries(destination=self.destination)
+                    if d.id not in seen and session.accepts(d.sop_class_uid)
+                ][:budget]
+                seen.update(d.id for d in more)
+                batch = sender._readable(more)
+        finally:
+            self._session = None
+            session.release()
+
+    def _send(self, session: StoreSession, o: _Outgoing, where: str) -> None:
         """One C-STORE and its outcome in the journal."""
+        sender = self.sender
         d, kind = o.due, o.kind
-        if self._waits_for_parent(d, kind):
+        if sender._waits_for_parent(d, kind):
+            return
+        if not session.accepts(o.sop_class):
+            sender._failed(d, f"{where} accepted no presentation context for {o.sop_class}", kind)
             return
         try:
-            response = _store(assoc, o)
+            response = session.store(o.data)
         except AssociationFailed as exc:
-            self._failed(d, f"C-STORE to {where} failed: {exc}", kind)
+            sender._failed(d, f"C-STORE to {where} failed: {exc}", kind)
             return
         except Exception as exc:
-            self._failed(d, f"C-STORE to {where} raised {type(exc).__name__}: {exc}", kind)
+            sender._failed(d, f"C-STORE to {where} raised {type(exc).__name__}: {exc}", kind)
             return
-        if response is None:
-            self._failed(d, f"{where} accepted no presentation context for {o.sop_class}", kind)
-        elif response.status in _STORED:
-            self._delivered(d, where, kind)
+        comment = f" ({response.error_comment})" if response.error_comment else ""
+        if response.stored:
+            warning = f"status 0x{response.status:04X}{comment}" if response.warning else ""
+            sender._delivered(d, where, kind, warning)
         else:
-            comment = f" ({response.error_comment})" if response.error_comment else ""
-            self._failed(d, f"C-STORE status 0x{response.status:04X} from {where}{comment}", kind)
+            sender._failed(d, f"C-STORE status 0x{response.status:04X} from {where}{comment}", kind)
 
 
 @dataclass(frozen=True)
 class _Outgoing:
     due: DueDelivery
     sop_class: str
-    sop_instance: str
-    transfer_syntax: str
     kind: str  # "result" or "summary"
-    #: the spooled Part 10 file, read once (at most one round of due deliveries is held)
+    #: the stored Part 10 file, read once (at most one round of due deliveries is held)
     data: bytes
-
-
-def _store(assoc: StoreAssociation, o: _Outgoing) -> StoreResponse | None:
-    """C-STORE of a spooled object.  Sent as encoded in the spool (no decoding and encoding
-    again) when the peer accepted its SOP class in the file's transfer syntax; otherwise
-    decoded and encoded in the transfer syntax the peer accepted.  None when the peer accepted
-    no context for its SOP class."""
-    data = o.data
-    exact = assoc.context_for(o.sop_class, o.transfer_syntax)
-    start = file_body_start(data)
-    if exact is not None and start is not None:
-        return assoc.store(exact, o.sop_instance, memoryview(data)[start:])
-    context = assoc.context_for(o.sop_class)
-    if context is None:
-        return None
-    ds = pydicom.dcmread(io.BytesIO(data))
-    fp = DicomBytesIO()
-    fp.is_little_endian = True
-    fp.is_implicit_VR = context.transfer_syntax == ImplicitVRLittleEndian
-    write_dataset(fp, ds)
-    return assoc.store(context, o.sop_instance, fp.getvalue())

@@ -258,14 +258,22 @@ class Journal(abc.ABC):
     # -- delivering -------------------------------------------------------------------------------
 
     @abc.abstractmethod
-    def due_deliveries(self, *, now: float | None = None, limit: int = 100) -> list[DueDelivery]:
-        """Pending deliveries whose next attempt is due, oldest first."""
+    def due_deliveries(
+        self, *, now: float | None = None, limit: int = 100, destination: str | None = None
+    ) -> list[DueDelivery]:
+        """Pending deliveries whose next attempt is due (to ``destination`` only, when
+        given), oldest first."""
+
+    @abc.abstractmethod
+    def due_destinations(self, *, now: float | None = None) -> list[str]:
+        """The destinations that have a pending delivery due now."""
 
     @abc.abstractmethod
     def delivered_to(self, result_uid: str, destination: str) -> bool: ...
 
     @abc.abstractmethod
-    def next_delivery_at(self) -> float | None: ...
+    def next_delivery_at(self, *, destination: str | None = None) -> float | None:
+        """When the next pending delivery (to ``destination``, when given) is due."""
 
     @abc.abstractmethod
     def mark_delivered(self, delivery_id: int, *, now: float | None = None) -> None: ...

@@ -424,17 +424,23 @@ class SqlJournal(AuditRecords, ActivityQueries, Journal):
 
     # -- delivering -------------------------------------------------------------------------------
 
-    def due_deliveries(self, *, now: float | None = None, limit: int = 100) -> list[DueDelivery]:
+    def due_deliveries(
+        self, *, now: float | None = None, limit: int = 100, destination: str | None = None
+    ) -> list[DueDelivery]:
         now = time.time() if now is None else now
+        where, params = "", [now]
+        if destination is not None:
+            where, params = " AND d.destination = ?", [now, destination]
         rows = self._query(
             """SELECT d.id, d.result_uid, r.study_uid, d.destination, d.attempts,
                       r.sop_class_uid,
                       (SELECT c.result_uid FROM companions c
                        WHERE c.companion_uid = d.result_uid LIMIT 1) AS parent_uid
                FROM deliveries d JOIN results r ON r.result_uid = d.result_uid
-               WHERE d.state = 'pending' AND d.next_attempt_at <= ?
-               ORDER BY d.next_attempt_at, d.id LIMIT ?""",
-            (now, limit),
+               WHERE d.state = 'pending' AND d.next_attempt_at <= ?"""
+            + where
+            + " ORDER BY d.next_attempt_at, d.id LIMIT ?",
+            (*params, limit),
         )
         return [
             DueDelivery(
@@ -457,10 +463,26 @@ class SqlJournal(AuditRecords, ActivityQueries, Journal):
         )
         return bool(rows)
 
-    def next_delivery_at(self) -> float | None:
+    def due_destinations(self, *, now: float | None = None) -> list[str]:
+        now = time.time() if now is None else now
         rows = self._query(
-            "SELECT MIN(next_attempt_at) AS due FROM deliveries WHERE state = 'pending'"
+            "SELECT DISTINCT destination FROM deliveries WHERE state = 'pending' "
+            "AND next_attempt_at <= ?",
+            (now,),
         )
+        return sorted(r[0] for r in rows)
+
+    def next_delivery_at(self, *, destination: str | None = None) -> float | None:
+        if destination is None:
+            rows = self._query(
+                "SELECT MIN(next_attempt_at) AS due FROM deliveries WHERE state = 'pending'"
+            )
+        else:
+            rows = self._query(
+                "SELECT MIN(next_attempt_at) AS due FROM deliveries WHERE state = 'pending' "
+                "AND destination = ?",
+                (destination,),
+            )
         return rows[0][0] if rows else None
 
     def mark_delivered(self, delivery_id: int, *, now: float | None = None) -> None:

@@ -527,18 +527,20 @@ def bench_offline(work: Path, n: int) -> dict[str, Any]:
 
 
 def bench_sender(work: Path, n: int) -> dict[str, Any]:
-    """The node's C-STORE service user (service/network/store_association.py) against
-    pynetdicom's requestor (as the sender used it before: the spooled file sent as encoded,
-    TCP_NODELAY set), each sending the same N result SRs to DCMTK storescp over one
-    association; objects/s and this process's CPU per object (all its threads)."""
+    """The node's C-STORE sending (service/network/store_scu.py: pynetdicom's requestor with a
+    watchdog, each stored result decoded by pydicom and sent as a data set) against
+    pynetdicom's requestor sending the files as encoded (``send_c_store`` of a path with
+    ``STORE_SEND_CHUNKED_DATASET``, TCP_NODELAY set), each sending the same N result SRs to
+    DCMTK storescp over one association; objects/s and this process's CPU per object (all
+    its threads)."""
     from pydicom.uid import ExplicitVRLittleEndian
     from pynetdicom import AE, _config
 
     from service.network.grading_worker import GradeJob, grade_in_worker
-    from service.network.store_association import Proposal, StoreAssociation, Timeouts
+    from service.network.store_scu import StoreSession, Timeouts
     from service.observability.logs import quiet_pynetdicom
     from service.pipeline import GradeOptions
-    from service.sr.read import file_body_start, file_meta_uids
+    from service.sr.read import file_meta_uids
 
     say(f"\n== sender: {n} result SRs to DCMTK storescp over one association ==")
     src = write_studies(work / "sender-in", n, run="sender")
@@ -564,22 +566,18 @@ def bench_sender(work: Path, n: int) -> dict[str, Any]:
     sop_class = file_meta_uids(files[0].read_bytes())["MediaStorageSOPClassUID"]
 
     def ours(port: int) -> None:
-        assoc = StoreAssociation.open(
+        session = StoreSession.open(
             LOOPBACK,
             port,
             calling_ae=NODE_AE,
             called_ae=PACS_AE,
-            proposals=[Proposal(sop_class, (ExplicitVRLittleEndian,))],
+            sop_classes=[sop_class],
             max_pdu=16382,
             timeouts=Timeouts(connect=10, acse=30, dimse=60, network=60),
         )
-        cx = assoc.context_for(sop_class, ExplicitVRLittleEndian)
         for f in files:
-            data = f.read_bytes()
-            meta = file_meta_uids(data)
-            body = memoryview(data)[file_body_start(data) :]
-            assert assoc.store(cx, meta["MediaStorageSOPInstanceUID"], body).status == 0
-        assoc.release()
+            assert session.store(f.read_bytes()).status == 0
+        session.release()
 
     def theirs(port: int) -> None:
         from service.network.listener import no_delay
@@ -597,7 +595,7 @@ def bench_sender(work: Path, n: int) -> dict[str, Any]:
             assoc.release()
 
     out: dict[str, Any] = {"n": len(files), "median_bytes": statistics.median(sizes)}
-    for name, send in (("store_association", ours), ("pynetdicom", theirs)):
+    for name, send in (("store_scu", ours), ("pynetdicom_file", theirs)):
         port = free_port()
         with dcmtk_storescp(work / f"sender-pacs-{name}", port, work / f"sender-{name}.log"):
             c0, t0 = time.process_time(), time.perf_counter()

@@ -149,3 +149,32 @@ def test_bad_periods_are_refused_in_one_line(data_dir, capsys, args, message):
 def test_no_journal(tmp_path, capsys):
     code, _, err = _run(capsys, "--data-dir", str(tmp_path / "nothing"))
     assert code == 2 and "no journal at" in err
+
+
+def test_patient_identity_only_when_recorded_configured_and_listed(tmp_path, capsys):
+    """Name and ID appear only in the study list, only when the configuration allows them,
+    and only for studies whose identity the node recorded."""
+    from test_audit_journal import FACTS, _grade, _receive
+
+    data_dir = tmp_path / "node"
+    journal = open_journal(data_dir)
+    try:
+        _receive(journal, "2.25.1", now=datetime(2026, 11, 20, 10).timestamp())
+        _grade(journal, now=datetime(2026, 11, 20, 10, 1).timestamp(), facts=FACTS)
+    finally:
+        journal.close()
+    allowed = tmp_path / "allowed.toml"
+    allowed.write_text(
+        f'[node]\ndata_dir = "{data_dir}"\n[audit]\ninclude_patient_identifiers = true\n'
+    )
+    page = tmp_path / "page.html"
+    for args, shown in (
+        (["--data-dir", str(data_dir), "--list-studies"], False),  # not configured
+        (["--config", str(allowed)], False),  # configured, not listed
+        (["--config", str(allowed), "--list-studies"], True),
+    ):
+        code, out, _ = _run(capsys, *args, "--json", "--html", str(page))
+        assert code == 0
+        html = page.read_text(encoding="utf-8")
+        assert ("Testperson^Ada" in out) is shown and ("HV-0001" in out) is shown
+        assert ("Testperson^Ada" in html) is shown

@@ -79,7 +79,6 @@ class Node:
         self.assembler: Assembler | None = None
         self.sender: Sender | None = None
         self.port: int | None = None
-        self.started_at: float | None = None
         self._stopped = threading.Event()
         self._pages: Any = None
 
@@ -137,13 +136,9 @@ class Node:
             target=self._retention_loop, name="retention", daemon=True
         )
         self._retention_thread.start()
-        self._started_at = self.started_at = time.time()
+        self._started_at = time.time()
         self._write_status()
         return self.port
-
-    @property
-    def stopped(self) -> bool:
-        return self._stopped.is_set()
 
     def _write_status(self) -> None:
         durable_write(

@@ -68,8 +68,10 @@ class StatusPages:
         for f in failures:
             name, pid = identities.get(f["study_uid"], ("", ""))
             f["patient"] = " ".join(p for p in (name.replace("^", ", "), pid) if p)
-        listener = node.listener
-        up = listener is not None and listener.is_up() and not node.stopped
+        health = node.health()
+        up = bool(health["checks"].get("listener", {}).get("ok"))
+        listener = getattr(node, "listener", None)  # in this process only when it runs here
+        associations = None if listener is None else listener.active_associations()
         data_dir = str(node.data_dir)
         return {
             "now": now,
@@ -80,10 +82,10 @@ class StatusPages:
                 "bind": cfg.node.bind or "all interfaces",
                 "port": node.port,
                 "tls": cfg.tls.enabled,
-                "associations": 0 if listener is None else listener.active_associations(),
-                "started_at": getattr(node, "started_at", None),
+                "associations": associations,
+                "started_at": getattr(node, "_started_at", None),
             },
-            "health": node.health(),
+            "health": health,
             "queue": depth,
             "activity": activity,
             "failures": failures,

@@ -288,7 +288,7 @@ class Context(Frozen):
     rhythm: Rhythm = Rhythm.unknown
     myocardial_disease: bool = False
     #: LVEF below this is "reduced" (ASE/EACVI 2016 gives no number; 50 % is the usual
-    #: operational cut-off, see shared reference I-16-10).
+    #: operational cut-off: reading I-16-10).
     lvef_reduced_below: float = 50.0
     #: Algorithm A decides only when at least this many criteria are available (I-16-1).
     min_criteria_available: int = 1
@@ -305,14 +305,23 @@ class Grade(StrEnum):
     grade_2 = "grade-2"
     grade_3 = "grade-3"
     indeterminate = "indeterminate"
-    not_gradable = "not-gradable"
+    not_gradable = "not-gradable"  # the algorithm lacked the data it needs
+    #: no grade because the guideline gives none here: atrial fibrillation (filling pressure
+    #: only), a special situation (alternative criteria, or the standard algorithm not applicable)
+    not_applicable = "not-applicable"
 
 
 class FillingPressure(StrEnum):
+    """The estimate of LV filling pressure.  ``indeterminate``: criteria were evaluated but do
+    not decide; ``not-estimated``: no estimate was made (no criterion available, or no rule that
+    applies).  Words for each: :mod:`service.wording` (docs/vocabulary.md)."""
+
     normal = "normal"
     elevated = "elevated"
     indeterminate = "indeterminate"
-    unknown = "unknown"
+    not_estimated = "not-estimated"
+    #: the earlier name of ``not_estimated`` (whose token was "unknown"): same member
+    unknown = "not-estimated"
 
 
 class Comparison(StrEnum):
@@ -353,6 +362,9 @@ class Criterion(Frozen):
     threshold: float
     verdict: Verdict
     source: str  # citation of the threshold
+    #: words when this row counts together with others as one criterion, e.g. "septal or
+    #: lateral e′: one criterion" ("" for a criterion of its own)
+    group: str = ""
 
 
 class Pathway(StrEnum):
@@ -404,6 +416,14 @@ class SupportingFinding(Frozen):
     agrees_with_result: bool | None = None
 
 
+class Reading(Frozen):
+    """A reading of an ambiguous published rule that a result relied on: its identifier (for
+    software and audit, never in prose) and its plain words (:mod:`service.grading.readings`)."""
+
+    id: str  # e.g. "I-16-7"
+    text: str
+
+
 class Assessment(Frozen):
     guideline: Guideline
     guideline_citation: str
@@ -419,6 +439,8 @@ class Assessment(Frozen):
     special_situations: tuple[SpecialSituation, ...] = ()
     borderline: tuple[BorderlineFlag, ...] = ()
     supporting: tuple[SupportingFinding, ...] = ()
+    #: the project's readings of ambiguous published rules that this result relied on
+    readings: tuple[Reading, ...] = ()
     caution: str = CAUTION
 
     @property

@@ -108,7 +108,7 @@ def grade_options_from_args(args: argparse.Namespace) -> GradeOptions:
     rhythm = Rhythm(args.rhythm)
     context = Context(
         rhythm=rhythm,
-        rhythm_source="" if rhythm is Rhythm.unknown else "command line",
+        rhythm_source="" if rhythm is Rhythm.unknown else "set on the command line",
         myocardial_disease=args.myocardial_disease,
         lvef_reduced_below=args.lvef_reduced_below,
         special_situations=frozenset(SpecialSituation(s) for s in args.situation),

@@ -27,6 +27,7 @@ from service.model import (
     Guideline,
     InstanceRef,
     Measurements,
+    Outcome,
     Rhythm,
     SourceDocument,
 )
@@ -77,6 +78,8 @@ class StudyOutcome(Frozen):
 CARDIAC_RHYTHM = ("LN", "8884-9")
 AF_VALUES = {("SCT", "49436004"), ("MDC", "10:9472")}
 SINUS_VALUES = {("SCT", "64730000"), ("SCT", "106067008")}
+#: where a coded rhythm came from, in words (the source's UID is in the result's evidence list)
+SOURCE_RHYTHM = "stated by a coded Cardiac Rhythm item in the source SR"
 
 
 def rhythm_from_documents(
@@ -89,9 +92,9 @@ def rhythm_from_documents(
             if item.concept.key != CARDIAC_RHYTHM:
                 continue
             if item.value.key in AF_VALUES:
-                return Rhythm.af, f"coded Cardiac Rhythm item in {doc.sop_instance_uid}"
+                return Rhythm.af, SOURCE_RHYTHM
             if item.value.key in SINUS_VALUES:
-                return Rhythm.sinus, f"coded Cardiac Rhythm item in {doc.sop_instance_uid}"
+                return Rhythm.sinus, SOURCE_RHYTHM
     return None
 
 
@@ -99,10 +102,9 @@ def effective_context(documents: Sequence[SourceDocument], context: Context) -> 
     """A coded rhythm in the SR beats the configured default."""
     found = rhythm_from_documents(documents)
     if found is None:
-        if context.rhythm_source:
-            return context
-        source = "not stated" if context.rhythm is Rhythm.unknown else "configured default"
-        return context.model_copy(update={"rhythm_source": source})
+        if context.rhythm_source or context.rhythm is Rhythm.unknown:
+            return context  # an unstated rhythm is said once, by the assessment's note
+        return context.model_copy(update={"rhythm_source": "the configured default"})
     rhythm, source = found
     return context.model_copy(update={"rhythm": rhythm, "rhythm_source": source})
 
@@ -238,7 +240,11 @@ def grade_study(
             assessments=assessments,
             set_aside=tuple(set_aside),
         )
-    status = GradeStatus.not_gradable if primary.grade == "not-gradable" else GradeStatus.graded
+    # only missing data makes a study "not gradable": atrial fibrillation and special situations
+    # are results of their own (Outcome)
+    status = (
+        GradeStatus.not_gradable if primary.outcome is Outcome.not_gradable else GradeStatus.graded
+    )
     return StudyOutcome(
         status=status,
         reason="; ".join(primary.reasoning[-1:]) if status is GradeStatus.not_gradable else "",

@@ -30,8 +30,21 @@ def run_bench(tmp_path: Path, *args: str) -> tuple[subprocess.CompletedProcess[s
 
 def test_offline_and_journal_sections(tmp_path):
     r, figures = run_bench(
-        tmp_path, "--sections", "offline,journal", "--n", "4", "--journal-sizes", "50,200"
+        tmp_path,
+        "--sections",
+        "offline,summary,journal",
+        "--n",
+        "4",
+        "--summary-n",
+        "3",
+        "--rounds",
+        "1",
+        "--journal-sizes",
+        "50,200",
     )
+    summary = figures["summary"]  # grade --pdf --out against grade --out, printed
+    assert summary["n"] == 3 and summary["ratio_median"] > 0 and summary["cpu_ratio_median"] > 0
+    assert "ratio" in r.stdout and "(target >= 0.5)" in r.stdout
     off = figures["offline"]
     assert off["n"] == 4 and off["grade_exit"] in (0, 1)
     assert off["grade_files_per_s"] > 0 and off["bare_pydicom_files_per_s"] > 0

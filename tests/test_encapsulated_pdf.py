@@ -110,7 +110,7 @@ def summary_pdf() -> bytes:
         pathway=Pathway.normal_lvef,
         pathway_reason="no measurement the guideline uses is available",
         grade=Grade.not_gradable,
-        filling_pressure=FillingPressure.unknown,
+        filling_pressure=FillingPressure.not_estimated,
     )
     return render_summary_pdf(
         AssessmentSet(primary=a),

@@ -15,6 +15,8 @@ from grading_builders import measurements
 
 from service.grading import RuleSwitches, assess
 from service.grading import atrial_fibrillation as AF
+from service.grading import thresholds_ase2016 as T16
+from service.grading import thresholds_ase2025 as T25
 from service.grading.ase2025 import Ase2025Options
 from service.grading.atrial_fibrillation import Ase2016AfOptions, Ase2025AfOptions
 from service.model import (
@@ -24,15 +26,17 @@ from service.model import (
     Grade,
     Guideline,
     Measure,
+    Outcome,
     Pathway,
     Rhythm,
     Verdict,
 )
+from service.wording import headline
 
 ELEVATED = FillingPressure.elevated
 NORMAL = FillingPressure.normal
 INDET = FillingPressure.indeterminate
-UNKNOWN = FillingPressure.unknown
+UNKNOWN = FillingPressure.not_estimated
 
 
 def af(**kw: object) -> Context:
@@ -114,7 +118,7 @@ def test_primary_counting_all_available(n_met, expected):
     vals = {k: (ALL_MET[k] if i < n_met else NONE_MET[k]) for i, k in enumerate(PRIMARY)}
     a = run25(**vals)
     assert a.filling_pressure is expected
-    assert a.grade is Grade.not_gradable
+    assert a.grade is Grade.not_applicable
     assert a.pathway is Pathway.atrial_fibrillation
 
 
@@ -204,15 +208,14 @@ def test_secondary_only_after_exactly_two():
 
 def test_af_result_shape_2025():
     a = run25(af(rhythm_source="coded Cardiac Rhythm item"), **ALL_MET)
-    assert a.grade is Grade.not_gradable
+    assert a.grade is Grade.not_applicable
+    assert a.outcome is Outcome.atrial_fibrillation
     assert a.pathway is Pathway.atrial_fibrillation
     assert "coded Cardiac Rhythm item" in a.pathway_reason
-    assert "no grade is given" in a.pathway_reason
-    assert a.reasoning[0] == "Rhythm: atrial fibrillation (coded Cardiac Rhythm item)."
-    assert AF.NO_GRADE in a.reasoning
+    assert "by the ASE 2025 atrial-fibrillation criteria" in headline(a)
     for c in a.criteria:
         assert c.id.startswith("ase25.af.")
-        assert c.source.startswith("Nagueh 2025 JASE 38(7)")
+        assert c.source.startswith(T25.PAPER)
 
 
 def test_sinus_criteria_not_used_in_af():
@@ -238,7 +241,7 @@ def test_sinus_criteria_not_used_in_af():
 )
 def test_2016_af_table(row, measure, comparison, value):
     assert (row.measure, row.comparison, row.value) == (measure, comparison, value)
-    assert row.citation.startswith("Nagueh 2016 JASE 29:277, §V.E")
+    assert row.citation.startswith(T16.PAPER + ", §V.E")
     assert row in AF.TABLE_2016
 
 
@@ -288,10 +291,13 @@ def test_2016_majority_summary(values, expected):
 def test_2016_flags_only_by_default():
     a = run16(lvef=60, ivrt=60, e_e_prime_septal=12, e_acceleration_rate=2000)
     assert a.filling_pressure is INDET
-    assert a.grade is Grade.not_gradable
+    assert a.grade is Grade.not_applicable
     assert a.pathway is Pathway.atrial_fibrillation
     assert any("3 of 3 available criteria support elevated" in r for r in a.reasoning)
-    assert any("I-16-11" in r for r in a.reasoning)
+    # one state, one name: the sentence says indeterminate, as the coded value does
+    assert any("the filling pressure is indeterminate" in r for r in a.reasoning)
+    assert not any("not estimated" in r or "I-16" in r for r in a.reasoning)
+    assert [r.id for r in a.readings] == ["I-16-11"]
     assert any("E/Vp" in n for n in a.notes)  # criteria the service cannot read are named
     assert run16(lvef=60).filling_pressure is UNKNOWN
 
@@ -305,13 +311,14 @@ def test_2016_flags_only_by_default():
 def test_missing_a_wave_unknown_rhythm_gives_no_grade(guideline):
     ctx = Context(rhythm=Rhythm.unknown, rhythm_source="sender default", borderline_fraction=0)
     a = assess(measurements(mitral_e=90, lavi=40, e_prime_average=5), ctx, guideline)
-    assert (a.grade, a.filling_pressure) == (Grade.not_gradable, UNKNOWN)
+    assert (a.grade, a.filling_pressure) == (Grade.not_applicable, UNKNOWN)
     assert a.pathway is Pathway.not_applicable
     assert "sender default" in a.pathway_reason
-    [note] = a.notes
-    assert "A wave is missing" in note
-    assert "atrial fibrillation may be present" in note
-    assert "standard grade could not be given" in note
+    # said once, in the pathway reason (the conclusion adds "the standard algorithm does not
+    # apply"), not again in a note
+    assert "A wave is missing" in a.pathway_reason
+    assert "atrial fibrillation may be present" in a.pathway_reason
+    assert a.notes == ()
 
 
 @pytest.mark.parametrize("guideline", [Guideline.ase_eacvi_2016, Guideline.ase_2025])
@@ -341,6 +348,6 @@ def test_af_borderline_flag():
     assert a.filling_pressure is INDET
     [flag] = [f for f in a.borderline if f.measure is Measure.mitral_e]
     assert flag.alternative_filling_pressure is ELEVATED
-    assert flag.alternative_grade is Grade.not_gradable
+    assert flag.alternative_grade is Grade.not_applicable
     assert flag.threshold == 100.0
     assert "Mitral E 95 cm/s is within 10 %" in flag.text

@@ -34,6 +34,7 @@ from service.model import (
     SpecialSituation,
     Verdict,
 )
+from service.wording import headline
 
 
 def grade_of(ctx: Context | None = None, **values: float | None) -> tuple[Grade, FillingPressure]:
@@ -52,7 +53,8 @@ G2 = (Grade.grade_2, FillingPressure.elevated)
 G3 = (Grade.grade_3, FillingPressure.elevated)
 NORMAL = (Grade.normal, FillingPressure.normal)
 INDET = (Grade.indeterminate, FillingPressure.indeterminate)
-NOT_GRADABLE = (Grade.not_gradable, FillingPressure.unknown)
+NOT_APPLICABLE = (Grade.not_applicable, FillingPressure.not_estimated)
+NOT_GRADABLE = (Grade.not_gradable, FillingPressure.not_estimated)
 
 # Mitral inflow that gives grade I in Fig 8B step 1 (E/A <= 0.8 and E <= 50), so a dysfunction
 # found by Fig 8A shows as grade-1 and "no dysfunction" as normal.
@@ -92,7 +94,8 @@ MID_INFLOW = {"e_a_ratio": 1.2, "mitral_e": 80.0}
 )
 def test_threshold_table_rows(row, measure, comparison, value):
     assert (row.measure, row.comparison, row.value) == (measure, comparison, value)
-    assert row.citation.startswith("Nagueh 2016 JASE 29:277")
+    assert row.citation.startswith(T.PAPER + ", ")  # author, journal, year, pages
+    assert "I-16" not in row.citation  # readings are identified apart, never in prose
     assert row.evidence in {"R", "V", "R+V", "I"}
     assert row in T.TABLE
 
@@ -119,7 +122,7 @@ def test_af_special_and_valsalva_rows_are_rows_of_the_one_2016_table():
     rows = T.ALL_ROWS
     assert len(rows) == len(T.TABLE) + len(T.AF_TABLE) + len(T.SPECIAL_TABLE) + 1
     for row in (*T.AF_TABLE, *T.SPECIAL_TABLE, T.VALSALVA_E_A_FALL):
-        assert row.citation.startswith("Nagueh 2016 JASE 29:277, ")
+        assert row.citation.startswith(T.PAPER + ", ")
         # the reference's §2.5 marks every §V cut-off [R] (recalled): the tag must say so
         assert "R" in row.evidence.split("+"), row.key
     for table in (T.AF_TABLE, T.SPECIAL_TABLE):
@@ -286,10 +289,18 @@ def test_chaining_a_to_b_reports_both():
     )
     assert a.pathway is Pathway.normal_lvef
     assert (a.grade, a.filling_pressure) == G2  # Fig 8B step 2: 2 of 3 met
-    assert "Dysfunction present by Algorithm A; graded by Algorithm B." in a.reasoning
+    assert "Dysfunction present; Algorithm B (Figure 8B) grades it." in a.reasoning
     steps = [c.step for c in a.criteria]
     assert steps.index("algorithm A") < steps.index("algorithm B step 1")
-    assert steps.index("algorithm B step 1") < steps.index("algorithm B step 2")
+    # the criteria Figure 8B step 2 shares with Figure 8A are evaluated once, both steps named
+    shared = [c for c in a.criteria if c.step == "algorithm A and algorithm B step 2"]
+    assert {c.measure for c in shared} == {
+        Measure.e_e_prime_average,
+        Measure.tr_peak_velocity,
+        Measure.lavi,
+    }
+    labels = [c.label for c in a.criteria]
+    assert len(labels) == len(set(labels))  # each criterion once
 
 
 def test_chaining_a_to_b_with_e_a_missing_is_indeterminate():
@@ -417,14 +428,16 @@ def test_algorithm_b_split_with_pv_s_d(lvef, myocardial_disease, pv, expected):
     ids = [c.id for c in a.criteria]
     assert ("ase16.b2.pv_s_d_ratio" in ids) == (lvef < 50 and pv is not None)
     if lvef >= 50 and pv is not None:
-        assert any("substitutes only when LVEF is depressed" in n for n in a.notes)
+        assert any("substitutes only when LVEF is reduced" in n for n in a.notes)
 
 
 def test_algorithm_b_e_a_missing_is_indeterminate():
     # I-16-9: E/A unavailable (A absent, E-A fusion) -> Fig 8B cannot start
     a = assess(measurements(lvef=35, mitral_e=90, **STEP2_ALL_MET), sinus())
     assert (a.grade, a.filling_pressure) == INDET
-    assert any("E/A is not available" in r and "I-16-9" in r for r in a.reasoning)
+    assert any("E/A is not available" in r for r in a.reasoning)
+    assert "I-16-9" in [r.id for r in a.readings]
+    assert not any("I-16" in r for r in a.reasoning)
     assert criterion(a, "ase16.b1.e_a_ratio_low").verdict is Verdict.unavailable
 
 
@@ -491,10 +504,13 @@ def test_atrial_fibrillation_not_graded_by_sinus_algorithm():
     # Nagueh 2016 JASE 29:277, §V.E: AF has its own criteria (filling pressure, no grade); the
     # sinus criteria of Fig 8A are not used.  None of the AF criteria is present here.
     a = assess(measurements(lvef=60, **ALL_ABNORMAL_A), Context(rhythm=Rhythm.af))
-    assert (a.grade, a.filling_pressure) == NOT_GRADABLE
+    assert (a.grade, a.filling_pressure) == NOT_APPLICABLE
     assert a.pathway is Pathway.atrial_fibrillation
     assert a.pathway_reason.startswith("atrial fibrillation")
-    assert "no grade is given" in a.pathway_reason
+    assert (
+        headline(a)
+        == "Grade not applicable in atrial fibrillation; LV filling pressure not estimated."
+    )
     assert not any(c.step == "algorithm A" for c in a.criteria)
     assert a.rhythm is Rhythm.af
 
@@ -506,7 +522,7 @@ def test_special_situations_named():
         )
     )
     a = assess(measurements(lvef=60, **ALL_ABNORMAL_A), ctx)
-    assert (a.grade, a.filling_pressure) == NOT_GRADABLE
+    assert (a.grade, a.filling_pressure) == NOT_APPLICABLE
     assert a.pathway is Pathway.not_applicable
     assert "mitral stenosis" in a.pathway_reason
     assert "heart transplant" in a.pathway_reason
@@ -543,7 +559,7 @@ def test_assessment_fields_and_criteria_trace():
     assert a.reasoning and a.criteria
     for c in a.criteria:
         assert c.id.startswith("ase16.")
-        assert c.source.startswith("Nagueh 2016 JASE 29:277")
+        assert c.source.startswith(T.PAPER)
         assert c.unit == CANONICAL_UNITS[c.measure]
         assert c.label
         if c.value is None:
@@ -601,7 +617,8 @@ def test_borderline_flag_when_flip_changes_grade():
     assert (flag.alternative_grade, flag.alternative_filling_pressure) == G2
     assert flag.threshold == 14.0
     assert flag.text.startswith("Average E/e′ 13.4 is within 10 % of the cut-off > 14;")
-    assert "grade-2" in flag.text
+    # the other side in the guideline's own words, never a machine token
+    assert "grade II diastolic dysfunction" in flag.text and "grade-2" not in flag.text
 
 
 def test_no_borderline_flag_when_flip_changes_nothing():

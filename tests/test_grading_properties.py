@@ -140,7 +140,7 @@ PRESSURE_FOR_GRADE = {
     Grade.grade_2: {FillingPressure.elevated},
     Grade.grade_3: {FillingPressure.elevated},
     Grade.indeterminate: {FillingPressure.indeterminate},
-    Grade.not_gradable: {FillingPressure.unknown},
+    Grade.not_gradable: {FillingPressure.not_estimated},
 }
 # Nagueh 2025 JASE 38(7), Fig 3: as above, plus "normal LAP, grade not assignable" (I-25-7) and
 # "raised LAP, grade 2 or 3" (I-25-8) shown as an indeterminate grade with a known pressure
@@ -192,7 +192,7 @@ def test_any_input_gives_a_consistent_assessment(
         else:
             assert a.pathway in SINUS_PATHWAYS[guideline]
         if a.pathway in NO_STANDARD_GRADE:
-            assert a.grade is Grade.not_gradable
+            assert a.grade is Grade.not_applicable
         elif guideline is Guideline.ase_2025:
             assert a.filling_pressure in PRESSURE_FOR_GRADE_2025[a.grade]
         else:

@@ -25,17 +25,19 @@ from service.model import (
     Grade,
     Guideline,
     Measure,
+    Outcome,
     Pathway,
     Rhythm,
     SpecialSituation,
     Verdict,
 )
+from service.wording import headline
 
 S = SpecialSituation
 ELEVATED = FillingPressure.elevated
 NORMAL = FillingPressure.normal
 INDET = FillingPressure.indeterminate
-UNKNOWN = FillingPressure.unknown
+UNKNOWN = FillingPressure.not_estimated
 # a study that the standard algorithms would call abnormal (so a standard grade would show)
 ABNORMAL = {
     "lvef": 60,
@@ -87,11 +89,14 @@ WITH_CRITERIA = {
 @pytest.mark.parametrize("situation", list(SpecialSituation))
 def test_every_situation_has_an_explicit_outcome(guideline, situation):
     a = run(guideline, situation, **ABNORMAL)
-    assert a.grade is Grade.not_gradable  # never a standard grade (issue contract)
+    assert a.grade is Grade.not_applicable  # never a standard grade
+    assert a.outcome is Outcome.special_situation  # never counted as "not gradable"
     assert a.special_situations == (situation,)
     words = situation.value.replace("-", " ")
     assert words in a.pathway_reason
-    assert "standard algorithm does not apply" in a.pathway_reason
+    if a.pathway is Pathway.not_applicable:  # said once, in the conclusion
+        assert "the standard algorithm does not apply" in headline(a)
+        assert "does not apply" not in " ".join((a.pathway_reason, *a.reasoning, *a.notes))
     if situation in WITH_CRITERIA[guideline]:
         assert a.pathway is Pathway.special_situation
         assert a.criteria  # each alternative criterion reported
@@ -115,7 +120,8 @@ def test_i_16_14_transplant_and_mac_not_graded_under_2016():
     for s in (S.heart_transplant, S.mitral_annular_calcification):
         a = run(Guideline.ase_eacvi_2016, s, **ABNORMAL)
         assert a.pathway is Pathway.not_applicable
-        assert "I-16-14" in " ".join(a.reasoning)
+        assert [r.id for r in a.readings] == ["I-16-14"]
+        assert "I-16-14" not in " ".join((a.pathway_reason, *a.reasoning))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -238,7 +244,7 @@ HCM_TWO_MET = {"e_e_prime_average": 15, "ar_a_duration": 35}
 def test_2016_hcm_majority(values, expected):
     a = run(Guideline.ase_eacvi_2016, S.hypertrophic_cardiomyopathy, **values)
     assert a.filling_pressure is expected
-    assert a.grade is Grade.not_gradable
+    assert a.grade is Grade.not_applicable
 
 
 @pytest.mark.parametrize(
@@ -290,7 +296,7 @@ def test_2025_mac_rows():
 def test_2025_mac_rule(e_a, ivrt, expected):
     a = run(Guideline.ase_2025, S.mitral_annular_calcification, e_a_ratio=e_a, ivrt=ivrt)
     assert a.filling_pressure is expected
-    assert a.grade is Grade.not_gradable
+    assert a.grade is Grade.not_applicable
     assert a.pathway is Pathway.special_situation
 
 

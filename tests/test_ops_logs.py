@@ -22,6 +22,7 @@ from netutil import (
 from pynetdicom import AE
 
 from service.config import apply_overrides, config_from_dict
+from service.model import Outcome
 from service.network.demo_loop import ResultReceiver
 from service.network.service import Node
 from service.observability.logs import JsonLineFormatter
@@ -85,7 +86,9 @@ def test_json_lines_carry_events_and_uids_but_no_patient_identity(tmp_path):
     assert received["study_uid"] == str(good.StudyInstanceUID)
     assert received["calling_ae"] == "HV_ECHO1"
     graded = next(r for r in records if r["event"] == "study_graded")
-    assert graded["outcome"] in ("graded", "not-gradable") and graded["result_uid"]
+    # what the study concluded, as an Outcome token (docs/vocabulary.md)
+    assert graded["outcome"] in {o.value for o in Outcome} and graded["result_uid"]
+    assert graded["status"] in ("graded", "not-gradable")
     rejected = next(r for r in records if r["event"] == "association_rejected")
     assert rejected["address"] == LOOPBACK and rejected["called_ae"] == "SOMEONE_ELSE"
     # no patient identity anywhere, in any form (DICOM PN components, the ID)

@@ -166,3 +166,35 @@ def test_healthz_fails_when_the_journal_cannot_take_a_write(start_node):
         from service.store.sqlite_journal import SqliteJournal
 
         node.journal = SqliteJournal(node.journal.path)  # let the fixture stop the node cleanly
+
+
+def test_studies_are_counted_by_outcome_and_af_is_not_not_gradable(loopback_nodes):
+    # The outcome vocabulary (service.model.Outcome, docs/vocabulary.md): a study in atrial
+    # fibrillation is "atrial-fibrillation" in the metrics, the log and `queue`, never counted
+    # with the studies that could not be graded for missing data.  The real grading pipeline.
+    from service.commands.queue import build_report
+    from service.demo.scenario import CASES, case_datasets
+
+    cases = {c.key: c for c in CASES}
+    af = case_datasets(cases["atrial-fibrillation"])
+    missing = case_datasets(cases["not-gradable"])
+    data = {"http": {"port": 0}, "limits": {"shutdown_grace_seconds": 1}}
+    node = loopback_nodes.start(data)
+    assert send([*af, *missing], node.port) == [0, 0]
+    studies = [str(af[0].StudyInstanceUID), str(missing[0].StudyInstanceUID)]
+    wait_for(
+        lambda: all(
+            (node.journal.study(s) or {}).get("state") in ("graded", "delivered", "failed")
+            for s in studies
+        ),
+        60,
+    )
+    m = metrics(node)
+    graded = "diastolic_sr_studies_graded_total"
+    assert value(m, graded, outcome="atrial-fibrillation") == 1
+    assert value(m, graded, outcome="not-gradable") == 1
+    assert value(m, graded, outcome="graded") == 0
+    recent = {r["study_uid"]: r for r in build_report(node.journal, recent=10)["recent"]}
+    assert recent[studies[0]]["outcome"] == "atrial-fibrillation"
+    assert recent[studies[0]]["grade"] == "not-applicable"
+    assert recent[studies[1]]["outcome"] == "not-gradable"

@@ -109,7 +109,7 @@ def test_filling_pressure_values_are_standard():
     assert C.FILLING_PRESSURE_VALUES[FillingPressure.elevated].value == "75540009"
     assert C.FILLING_PRESSURE_VALUES[FillingPressure.normal].value == "260395002"
     assert C.FILLING_PRESSURE_VALUES[FillingPressure.indeterminate].value == "371934000"
-    assert C.FILLING_PRESSURE_VALUES[FillingPressure.unknown].value == "373068000"
+    assert C.FILLING_PRESSURE_VALUES[FillingPressure.not_estimated].value == "373068000"
 
 
 def test_units_are_canonical_ucum():

@@ -14,6 +14,7 @@ Each check has a negative control showing the validator does reject a broken obj
 from __future__ import annotations
 
 import os
+import re
 import shutil
 import subprocess
 import sys
@@ -29,7 +30,7 @@ except ImportError:  # pragma: no cover - when tests/ is imported as a package
 
 from service.model import CAUTION
 from service.sr import codes as C
-from service.sr.write import grade_words
+from service.wording import headline
 
 pytestmark = pytest.mark.external
 
@@ -121,14 +122,22 @@ def test_dsrdump_renders_with_constraints_checked(case, written):
 
 
 def test_dsrdump_shows_the_tree_shape(written):
-    # the shape promised to viewers: grade CODE with INFERRED FROM criteria, Impressions
+    # the shape promised to viewers: a title of its own, Impressions first, the grade CODE
+    # inferred (by reference, PS3.3 C.17.3.2.5) from criteria written once
     _, out, _ = dsrdump(written["grade-2"])
-    assert '<CONTAINER:(42148-7,LN,"Echocardiography Report")=' in out
+    assert '<CONTAINER:(DFREPORT,99DSRG,"Automated LV diastolic function assessment")=' in out
     assert '<contains CODE:(DFGRADE,99DSRG,"LV diastolic function grade")' in out
-    assert '<inferred from NUM:(EEPRIMEAVERAGE,99DSRG,"Mitral E / average e\' ratio")' in out
+    assert '<contains CONTAINER:(CRITERIA,99DSRG,"Criteria evaluated")' in out
+    assert '<contains NUM:(EEPRIMEAVERAGE,99DSRG,"Mitral E / average e\' ratio")' in out
+    # each criterion once in the whole tree (its rule text is unique to it)
+    for c in CASES["grade-2"].primary.criteria:
+        assert out.count(f'"Criterion rule")="{c.label}"') == 1, c.label
+    # DCMTK resolves each by-reference item to a position ("inferred from 1.3.10.2")
+    refs = re.findall(r"<inferred from (1(?:\.\d+)+)>", out)
+    assert len(refs) >= 2 * len(CASES["grade-2"].primary.criteria)
     assert '<contains CONTAINER:(19005-8,LN,"Impressions")' in out
     assert "<contains COMPOSITE:(122073,DCM," in out
-    assert grade_words(CASES["grade-2"].primary.grade) in out
+    assert headline(CASES["grade-2"].primary) in out  # the conclusion, in clinical words
     # as DCMTK lists the tree: the impression and the caution come before the assessment and
     # its criteria, right after the observer context
     lines = out.splitlines()

@@ -36,8 +36,10 @@ from highdicom.sr import (
     UIDRefContentItem,
 )
 from pydicom import Dataset, dcmread
+from pydicom.dataelem import DataElement
 from pydicom.filebase import DicomBytesIO
 from pydicom.filewriter import write_dataset
+from pydicom.sequence import Sequence
 from pydicom.sr.coding import Code
 from pydicom.valuerep import DA, DT, TM
 
@@ -49,11 +51,13 @@ from service.sr import codes as C
 from service.sr import write as W
 from service.sr.content import (
     Item,
+    Reference,
     Rel,
     code_item,
     composite_item,
     container_item,
     num_item,
+    reference_item,
     text_item,
     uidref_item,
 )
@@ -78,7 +82,9 @@ PREDECESSOR = InstanceRef(
 
 
 def to_highdicom(item: Item) -> Dataset:
-    """A lean content item as highdicom's content item of the same value type."""
+    """A lean content item as highdicom's content item of the same value type.  highdicom has
+    no class for a by-reference item (and its SR constructor refuses one): those are left out
+    here and put in afterwards by :func:`with_references`."""
     rel = item.relationship
     vt = item.value_type
     if vt == "CONTAINER":
@@ -103,8 +109,45 @@ def to_highdicom(item: Item) -> Dataset:
     else:  # pragma: no cover - the lean module has no other value type
         raise AssertionError(vt)
     if item.children or vt == "CONTAINER":
-        hd.ContentSequence = [to_highdicom(c) for c in item.children]
+        hd.ContentSequence = [to_highdicom(c) for c in item.children if isinstance(c, Item)]
     return hd
+
+
+def tree_positions(root: Item) -> dict[int, list[int]]:
+    """Position of every item of a lean tree, by identity, counted here on its own: the root
+    is [1], its n-th child [1, n], ... (PS3.3 C.17.3.2.5, Referenced Content Item Identifier)."""
+    out: dict[int, list[int]] = {}
+
+    def visit(item: Item, where: list[int]) -> None:
+        out[id(item)] = where
+        for n, child in enumerate(item.children, 1):
+            if isinstance(child, Item):
+                visit(child, [*where, n])
+
+    visit(root, [1])
+    return out
+
+
+def with_references(lean: Item, hd: Dataset, where: dict[int, list[int]]) -> None:
+    """Put the by-reference items of ``lean`` into the highdicom-built ``hd`` at the same
+    places: a plain pydicom item with Relationship Type and Referenced Content Item
+    Identifier (UL, PS3.3 Table C.17-6), written by pydicom."""
+    if not lean.children:
+        return
+    built = iter(list(hd.ContentSequence))
+    items: list[Dataset] = []
+    for child in lean.children:
+        if isinstance(child, Reference):
+            ref = Dataset()
+            ref.RelationshipType = child.relationship.value
+            ref.add_new(0x0040DB73, "UL", where[id(child.target)])
+            items.append(ref)
+        else:
+            one = next(built)
+            with_references(child, one, where)
+            items.append(one)
+    # set as a plain element: highdicom's own ContentSequence accepts only its content items
+    hd[0x0040A730] = DataElement(0x0040A730, "SQ", Sequence(items))
 
 
 def reference_document(sources, outcome, predecessors=(), when=WHEN) -> Dataset:
@@ -122,9 +165,10 @@ def reference_document(sources, outcome, predecessors=(), when=WHEN) -> Dataset:
             setattr(first, kw, "")
     evidence = [first, *evidence[1:]]
     tree = W.content_tree(evidence, outcome.assessments, outcome.measurements)
+    content = to_highdicom(tree)
     sr = ComprehensiveSR(
         evidence=evidence,
-        content=to_highdicom(tree),
+        content=content,
         series_instance_uid=str(outcome.result.SeriesInstanceUID),
         series_number=9901,
         sop_instance_uid=str(outcome.result.SOPInstanceUID),
@@ -156,6 +200,8 @@ def reference_document(sources, outcome, predecessors=(), when=WHEN) -> Dataset:
     sr.CodingSchemeIdentificationSequence = [scheme]
     assert sr.ContributingEquipmentSequence[0].ManufacturerModelName == "highdicom"
     sr.ContributingEquipmentSequence[0].ContributionDateTime = DT(when)
+    # the by-reference items, at their places, with positions counted by this test
+    with_references(tree, sr, tree_positions(tree))
     return sr
 
 
@@ -200,6 +246,9 @@ def assert_same_as_highdicom(sources, predecessors=(), options=None, when=WHEN) 
     assert outcome.result is not None, outcome.reason
     ours = dcmread(_part10(outcome.result))
     ref = reference_document(sources, outcome, predecessors, when)
+    # the comparison covers by-reference items: every result has some (the conclusions name
+    # their criteria, or their pathway, by reference)
+    assert b"\x40\x00\x73\xdbUL" in encoded(ref)
     mine, theirs = elements(ours), elements(ref)
     theirs.pop(0x0018A001)  # Contributing Equipment: highdicom names itself; we do not
     assert sorted(mine) == sorted(theirs), set(mine) ^ set(theirs)
@@ -382,6 +431,42 @@ def dcmread_item(body: bytes) -> Dataset:
 )
 def test_items_encode_as_pydicom_writes_highdicom_items(item):
     _same(item)
+
+
+def test_by_reference_items_encode_as_pydicom_writes_them():
+    # PS3.3 C.17.3.2.5: a by-reference item holds Relationship Type and Referenced Content
+    # Item Identifier (UL, one value per level of the target's position, the root being 1);
+    # pydicom writes the reference dataset built independently by with_references()
+    target = num_item(NAME, 7.0, UNIT, Rel.CONTAINS)
+    group = container_item(NAME, [text_item(NAME, "a", Rel.CONTAINS), target])
+    source = code_item(NAME, C.YES.code, Rel.CONTAINS).with_children(
+        [reference_item(Rel.INFERRED_FROM, target), reference_item(Rel.HAS_PROPERTIES, target)]
+    )
+    root = container_item(NAME, [group, source], rel=None)
+    ours = Dataset()
+    ours.SpecificCharacterSet = "ISO_IR 192"
+    ours[0x0040A730] = content_sequence(root.children)
+    theirs = _in_document([to_highdicom(c) for c in root.children])
+    with_references(root, theirs, tree_positions(root))
+    assert encoded(ours) == encoded(theirs)
+    refs = ours.ContentSequence[1].ContentSequence
+    assert [r.RelationshipType for r in refs] == ["INFERRED FROM", "HAS PROPERTIES"]
+    assert list(refs[0].ReferencedContentItemIdentifier) == [1, 1, 2]
+    assert "ValueType" not in refs[0] and "ConceptNameCodeSequence" not in refs[0]
+
+
+def test_a_reference_needs_its_target_once_in_the_tree():
+    target = num_item(NAME, 7.0, UNIT, Rel.CONTAINS)
+    dangling = code_item(NAME, C.YES.code, Rel.CONTAINS).with_children(
+        [reference_item(Rel.INFERRED_FROM, target)]
+    )
+    with pytest.raises(ValueError, match="not in the tree once"):
+        content_sequence([dangling])
+    twice = container_item(NAME, [target, target, dangling])
+    with pytest.raises(ValueError, match="not in the tree once"):
+        content_sequence([twice])
+    with pytest.raises(ValueError, match="cannot be"):
+        reference_item(Rel.CONTAINS, target)
 
 
 def test_long_and_urn_code_values_go_where_highdicom_puts_them():

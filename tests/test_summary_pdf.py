@@ -45,16 +45,17 @@ from service.model import (
     Verdict,
 )
 from service.report import SummaryIdentity, identity_from_dataset, render_summary_pdf
+from service.report.fonts import _reduced_copies
 from service.report.summary_pdf import (
     OKABE_ITO,
     SourceDescription,
-    _reduced_copies,
     font_files,
     format_number,
     marker_for,
     printable,
     scale_for,
 )
+from service.wording import headline
 
 CITATION_2016 = "Nagueh SF et al. J Am Soc Echocardiogr 2016;29:277-314"
 RESULT_UID = "2.25.301166477052781349187447612829761153841"
@@ -305,7 +306,7 @@ def case_indeterminate():
 def case_not_gradable():
     a = ase16(
         grade=Grade.not_gradable,
-        filling_pressure=FillingPressure.unknown,
+        filling_pressure=FillingPressure.not_estimated,
         pathway_reason="none of the measurements the guideline uses is available",
         reasoning=("Not graded: none of the measurements the guideline uses is available.",),
     )
@@ -325,8 +326,8 @@ def case_af():
         guideline_citation="ASE 2025 recommendations on diastolic function",
         rule_set_version="ase-2025/1",
         pathway=Pathway.atrial_fibrillation,
-        pathway_reason="atrial fibrillation (coded Cardiac Rhythm item)",
-        grade=Grade.not_gradable,
+        pathway_reason="atrial fibrillation, stated by a coded Cardiac Rhythm item",
+        grade=Grade.not_applicable,
         filling_pressure=FillingPressure.elevated,
         rhythm=Rhythm.af,
         criteria=c,
@@ -343,8 +344,8 @@ def case_special():
         pathway=Pathway.not_applicable,
         pathway_reason="moderate or severe mitral stenosis",
         special_situations=(SpecialSituation.mitral_stenosis,),
-        grade=Grade.not_gradable,
-        filling_pressure=FillingPressure.unknown,
+        grade=Grade.not_applicable,
+        filling_pressure=FillingPressure.not_estimated,
         reasoning=("Mitral stenosis is flagged: the standard algorithm does not apply.",),
     )
     return a, measurements_of((), measured(M.mitral_e, 160), measured(M.lavi, 58))
@@ -353,14 +354,15 @@ def case_special():
 #: case name → (builder, literal wording the reader must find on the page)
 CASES = {
     "normal": (case_normal, "Normal diastolic function"),
-    "grade-1": (case_grade_1, "Grade 1 diastolic dysfunction"),
-    "grade-2": (case_grade_2, "Grade 2 diastolic dysfunction"),
-    "grade-3": (case_grade_3, "Grade 3 diastolic dysfunction"),
+    "grade-1": (case_grade_1, "Grade I diastolic dysfunction"),
+    "grade-2": (case_grade_2, "Grade II diastolic dysfunction"),
+    "grade-3": (case_grade_3, "Grade III diastolic dysfunction"),
     "indeterminate": (case_indeterminate, "Diastolic function indeterminate"),
-    "not-gradable": (case_not_gradable, "Not gradable"),
+    "not-gradable": (case_not_gradable, "Diastolic function not gradable"),
     "atrial-fibrillation": (
         case_af,
-        "LV filling pressure elevated · no grade in atrial fibrillation",
+        "Grade not applicable in atrial fibrillation; LV filling pressure elevated by the "
+        "ASE 2025 atrial-fibrillation criteria.",
     ),
     "special-situation": (case_special, "the standard algorithm does not apply"),
 }
@@ -446,6 +448,7 @@ def test_text_has_conclusion_guideline_caution_and_footer(name: str, tmp_path: P
     text = pdf_text(pdf)  # poppler-utils pdftotext, whitespace collapsed
     s, _ = build(name)
     assert CASES[name][1] in text
+    assert headline(s.primary) in text  # the conclusion as the SR and the table say it
     assert GUIDELINE_WORDS[s.primary.guideline] in text
     assert " ".join(CAUTION.split()) in text  # the caution in full
     assert f"{SOFTWARE_NAME} {__version__}" in text
@@ -513,7 +516,7 @@ def test_other_guidelines_and_borderline_shown(tmp_path: Path) -> None:
 
 
 @pytest.mark.external
-def test_overflowing_content_stays_on_one_page(tmp_path: Path) -> None:
+def test_overflowing_content_goes_on_a_second_page_and_nothing_is_cut(tmp_path: Path) -> None:
     s, _ = build("grade-2")
     crowded = s.primary.model_copy(
         update={
@@ -534,17 +537,21 @@ def test_overflowing_content_stays_on_one_page(tmp_path: Path) -> None:
             page_size="Letter",
         )
     )
-    assert pdf_info(pdf)["Pages"] == "1"
+    pages = int(pdf_info(pdf)["Pages"])
+    assert pages >= 2
     text = pdf_text(pdf)
-    assert "more lines: see the result SR" in text
+    for i in range(90):  # every sentence, none cut, none dropped
+        assert f"Reasoning sentence number {i} of many." in text
+    assert "…" not in text
+    assert all(f"Page {n} of {pages}" in text for n in range(1, pages + 1))
     assert " ".join(CAUTION.split()) in text
     assert "not yet assigned" in text  # no result SR UID given
 
 
 @pytest.mark.external
-def test_many_criteria_and_long_texts_stay_on_one_page(tmp_path: Path) -> None:
+def test_many_criteria_and_long_texts_are_all_shown(tmp_path: Path) -> None:
     s, m = build("indeterminate")
-    many = tuple(crit(f"x.{i}", f"step {i // 5}", M.lavi, C.gt, 34, 20.0 + i) for i in range(60))
+    many = tuple(crit(f"x.{i}", f"step {i // 5}", M.lavi, C.gt, 34 + i, 20.0) for i in range(60))
     long = "a very long pathway reason " * 40
     crowded = s.primary.model_copy(
         update={
@@ -556,10 +563,12 @@ def test_many_criteria_and_long_texts_stay_on_one_page(tmp_path: Path) -> None:
     )
     pdf = tmp_path / "summary.pdf"
     pdf.write_bytes(render_summary_pdf(AssessmentSet(primary=crowded), m, IDENTITY))
-    assert pdf_info(pdf)["Pages"] == "1"
     text = pdf_text(pdf)
-    assert "more criteria: see the result SR" in text
-    assert " ".join(CAUTION.split()) in text  # never cut
+    for i in range(60):
+        assert f"LAVI > {34 + i}" in text
+    assert " ".join(long.split()) in text  # wrapped over several lines, not cut
+    assert "…" not in text
+    assert " ".join(CAUTION.split()) in text
     assert RESULT_UID not in text and "not yet assigned" in text
 
 
@@ -731,46 +740,3 @@ def test_age_from_birth_and_study_date_when_absent(tmp_path: Path) -> None:
     pdf.write_bytes(render_summary_pdf(s, m, ident))
     # born 1958-03-12, study 2026-11-30: 68 full years
     assert re.search(r"1958-03-12 · 68 years", pdf_text(pdf))
-
-
-def write_doc_pictures(folder: Path, dpi: int = 70) -> list[Path]:
-    """Render every case to ``folder/summary-<case>.png`` (for reviewers; see
-    docs/pdf-summary.md)."""
-    folder.mkdir(parents=True, exist_ok=True)
-    written = []
-    for name in CASES:
-        pdf = folder / f"summary-{name}.pdf"
-        pdf.write_bytes(render(name))
-        try:
-            subprocess.run(
-                [
-                    tool("pdftoppm"),
-                    "-r",
-                    str(dpi),
-                    "-f",
-                    "1",
-                    "-l",
-                    "1",
-                    "-png",
-                    "-singlefile",
-                    str(pdf),
-                    str(folder / f"summary-{name}"),
-                ],
-                check=True,
-                timeout=60,
-            )
-        finally:
-            pdf.unlink()
-        png = folder / f"summary-{name}.png"
-        with Image.open(png) as img:  # a 64-colour palette keeps the pictures small
-            small = img.convert("RGB").quantize(colors=64, method=Image.Quantize.MEDIANCUT)
-        small.save(png, optimize=True)
-        written.append(png)
-    return written
-
-
-if __name__ == "__main__":  # python tests/test_summary_pdf.py docs
-    import sys
-
-    for p in write_doc_pictures(Path(sys.argv[1] if len(sys.argv) > 1 else "docs")):
-        print(p)

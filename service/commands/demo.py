@@ -85,7 +85,7 @@ def print_rows(rows: list[dict], scenarios: dict[str, str] | None = None) -> Non
     """One line per study; with ``scenarios`` (study UID -> what the demo case shows) a
     column naming each row's scenario."""
     scenarios = scenarios or {}
-    headers = ("patient", "study", "guideline", "grade", "filling pressure", "result instance")
+    headers = ("patient", "study", "guideline", "outcome", "filling pressure", "result instance")
     if scenarios:
         headers = ("scenario", *headers)
     table = []
@@ -94,7 +94,7 @@ def print_rows(rows: list[dict], scenarios: dict[str, str] | None = None) -> Non
             f"{r['patient_name'].replace('^', ', ')} ({r['patient_id']})",
             "…" + r["study_uid"][-12:],
             r["guideline"] or "-",
-            r["grade"] or r["status"],
+            r.get("outcome") or r["grade"] or r["status"],
             r["filling_pressure"] or "-",
             r["result_uid"] or (r.get("reason") or "-"),
         )

@@ -16,10 +16,11 @@ from typing import Any, NamedTuple
 from pydicom import Dataset
 
 from service.commands.columns import print_columns
-from service.model import CAUTION
+from service.model import CAUTION, Measure
 from service.options import add_grading_arguments, grade_options_from_args
 from service.pipeline import GradeOptions, GradeStatus, StudyOutcome, grade_study
 from service.sr.encode import file_bytes
+from service.wording import headline, measure_name
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -410,7 +411,7 @@ def _study_row(
         )
         if summary is not None:
             target = base.with_name(base.name + ".summary.dcm")
-            summary.save_as(target, enforce_file_format=True)
+            target.write_bytes(file_bytes(summary))
             row["summary"] = str(target)
     return row
 
@@ -444,6 +445,8 @@ def empty_row(path: Path, options: GradeOptions, inputs: Sequence[Path] = ()) ->
         "status": None,
         "reason": None,
         "guideline": options.guideline.value,
+        "outcome": None,
+        "conclusion": None,
         "pathway": None,
         "grade": None,
         "filling_pressure": None,
@@ -471,12 +474,15 @@ def outcome_row(
         status=outcome.status.value,
         reason=outcome.reason or None,
         guideline=a.guideline.value,
+        outcome=a.outcome.value,
+        conclusion=headline(a),
         pathway=a.pathway.value,
         pathway_reason=a.pathway_reason,
         grade=a.grade.value,
         filling_pressure=a.filling_pressure.value,
         rhythm=a.rhythm.value,
         borderline=[b.model_dump(mode="json") for b in a.borderline],
+        readings=[r.model_dump(mode="json") for r in a.readings],
         measurements={
             name.value: {
                 "value": mv.value,
@@ -496,13 +502,13 @@ def outcome_row(
         caution=a.caution,
     )
     if outcome.assessments and outcome.assessments.others:
-        row["outcome"] = a.outcome.value
         row["compared"] = [
             {
                 "guideline": o.guideline.value,
+                "outcome": o.outcome.value,
+                "conclusion": headline(o),
                 "pathway": o.pathway.value,
                 "grade": o.grade.value,
-                "outcome": o.outcome.value,
                 "filling_pressure": o.filling_pressure.value,
             }
             for o in outcome.assessments.others
@@ -516,35 +522,46 @@ def _input_cell(row: dict) -> str:
     return row["input"] + (f" (+{more} more of the study)" if more > 0 else "")
 
 
+def table_note(row: dict) -> str:
+    """The last column: the conclusion as the result SR and the summary say it (and the
+    borderline measures by their clinical names), or the reason a file was not graded."""
+    if not row.get("conclusion"):
+        return row.get("reason") or ""
+    note = row["conclusion"]
+    if row.get("borderline"):
+        names = ", ".join(
+            dict.fromkeys(measure_name(Measure(b["measure"])) for b in row["borderline"])
+        )
+        note += f" Borderline: {names}."
+    return note
+
+
 def print_table(rows: list[dict], *, compare: bool = False, outputs: bool = False) -> None:
-    """The table; with ``compare`` a column with each other guideline's outcome and, under the
-    table, each study where the guidelines differ in plain words; with ``outputs`` where each
-    result went."""
-    headers = ["input", "status", "grade", "filling pressure", "pathway"]
+    """The table: each row's outcome token and filling pressure, and the conclusion in the
+    words of the result SR and the summary (docs/vocabulary.md); with ``compare`` a column with
+    each other guideline's outcome and, under the table, each study where the guidelines
+    differ in plain words; with ``outputs`` where each result went."""
+    headers = ["input", "status", "outcome", "filling pressure"]
     if compare:
         headers.append("other guidelines")
     if outputs:
         headers.append("result")
-    headers.append("note")
+    headers.append("conclusion")
     table = []
     for r in rows:
-        note = r.get("reason") or ""
-        if r.get("borderline"):
-            note = "borderline: " + ", ".join(b["measure"] for b in r["borderline"])
         cells = [
             _input_cell(r),
             r["status"] or "",
-            r["grade"] or "-",
+            r.get("outcome") or "-",
             r["filling_pressure"] or "-",
-            r["pathway"] or "-",
         ]
         if compare:
             others = r.get("compared") or ()
             cells.append(", ".join(f"{o['guideline']}: {o['outcome']}" for o in others) or "-")
         if outputs:
             cells.append(r.get("output") or "-")
-        table.append((*cells, note))
-    print_columns(headers, table, pad_last=False)  # the note column is free text
+        table.append((*cells, table_note(r)))
+    print_columns(headers, table, pad_last=False)  # the conclusion column is free text
     differing = [r for r in rows if r.get("disagreements")]
     if compare:
         print()

@@ -192,6 +192,7 @@ def _recent(journal: Any, s: dict[str, Any]) -> dict[str, Any]:
         "study_uid": s["study_uid"],
         "state": s["state"],
         "calling_ae": s["calling_ae"],
+        "outcome": journal.outcome_of(s["result_uid"]) if s["result_uid"] else None,
         "grade": (result or {}).get("grade"),
         "filling_pressure": (result or {}).get("filling_pressure"),
         "result_uid": s["result_uid"],

@@ -86,7 +86,7 @@ CASES: tuple[DemoCase, ...] = (
     ),
     DemoCase(
         key="grade-1",
-        title="Grade 1, reduced LVEF (TID 5200 sections, repeats averaged)",
+        title="Grade I, reduced LVEF (TID 5200 sections, repeats averaged)",
         expected_2016=Grade.grade_1,
         patient=Patient(
             name="Penrose^Aldous", id="HV100202", birth_date="19590103", sex="M", age="067Y"
@@ -107,7 +107,7 @@ CASES: tuple[DemoCase, ...] = (
     ),
     DemoCase(
         key="grade-2",
-        title="Grade 2, normal LVEF (post-coordinated and site-private codes)",
+        title="Grade II, normal LVEF (post-coordinated and site-private codes)",
         expected_2016=Grade.grade_2,
         patient=Patient(
             name="Quillfeather^Noor", id="HV100203", birth_date="19550719", sex="F", age="071Y"
@@ -125,7 +125,7 @@ CASES: tuple[DemoCase, ...] = (
     ),
     DemoCase(
         key="grade-3",
-        title="Grade 3, reduced LVEF (restrictive filling; E in m/s, DT in s)",
+        title="Grade III, reduced LVEF (restrictive filling; E in m/s, DT in s)",
         expected_2016=Grade.grade_3,
         patient=Patient(
             name="Okonkwo^Bram", id="HV100204", birth_date="19680227", sex="M", age="058Y"
@@ -163,7 +163,7 @@ CASES: tuple[DemoCase, ...] = (
     ),
     DemoCase(
         key="borderline",
-        title="Grade 1 with a borderline average E/e′ (13.6 against > 14)",
+        title="Grade I with a borderline average E/e′ (13.6 against > 14)",
         expected_2016=Grade.grade_1,
         patient=Patient(
             name="Abernethy^Colm", id="HV100206", birth_date="19500914", sex="M", age="076Y"
@@ -197,7 +197,7 @@ CASES: tuple[DemoCase, ...] = (
     DemoCase(
         key="atrial-fibrillation",
         title="Atrial fibrillation stated by a coded Cardiac Rhythm item",
-        expected_2016=Grade.not_gradable,
+        expected_2016=Grade.not_applicable,
         patient=Patient(
             name="Vasquez-Hale^Ruben", id="HV100208", birth_date="19470306", sex="M", age="079Y"
         ),

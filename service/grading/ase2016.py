@@ -3,8 +3,8 @@
 Nagueh SF et al., J Am Soc Echocardiogr 2016;29:277-314.  Pure functions: Measurements and
 Context in, Assessment out.  Cut-offs come from :mod:`service.grading.thresholds_ase2016`.
 
-Decisions where the paper is silent or ambiguous carry the identifiers of the project's
-reference notes (I-16-x).
+Decisions where the paper is silent or ambiguous are recorded as readings
+(:mod:`service.grading.readings`, identifiers I-16-x), never inside a sentence.
 """
 
 from __future__ import annotations
@@ -18,7 +18,7 @@ from service.grading.criteria import (
     tally,
     value_of,
 )
-from service.grading.trace import Trace
+from service.grading.trace import Trace, verdict_words_of
 from service.model import (
     CAUTION,
     Assessment,
@@ -32,6 +32,7 @@ from service.model import (
     Rhythm,
     Verdict,
 )
+from service.wording import ONE_E_PRIME_CRITERION
 
 RULE_SET_VERSION = "ase-eacvi-2016/1"
 CITATION = (
@@ -143,8 +144,8 @@ def _assess(
         trace.reasoning.append(reason)
         if not _has_any_b_input(measurements):
             trace.reasoning.append("No measurement used by Algorithm B is available.")
-            grade, pressure = Grade.not_gradable, FillingPressure.unknown
-            trace.note("Not gradable: E/A, mitral E, E/e′, TR velocity and LAVI are all missing.")
+            grade, pressure = Grade.not_gradable, FillingPressure.not_estimated
+            trace.note("E/A, mitral E, E/e′, TR velocity and LAVI are all missing.")
         else:
             grade, pressure = _algorithm_b(trace, lvef_depressed)
     else:
@@ -172,6 +173,7 @@ def _assess(
         criteria=tuple(trace.criteria),
         reasoning=tuple(trace.reasoning),
         notes=tuple(trace.notes),
+        readings=tuple(trace.readings),
     )
 
 
@@ -197,8 +199,8 @@ def _has_any_b_input(m: Measurements) -> bool:
 
 def _e_over_e_prime(trace: Trace, prefix: str, step: str) -> Verdict:
     """Average E/e′ > 14; when the average is unavailable, the single-site cut-offs
-    septal > 15 / lateral > 13 (I-16-3).  Both single-site ratios without an average: either
-    site met counts (OR, as for e′ in I-16-2)."""
+    septal > 15 / lateral > 13 (reading I-16-3).  Both single-site ratios without an average:
+    either site met counts (OR, as for e′, reading I-16-2)."""
     m = trace.measurements
     if value_of(m, Measure.e_e_prime_average) is not None:
         return trace.check(T.E_E_PRIME_AVERAGE, f"{prefix}.e_e_prime_average", step).verdict
@@ -214,7 +216,10 @@ def _e_over_e_prime(trace: Trace, prefix: str, step: str) -> Verdict:
         f"Average E/e′ was not available; {names} used with the single-site cut-off "
         "(septal > 15, lateral > 13)."
     )
-    return any_of(trace.check(row, f"{prefix}.{row.key}", step).verdict for row in singles)
+    group = "septal or lateral E/e′: one criterion" if len(singles) == 2 else ""
+    return any_of(
+        trace.check(row, f"{prefix}.{row.key}", step, group=group).verdict for row in singles
+    )
 
 
 # ---------------------------------------------------------------------------------------------
@@ -226,14 +231,20 @@ def _algorithm_a(
     trace: Trace, context: Context, lvef_depressed: bool
 ) -> tuple[Grade, FillingPressure]:
     p = "ase16.a"
+    one = ONE_E_PRIME_CRITERION
+    e_prime = any_of(
+        (
+            trace.check(T.E_PRIME_SEPTAL, f"{p}.e_prime_septal", STEP_A, group=one).verdict,
+            trace.check(T.E_PRIME_LATERAL, f"{p}.e_prime_lateral", STEP_A, group=one).verdict,
+        )
+    )
+    trace.say(f"{one[:1].upper()}{one[1:]}, {verdict_words_of(e_prime)}.")
+    known = [c.verdict for c in trace.criteria[-2:] if c.verdict is not Verdict.unavailable]
+    if len(known) == 1 or len(set(known)) > 1:  # one site, or the sites differ: "or" decides
+        trace.reading("I-16-2")
     votes = [
         _e_over_e_prime(trace, p, STEP_A),
-        any_of(
-            (
-                trace.check(T.E_PRIME_SEPTAL, f"{p}.e_prime_septal", STEP_A).verdict,
-                trace.check(T.E_PRIME_LATERAL, f"{p}.e_prime_lateral", STEP_A).verdict,
-            )
-        ),
+        e_prime,
         trace.check(T.TR_VELOCITY, f"{p}.tr_peak_velocity", STEP_A).verdict,
         trace.check(T.LAVI, f"{p}.lavi", STEP_A).verdict,
     ]
@@ -242,22 +253,24 @@ def _algorithm_a(
     if missing:
         trace.note(f"Algorithm A criteria not available: {', '.join(missing)}.")
     t = tally(votes)
+    if 0 < t.available < 4:
+        trace.reading("I-16-1")
     if t.available == 0:
         trace.reasoning.append("Algorithm A: none of the 4 criteria is available; not gradable.")
-        return Grade.not_gradable, FillingPressure.unknown
+        return Grade.not_gradable, FillingPressure.not_estimated
     need = max(1, context.min_criteria_available)
     if t.available < need:
         trace.reasoning.append(
             f"Algorithm A: only {t.available} of 4 criteria available, at least {need} "
-            "required; not gradable (I-16-1)."
+            "required; not gradable."
         )
-        return Grade.not_gradable, FillingPressure.unknown
+        return Grade.not_gradable, FillingPressure.not_estimated
     counted = f"{t.met} of {t.available} available criteria met"
     if 2 * t.met > t.available:
         trace.reasoning.append(
             f"Algorithm A: {counted} (more than half): diastolic dysfunction present."
         )
-        trace.reasoning.append("Dysfunction present by Algorithm A; graded by Algorithm B.")
+        trace.reasoning.append("Dysfunction present; Algorithm B (Figure 8B) grades it.")
         return _algorithm_b(trace, lvef_depressed)
     if 2 * t.met == t.available:
         trace.reasoning.append(
@@ -265,8 +278,9 @@ def _algorithm_a(
         )
         trace.note(
             "Indeterminate by Algorithm A: ASE/EACVI 2016 suggests a diastolic stress test "
-            "in symptomatic patients (I-16-8)."
+            "in symptomatic patients."
         )
+        trace.reading("I-16-8")
         return _INDETERMINATE
     trace.reasoning.append(f"Algorithm A: {counted} (less than half): normal diastolic function.")
     return Grade.normal, FillingPressure.normal
@@ -282,20 +296,26 @@ def _algorithm_b(trace: Trace, lvef_depressed: bool) -> _Result:
     ea_low = trace.check(T.E_A_LOW, f"{p}.e_a_ratio_low", STEP_B1)
     e_low = trace.check(T.E_LOW, f"{p}.mitral_e_low", STEP_B1)
     ea_high = trace.check(T.E_A_HIGH, f"{p}.e_a_ratio_high", STEP_B1)
+    # E/A exactly on a branch of Figure 8B: the figure, not the paper's table, decides
+    if ea_low.value == T.E_A_LOW.value:
+        trace.reading("I-16-4")
+    if ea_high.value == T.E_A_HIGH.value:
+        trace.reading("I-16-5")
 
     if ea_low.verdict is Verdict.unavailable:
         trace.reasoning.append(
             "Algorithm B: E/A is not available, so the algorithm cannot start; grade and "
-            "filling pressure indeterminate (I-16-9)."
+            "filling pressure indeterminate."
         )
+        trace.reading("I-16-9")
         trace.note("E/A not available (A wave missing or E-A fusion): grade indeterminate.")
         return _INDETERMINATE
     if ea_high.verdict is Verdict.met:
-        trace.reasoning.append("Algorithm B: E/A ≥ 2: grade 3 with elevated filling pressure.")
+        trace.reasoning.append("Algorithm B: E/A ≥ 2: grade III, elevated filling pressure.")
         return _GRADE_3
     if ea_low.verdict is Verdict.met and e_low.verdict is Verdict.met:
         trace.reasoning.append(
-            "Algorithm B: E/A ≤ 0.8 and E ≤ 50 cm/s: grade 1 with normal filling pressure."
+            "Algorithm B: E/A ≤ 0.8 and E ≤ 50 cm/s: grade I, normal filling pressure."
         )
         return _GRADE_1
     if ea_low.verdict is Verdict.met and e_low.verdict is Verdict.unavailable:
@@ -308,14 +328,14 @@ def _algorithm_b(trace: Trace, lvef_depressed: bool) -> _Result:
         result = _step_2(trace, lvef_depressed)
         if result == _GRADE_1:
             trace.reasoning.append(
-                "Grade 1 with normal filling pressure whether E is above or below 50 cm/s."
+                "Grade I, normal filling pressure, whether E is above or below 50 cm/s."
             )
             return _GRADE_1
         trace.reasoning.append(
             "Without mitral E the two readings of step 1 disagree; grade and filling pressure "
             "indeterminate."
         )
-        trace.note("Mitral E not available: needed to decide between grade 1 and step 2.")
+        trace.note("Mitral E not available: needed to decide between grade I and step 2.")
         return _INDETERMINATE
     trace.reasoning.append("Algorithm B: E/A between the branches; step 2 applies.")
     return _step_2(trace, lvef_depressed)
@@ -336,34 +356,33 @@ def _step_2(trace: Trace, lvef_depressed: bool) -> _Result:
     counted = f"{t.met} of {t.available} available criteria met"
     if t.available == 3:
         if t.met >= 2:
-            trace.reasoning.append(f"Step 2: {counted}: grade 2 with elevated filling pressure.")
+            trace.reasoning.append(f"Step 2: {counted}: grade II, elevated filling pressure.")
             return _GRADE_2
-        trace.reasoning.append(f"Step 2: {counted}: grade 1 with normal filling pressure.")
+        trace.reasoning.append(f"Step 2: {counted}: grade I, normal filling pressure.")
         return _GRADE_1
     if t.available == 2:
         if t.met == 2:
-            trace.reasoning.append(f"Step 2: {counted}: grade 2 with elevated filling pressure.")
+            trace.reasoning.append(f"Step 2: {counted}: grade II, elevated filling pressure.")
             return _GRADE_2
         if t.met == 0:
-            trace.reasoning.append(f"Step 2: {counted}: grade 1 with normal filling pressure.")
+            trace.reasoning.append(f"Step 2: {counted}: grade I, normal filling pressure.")
             return _GRADE_1
         pv = value_of(trace.measurements, Measure.pv_s_d_ratio)
         if lvef_depressed and pv is not None:
             trace.reasoning.append(
-                f"Step 2: {counted} (split); with depressed LVEF, pulmonary-vein S/D is the "
-                "third criterion (I-16-6)."
+                f"Step 2: {counted} (split); with reduced LVEF, pulmonary-vein S/D is the "
+                "third criterion."
             )
+            trace.reading("I-16-6")
             c = trace.check(T.PV_S_D, f"{p}.pv_s_d_ratio", STEP_B2)
             if c.verdict is Verdict.met:
-                trace.reasoning.append("Step 2: grade 2 with elevated filling pressure.")
+                trace.reasoning.append("Step 2: grade II, elevated filling pressure.")
                 return _GRADE_2
-            trace.reasoning.append("Step 2: grade 1 with normal filling pressure.")
+            trace.reasoning.append("Step 2: grade I, normal filling pressure.")
             return _GRADE_1
         if pv is not None:
-            trace.note(
-                "Pulmonary-vein S/D was not used: it substitutes only when LVEF is depressed "
-                "(I-16-6)."
-            )
+            trace.note("Pulmonary-vein S/D was not used: it substitutes only when LVEF is reduced.")
+            trace.reading("I-16-6")
         trace.reasoning.append(
             f"Step 2: {counted} (split) and no third criterion: grade and filling pressure "
             "indeterminate."
@@ -371,7 +390,8 @@ def _step_2(trace: Trace, lvef_depressed: bool) -> _Result:
         return _INDETERMINATE
     trace.reasoning.append(
         f"Step 2: only {t.available} of 3 criteria available: grade and filling pressure "
-        "indeterminate (I-16-7)."
+        "indeterminate."
     )
+    trace.reading("I-16-7")
     trace.note("Algorithm B step 2 needs at least 2 of E/e′, TR velocity and LAVI.")
     return _INDETERMINATE

@@ -7,10 +7,11 @@ Cut-offs come from :mod:`service.grading.thresholds_ase2025`.
 
 Step 1 classifies left atrial pressure (LAP) from three core indices (e′, E/e′, TR velocity or
 PASP) when they are concordant; step 2 adjudicates discordant or incomplete cases with the
-supplementary markers (LA reservoir strain, PV S/D, LAVI, IVRT).  Raised LAP is grade 3 with
-E/A ≥ 2, else grade 2; normal LAP with reduced e′ is grade 1.  Every point where the published
-rule is ambiguous carries its I-25-x identifier and, where the project's reference offers an
-alternative reading, a switch in :class:`Ase2025Options` (defaults = the reference's reading).
+supplementary markers (LA reservoir strain, PV S/D, LAVI, IVRT).  Raised LAP is grade III with
+E/A ≥ 2, else grade II; normal LAP with reduced e′ is grade I.  Every point where the published
+rule is ambiguous is recorded as a reading (identifier I-25-x, :mod:`service.grading.readings`)
+and, where the project's reference offers an alternative reading, is a switch in
+:class:`Ase2025Options` (defaults = the reference's reading).
 """
 
 from __future__ import annotations
@@ -125,7 +126,7 @@ def _assess(measurements: Measurements, context: Context, opts: Ase2025Options) 
         )
     trace.note_unstated_rhythm(context)
     rhythm = "sinus rhythm" if context.rhythm is Rhythm.sinus else "sinus rhythm assumed"
-    if context.rhythm_source:
+    if context.rhythm_source and context.rhythm is Rhythm.sinus:
         rhythm += f" ({context.rhythm_source})"
     reason = (
         f"{rhythm}, no special situation: the ASE 2025 general algorithm (Figure 3) applies at "
@@ -142,6 +143,7 @@ def _assess(measurements: Measurements, context: Context, opts: Ase2025Options) 
         criteria=tuple(trace.criteria),
         reasoning=tuple(trace.reasoning),
         notes=tuple(trace.notes),
+        readings=tuple(trace.readings),
     )
 
 
@@ -157,14 +159,17 @@ def _sites(
     lateral: Threshold,
     rule: SitesRule,
     prefix: str,
-    ambiguity: str,
+    group: str,
 ) -> Verdict:
     """Average preferred (site cut-offs as fallback, either site counting) or any site."""
     m = trace.measurements
     rows = (average, septal, lateral)
     if rule == "any-site":
         present = [row for row in rows if value_of(m, row.measure) is not None] or [average]
-        return any_of(trace.check(row, f"{prefix}.{row.key}", STEP_1).verdict for row in present)
+        g = group if len(present) > 1 else ""
+        return any_of(
+            trace.check(row, f"{prefix}.{row.key}", STEP_1, group=g).verdict for row in present
+        )
     if value_of(m, average.measure) is not None:
         return trace.check(average, f"{prefix}.{average.key}", STEP_1).verdict
     singles = [row for row in (septal, lateral) if value_of(m, row.measure) is not None]
@@ -172,20 +177,24 @@ def _sites(
         return trace.check(average, f"{prefix}.{average.key}", STEP_1).verdict
     names = " and ".join(row.name for row in singles)
     trace.note(
-        f"{average.name} was not available; {names} used with the site cut-off "
-        f"{'(either site counts) ' if len(singles) == 2 else ''}({ambiguity})."
+        f"{average.name} was not available; {names} used with the site cut-off"
+        f"{' (either site counts)' if len(singles) == 2 else ''}."
     )
-    return any_of(trace.check(row, f"{prefix}.{row.key}", STEP_1).verdict for row in singles)
+    g = group if len(singles) == 2 else ""
+    return any_of(
+        trace.check(row, f"{prefix}.{row.key}", STEP_1, group=g).verdict for row in singles
+    )
 
 
 def _tr_or_pasp(trace: Trace, rule: str, prefix: str) -> Verdict:
     m = trace.measurements
     if rule == "tr-preferred" and value_of(m, Measure.tr_peak_velocity) is not None:
         return trace.check(T.TR_VELOCITY, f"{prefix}.tr_peak_velocity", STEP_1).verdict
+    one = "TR velocity or PASP: one criterion"
     return any_of(
         (
-            trace.check(T.TR_VELOCITY, f"{prefix}.tr_peak_velocity", STEP_1).verdict,
-            trace.check(T.PASP, f"{prefix}.pasp", STEP_1).verdict,
+            trace.check(T.TR_VELOCITY, f"{prefix}.tr_peak_velocity", STEP_1, group=one).verdict,
+            trace.check(T.PASP, f"{prefix}.pasp", STEP_1, group=one).verdict,
         )
     )
 
@@ -197,6 +206,10 @@ def _tr_or_pasp(trace: Trace, rule: str, prefix: str) -> Verdict:
 
 def _general(trace: Trace, opts: Ase2025Options) -> _Result:
     p = "ase25.s1"
+    # the switch settings in force decide the words of these readings
+    trace.reading("I-25-1", opts.e_prime_sites)
+    trace.reading("I-25-2", opts.e_e_prime_sites)
+    trace.reading("I-25-3", opts.tr_or_pasp)
     e = _sites(
         trace,
         T.E_PRIME_AVERAGE,
@@ -204,7 +217,7 @@ def _general(trace: Trace, opts: Ase2025Options) -> _Result:
         T.E_PRIME_LATERAL,
         opts.e_prime_sites,
         p,
-        "I-25-1",
+        "e′ (average, septal or lateral): one criterion",
     )
     r = _sites(
         trace,
@@ -213,14 +226,14 @@ def _general(trace: Trace, opts: Ase2025Options) -> _Result:
         T.E_E_PRIME_LATERAL,
         opts.e_e_prime_sites,
         p,
-        "I-25-2",
+        "E/e′ (average, septal or lateral): one criterion",
     )
     t = _tr_or_pasp(trace, opts.tr_or_pasp, p)
     lap = _step_1(trace, opts, e, r, t)
     if lap is None:
         lap = _step_2(trace, opts)
         if lap is None:
-            return Grade.not_gradable, FillingPressure.unknown
+            return Grade.not_gradable, FillingPressure.not_estimated
     return _grade(trace, lap, e)
 
 
@@ -231,7 +244,8 @@ def _words(v: Verdict, abnormal: str, normal: str) -> str:
 def _step_1(
     trace: Trace, opts: Ase2025Options, e: Verdict, r: Verdict, t: Verdict
 ) -> FillingPressure | None:
-    """LAP from concordant step-1 indices, or None when step 2 must decide (I-25-4, I-25-6)."""
+    """LAP from concordant step-1 indices, or None when step 2 must decide (readings I-25-4,
+    I-25-6)."""
     pattern = (
         f"e′ {_words(e, 'reduced', 'normal')}, E/e′ {_words(r, 'raised', 'normal')}, "
         f"TR velocity/PASP {_words(t, 'raised', 'normal')}"
@@ -246,7 +260,8 @@ def _step_1(
             return FillingPressure.elevated
         if (e, r, t) == (Verdict.met, Verdict.not_met, Verdict.not_met):
             return _reduced_e_prime_alone(trace, opts, pattern)
-        trace.say(f"Step 1: {pattern}: discordant; step 2 decides (I-25-4).")
+        trace.say(f"Step 1: {pattern}: discordant; step 2 decides.")
+        trace.reading("I-25-4")
         return None
     if opts.incomplete_step_1 == "accept-concordant-available" and len(known) >= 2:
         pressure_markers = [v for v in (r, t) if v is not Verdict.unavailable]
@@ -254,17 +269,20 @@ def _step_1(
             if e is Verdict.met:
                 return _reduced_e_prime_alone(trace, opts, pattern)
             trace.say(
-                f"Step 1: {pattern}: incomplete but the available indices are concordant "
-                "(normal LAP; I-25-6 switch)."
+                f"Step 1: {pattern}: incomplete but the available indices are concordant: "
+                "normal LAP."
             )
+            trace.reading("I-25-6", opts.incomplete_step_1)
             return FillingPressure.normal
         if pressure_markers and all(v is Verdict.met for v in known):
             trace.say(
-                f"Step 1: {pattern}: incomplete but the available indices are concordant "
-                "(raised LAP; I-25-6 switch)."
+                f"Step 1: {pattern}: incomplete but the available indices are concordant: "
+                "raised LAP."
             )
+            trace.reading("I-25-6", opts.incomplete_step_1)
             return FillingPressure.elevated
-    trace.say(f"Step 1: {pattern}: incomplete; step 2 decides (I-25-6).")
+    trace.say(f"Step 1: {pattern}: incomplete; step 2 decides.")
+    trace.reading("I-25-6", opts.incomplete_step_1)
     missing = [
         name
         for name, v in zip(("e′", "E/e′", "TR velocity/PASP"), (e, r, t), strict=True)
@@ -277,14 +295,17 @@ def _step_1(
 def _reduced_e_prime_alone(
     trace: Trace, opts: Ase2025Options, pattern: str
 ) -> FillingPressure | None:
-    # I-25-4 (reference reading): reduced e′ with normal E/e′ and TR is normal LAP, grade 1
+    # reading I-25-4: reduced e′ with normal E/e′ and TR is normal LAP, grade I
     trace.say(f"Step 1: {pattern}: impaired relaxation with normal LAP markers, normal LAP.")
+    trace.reading("I-25-4")
     return FillingPressure.normal
 
 
 def _step_2(trace: Trace, opts: Ase2025Options) -> FillingPressure | None:
-    """Supplementary markers (I-25-5).  None when no index of either step is available."""
+    """Supplementary markers (reading I-25-5).  None when no index of either step is
+    available."""
     p = "ase25.s2"
+    trace.reading("I-25-5", opts.supplementary)
     rows = [T.LA_RESERVOIR_STRAIN, T.PV_S_D, T.LAVI, T.IVRT]  # IVRT an equal marker (reference)
     checked = [(row, trace.check(row, f"{p}.{row.key}", STEP_2)) for row in rows]
     votes = [c.verdict for _, c in checked]
@@ -306,22 +327,22 @@ def _step_2(trace: Trace, opts: Ase2025Options) -> FillingPressure | None:
         lap = FillingPressure.elevated if first.verdict is Verdict.met else FillingPressure.normal
         trace.say(
             f"Step 2: {row.name} is the first available marker and decides: "
-            f"{'raised' if lap is FillingPressure.elevated else 'normal'} LAP (I-25-5 switch)."
+            f"{'raised' if lap is FillingPressure.elevated else 'normal'} LAP."
         )
         return lap
     if opts.supplementary == "majority":
         if 2 * t.met > t.available:
-            trace.say(f"Step 2: {counted} (more than half): raised LAP (I-25-5 switch).")
+            trace.say(f"Step 2: {counted} (more than half): raised LAP.")
             return FillingPressure.elevated
         if 2 * t.met < t.available:
-            trace.say(f"Step 2: {counted} (less than half): normal LAP (I-25-5 switch).")
+            trace.say(f"Step 2: {counted} (less than half): normal LAP.")
             return FillingPressure.normal
-        trace.say(f"Step 2: {counted} (exactly half): LAP indeterminate (I-25-5 switch).")
+        trace.say(f"Step 2: {counted} (exactly half): LAP indeterminate.")
         return FillingPressure.indeterminate
     if t.met >= 1:
-        trace.say(f"Step 2: {counted} (any one suffices): raised LAP (I-25-5).")
+        trace.say(f"Step 2: {counted} (any one suffices): raised LAP.")
         return FillingPressure.elevated
-    trace.say(f"Step 2: {counted}: normal LAP (I-25-5).")
+    trace.say(f"Step 2: {counted}: normal LAP.")
     return FillingPressure.normal
 
 
@@ -331,26 +352,29 @@ def _grade(trace: Trace, lap: FillingPressure, e: Verdict) -> _Result:
         return Grade.indeterminate, FillingPressure.indeterminate
     if lap is FillingPressure.normal:
         if e is Verdict.met:
-            trace.say("Normal LAP with reduced e′: grade 1 (impaired relaxation).")
+            trace.say("Normal LAP with reduced e′: grade I (impaired relaxation).")
             return Grade.grade_1, FillingPressure.normal
         if e is Verdict.not_met:
             trace.say("Normal LAP with normal e′: normal diastolic function.")
             return Grade.normal, FillingPressure.normal
-        trace.say("Normal LAP but e′ is not available: the grade cannot be assigned (I-25-7).")
-        trace.note("Normal LAP; grade not assignable without e′ (normal or grade 1).")
+        trace.say("Normal LAP but e′ is not available: the grade cannot be assigned.")
+        trace.note("Normal LAP; grade not assignable without e′ (normal or grade I).")
+        trace.reading("I-25-7")
         return Grade.indeterminate, FillingPressure.normal
     c = trace.check(T.E_A_HIGH, "ase25.grade.e_a_ratio_high", STEP_GRADE)
     if e is Verdict.not_met:
         trace.note(
             "Raised LAP with normal e′: consider constriction, mitral regurgitation or a "
-            "high-output state (I-25-7)."
+            "high-output state."
         )
+        trace.reading("I-25-7")
     if c.verdict is Verdict.unavailable:
-        trace.say("Raised LAP but E/A is not available: grade 2 or 3 (I-25-8).")
-        trace.note("Raised LAP; E/A needed to tell grade 2 from grade 3.")
+        trace.say("Raised LAP but E/A is not available: grade II or III.")
+        trace.reading("I-25-8")
+        trace.note("Raised LAP; E/A needed to tell grade II from grade III.")
         return Grade.indeterminate, FillingPressure.elevated
     if c.verdict is Verdict.met:
-        trace.say("Raised LAP with E/A ≥ 2: grade 3.")
+        trace.say("Raised LAP with E/A ≥ 2: grade III.")
         return Grade.grade_3, FillingPressure.elevated
-    trace.say("Raised LAP with E/A < 2: grade 2.")
+    trace.say("Raised LAP with E/A < 2: grade II.")
     return Grade.grade_2, FillingPressure.elevated

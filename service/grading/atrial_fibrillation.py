@@ -1,17 +1,18 @@
 """Filling pressure in atrial fibrillation: the AF rules of ASE/EACVI 2016 and of ASE 2025.
 
 In atrial fibrillation neither guideline grades diastolic function; they estimate LV filling
-pressure only.  The result therefore carries pathway "atrial-fibrillation", grade "not-gradable"
-(no grade is defined in AF) and the filling-pressure estimate, with the reasoning
-"AF: filling pressure estimated, no grade given".
+pressure only.  The result therefore carries pathway "atrial-fibrillation", grade
+"not-applicable" (outcome "atrial-fibrillation", never counted as "not gradable") and the
+filling-pressure estimate: elevated, normal or indeterminate by the AF criteria, or not
+estimated when none of them is available.
 
 * ASE/EACVI 2016 (Nagueh SF et al., J Am Soc Echocardiogr 2016;29:277-314, §V.E, p295) lists
   criteria that each support elevated filling pressure but states no rule to combine them
-  (I-16-11).  By default every criterion is reported and the filling pressure is left
+  (reading I-16-11).  By default every criterion is reported and the filling pressure is left
   indeterminate; a switch enables the majority summary the project's reference offers.
 * ASE 2025 (Nagueh SF et al., J Am Soc Echocardiogr 2025;38(7), doi 10.1016/j.echo.2025.03.011,
   AF algorithm) is a two-step rule: four primary criteria, then LA reservoir strain, PV S/D and
-  BMI when exactly two primary criteria are met (I-25-9, I-25-11).
+  BMI when exactly two primary criteria are met (reading I-25-9).
 
 The ASE/EACVI 2016 AF rows are in :mod:`service.grading.thresholds_ase2016` and the ASE 2025
 rows in :mod:`service.grading.thresholds_ase2025` (one cited table per guideline).
@@ -45,30 +46,28 @@ from service.model import (
     Verdict,
 )
 
-NO_GRADE = "AF: filling pressure estimated, no grade given."
-
 
 class Ase2016AfOptions(BaseModel):
     """Switches for the ASE/EACVI 2016 AF criteria."""
 
     model_config = ConfigDict(frozen=True, extra="forbid")
 
-    #: I-16-11: ASE/EACVI 2016 states no rule combining the AF criteria.  "flags-only" (default)
-    #: reports each criterion and leaves the filling pressure indeterminate; "majority" adds the
-    #: reference's optional summary (more than half of the available criteria met: elevated,
-    #: less than half: normal, exactly half: indeterminate).
+    #: reading I-16-11: ASE/EACVI 2016 states no rule combining the AF criteria.  "flags-only"
+    #: (default) reports each criterion and leaves the filling pressure indeterminate;
+    #: "majority" adds the reference's optional summary (more than half of the available
+    #: criteria met: elevated, less than half: normal, exactly half: indeterminate).
     summary: Literal["flags-only", "majority"] = "flags-only"
 
 
 class Ase2025AfOptions(BaseModel):
-    """Switches for the ASE 2025 AF algorithm (I-25-9)."""
+    """Switches for the ASE 2025 AF algorithm (reading I-25-9)."""
 
     model_config = ConfigDict(frozen=True, extra="forbid")
 
     #: step 2 "raised" rule: "two-of-three" (default, reference) or "any-one" positive
     secondary_raised: Literal["two-of-three", "any-one"] = "two-of-three"
     #: availability guard: at most one primary criterion met gives "normal" only when at least
-    #: this many primary criteria are available (default 3, reference I-25-9)
+    #: this many primary criteria are available (default 3, reading I-25-9)
     min_primary_for_normal: int = Field(default=3, ge=0, le=4)
 
 
@@ -111,19 +110,19 @@ def _result(
     rules: str,
     pressure: FillingPressure,
 ) -> Assessment:
-    reason = (
-        f"atrial fibrillation{_rhythm_words(context)}: filling pressure estimated by the {rules}; "
-        "no grade is given in atrial fibrillation"
-    )
+    # the rules applied are named by the conclusion ("... by the ... atrial-fibrillation
+    # criteria"); the reason says where the rhythm came from
+    reason = "atrial fibrillation" + (f", {context.rhythm_source}" if context.rhythm_source else "")
     return Assessment(
         **base_fields(guideline, citation, version, context),
         pathway=Pathway.atrial_fibrillation,
         pathway_reason=reason,
-        grade=Grade.not_gradable,
+        grade=Grade.not_applicable,
         filling_pressure=pressure,
         criteria=tuple(trace.criteria),
-        reasoning=(f"Rhythm: atrial fibrillation{_rhythm_words(context)}.", *trace.reasoning),
+        reasoning=tuple(trace.reasoning),
         notes=tuple(trace.notes),
+        readings=tuple(trace.readings),
     )
 
 
@@ -160,8 +159,10 @@ def assess_2016(
     t = tally(votes)
     counted = f"{t.met} of {t.available} available criteria support elevated filling pressure"
     if t.available == 0:
-        trace.say("None of the AF criteria is available: filling pressure unknown.")
-        pressure = FillingPressure.unknown
+        trace.say(
+            "None of the atrial-fibrillation criteria is available: filling pressure not estimated."
+        )
+        pressure = FillingPressure.not_estimated
     elif opts.summary == "majority":
         if 2 * t.met > t.available:
             pressure, words = FillingPressure.elevated, "more than half: elevated"
@@ -169,14 +170,15 @@ def assess_2016(
             pressure, words = FillingPressure.normal, "less than half: normal"
         else:
             pressure, words = FillingPressure.indeterminate, "exactly half: indeterminate"
-        trace.say(f"{counted} ({words} filling pressure by the majority summary, I-16-11).")
+        trace.say(f"{counted} ({words} filling pressure by the majority of the criteria).")
+        trace.reading("I-16-11", opts.summary)
     else:
         trace.say(
-            f"{counted}. ASE/EACVI 2016 states no rule combining them, so each is reported and "
-            "the filling pressure is not estimated (I-16-11)."
+            f"{counted}; ASE/EACVI 2016 states no rule combining them, so the filling pressure "
+            "is indeterminate."
         )
+        trace.reading("I-16-11", opts.summary)
         pressure = FillingPressure.indeterminate
-    trace.say(NO_GRADE)
     return _result(
         trace,
         context,
@@ -204,7 +206,6 @@ def assess_2025(
     opts = options or Ase2025AfOptions()
     trace = Trace(measurements)
     pressure = _two_step(trace, opts)
-    trace.say(NO_GRADE)
     return _result(
         trace,
         context,
@@ -221,10 +222,11 @@ def _two_step(trace: Trace, opts: Ase2025AfOptions) -> FillingPressure:
     p = "ase25.af"
     e = trace.check(T25.AF_MITRAL_E, f"{p}.mitral_e", s1).verdict
     r = trace.check(T25.AF_E_E_PRIME_SEPTAL, f"{p}.e_e_prime_septal", s1).verdict
+    one = "TR velocity or PASP: one criterion"
     t = any_of(
         (
-            trace.check(T25.AF_TR_VELOCITY, f"{p}.tr_peak_velocity", s1).verdict,
-            trace.check(T25.AF_PASP, f"{p}.pasp", s1).verdict,
+            trace.check(T25.AF_TR_VELOCITY, f"{p}.tr_peak_velocity", s1, group=one).verdict,
+            trace.check(T25.AF_PASP, f"{p}.pasp", s1, group=one).verdict,
         )
     )
     dt = trace.check(T25.AF_DECELERATION_TIME, f"{p}.deceleration_time", s1).verdict
@@ -232,9 +234,10 @@ def _two_step(trace: Trace, opts: Ase2025AfOptions) -> FillingPressure:
     counted = f"{primary.met} of {primary.available} available primary criteria met"
     if primary.available == 0:
         trace.say(
-            "AF step 1: none of the 4 primary criteria is available; filling pressure unknown."
+            "AF step 1: none of the 4 primary criteria is available; filling pressure not "
+            "estimated."
         )
-        return FillingPressure.unknown
+        return FillingPressure.not_estimated
     if primary.met >= 3:
         trace.say(f"AF step 1: {counted} (3 or more): elevated filling pressure.")
         return FillingPressure.elevated
@@ -244,8 +247,9 @@ def _two_step(trace: Trace, opts: Ase2025AfOptions) -> FillingPressure:
             return FillingPressure.normal
         trace.say(
             f"AF step 1: {counted}, but at least {opts.min_primary_for_normal} must be available "
-            "before normal can be called: filling pressure indeterminate (I-25-9)."
+            "before normal can be called: filling pressure indeterminate."
         )
+        trace.reading("I-25-9")
         trace.note("AF step 1: too few primary criteria available to call filling pressure normal.")
         return FillingPressure.indeterminate
     trace.say(f"AF step 1: {counted} (exactly 2): step 2 decides.")
@@ -258,14 +262,15 @@ def _two_step(trace: Trace, opts: Ase2025AfOptions) -> FillingPressure:
     positive, negative = st.met, st.not_met
     summary = f"{positive} positive and {negative} negative of 3 secondary criteria"
     need_raised = 2 if opts.secondary_raised == "two-of-three" else 1
-    need_normal = 2  # two of three negative: normal (reference I-25-9)
+    need_normal = 2  # two of three negative: normal (reading I-25-9)
+    trace.reading("I-25-9")
     if positive >= need_raised:
-        trace.say(f"AF step 2: {summary}: elevated filling pressure (I-25-9).")
+        trace.say(f"AF step 2: {summary}: elevated filling pressure.")
         return FillingPressure.elevated
     if negative >= need_normal:
-        trace.say(f"AF step 2: {summary}: normal filling pressure (I-25-9).")
+        trace.say(f"AF step 2: {summary}: normal filling pressure.")
         return FillingPressure.normal
-    trace.say(f"AF step 2: {summary}: filling pressure indeterminate (I-25-9).")
+    trace.say(f"AF step 2: {summary}: filling pressure indeterminate.")
     if st.available < 3:
         missing = [
             name

@@ -2,9 +2,10 @@
 
 ``assess_all`` runs each implemented rule set, the primary first, and writes one plain-language
 sentence for every other guideline whose grade or filling pressure differs from the primary's,
-naming the criterion that makes the difference where one does (e.g. "ASE/EACVI 2016: grade 1
-(normal filling pressure); ASE 2025: normal function (normal filling pressure) — septal e′ 6.5
-cm/s meets the ASE/EACVI 2016 cut-off (< 7 cm/s) but not the ASE 2025 cut-off (≤ 6 cm/s).").
+naming the criterion that makes the difference where one does (e.g. "ASE/EACVI 2016: grade I
+diastolic dysfunction, LV filling pressure normal; ASE 2025: normal diastolic function, LV
+filling pressure normal — e′ is abnormal by the ASE/EACVI 2016 cut-off (septal e′ 6.5 cm/s
+against < 7 cm/s) but not by the ASE 2025 cut-off (septal e′ 6.5 cm/s against ≤ 6 cm/s).").
 """
 
 from __future__ import annotations
@@ -18,27 +19,18 @@ from service.model import (
     Context,
     Criterion,
     FillingPressure,
-    Grade,
     Guideline,
     Measure,
     Measurements,
     Pathway,
     Verdict,
 )
+from service.wording import outcome_phrase
 
 LABELS: dict[Guideline, str] = {
     Guideline.ase_eacvi_2016: "ASE/EACVI 2016",
     Guideline.ase_2025: "ASE 2025",
     Guideline.bse_2024: "BSE 2024",
-}
-
-_GRADE_WORDS: dict[Grade, str] = {
-    Grade.normal: "normal function",
-    Grade.grade_1: "grade 1",
-    Grade.grade_2: "grade 2",
-    Grade.grade_3: "grade 3",
-    Grade.indeterminate: "grade indeterminate",
-    Grade.not_gradable: "no grade",
 }
 
 _HIGH = {Comparison.gt, Comparison.ge}
@@ -67,14 +59,8 @@ def assess_all(
 
 
 def outcome_words(a: Assessment) -> str:
-    """E.g. "grade 2 (elevated filling pressure)"."""
-    pressure = {
-        FillingPressure.normal: "normal filling pressure",
-        FillingPressure.elevated: "elevated filling pressure",
-        FillingPressure.indeterminate: "filling pressure indeterminate",
-        FillingPressure.unknown: "filling pressure unknown",
-    }[a.filling_pressure]
-    return f"{_GRADE_WORDS[a.grade]} ({pressure})"
+    """E.g. "grade II diastolic dysfunction, LV filling pressure elevated"."""
+    return outcome_phrase(a)
 
 
 def disagreement(primary: Assessment, other: Assessment, measurements: Measurements) -> str | None:
@@ -92,8 +78,12 @@ def _because(primary: Assessment, other: Assessment) -> str:
         primary.pathway in _OUTSIDE_STANDARD or other.pathway in _OUTSIDE_STANDARD
     ):
         return f"{p}: {primary.pathway_reason}; {o}: {other.pathway_reason}"
-    reasons = [r for a in (primary, other) if (r := _why_undecided(a))]
-    reasons += _differing_groups(primary, other)
+    # a finding the two cut-offs judge differently explains the difference; failing that, the
+    # reasoning that left a result undecided (e.g. no rule combining the criteria), then the
+    # findings only one of them uses
+    reasons = _differing_groups(primary, other)
+    if not reasons:
+        reasons = [r for a in (primary, other) if (r := _why_undecided(a))]
     if len(reasons) < _MAX_REASONS:
         only = _used_by_one(primary, other) + _used_by_one(other, primary)
         only.sort(key=lambda pair: not pair[0])  # abnormal findings first
@@ -120,11 +110,11 @@ GROUPS: dict[Measure, str] = {
 
 def _why_undecided(a: Assessment) -> str | None:
     """The reasoning sentence that left an indeterminate result undecided, if any."""
-    if a.filling_pressure not in (FillingPressure.indeterminate, FillingPressure.unknown):
+    if a.filling_pressure not in (FillingPressure.indeterminate, FillingPressure.not_estimated):
         return None
     for sentence in reversed(a.reasoning):
         low = sentence.lower()
-        if any(k in low for k in ("indeterminate", "not estimated", "not gradable", "unknown")):
+        if any(k in low for k in ("indeterminate", "not estimated", "not gradable")):
             text = sentence.rstrip(".")
             return f"{LABELS[a.guideline]}: {text[:1].lower()}{text[1:]}"
     return None

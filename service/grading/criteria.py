@@ -9,6 +9,7 @@ its cut-offs in one cited table of :class:`Threshold` rows and uses these helper
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 
@@ -23,6 +24,7 @@ from service.model import (
     Measurements,
     Verdict,
 )
+from service.wording import measure_name, outcome_phrase
 
 #: how comparisons read in plain text
 SYMBOLS: dict[Comparison, str] = {
@@ -45,8 +47,11 @@ class Threshold:
     unit: str  # unit as shown to readers ("" for ratios)
     citation: str  # e.g. "Nagueh 2016 JASE 29:277, Fig 8A"
     #: evidence behind the row: "R" recalled from the primary paper, "V" confirmed in a retrieved
-    #: source, "R+V" both, "I" an interpretation (with its I-x identifier in the citation)
+    #: source, "R+V" both, "I" an interpretation (see ``reading``)
     evidence: str
+    #: identifier of the project's reading of an ambiguity that the row depends on
+    #: (:mod:`service.grading.readings`), "" when the row is as published
+    reading: str = ""
 
     def label(self, threshold: float | None = None) -> str:
         """Plain words, e.g. "Average E/e′ > 14"."""
@@ -136,12 +141,21 @@ def describe(criterion: Criterion, name: str, unit: str) -> str:
     """One reasoning sentence for an evaluated criterion, e.g.
     "Average E/e′ 15.2 against > 14: met."."""
     if criterion.value is None:
-        return f"{name} not available; criterion {criterion.label} not evaluated."
+        return f"{criterion.label}: not evaluated, {name[:1].lower()}{name[1:]} not available."
     u = f" {unit}" if unit else ""
     return (
         f"{name} {fmt(criterion.value)}{u} against {SYMBOLS[criterion.comparison]} "
         f"{fmt(criterion.threshold)}{u}: {verdict_words(criterion)}."
     )
+
+
+#: matches the sentences :func:`describe` writes (and the one saying that several rows count as
+#: one criterion), so a reader that shows the criteria themselves can leave them out
+CRITERION_SENTENCE = re.compile(
+    r"^.+ against [<>≤≥] \S+.*: (met|not met|unavailable)\.$"
+    r"|^.+: not evaluated, .+ not available\.$"
+    r"|^.+: one criterion, (met|not met|not available)\.$"
+)
 
 
 def verdict_words(criterion: Criterion) -> str:
@@ -219,13 +233,12 @@ def borderline_flags(
             assessment.filling_pressure,
         ):
             continue
-        name, unit = names.get(c.measure, (c.measure.value, ""))
+        name, unit = names.get(c.measure, (measure_name(c.measure), ""))
         u = f" {unit}" if unit else ""
         text = (
             f"{name} {fmt(c.value)}{u} is within {fmt(fraction * 100)} % of the cut-off "
-            f"{SYMBOLS[c.comparison]} {fmt(c.threshold)}{u}; on the other side the grade would be "
-            f"{other.grade.value} (filling pressure {other.filling_pressure.value}) instead of "
-            f"{assessment.grade.value} (filling pressure {assessment.filling_pressure.value})."
+            f"{SYMBOLS[c.comparison]} {fmt(c.threshold)}{u}; on the other side of it the result "
+            f"would be {outcome_phrase(other)}, instead of {outcome_phrase(assessment)}."
         )
         flags.append(
             BorderlineFlag(

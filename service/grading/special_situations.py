@@ -2,12 +2,13 @@
 
 Where a guideline gives alternative criteria for a situation they are applied and each is
 reported; where it gives none the result says the standard algorithm does not apply and why.
-A special situation never yields a standard grade (grade "not-gradable").
+A special situation never yields a standard grade (grade "not-applicable", outcome
+"special-situation").
 
 ASE/EACVI 2016 (Nagueh SF et al., J Am Soc Echocardiogr 2016;29:277-314, section V, specific
 diseases) lists parameters with cut-offs for most situations but, except where noted, no rule to
 combine them; such situations report each criterion and leave the filling pressure indeterminate
-(as I-16-11 does for atrial fibrillation).  The ASE/EACVI 2016 rows are
+(as reading I-16-11 does for atrial fibrillation).  The ASE/EACVI 2016 rows are
 in :mod:`service.grading.thresholds_ase2016` and the ASE 2025 rows in
 :mod:`service.grading.thresholds_ase2025` (one cited table per guideline).
 """
@@ -17,6 +18,7 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass
 
+from service.grading import readings as R
 from service.grading import thresholds_ase2016 as T16
 from service.grading import thresholds_ase2025 as T25
 from service.grading.criteria import Threshold, fmt, tally, value_of
@@ -49,6 +51,7 @@ from service.model import (
     Measure,
     Measurements,
     Pathway,
+    Reading,
     Rhythm,
     SpecialSituation,
     Verdict,
@@ -79,7 +82,7 @@ UNREAD_2016: dict[SpecialSituation, tuple[str, ...]] = {
 NOT_APPLICABLE_2016: dict[SpecialSituation, str] = {
     S.mitral_annular_calcification: (
         "annular e′ and E/e′ are unreliable with mitral annular calcification and ASE/EACVI 2016 "
-        "gives no validated alternative rule (I-16-14)"
+        "gives no validated alternative rule"
     ),
     S.prosthetic_mitral_valve: (
         "e′, E/e′ and mitral inflow do not reflect LV filling with a prosthetic mitral valve and "
@@ -87,11 +90,11 @@ NOT_APPLICABLE_2016: dict[SpecialSituation, str] = {
     ),
     S.heart_transplant: (
         "transplant physiology (donor heart, denervation, atrial anastomosis) alters inflow and LA "
-        "size and ASE/EACVI 2016 gives no validated numeric rule (I-16-14)"
+        "size and ASE/EACVI 2016 gives no validated numeric rule"
     ),
     S.lbbb_or_ventricular_pacing: (
-        "the project's reference gives no ASE/EACVI 2016 criteria for LBBB or ventricular pacing; "
-        "individual interpretation is needed"
+        "no ASE/EACVI 2016 criteria for LBBB or ventricular pacing are available to this "
+        "service; individual interpretation is needed"
     ),
 }
 
@@ -167,44 +170,43 @@ def assess(
     rhythm = _rhythm_sentence(context)
     if blocked:
         why = "; ".join(f"{s.value.replace('-', ' ')}: {r}" for s, r in blocked)
-        reason = (
-            f"special situation present ({words}): the standard algorithm does not apply and "
-            f"{label} gives no alternative criteria that this service can apply"
-        )
-        reasoning = [f"Not graded: {reason}.", f"Why: {why}."]
+        # the conclusion says "the standard algorithm does not apply"; the reason says why,
+        # once, and no other sentence repeats it
+        reason = f"{words}: {label} gives no alternative criteria that this service can apply"
+        reasoning = [f"{why[:1].upper()}{why[1:]}."]
         if rhythm:
             reasoning.append(rhythm)
+        readings: tuple[Reading, ...] = ()
+        unruled = (S.mitral_annular_calcification, S.heart_transplant)
+        if guideline is Guideline.ase_eacvi_2016 and any(s in unruled for s, _ in blocked):
+            readings = (Reading(id="I-16-14", text=R.words("I-16-14")),)
         return Assessment(
             **base,
             pathway=Pathway.not_applicable,
             pathway_reason=reason,
-            grade=Grade.not_gradable,
-            filling_pressure=FillingPressure.unknown,
+            grade=Grade.not_applicable,
+            filling_pressure=FillingPressure.not_estimated,
             reasoning=tuple(reasoning),
-            notes=(f"The standard {label} algorithm does not apply ({words}); no grade is given.",),
+            readings=readings,
         )
 
     trace = Trace(measurements)
-    reason = (
-        f"special situation present ({words}): the standard algorithm does not apply; "
-        f"{label} alternative criteria are applied and reported one by one"
-    )
-    trace.say(f"{reason[0].upper()}{reason[1:]}.")
+    reason = f"{words}: the {label} alternative criteria apply, each reported"
     if rhythm:
         trace.say(rhythm)
     rules = _RULES_2016 if guideline is Guideline.ase_eacvi_2016 else _RULES_2025
     outcomes = [rules[s](trace, context) for s in situations]
     pressure = _combine(trace, outcomes)
-    trace.note(f"No standard grade is given with {words}.")
     return Assessment(
         **base,
         pathway=Pathway.special_situation,
         pathway_reason=reason,
-        grade=Grade.not_gradable,
+        grade=Grade.not_applicable,
         filling_pressure=pressure,
         criteria=tuple(trace.criteria),
         reasoning=tuple(trace.reasoning),
         notes=tuple(trace.notes),
+        readings=tuple(trace.readings),
     )
 
 
@@ -224,11 +226,11 @@ def _combine(trace: Trace, outcomes: list[_Outcome]) -> FillingPressure:
         trace.say(o.summary)
     if not stated:
         if not any(c.verdict is not Verdict.unavailable for c in trace.criteria):
-            trace.say("No criterion is available: filling pressure unknown.")
-            return FillingPressure.unknown
+            trace.say("No criterion is available: filling pressure not estimated.")
+            return FillingPressure.not_estimated
         trace.say(
-            "The guideline lists these criteria without a rule combining them: filling pressure "
-            "is not estimated; each criterion met supports elevated filling pressure."
+            "The guideline lists these criteria without a rule combining them, so the filling "
+            "pressure is indeterminate; each criterion met supports elevated filling pressure."
         )
         return FillingPressure.indeterminate
     pressures = {o.pressure for o in stated}
@@ -313,9 +315,9 @@ def _hcm16(trace: Trace, context: Context) -> _Outcome:
     if t.available == 0:
         return _Outcome(
             S.hypertrophic_cardiomyopathy,
-            FillingPressure.unknown,
+            FillingPressure.not_estimated,
             "Hypertrophic cardiomyopathy: none of the criteria is available; filling pressure "
-            "unknown.",
+            "not estimated.",
         )
     if 2 * t.met > t.available:
         pressure, words = FillingPressure.elevated, "more than half: elevated"
@@ -326,12 +328,12 @@ def _hcm16(trace: Trace, context: Context) -> _Outcome:
     return _Outcome(
         S.hypertrophic_cardiomyopathy,
         pressure,
-        f"Hypertrophic cardiomyopathy: {counted} ({words} filling pressure, I-16-12).",
+        f"Hypertrophic cardiomyopathy: {counted} ({words} filling pressure).",
     )
 
 
 def _lateral_ph(
-    trace: Trace, high: Threshold, low: Threshold, prefix: str, ambiguity: str
+    trace: Trace, high: Threshold, low: Threshold, prefix: str, unresolved: str
 ) -> _Outcome:
     step = "special situation: pulmonary hypertension non cardiac"
     hi = trace.check(high, f"{prefix}.{high.key}", step)
@@ -341,7 +343,7 @@ def _lateral_ph(
     if hi.verdict is Verdict.unavailable:
         return _Outcome(
             S.pulmonary_hypertension_non_cardiac,
-            FillingPressure.unknown,
+            FillingPressure.not_estimated,
             f"{name}: lateral E/e′ is not available; the cause cannot be judged.",
         )
     if hi.verdict is Verdict.met:
@@ -361,15 +363,13 @@ def _lateral_ph(
     return _Outcome(
         S.pulmonary_hypertension_non_cardiac,
         FillingPressure.indeterminate,
-        f"{name}: lateral E/e′ between {lo_v} and {hi_v}: cause and filling pressure indeterminate "
-        f"({ambiguity}).",
+        f"{name}: lateral E/e′ between {lo_v} and {hi_v}: cause and filling pressure "
+        f"indeterminate{unresolved}.",
     )
 
 
 def _ph16(trace: Trace, context: Context) -> _Outcome:
-    return _lateral_ph(
-        trace, PH_E_E_PRIME_LATERAL_HIGH, PH_E_E_PRIME_LATERAL_LOW, "ase16.ph", "I-16-13"
-    )
+    return _lateral_ph(trace, PH_E_E_PRIME_LATERAL_HIGH, PH_E_E_PRIME_LATERAL_LOW, "ase16.ph", "")
 
 
 _Rule = Callable[[Trace, Context], _Outcome]
@@ -442,7 +442,7 @@ def _ph25(trace: Trace, context: Context) -> _Outcome:
         T25.PH_E_E_PRIME_LATERAL_HIGH,
         T25.PH_E_E_PRIME_LATERAL_LOW,
         "ase25.ph",
-        "the ASE 2025 reading of 8-13 was not verified",
+        " (the ASE 2025 reading of 8 to 13 could not be verified)",
     )
 
 
@@ -455,11 +455,6 @@ _RULES_2025: dict[SpecialSituation, _Rule] = {
 # ---------------------------------------------------------------------------------------------
 # Missing A wave with unknown rhythm
 # ---------------------------------------------------------------------------------------------
-
-A_WAVE_MISSING = (
-    "The mitral A wave is missing although E was measured and nothing states atrial "
-    "fibrillation: atrial fibrillation may be present, so the standard grade could not be given."
-)
 
 
 def a_wave_missing(measurements: Measurements) -> bool:
@@ -489,12 +484,10 @@ def possible_af(
         **base_fields(guideline, citation, version, context),
         pathway=Pathway.not_applicable,
         pathway_reason=reason,
-        grade=Grade.not_gradable,
-        filling_pressure=FillingPressure.unknown,
+        grade=Grade.not_applicable,
+        filling_pressure=FillingPressure.not_estimated,
         reasoning=(
-            f"Not graded: {reason}.",
             "State the rhythm (coded Cardiac Rhythm item, sender or run setting) to grade by the "
             "sinus-rhythm or the atrial-fibrillation rules.",
         ),
-        notes=(A_WAVE_MISSING,),
     )

@@ -5,8 +5,9 @@ Diastolic Function by Echocardiography: An Update from the American Society of E
 and the European Association of Cardiovascular Imaging. J Am Soc Echocardiogr 2016;29:277-314.
 
 Each row states the abnormal side of a cut-off exactly as published (strict or not).  Evidence:
-"R" recalled from the paper, "V" confirmed in a retrieved secondary source, "I" an interpretation
-(its identifier, I-16-x, is given in the citation and explained in the project's reference notes).
+"R" recalled from the paper, "V" confirmed in a retrieved secondary source, "I" an interpretation.
+A row that depends on the project's reading of an ambiguity names it in ``reading`` (I-16-x,
+:mod:`service.grading.readings`); citations are for readers and carry no identifier.
 
 Sections: the main algorithm (Fig 8A/8B, :data:`TABLE`), atrial fibrillation (§V.E,
 :data:`AF_TABLE`), special situations (§V specific diseases, :data:`SPECIAL_TABLE`) and the
@@ -19,7 +20,8 @@ from __future__ import annotations
 from service.grading.criteria import Threshold
 from service.model import Comparison, Measure
 
-PAPER = "Nagueh 2016 JASE 29:277"
+#: the paper as every cut-off source cites it (author, journal, year, pages)
+PAPER = "Nagueh SF et al. J Am Soc Echocardiogr 2016;29:277–314"
 
 # === Main algorithm =========================================================================
 
@@ -32,7 +34,7 @@ E_E_PRIME_AVERAGE = Threshold(
     comparison=Comparison.gt,
     value=14.0,
     unit="",
-    citation=f"{PAPER}, Fig 8A and Fig 8B",
+    citation=f"{PAPER}, Figures 8A and 8B",
     evidence="R+V",
 )
 E_E_PRIME_SEPTAL = Threshold(
@@ -42,8 +44,9 @@ E_E_PRIME_SEPTAL = Threshold(
     comparison=Comparison.gt,
     value=15.0,
     unit="",
-    citation=f"{PAPER}, Fig 8A and Fig 8B (single-site E/e′, I-16-3)",
+    citation=f"{PAPER}, Figures 8A and 8B (single-site E/e′)",
     evidence="R+V",
+    reading="I-16-3",
 )
 E_E_PRIME_LATERAL = Threshold(
     key="e_e_prime_lateral",
@@ -52,8 +55,9 @@ E_E_PRIME_LATERAL = Threshold(
     comparison=Comparison.gt,
     value=13.0,
     unit="",
-    citation=f"{PAPER}, Fig 8A and Fig 8B (single-site E/e′, I-16-3)",
+    citation=f"{PAPER}, Figures 8A and 8B (single-site E/e′)",
     evidence="R+V",
+    reading="I-16-3",
 )
 E_PRIME_SEPTAL = Threshold(
     key="e_prime_septal",
@@ -62,7 +66,7 @@ E_PRIME_SEPTAL = Threshold(
     comparison=Comparison.lt,
     value=7.0,
     unit="cm/s",
-    citation=f"{PAPER}, Fig 8A (septal e′ < 7 or lateral e′ < 10, I-16-2)",
+    citation=f"{PAPER}, Figure 8A (septal e′ < 7 or lateral e′ < 10)",
     evidence="R+V",
 )
 E_PRIME_LATERAL = Threshold(
@@ -72,7 +76,7 @@ E_PRIME_LATERAL = Threshold(
     comparison=Comparison.lt,
     value=10.0,
     unit="cm/s",
-    citation=f"{PAPER}, Fig 8A (septal e′ < 7 or lateral e′ < 10, I-16-2)",
+    citation=f"{PAPER}, Figure 8A (septal e′ < 7 or lateral e′ < 10)",
     evidence="R+V",
 )
 TR_VELOCITY = Threshold(
@@ -82,7 +86,7 @@ TR_VELOCITY = Threshold(
     comparison=Comparison.gt,
     value=2.8,
     unit="m/s",
-    citation=f"{PAPER}, Fig 8A and Fig 8B",
+    citation=f"{PAPER}, Figures 8A and 8B",
     evidence="R+V",
 )
 LAVI = Threshold(
@@ -92,7 +96,7 @@ LAVI = Threshold(
     comparison=Comparison.gt,
     value=34.0,
     unit="mL/m²",
-    citation=f"{PAPER}, Fig 8A and Fig 8B",
+    citation=f"{PAPER}, Figures 8A and 8B",
     evidence="R+V",
 )
 
@@ -105,7 +109,7 @@ E_A_LOW = Threshold(
     comparison=Comparison.le,
     value=0.8,
     unit="",
-    citation=f"{PAPER}, Fig 8B (E/A ≤ 0.8 and E ≤ 50 cm/s: grade I, I-16-4)",
+    citation=f"{PAPER}, Figure 8B (E/A ≤ 0.8 and E ≤ 50 cm/s: grade I)",
     evidence="R+V",
 )
 E_LOW = Threshold(
@@ -115,7 +119,7 @@ E_LOW = Threshold(
     comparison=Comparison.le,
     value=50.0,
     unit="cm/s",
-    citation=f"{PAPER}, Fig 8B (E/A ≤ 0.8 and E ≤ 50 cm/s: grade I)",
+    citation=f"{PAPER}, Figure 8B (E/A ≤ 0.8 and E ≤ 50 cm/s: grade I)",
     evidence="R+V",
 )
 E_A_HIGH = Threshold(
@@ -125,7 +129,7 @@ E_A_HIGH = Threshold(
     comparison=Comparison.ge,
     value=2.0,
     unit="",
-    citation=f"{PAPER}, Fig 8B (E/A ≥ 2: grade III, I-16-5)",
+    citation=f"{PAPER}, Figure 8B (E/A ≥ 2: grade III)",
     evidence="R+V",
 )
 
@@ -138,14 +142,15 @@ PV_S_D = Threshold(
     comparison=Comparison.lt,
     value=1.0,
     unit="",
-    citation=f"{PAPER}, Fig 8B (PV S/D < 1 when LVEF is depressed, I-16-6)",
+    citation=f"{PAPER}, Figure 8B (PV S/D < 1 when LVEF is reduced)",
     evidence="R",
+    reading="I-16-6",
 )
 
 # --- Routing ----------------------------------------------------------------------------------
 
 #: The paper gives no number for "reduced"/"depressed" LVEF; 50 % is the operational default and
-#: the engine takes the actual cut-off from Context.lvef_reduced_below (I-16-10).
+#: the engine takes the actual cut-off from Context.lvef_reduced_below (reading I-16-10).
 LVEF_REDUCED = Threshold(
     key="lvef_reduced",
     name="LVEF",
@@ -153,8 +158,9 @@ LVEF_REDUCED = Threshold(
     comparison=Comparison.lt,
     value=50.0,
     unit="%",
-    citation=f"{PAPER}, Fig 8A/8B routing; cut-off not stated, operational default (I-16-10)",
+    citation=f"{PAPER}, Figures 8A and 8B (which figure applies)",
     evidence="I",
+    reading="I-16-10",
 )
 
 #: the main-algorithm rows (Fig 8A/8B), in the order the algorithms use them
@@ -186,6 +192,7 @@ def _row(
     unit: str,
     where: str,
     evidence: str = "R",
+    reading: str = "",
 ) -> Threshold:
     """One §V row (atrial fibrillation, specific diseases); evidence "R" unless stated (the
     reference's §2.5 marks every cut-off there [R] unless noted otherwise)."""
@@ -198,11 +205,13 @@ def _row(
         unit=unit,
         citation=f"{PAPER}, {where}",
         evidence=evidence,
+        reading=reading,
     )
 
 
 # === Atrial fibrillation (§V.E) ===============================================================
-# Each criterion supports elevated filling pressure; no rule combining them is stated (I-16-11).
+# Each criterion supports elevated filling pressure; no rule combining them is stated (reading
+# I-16-11).
 
 _AF = "§V.E atrial fibrillation (p295)"
 
@@ -295,7 +304,8 @@ HCM_E_E_PRIME_AVERAGE = _row(
     Comparison.gt,
     14.0,
     "",
-    f"{_HCM} (majority of available criteria, I-16-12)",
+    _HCM,
+    reading="I-16-12",
 )
 HCM_AR_A = _row(
     "hcm_ar_a_duration",
@@ -304,7 +314,8 @@ HCM_AR_A = _row(
     Comparison.ge,
     30.0,
     "ms",
-    f"{_HCM} (majority of available criteria, I-16-12)",
+    _HCM,
+    reading="I-16-12",
 )
 HCM_TR = _row(
     "hcm_tr_peak_velocity",
@@ -313,7 +324,8 @@ HCM_TR = _row(
     Comparison.gt,
     2.8,
     "m/s",
-    f"{_HCM} (majority of available criteria, I-16-12)",
+    _HCM,
+    reading="I-16-12",
 )
 HCM_LAVI = _row(
     "hcm_lavi",
@@ -322,7 +334,8 @@ HCM_LAVI = _row(
     Comparison.gt,
     34.0,
     "mL/m²",
-    f"{_HCM} (majority of available criteria, I-16-12)",
+    _HCM,
+    reading="I-16-12",
 )
 RCM_DT = _row(
     "rcm_deceleration_time",
@@ -360,7 +373,8 @@ PH_E_E_PRIME_LATERAL_LOW = _row(
     Comparison.lt,
     8.0,
     "",
-    f"{_PH}: < 8 → non-cardiac cause (8-13 indeterminate, I-16-13)",
+    f"{_PH}: < 8 → non-cardiac cause (8 to 13 indeterminate)",
+    reading="I-16-13",
 )
 
 #: the special-situation rows, in the order the situation rules use them
@@ -395,7 +409,7 @@ VALSALVA_E_A_FALL = Threshold(
     comparison=Comparison.ge,
     value=0.5,
     unit="",
-    citation=f"{PAPER}, mitral inflow with Valsalva",
+    citation=f"{PAPER}, mitral inflow with the Valsalva manoeuvre",
     evidence="R",
 )
 

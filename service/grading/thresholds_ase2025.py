@@ -17,7 +17,8 @@ from __future__ import annotations
 from service.grading.criteria import Threshold
 from service.model import Comparison, Measure
 
-PAPER = "Nagueh 2025 JASE 38(7), doi 10.1016/j.echo.2025.03.011"
+#: the paper as every cut-off source cites it (author, journal, year, issue, doi)
+PAPER = "Nagueh SF et al. J Am Soc Echocardiogr 2025;38(7), doi 10.1016/j.echo.2025.03.011"
 
 # === Main algorithm =========================================================================
 
@@ -30,7 +31,8 @@ E_PRIME_AVERAGE = Threshold(
     comparison=Comparison.le,
     value=6.5,
     unit="cm/s",
-    citation=f"{PAPER}, Fig 3 (average e′ ≤ 6.5 cm/s, preferred when both sites, I-25-1)",
+    citation=f"{PAPER}, Figure 3 (average e′ ≤ 6.5 cm/s, preferred when both sites)",
+    reading="I-25-1",
     evidence="brief+V",
 )
 E_PRIME_SEPTAL = Threshold(
@@ -40,7 +42,8 @@ E_PRIME_SEPTAL = Threshold(
     comparison=Comparison.le,
     value=6.0,
     unit="cm/s",
-    citation=f"{PAPER}, Fig 3 (septal e′ ≤ 6 cm/s, I-25-1)",
+    citation=f"{PAPER}, Figure 3 (septal e′ ≤ 6 cm/s)",
+    reading="I-25-1",
     evidence="brief+V",
 )
 E_PRIME_LATERAL = Threshold(
@@ -50,7 +53,8 @@ E_PRIME_LATERAL = Threshold(
     comparison=Comparison.le,
     value=7.0,
     unit="cm/s",
-    citation=f"{PAPER}, Fig 3 (lateral e′ ≤ 7 cm/s, I-25-1)",
+    citation=f"{PAPER}, Figure 3 (lateral e′ ≤ 7 cm/s)",
+    reading="I-25-1",
     evidence="brief+V",
 )
 
@@ -63,7 +67,8 @@ E_E_PRIME_AVERAGE = Threshold(
     comparison=Comparison.ge,
     value=14.0,
     unit="",
-    citation=f"{PAPER}, Fig 3 (average E/e′ ≥ 14, preferred when both sites, I-25-2)",
+    citation=f"{PAPER}, Figure 3 (average E/e′ ≥ 14, preferred when both sites)",
+    reading="I-25-2",
     evidence="brief+R",
 )
 E_E_PRIME_SEPTAL = Threshold(
@@ -73,7 +78,8 @@ E_E_PRIME_SEPTAL = Threshold(
     comparison=Comparison.ge,
     value=15.0,
     unit="",
-    citation=f"{PAPER}, Fig 3 (septal E/e′ ≥ 15, I-25-2)",
+    citation=f"{PAPER}, Figure 3 (septal E/e′ ≥ 15)",
+    reading="I-25-2",
     evidence="brief+R",
 )
 E_E_PRIME_LATERAL = Threshold(
@@ -83,7 +89,8 @@ E_E_PRIME_LATERAL = Threshold(
     comparison=Comparison.ge,
     value=13.0,
     unit="",
-    citation=f"{PAPER}, Fig 3 (lateral E/e′ ≥ 13, I-25-2)",
+    citation=f"{PAPER}, Figure 3 (lateral E/e′ ≥ 13)",
+    reading="I-25-2",
     evidence="brief+R",
 )
 
@@ -96,7 +103,8 @@ TR_VELOCITY = Threshold(
     comparison=Comparison.ge,
     value=2.8,
     unit="m/s",
-    citation=f"{PAPER}, Fig 3 (TR ≥ 2.8 m/s or PASP ≥ 35 mmHg, I-25-3)",
+    citation=f"{PAPER}, Figure 3 (TR ≥ 2.8 m/s or PASP ≥ 35 mmHg)",
+    reading="I-25-3",
     evidence="brief+V",
 )
 PASP = Threshold(
@@ -106,7 +114,8 @@ PASP = Threshold(
     comparison=Comparison.ge,
     value=35.0,
     unit="mmHg",
-    citation=f"{PAPER}, Fig 3 (TR ≥ 2.8 m/s or PASP ≥ 35 mmHg, I-25-3)",
+    citation=f"{PAPER}, Figure 3 (TR ≥ 2.8 m/s or PASP ≥ 35 mmHg)",
+    reading="I-25-3",
     evidence="brief+V",
 )
 
@@ -119,7 +128,8 @@ LA_RESERVOIR_STRAIN = Threshold(
     comparison=Comparison.le,
     value=18.0,
     unit="%",
-    citation=f"{PAPER}, Fig 3 step 2 (LA reservoir strain ≤ 18 %, I-25-5)",
+    citation=f"{PAPER}, Figure 3 step 2 (LA reservoir strain ≤ 18 %)",
+    reading="I-25-5",
     evidence="V",
 )
 PV_S_D = Threshold(
@@ -129,7 +139,8 @@ PV_S_D = Threshold(
     comparison=Comparison.le,
     value=0.67,
     unit="",
-    citation=f"{PAPER}, Fig 3 step 2 (PV S/D ≤ 0.67, I-25-5)",
+    citation=f"{PAPER}, Figure 3 step 2 (PV S/D ≤ 0.67)",
+    reading="I-25-5",
     evidence="V",
 )
 LAVI = Threshold(
@@ -139,7 +150,8 @@ LAVI = Threshold(
     comparison=Comparison.gt,
     value=34.0,
     unit="mL/m²",
-    citation=f"{PAPER}, Fig 3 step 2 (LAVI > 34 mL/m², I-25-5)",
+    citation=f"{PAPER}, Figure 3 step 2 (LAVI > 34 mL/m²)",
+    reading="I-25-5",
     evidence="V",
 )
 IVRT = Threshold(
@@ -149,7 +161,8 @@ IVRT = Threshold(
     comparison=Comparison.le,
     value=70.0,
     unit="ms",
-    citation=f"{PAPER}, Fig 3 step 2 (IVRT ≤ 70 ms, I-25-5)",
+    citation=f"{PAPER}, Figure 3 step 2 (IVRT ≤ 70 ms)",
+    reading="I-25-5",
     evidence="V",
 )
 
@@ -162,7 +175,7 @@ E_A_HIGH = Threshold(
     comparison=Comparison.ge,
     value=2.0,
     unit="",
-    citation=f"{PAPER}, Fig 3 (raised LAP with E/A ≥ 2: grade 3, else grade 2)",
+    citation=f"{PAPER}, Figure 3 (raised LAP with E/A ≥ 2: grade III, else grade II)",
     evidence="R",
 )
 #: used only with the switch that asks for E/A ≤ 0.8 before reduced e′ alone means grade 1
@@ -174,7 +187,7 @@ E_A_LOW = Threshold(
     value=0.8,
     unit="",
     citation=(
-        f"{PAPER}, Fig 3 (reduced e′ alone: grade 1 only with E/A ≤ 0.8 in the secondary "
+        f"{PAPER}, Figure 3 (reduced e′ alone: grade I only with E/A ≤ 0.8 in the secondary "
         "reading; switch, default off)"
     ),
     evidence="V",
@@ -201,7 +214,7 @@ AF_E_E_PRIME_SEPTAL = Threshold(
     comparison=Comparison.gt,
     value=11.0,
     unit="",
-    citation=f"{PAPER}, AF algorithm step 1 (septal E/e′ > 11, I-25-11)",
+    citation=f"{PAPER}, AF algorithm step 1 (septal E/e′ > 11)",
     evidence="V",
 )
 AF_TR_VELOCITY = Threshold(
@@ -211,7 +224,7 @@ AF_TR_VELOCITY = Threshold(
     comparison=Comparison.gt,
     value=2.8,
     unit="m/s",
-    citation=f"{PAPER}, AF algorithm step 1 (TR > 2.8 m/s or PASP > 35 mmHg, I-25-11)",
+    citation=f"{PAPER}, AF algorithm step 1 (TR > 2.8 m/s or PASP > 35 mmHg)",
     evidence="V",
 )
 AF_PASP = Threshold(
@@ -221,7 +234,7 @@ AF_PASP = Threshold(
     comparison=Comparison.gt,
     value=35.0,
     unit="mmHg",
-    citation=f"{PAPER}, AF algorithm step 1 (TR > 2.8 m/s or PASP > 35 mmHg, I-25-11)",
+    citation=f"{PAPER}, AF algorithm step 1 (TR > 2.8 m/s or PASP > 35 mmHg)",
     evidence="V",
 )
 AF_DECELERATION_TIME = Threshold(
@@ -241,7 +254,8 @@ AF_LA_RESERVOIR_STRAIN = Threshold(
     comparison=Comparison.lt,
     value=18.0,
     unit="%",
-    citation=f"{PAPER}, AF algorithm step 2 (LA reservoir strain < 18 %, I-25-9, I-25-11)",
+    citation=f"{PAPER}, AF algorithm step 2 (LA reservoir strain < 18 %)",
+    reading="I-25-9",
     evidence="V",
 )
 AF_PV_S_D = Threshold(
@@ -251,7 +265,8 @@ AF_PV_S_D = Threshold(
     comparison=Comparison.lt,
     value=1.0,
     unit="",
-    citation=f"{PAPER}, AF algorithm step 2 (PV S/D < 1, I-25-9, I-25-11)",
+    citation=f"{PAPER}, AF algorithm step 2 (PV S/D < 1)",
+    reading="I-25-9",
     evidence="V",
 )
 AF_BMI = Threshold(
@@ -261,7 +276,8 @@ AF_BMI = Threshold(
     comparison=Comparison.gt,
     value=30.0,
     unit="kg/m²",
-    citation=f"{PAPER}, AF algorithm step 2 (BMI > 30 kg/m², I-25-9)",
+    citation=f"{PAPER}, AF algorithm step 2 (BMI > 30 kg/m²)",
+    reading="I-25-9",
     evidence="V",
 )
 
@@ -324,7 +340,7 @@ PH_E_E_PRIME_LATERAL_LOW = Threshold(
     comparison=Comparison.lt,
     value=8.0,
     unit="",
-    citation=f"{_PH}: < 8 → non-cardiac cause (8-13 not resolved, reported indeterminate)",
+    citation=f"{_PH}: < 8 → non-cardiac cause (8 to 13 not resolved, reported indeterminate)",
     evidence="R",
 )
 

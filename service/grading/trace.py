@@ -9,6 +9,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Any
 
+from service.grading import readings as R
 from service.grading.criteria import Threshold, describe, evaluate, value_of
 from service.model import (
     CAUTION,
@@ -16,8 +17,10 @@ from service.model import (
     Criterion,
     Guideline,
     Measurements,
+    Reading,
     Rhythm,
     SpecialSituation,
+    Verdict,
 )
 
 
@@ -27,11 +30,29 @@ class Trace:
     criteria: list[Criterion] = field(default_factory=list)
     reasoning: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    readings: list[Reading] = field(default_factory=list)
 
     def check(
-        self, row: Threshold, criterion_id: str, step: str, threshold: float | None = None
+        self,
+        row: Threshold,
+        criterion_id: str,
+        step: str,
+        threshold: float | None = None,
+        *,
+        group: str = "",
     ) -> Criterion:
-        """Evaluate a row on its measure, record the criterion and a reasoning sentence."""
+        """Evaluate a row on its measure, record the criterion and a reasoning sentence.
+        ``group``: words for rows that count together as one criterion (e.g. "septal or
+        lateral e′: one criterion").  A criterion already evaluated by an earlier step (same
+        measure and cut-off, e.g. average E/e′ > 14 in Figure 8A and in Figure 8B step 2) is
+        recorded once, with both steps named, and said once."""
+        t = row.value if threshold is None else threshold
+        for i, seen in enumerate(self.criteria):
+            if (seen.measure, seen.comparison, seen.threshold) == (row.measure, row.comparison, t):
+                if step and step not in seen.step.split(" and "):
+                    seen = seen.model_copy(update={"step": f"{seen.step} and {step}"})
+                    self.criteria[i] = seen
+                return seen
         c = evaluate(
             row,
             value_of(self.measurements, row.measure),
@@ -39,9 +60,19 @@ class Trace:
             step=step,
             threshold=threshold,
         )
+        if group:
+            c = c.model_copy(update={"group": group})
         self.criteria.append(c)
         self.reasoning.append(describe(c, row.name, row.unit))
+        if row.reading:
+            self.reading(row.reading)
         return c
+
+    def reading(self, identifier: str, setting: str = "") -> None:
+        """Record that the result relies on a reading of an ambiguous rule (said in words in
+        the result, identified for software; never an identifier inside a sentence)."""
+        if all(r.id != identifier for r in self.readings):
+            self.readings.append(Reading(id=identifier, text=R.words(identifier, setting)))
 
     def note(self, text: str) -> None:
         if text not in self.notes:
@@ -53,10 +84,16 @@ class Trace:
     def note_unstated_rhythm(self, context: Context) -> None:
         """Say so when the rhythm is unknown: the sinus-rhythm algorithm is applied to it."""
         if context.rhythm is Rhythm.unknown:
-            self.note(
-                "Cardiac rhythm was not stated; sinus rhythm was assumed for the algorithm"
-                + (f" ({context.rhythm_source})." if context.rhythm_source else ".")
-            )
+            self.note("Cardiac rhythm was not stated; sinus rhythm was assumed for the algorithm.")
+
+
+def verdict_words_of(verdict: Verdict) -> str:
+    """ "met", "not met", "not available" (a combined criterion's verdict in words)."""
+    return {
+        Verdict.met: "met",
+        Verdict.not_met: "not met",
+        Verdict.unavailable: "not available",
+    }[verdict]
 
 
 def base_fields(
@@ -75,4 +112,6 @@ def base_fields(
 
 def situation_words(situations: frozenset[SpecialSituation] | tuple[SpecialSituation, ...]) -> str:
     """ "mitral stenosis, heart transplant" (sorted, plain words)."""
-    return ", ".join(sorted(s.value.replace("-", " ") for s in situations))
+    from service.wording import situations as words
+
+    return words(situations)

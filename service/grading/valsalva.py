@@ -15,6 +15,7 @@ from dataclasses import dataclass
 from service.grading import thresholds_ase2016 as T16
 from service.grading.criteria import value_of
 from service.model import Assessment, FillingPressure, Measure, Measurements, SupportingFinding
+from service.wording import pressure_phrase
 
 NAME = "Valsalva manoeuvre"
 #: a fall in E/A of at least this fraction supports raised filling pressure (ASE/EACVI 2016 row
@@ -154,11 +155,11 @@ def attach(assessment: Assessment, measurements: Measurements) -> Assessment:
     if f is None:
         return assessment
     agrees = agreement(f.supports_elevated_pressure, assessment.filling_pressure)
-    pressure = assessment.filling_pressure.value
+    pressure = pressure_phrase(assessment.filling_pressure)
     if agrees is True:
-        tail = f" It agrees with the result (filling pressure {pressure})."
+        tail = f" It agrees with the result ({pressure})."
     elif agrees is False:
-        tail = f" It conflicts with the result (filling pressure {pressure}); review the study."
+        tail = f" It conflicts with the result ({pressure}); review the study."
     elif f.supports_elevated_pressure is None:
         tail = ""
     else:

@@ -439,6 +439,9 @@ class Assembler:
             self._graded(claim, "rejected", reason="no usable source")
             return
         status = record.status
+        # metrics and logs count studies by what they concluded (service.model.Outcome), so
+        # atrial fibrillation and special situations are never counted as "not gradable"
+        outcome = record.outcome or status
         if record.result is None:
             reason = record.reason or status
             self.journal.finish_grading(
@@ -448,7 +451,7 @@ class Assembler:
                 object_notes=notes,
                 audit=record.facts,
             )
-            self._graded(claim, status, reason=reason)
+            self._graded(claim, outcome, reason=reason)
             return
         result_uid = record.result.uid
         predecessors = [r["result_uid"] for r in claim.earlier_results]
@@ -475,7 +478,8 @@ class Assembler:
         )
         self._graded(
             claim,
-            status,
+            outcome,
+            status=status,
             result_uid=result_uid,
             objects=len(record.sources),
             grade=new.grade,
@@ -484,6 +488,8 @@ class Assembler:
             summary_uid=companions[0].result.result_uid if companions else None,
             note="" if queued else "already delivered or no destination: nothing new to send",
         )
+        if record.outcome:
+            self.journal.record_outcome(result_uid, record.outcome)
         if queued:
             self._on_result()
 

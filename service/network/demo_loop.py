@@ -147,7 +147,8 @@ def run_network_demo(
     mapping_files: Sequence[Path] = (),
 ) -> list[dict[str, Any]]:
     """Send ``datasets`` through a loopback node to a loopback receiver; one row per study:
-    patient_name, patient_id, study_uid, guideline, grade, filling_pressure, result_uid,
+    patient_name, patient_id, study_uid, guideline, outcome (docs/vocabulary.md), grade,
+    filling_pressure, result_uid,
     status (the study's journal state), reason, delivered (the receiver holds the result)."""
     workdir = Path(workdir)
     receiver = ResultReceiver()
@@ -197,6 +198,7 @@ def run_network_demo(
                     "patient_id": str(ds.get("PatientID", "")),
                     "study_uid": uid,
                     "guideline": (result or {}).get("guideline") or "",
+                    "outcome": (journal.outcome_of(result["result_uid"]) or "" if result else ""),
                     "grade": (result or {}).get("grade") or "",
                     "filling_pressure": (result or {}).get("filling_pressure") or "",
                     "result_uid": (result or {}).get("result_uid") or "",

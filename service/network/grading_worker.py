@@ -73,6 +73,8 @@ class GradeRecord:
     guideline: str | None = None
     grade: str | None = None
     filling_pressure: str | None = None
+    #: what the primary assessment concluded (a service.model.Outcome token)
+    outcome: str | None = None
     summary: EncodedObject | None = None
     #: why the summary PDF was not built ("" when it was, or was not wanted)
     summary_error: str = ""
@@ -187,6 +189,7 @@ def run_job(job: GradeJob, grade_fn: Callable[..., Any], table: Any) -> GradeRec
         guideline=None if assessment is None else str(assessment.guideline.value),
         grade=None if assessment is None else str(assessment.grade.value),
         filling_pressure=None if assessment is None else str(assessment.filling_pressure.value),
+        outcome=None if assessment is None else str(assessment.outcome.value),
         summary=summary,
         summary_error=summary_error,
         facts=facts,

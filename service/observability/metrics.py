@@ -3,7 +3,10 @@
 * ``diastolic_sr_associations_total{outcome}``: accepted / rejected
 * ``diastolic_sr_objects_received_total{outcome}``: stored / rejected / discarded (images) /
   ignored (the node's own results coming back)
-* ``diastolic_sr_studies_graded_total{outcome}``: graded / not-gradable / rejected / error
+* ``diastolic_sr_studies_graded_total{outcome}``: what each study concluded, as a
+  :class:`service.model.Outcome` token (normal, grade-1, grade-2, grade-3, indeterminate,
+  not-gradable, atrial-fibrillation, special-situation), or why it has no result (rejected,
+  error, retry)
 * ``diastolic_sr_deliveries_total{outcome,kind}``: delivered / retry / failed, of a result SR
   or a summary PDF
 * ``diastolic_sr_queue_depth{queue}``: studies waiting, deliveries pending, deliveries failed

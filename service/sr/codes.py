@@ -15,8 +15,8 @@ Design choice for the grade: all six grade values are private, one closed value 
 "normal diastolic function" is a narrower statement than SNOMED CT 17621005 "Normal" and a
 reader of the coded value should never have to mix two schemes to interpret one concept.
 Filling pressure values are standard (PS3.16 CID 3642 Elevated / Normal Range; CID 222
-Normality Undetermined for "indeterminate"; CID 230 Undetermined for "unknown", i.e. not
-estimated); only the concept name is private.
+Normality Undetermined for "indeterminate"; CID 230 Undetermined for "not estimated"); only the
+concept name is private.
 
 Criterion verdicts are private (met / not met / not evaluable) rather than (121402, DCM,
 "Normality") with CID 222 values: a criterion being met is not always an abnormality (E/A <= 0.8
@@ -81,7 +81,6 @@ def _p(value: str, meaning: str, definition: str) -> CodeDef:
 # Standard codes (checked against pydicom 3.0.2's PS3.16 dictionary)
 # ---------------------------------------------------------------------------------------------
 
-ECHO_REPORT = _std("42148-7", "LN", "Echocardiography Report", "PS3.16 CID 7000")
 IMPRESSIONS = _std("19005-8", "LN", "Impressions", "PS3.16 CID 7001")
 IMPRESSION = _std("121073", "DCM", "Impression", "PS3.16 CID 7002")
 OBSERVER_TYPE = _std("121005", "DCM", "Observer Type", "PS3.16 TID 1002")
@@ -128,6 +127,11 @@ BMI = _std(
 # Private codes (99DSRG)
 # ---------------------------------------------------------------------------------------------
 
+RESULT_TITLE = _p(
+    "DFREPORT",
+    "Automated LV diastolic function assessment",
+    "Document title of every result SR (no standard title names this assessment)",
+)
 ASSESSMENT = _p(
     "ASSESSMENT", "LV diastolic function assessment", "Container: one guideline's assessment"
 )
@@ -195,6 +199,18 @@ EXCLUDED_OBSERVATION = _p(
 )
 MEASUREMENT_NOTE = _p("MEASNOTE", "Measurement note", "Note about the measurements")
 CAUTION = _p("CAUTION", "Decision support caution", "Result must be confirmed by a reader")
+CRITERIA = _p(
+    "CRITERIA", "Criteria evaluated", "Container: each criterion once, referenced by the results"
+)
+CRITERION_GROUP = _p(
+    "CRITGROUP", "Counted as one criterion", "Rows that count together as one criterion (TEXT)"
+)
+READING = _p(
+    "READING",
+    "Reading of an ambiguous guideline rule",
+    "The project's reading where the guideline is silent or ambiguous (TEXT)",
+)
+READING_ID = _p("READINGID", "Reading identifier", "Stable identifier of a reading, e.g. I-16-7")
 NOT_AVAILABLE_TEXT = "not available"
 
 # grade values: one closed private value set (see module docstring)
@@ -204,6 +220,11 @@ GRADE_2 = _p("DFG-2", "Grade II diastolic dysfunction", "Grade value")
 GRADE_3 = _p("DFG-3", "Grade III diastolic dysfunction", "Grade value")
 GRADE_INDETERMINATE = _p("DFG-INDET", "Diastolic function indeterminate", "Grade value")
 GRADE_NOT_GRADABLE = _p("DFG-NOTGRADABLE", "Diastolic function not gradable", "Grade value")
+GRADE_NOT_APPLICABLE = _p(
+    "DFG-NA",
+    "Grade not applicable",
+    "Grade value: the guideline gives no grade (atrial fibrillation, special situation)",
+)
 
 GRADE_VALUES: dict[Grade, CodeDef] = {
     Grade.normal: GRADE_NORMAL,
@@ -212,13 +233,14 @@ GRADE_VALUES: dict[Grade, CodeDef] = {
     Grade.grade_3: GRADE_3,
     Grade.indeterminate: GRADE_INDETERMINATE,
     Grade.not_gradable: GRADE_NOT_GRADABLE,
+    Grade.not_applicable: GRADE_NOT_APPLICABLE,
 }
 
 FILLING_PRESSURE_VALUES: dict[FillingPressure, CodeDef] = {
     FillingPressure.normal: NORMAL_RANGE,
     FillingPressure.elevated: ELEVATED,
     FillingPressure.indeterminate: NORMALITY_UNDETERMINED,
-    FillingPressure.unknown: UNDETERMINED,
+    FillingPressure.not_estimated: UNDETERMINED,
 }
 
 GUIDELINE_VALUES: dict[Guideline, CodeDef] = {

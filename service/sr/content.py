@@ -26,11 +26,13 @@ from service.sr.identity import is_valid_uid
 __all__ = [
     "Code",
     "Item",
+    "Reference",
     "Rel",
     "code_item",
     "composite_item",
     "container_item",
     "num_item",
+    "reference_item",
     "text_item",
     "uidref_item",
 ]
@@ -115,7 +117,7 @@ class Item:
     value_type: str  # PS3.3 C.17.3.2.1 Value Type
     name: Code
     relationship: Rel | None
-    children: tuple[Item, ...] = ()
+    children: tuple[Item | Reference, ...] = ()
     #: the item's value: Code (CODE), str (TEXT, UIDREF), (number, unit Code) (NUM),
     #: (SOP Class UID, SOP Instance UID) (COMPOSITE), None (CONTAINER)
     value: object = field(default=None)
@@ -131,6 +133,8 @@ class Item:
         if self.relationship is not None and not isinstance(self.relationship, Rel):
             object.__setattr__(self, "relationship", Rel(self.relationship))
         for c in self.children:
+            if isinstance(c, Reference):
+                continue
             if not isinstance(c, Item) or c.relationship is None:
                 raise ValueError("a child content item needs a relationship type")
         value = self.value
@@ -161,13 +165,47 @@ class Item:
             _check_uid(sop_class, "referenced SOP Class UID")
             _check_uid(sop_instance, "referenced SOP Instance UID")
 
-    def with_children(self, children: tuple[Item | None, ...] | list[Item | None]) -> Item:
+    def with_children(
+        self, children: tuple[Item | Reference | None, ...] | list[Item | Reference | None]
+    ) -> Item:
         """The same item with ``children`` (None entries dropped) as its content."""
         kept = tuple(c for c in children if c is not None)
         return Item(self.value_type, self.name, self.relationship, kept, self.value)
 
 
-def container_item(name: Code, children: list[Item | None], rel: Rel | None = Rel.CONTAINS) -> Item:
+@dataclass(frozen=True, slots=True)
+class Reference:
+    """A by-reference relationship (PS3.3 C.17.3.2.5): a child that names another content item
+    of the same tree, by its position, instead of holding it.  ``target`` is the item itself;
+    :mod:`service.sr.encode` writes its position (Referenced Content Item Identifier) when the
+    whole tree is laid out.  Comprehensive SR allows by-reference INFERRED FROM and HAS
+    PROPERTIES relationships (PS3.3 A.35.3.3.1.2, Table A.35.3-2)."""
+
+    relationship: Rel
+    target: Item
+
+    def __post_init__(self) -> None:
+        rel = _check_rel(self.relationship, root_allowed=False)
+        if rel not in _BY_REFERENCE:
+            raise ValueError(f"a by-reference relationship cannot be {rel}")
+        object.__setattr__(self, "relationship", rel)
+        if not isinstance(self.target, Item):
+            raise TypeError("a by-reference relationship needs a content item as its target")
+        if self.target.value_type == "CONTAINER" and self.target.relationship is None:
+            raise ValueError("the root container cannot be the target of a reference")
+
+
+#: relationship types used by reference here (PS3.3 Table A.35.3-2 allows them by reference)
+_BY_REFERENCE = frozenset({Rel.INFERRED_FROM, Rel.HAS_PROPERTIES})
+
+
+def reference_item(rel: Rel, target: Item) -> Reference:
+    return Reference(rel, target)
+
+
+def container_item(
+    name: Code, children: list[Item | Reference | None], rel: Rel | None = Rel.CONTAINS
+) -> Item:
     """CONTAINER with Continuity of Content CONTINUOUS (highdicom's default); ``rel`` None makes
     it a document's root."""
     return Item("CONTAINER", name, rel).with_children(children)

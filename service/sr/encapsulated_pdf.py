@@ -27,8 +27,8 @@ from service.sr.identity import is_valid_uid
 from service.sr.write import MANUFACTURER, MODEL_NAME
 
 MIME_TYPE = "application/pdf"
-DOCUMENT_TITLE = "Diastolic function summary (decision support)"
-SERIES_DESCRIPTION = "Diastolic function summary (automated, PDF)"
+DOCUMENT_TITLE = "Automated LV diastolic function assessment: summary (decision support)"
+SERIES_DESCRIPTION = "Automated LV diastolic function assessment (summary PDF)"
 #: default series number: after the scanner's series and the result SR's (9901)
 SERIES_NUMBER = 9902
 

@@ -30,7 +30,7 @@ from pydicom.tag import Tag
 from pydicom.uid import PYDICOM_IMPLEMENTATION_UID, ExplicitVRLittleEndian
 from pydicom.valuerep import DS
 
-from service.sr.content import Item
+from service.sr.content import Item, Reference
 
 #: VRs with a 2-byte reserved field and a 4-byte length in explicit VR (PS3.5 Table 7.1-1)
 _LONG_VRS = frozenset(
@@ -103,6 +103,7 @@ _CONCEPT_CODE = tag_bytes(0x0040, 0xA168)
 _MEASURED_VALUE = tag_bytes(0x0040, 0xA300)
 _NUMERIC_VALUE = tag_bytes(0x0040, 0xA30A)
 _CONTENT = tag_bytes(0x0040, 0xA730)
+_REFERENCED_CONTENT_ITEM = tag_bytes(0x0040, 0xDB73)  # Referenced Content Item Identifier
 
 
 def coded_concept(code: Code) -> bytes:
@@ -173,9 +174,51 @@ def sop_reference(sop_class_uid: str, sop_instance_uid: str) -> bytes:
     )
 
 
-def encode_item(item: Item, _done: dict[int, bytes] | None = None) -> bytes:
+def positions(items: Sequence[Item]) -> dict[int, tuple[int, ...]]:
+    """The position of every content item under a root whose children are ``items``, by the
+    item's identity: the root is 1, its n-th child (1, n), and so on (PS3.3 C.17.3.2.5,
+    Referenced Content Item Identifier).  An item placed twice has no single position: it is
+    left out, and a reference to it is refused when encoded."""
+    out: dict[int, tuple[int, ...]] = {}
+    twice: set[int] = set()
+    stack: list[tuple[Item, tuple[int, ...]]] = [
+        (child, (1, n)) for n, child in enumerate(items, 1)
+    ]
+    while stack:
+        item, where = stack.pop()
+        if isinstance(item, Reference):
+            continue
+        key = id(item)
+        if key in out or key in twice:
+            out.pop(key, None)
+            twice.add(key)
+        else:
+            out[key] = where
+        stack.extend((c, (*where, n)) for n, c in enumerate(item.children, 1))
+    return out
+
+
+def encode_reference(ref: Reference, where: dict[int, tuple[int, ...]]) -> bytes:
+    """A by-reference relationship: Relationship Type and Referenced Content Item Identifier
+    (UL, one value per level of the target's position), nothing else (PS3.3 Table C.17-6)."""
+    path = where.get(id(ref.target))
+    if path is None:
+        raise ValueError(
+            f"reference to {ref.target.name.meaning!r}: the target is not in the tree once"
+        )
+    return _cs(_RELATIONSHIP, ref.relationship.value) + element(
+        _REFERENCED_CONTENT_ITEM, "UL", struct.pack(f"<{len(path)}I", *path)
+    )
+
+
+def encode_item(
+    item: Item,
+    _done: dict[int, bytes] | None = None,
+    _where: dict[int, tuple[int, ...]] | None = None,
+) -> bytes:
     """One content item as an encoded dataset (the body of a sequence item).  An item that
-    appears more than once in a tree (items are immutable) is encoded once."""
+    appears more than once in a tree (items are immutable) is encoded once.  A by-reference
+    child needs the positions of the whole tree (:func:`content_sequence` passes them)."""
     done = {} if _done is None else _done
     found = done.get(id(item))
     if found is not None:
@@ -202,7 +245,13 @@ def encode_item(item: Item, _done: dict[int, bytes] | None = None) -> bytes:
         measured = _code_sequence(_UNITS_SEQUENCE, unit) + _numeric(number)
         parts.append(sequence(_MEASURED_VALUE, [measured]))
     if item.children or vt == "CONTAINER":
-        parts.append(sequence(_CONTENT, [encode_item(c, done) for c in item.children]))
+        children = []
+        for c in item.children:
+            if isinstance(c, Reference):
+                children.append(encode_reference(c, _where or {}))
+            else:
+                children.append(encode_item(c, done, _where))
+        parts.append(sequence(_CONTENT, children))
     encoded = done[id(item)] = b"".join(parts)
     return encoded
 
@@ -211,8 +260,9 @@ def content_sequence(items: Sequence[Item]) -> RawDataElement:
     """The Content Sequence holding ``items``, as an encoded (raw) data element: pydicom writes
     it as it is in explicit VR little endian and decodes it when it is read."""
     done: dict[int, bytes] = {}  # the tree is alive while it is encoded: ids are not reused
+    where = positions(items)
     return raw_element(
-        _CONTENT_SEQUENCE, "SQ", sequence_value([encode_item(i, done) for i in items])
+        _CONTENT_SEQUENCE, "SQ", sequence_value([encode_item(i, done, where) for i in items])
     )
 
 

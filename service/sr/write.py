@@ -2,21 +2,27 @@
 
 Shape (all content by value, following the TID 2000 pattern of PS3.16 without claiming it):
 
-    CONTAINER (42148-7, LN, "Echocardiography Report")
+    CONTAINER (DFREPORT, 99DSRG, "Automated LV diastolic function assessment")
       HAS OBS CONTEXT   device observer (TID 1002 / TID 1004)
+      CONTAINS CONTAINER (19005-8, LN, "Impressions")       the conclusion + the caution, first
       CONTAINS CONTAINER (ASSESSMENT, 99DSRG)              one per guideline, primary first
         CODE role, CODE guideline, TEXT citation, TEXT algorithm name / version
         CODE pathway  > INFERRED FROM TEXT pathway reason
         CODE (8884-9, LN, "Cardiac Rhythm"), CODE special situations
-        CODE grade              > INFERRED FROM NUM per criterion (TEXT when unavailable)
-        CODE filling pressure   > INFERRED FROM NUM per criterion (TEXT when unavailable)
-                                    each criterion > HAS PROPERTIES verdict, rule, cut-off ...
+        CODE grade              > INFERRED FROM (by reference) each criterion, or the pathway
+        CODE filling pressure   > INFERRED FROM (by reference) each criterion, or the pathway
         CODE borderline (Yes/No) > INFERRED FROM TEXT flag > HAS PROPERTIES alternative results
-        TEXT reasoning steps (in order), TEXT notes, TEXT supporting findings
+        CONTAINER (CRITERIA, 99DSRG)   each criterion once: NUM (TEXT when unavailable)
+                                        > HAS PROPERTIES verdict, rule, cut-off, step, source ...
+        TEXT reasoning steps (in order), TEXT notes,
+        TEXT readings of ambiguous rules > HAS PROPERTIES TEXT reading identifier,
+        TEXT supporting findings
       CONTAINS CONTAINER (GLCOMPARISON, 99DSRG)             only when guidelines are compared
       CONTAINS CONTAINER (MEASUSED, 99DSRG)                 every value used, with its origin
-      CONTAINS CONTAINER (19005-8, LN, "Impressions")       summary + the caution
       CONTAINS COMPOSITE (122073, DCM, "Current procedure evidence")   per source SR
+
+Prose (impression, reasoning, notes) is the clinical vocabulary of :mod:`service.wording`;
+identifiers (criterion, reading, codes) are items of their own, never inside a sentence.
 
 The result is in the patient and study of ``sources[0]`` (its Patient and Study modules are
 copied: :mod:`service.sr.header`), in a new series, UNVERIFIED and PRELIMINARY (PS3.3 C.17.2).
@@ -41,34 +47,42 @@ from service.model import (
     AssessmentSet,
     BorderlineFlag,
     Criterion,
-    FillingPressure,
     Grade,
     InstanceRef,
     Measurements,
     MeasureValue,
     Origin,
+    Reading,
     SupportingFinding,
     Verdict,
 )
 from service.sr import codes as C
 from service.sr.content import (
     Item,
+    Reference,
     Rel,
     code_item,
     composite_item,
     container_item,
     num_item,
+    reference_item,
     text_item,
     uidref_item,
 )
 from service.sr.encode import content_sequence
 from service.sr.header import CodingScheme, result_header
 from service.sr.identity import derive_uid, is_valid_uid
+from service.wording import (
+    GRADE_WORDS,
+    GUIDELINE_NAMES,
+    headline,
+    reading_sentence,
+)
 
 MANUFACTURER = "diastolic-sr project"
 MODEL_NAME = "diastolic-sr"
 DEVICE_NAME = "diastolic-sr"
-SERIES_DESCRIPTION = "Diastolic function assessment (automated)"
+SERIES_DESCRIPTION = "Automated LV diastolic function assessment"
 #: fixed, so every result names the same device (PS3.16 TID 1004)
 DEVICE_UID = derive_uid("diastolic-sr", "device observer")
 
@@ -76,23 +90,11 @@ DEVICE_UID = derive_uid("diastolic-sr", "device observer")
 #: the parts the result's SOP Instance UID is derived from, so a result laid out differently
 #: never reuses the UID of an earlier one with other content (a re-sent study then gets a new
 #: instance that names the earlier one as its predecessor).  Layout 2: Impressions first.
-DOCUMENT_LAYOUT = "layout-2"
+#: Layout 3: document title of its own, criteria once (referenced by grade and filling
+#: pressure), readings of ambiguous rules as items of their own.
+DOCUMENT_LAYOUT = "layout-3"
 
 
-_GRADE_WORDS: dict[Grade, str] = {
-    Grade.normal: "normal diastolic function",
-    Grade.grade_1: "grade I diastolic dysfunction",
-    Grade.grade_2: "grade II diastolic dysfunction",
-    Grade.grade_3: "grade III diastolic dysfunction",
-    Grade.indeterminate: "diastolic function indeterminate",
-    Grade.not_gradable: "diastolic function not gradable",
-}
-_PRESSURE_WORDS: dict[FillingPressure, str] = {
-    FillingPressure.normal: "normal",
-    FillingPressure.elevated: "elevated",
-    FillingPressure.indeterminate: "indeterminate",
-    FillingPressure.unknown: "not estimated",
-}
 _ORIGIN_WORDS: dict[Origin, str] = {
     Origin.measured: "measured (single value in the source)",
     Origin.selected: "selected in the source (Selection Status)",
@@ -109,28 +111,19 @@ _ORIGIN_WORDS: dict[Origin, str] = {
 
 
 def grade_words(grade: Grade) -> str:
-    return _GRADE_WORDS[grade]
+    return GRADE_WORDS[grade]
 
 
 def summary_text(assessments: AssessmentSet) -> str:
-    """One plain-language paragraph: the primary result first, then any comparison."""
+    """The impression: the guideline and the conclusion (:func:`service.wording.headline`, the
+    same sentence as the summary's headline, the table and the JSON), then any borderline
+    flag, then the other guidelines' results."""
     p = assessments.primary
-    name = C.GUIDELINE_NAMES[p.guideline]
-    text = (
-        f"{name}: {_GRADE_WORDS[p.grade]}; estimated LV filling pressure "
-        f"{_PRESSURE_WORDS[p.filling_pressure]}."
-    )
-    if p.grade is Grade.not_gradable:
-        reason = p.reasoning[-1] if p.reasoning else p.pathway_reason
-        if reason:
-            text += f" Reason: {reason.rstrip('.')}."
+    text = f"{GUIDELINE_NAMES[p.guideline]}: {headline(p)}"
     if p.borderline:
-        text += " Borderline result: " + " ".join(f.text for f in p.borderline)
+        text += " Borderline: " + " ".join(f.text for f in p.borderline)
     for o in assessments.others:
-        text += (
-            f" For comparison, {C.GUIDELINE_NAMES[o.guideline]}: {_GRADE_WORDS[o.grade]}; "
-            f"filling pressure {_PRESSURE_WORDS[o.filling_pressure]}."
-        )
+        text += f" For comparison, {GUIDELINE_NAMES[o.guideline]}: {headline(o)}"
     return text
 
 
@@ -166,7 +159,7 @@ def _container(
     return container_item(name.code, list(children), rel)
 
 
-def _with(item: Item, children: Sequence[Item | None]) -> Item:
+def _with(item: Item, children: Sequence[Item | Reference | None]) -> Item:
     return item.with_children(list(children))
 
 
@@ -187,8 +180,10 @@ _VERDICTS = {
 
 
 def criterion_item(c: Criterion) -> Item:
-    """A criterion as INFERRED FROM evidence: NUM with the value used (TEXT "not available"
-    when there is none), and its verdict, rule, cut-off, step and source as properties."""
+    """A criterion, once, in the Criteria container: NUM with the value used (TEXT "not
+    available" when there is none), and its verdict, rule, cut-off, step, source, identifier
+    and (for rows that count together) the words saying so, as properties.  The grade and the
+    filling pressure refer to it by reference."""
     concept = C.MEASURE_CONCEPTS[c.measure]
     rule = c.label or f"{c.measure.value} {c.comparison.value} {c.threshold:g} {c.unit}"
     props: list[Item | None] = [
@@ -199,14 +194,23 @@ def criterion_item(c: Criterion) -> Item:
         props.append(_num(C.CUTOFF, c.threshold, c.unit, Rel.HAS_PROPERTIES))
     props += [
         _opt_text(C.ALGORITHM_STEP, c.step, Rel.HAS_PROPERTIES),
+        _opt_text(C.CRITERION_GROUP, c.group, Rel.HAS_PROPERTIES),
         _opt_text(C.CUTOFF_SOURCE, c.source, Rel.HAS_PROPERTIES),
         _opt_text(C.CRITERION_ID, c.id, Rel.HAS_PROPERTIES),
     ]
     if _finite(c.value):
-        item: Item = _num(concept, c.value, c.unit, Rel.INFERRED_FROM)  # type: ignore[arg-type]
+        item: Item = _num(concept, c.value, c.unit, Rel.CONTAINS)  # type: ignore[arg-type]
     else:
-        item = _text(concept, C.NOT_AVAILABLE_TEXT, Rel.INFERRED_FROM)
+        item = _text(concept, C.NOT_AVAILABLE_TEXT, Rel.CONTAINS)
     return _with(item, props)
+
+
+def _reading_item(r: Reading) -> Item:
+    """A reading of an ambiguous rule: the words a person reads, the identifier apart."""
+    return _with(
+        _text(C.READING, reading_sentence(r.text), Rel.CONTAINS),
+        [_text(C.READING_ID, r.id, Rel.HAS_PROPERTIES)],
+    )
 
 
 def _borderline_items(flags: Sequence[BorderlineFlag]) -> Item:
@@ -272,18 +276,26 @@ def assessment_container(a: Assessment, *, primary: bool) -> Item:
     items.append(_code(C.CARDIAC_RHYTHM, C.RHYTHM_VALUES[a.rhythm], Rel.CONTAINS))
     for s in a.special_situations:
         items.append(_code(C.SPECIAL_SITUATION, C.SPECIAL_SITUATION_VALUES[s], Rel.CONTAINS))
-    # the same criterion items under both (immutable: made, and encoded, once)
+    # each criterion once; both conclusions refer to the criteria by reference (a grade the
+    # guideline does not give here is inferred from the pathway, which says why)
     criteria = [criterion_item(c) for c in a.criteria]
-    items.append(_with(_code(C.GRADE, C.GRADE_VALUES[a.grade], Rel.CONTAINS), criteria))
+    from_criteria = [reference_item(Rel.INFERRED_FROM, c) for c in criteria]
+    from_pathway = [reference_item(Rel.INFERRED_FROM, pathway)]
+    grade_from = from_pathway if a.grade is Grade.not_applicable or not criteria else from_criteria
+    pressure_from = from_criteria or from_pathway
+    items.append(_with(_code(C.GRADE, C.GRADE_VALUES[a.grade], Rel.CONTAINS), grade_from))
     items.append(
         _with(
             _code(C.FILLING_PRESSURE, C.FILLING_PRESSURE_VALUES[a.filling_pressure], Rel.CONTAINS),
-            criteria,
+            pressure_from,
         )
     )
     items.append(_borderline_items(a.borderline))
+    if criteria:
+        items.append(_container(C.CRITERIA, criteria))
     items += [_opt_text(C.REASONING, r, Rel.CONTAINS) for r in a.reasoning]
     items += [_opt_text(C.NOTE, n, Rel.CONTAINS) for n in a.notes]
+    items += [_reading_item(r) for r in a.readings]
     items += [_supporting_item(s) for s in a.supporting]
     return _container(C.ASSESSMENT, items)
 
@@ -357,7 +369,7 @@ def content_tree(
                 C.CURRENT_PROCEDURE_EVIDENCE.code, src.SOPClassUID, src.SOPInstanceUID, Rel.CONTAINS
             )
         )
-    return _container(C.ECHO_REPORT, observer + body, rel=None)
+    return _container(C.RESULT_TITLE, observer + body, rel=None)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -422,7 +434,7 @@ def build_result_sr(
         content = content_tree(evidence, assessments, measurements)
         sr = result_header(
             evidence,
-            title=C.ECHO_REPORT.code,
+            title=C.RESULT_TITLE.code,
             sop_instance_uid=sop_instance_uid,
             series_instance_uid=series_instance_uid,
             series_number=series_number,

@@ -173,6 +173,20 @@ class SqlJournal(AuditRecords, ActivityQueries, Journal):
             )
             self._put_object_in_tx(db, sop_instance_uid, data)
 
+    def record_outcome(self, result_uid: str, outcome: str) -> None:
+        with self._tx(durable=False) as db:
+            db.execute(
+                """INSERT INTO result_outcomes (result_uid, outcome) VALUES (?, ?)
+                   ON CONFLICT (result_uid) DO UPDATE SET outcome = excluded.outcome""",
+                (result_uid, outcome),
+            )
+
+    def outcome_of(self, result_uid: str) -> str | None:
+        rows = self._query(
+            "SELECT outcome FROM result_outcomes WHERE result_uid = ?", (result_uid,)
+        )
+        return str(rows[0][0]) if rows else None
+
     def ignored_objects(self, limit: int = 100) -> list[dict[str, Any]]:
         rows = self._query(
             "SELECT * FROM ignored_objects ORDER BY received_at DESC LIMIT ?", (limit,)
@@ -741,6 +755,11 @@ class SqlJournal(AuditRecords, ActivityQueries, Journal):
                         (uid, uid),
                     )
                 files += self._purge_study_bytes(db, study)
+                db.execute(
+                    "DELETE FROM result_outcomes WHERE result_uid IN "
+                    "(SELECT result_uid FROM results WHERE study_uid = ?)",
+                    (study,),
+                )
                 db.execute("DELETE FROM results WHERE study_uid = ?", (study,))
                 self._audit_forget(db, (study,))
                 db.execute("DELETE FROM objects WHERE study_uid = ?", (study,))

@@ -91,7 +91,15 @@ MIGRATIONS: list[list[str]] = [
         )""",
         "CREATE INDEX IF NOT EXISTS ignored_objects_received ON ignored_objects (received_at)",
     ],
-    # 3: the audit's facts per study (service/store/audit_records.py), kept when retention
+    # 3: what each result concluded, as a service.model.Outcome token (kept apart from the
+    # results table: Journal.record_outcome / outcome_of)
+    [
+        """CREATE TABLE IF NOT EXISTS result_outcomes (
+            result_uid TEXT PRIMARY KEY,
+            outcome TEXT NOT NULL
+        )""",
+    ],
+    # 4: the audit's facts per study (service/store/audit_records.py), kept when retention
     # purges the study, and the patient identity recorded only when configured
     [
         """CREATE TABLE IF NOT EXISTS audit_studies (

@@ -6,6 +6,7 @@ Run from the repository root (the venv active, DCMTK in /usr/bin)::
     python tests/bench/bench.py --n 1000 --sections receivers,offline
     python tests/bench/bench.py --sections memory --memory-at 1000,10000
     python tests/bench/bench.py --sections sender
+    python tests/bench/bench.py --sections summary --rounds 5
     python tests/bench/bench.py --json figures.json   # also write the figures as JSON
 
 Sections
@@ -20,6 +21,9 @@ latency    a steady offered load (default 10 studies/s, one ``storescu`` per stu
            delivered to the PACS (journal ``delivered_at``).
 offline    ``diastolic-sr grade`` on a folder of N files against a bare pydicom read-and-write
            of the same files (files/s).
+summary    ``diastolic-sr grade --pdf --out`` against ``grade --out`` on the same files
+           (default 500, ``--summary-n``), each a command of its own, taken in turn for
+           ``--rounds`` rounds: files/s and the ratio (target >= 0.5), medians.
 sender     the node's C-STORE service user against pynetdicom's requestor, each sending the
            same N result SRs to DCMTK ``storescp`` over one association (objects/s, CPU
            per object).
@@ -39,6 +43,7 @@ import io
 import json
 import math
 import os
+import resource
 import shutil
 import sqlite3
 import statistics
@@ -62,7 +67,7 @@ STORESCP = "/usr/bin/storescp"
 ECHOSCU = "/usr/bin/echoscu"
 NODE_AE = "DIASTOLIC_SR"
 PACS_AE = "PACS"
-SECTIONS = ("receivers", "latency", "offline", "sender", "memory", "journal")
+SECTIONS = ("receivers", "latency", "offline", "summary", "sender", "memory", "journal")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -526,6 +531,66 @@ def bench_offline(work: Path, n: int) -> dict[str, Any]:
     return out
 
 
+def bench_summary(work: Path, n: int, rounds: int) -> dict[str, Any]:
+    """``grade --pdf --out`` against ``grade --out`` on the same files, each as a separate
+    command (process start, imports, worker processes: what a user runs), taken in turn for
+    ``rounds`` rounds; medians.  Target: with summaries at least 0.5 x the speed without."""
+    say(f"\n== summary: grade --pdf --out vs grade --out, {n} files, {rounds} rounds ==")
+    src = work / "summary-in"
+    write_studies(src, n, run="summary")
+    cli = [sys.executable, "-m", "service.cli", "grade", str(src), "--json"]
+    times: dict[str, list[float]] = {"plain": [], "pdf": []}
+    cpu: dict[str, list[float]] = {"plain": [], "pdf": []}
+    for r in range(rounds):
+        for kind, extra in (("plain", []), ("pdf", ["--pdf"])):
+            out = work / f"summary-out-{kind}-{r}"
+            before = resource.getrusage(resource.RUSAGE_CHILDREN)
+            t0 = time.perf_counter()
+            done = subprocess.run(
+                [*cli, "--out", str(out), *extra],
+                stdout=subprocess.DEVNULL,
+                stderr=subprocess.PIPE,
+                cwd=REPO,
+                timeout=1800,
+            )
+            times[kind].append(time.perf_counter() - t0)
+            after = resource.getrusage(resource.RUSAGE_CHILDREN)  # the command and its workers
+            cpu[kind].append(after.ru_utime + after.ru_stime - before.ru_utime - before.ru_stime)
+            if done.returncode not in (0, 1):
+                raise RuntimeError(done.stderr.decode(errors="replace")[-2000:])
+            shutil.rmtree(out, ignore_errors=True)
+        ratio = times["plain"][-1] / times["pdf"][-1]
+        cpu_ratio = cpu["plain"][-1] / cpu["pdf"][-1]
+        say(
+            f"round {r + 1}: grade --out {n / times['plain'][-1]:7.1f} files/s, "
+            f"grade --pdf --out {n / times['pdf'][-1]:7.1f} files/s, ratio {ratio:.2f}; "
+            f"CPU {cpu['plain'][-1]:.1f} s vs {cpu['pdf'][-1]:.1f} s, ratio {cpu_ratio:.2f}"
+        )
+    plain, pdf = statistics.median(times["plain"]), statistics.median(times["pdf"])
+    ratios = [a / b for a, b in zip(times["plain"], times["pdf"], strict=True)]
+    out = {
+        "n": n,
+        "rounds": rounds,
+        "plain_s": times["plain"],
+        "pdf_s": times["pdf"],
+        "plain_files_per_s": n / plain,
+        "pdf_files_per_s": n / pdf,
+        "ratio_median": statistics.median(ratios),
+        "ratios": ratios,
+        "plain_cpu_s": cpu["plain"],
+        "pdf_cpu_s": cpu["pdf"],
+        "cpu_ratio_median": statistics.median(
+            a / b for a, b in zip(cpu["plain"], cpu["pdf"], strict=True)
+        ),
+    }
+    say(
+        f"median: grade --out {n / plain:.1f} files/s, grade --pdf --out {n / pdf:.1f} files/s; "
+        f"ratio {out['ratio_median']:.2f}   (target >= 0.5); CPU-time ratio "
+        f"{out['cpu_ratio_median']:.2f} (the same comparison, less sensitive to other load)"
+    )
+    return out
+
+
 def bench_sender(work: Path, n: int) -> dict[str, Any]:
     """The node's C-STORE sending (service/network/store_scu.py: pynetdicom's requestor with a
     watchdog, each stored result decoded by pydicom and sent as a data set) against
@@ -813,6 +878,9 @@ def parse(argv: list[str] | None) -> argparse.Namespace:
     p.add_argument("--offline-n", type=int, help="files for the offline section (default --n)")
     p.add_argument("--latency-n", type=int, default=100, help="studies in the latency run")
     p.add_argument(
+        "--summary-n", type=int, default=500, help="files for the summary section (default 500)"
+    )
+    p.add_argument(
         "--rate", default="10", help="offered studies/s for the latency run(s), e.g. 10,2"
     )
     p.add_argument("--workers", type=int, default=2, help="node grading workers (default 2)")
@@ -831,7 +899,7 @@ def parse(argv: list[str] | None) -> argparse.Namespace:
     p.add_argument("--journal-sizes", default="1000,10000,100000", help="journal sizes (studies)")
     p.add_argument(
         "--sections",
-        default="receivers,latency,offline,sender,journal",
+        default="receivers,latency,offline,summary,sender,journal",
         help=f"comma-separated, from {','.join(SECTIONS)} (memory is long: ask for it)",
     )
     p.add_argument("--json", type=Path, help="write the figures to this JSON file")
@@ -848,7 +916,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"unknown section(s): {', '.join(sorted(unknown))}", file=sys.stderr)
         return 2
     for tool in (STORESCU, STORESCP, ECHOSCU):
-        if not os.access(tool, os.X_OK) and set(sections) - {"offline", "journal"}:
+        if not os.access(tool, os.X_OK) and set(sections) - {"offline", "summary", "journal"}:
             print(f"{tool} missing (Debian package dcmtk)", file=sys.stderr)
             return 2
     work = args.work or Path(tempfile.mkdtemp(prefix="diastolic-sr-bench-"))
@@ -865,6 +933,8 @@ def main(argv: list[str] | None = None) -> int:
                 figures[key] = bench_latency(work / f"lat{i}", args.latency_n, rate, args.workers)
         if "offline" in sections:
             figures["offline"] = bench_offline(work, args.offline_n or args.n)
+        if "summary" in sections:
+            figures["summary"] = bench_summary(work, args.summary_n, args.rounds)
         if "sender" in sections:
             figures["sender"] = bench_sender(work, args.n)
         if "memory" in sections:

@@ -7,8 +7,13 @@ from __future__ import annotations
 from service.model import Guideline, Measure, Outcome, Pathway
 from service.wording import GUIDELINE_NAMES, MEASURE_NAMES, OUTCOME_WORDS, PATHWAY_WORDS
 
-#: the outcome as a count's label: the vocabulary's words ("Grade II diastolic dysfunction")
-OUTCOME_LABELS: dict[Outcome, str] = dict(OUTCOME_WORDS)
+#: the outcome as a count's label: the vocabulary's words ("Grade II diastolic dysfunction");
+#: the vocabulary names the situation after "Grade not applicable in", the audit counts every
+#: situation together
+OUTCOME_LABELS: dict[Outcome, str] = {
+    **OUTCOME_WORDS,
+    Outcome.special_situation: f"{OUTCOME_WORDS[Outcome.special_situation]} in a special situation",
+}
 
 #: short forms for chart legends and table headings
 OUTCOME_SHORT: dict[Outcome, str] = {

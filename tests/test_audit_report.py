@@ -249,3 +249,27 @@ def test_percentiles_interpolate_like_numpy():
 def test_wilson_interval(count, n, low, high):
     lo, hi = wilson_interval(count, n)
     assert (round(lo, 4), round(hi, 4)) == (low, high)
+
+
+def test_the_page_escapes_what_devices_send():
+    """A calling AE title may hold '<' and '&' (PS3.5 Table 6.2-1 excludes only backslash and
+    control characters), and a Station Name anything: the page escapes them (Jinja2
+    autoescape), so they never become markup."""
+    from service.audit.render import audit_html
+
+    hostile = "<script>alert(1)</script>"
+    r = build_report([row(1, "normal", device="<b>&AE</b>"), row(2, "normal", device=hostile)])
+    html = audit_html(r)
+    assert "<script>alert" not in html and "<b>&AE" not in html
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
+    assert "&lt;b&gt;&amp;AE&lt;/b&gt;" in html
+
+
+def test_dollar_signs_from_a_device_are_text(tmp_path):
+    """matplotlib would read "$...$" as mathematical notation (and fail on a lone "$")."""
+    from service.audit.pdf import audit_pdf
+    from service.audit.render import audit_html
+
+    r = build_report([row(1, "normal", device="ECHO$1"), row(2, "normal", device="A$x^{$B")])
+    assert "ECHO$1" in audit_html(r)
+    assert audit_pdf(r, tmp_path / "a.pdf").stat().st_size > 1000

@@ -14,6 +14,7 @@ import threading
 from collections.abc import Sequence
 from datetime import datetime, timedelta
 
+from matplotlib import rc_context
 from matplotlib.figure import Figure, FigureBase
 from matplotlib.patches import Patch
 from matplotlib.ticker import MaxNLocator
@@ -42,6 +43,9 @@ BLUE = "#0072B2"
 SKY = "#56B4E9"
 
 _lock = threading.RLock()  # matplotlib's shared state (font cache, rcParams) is not thread-safe
+#: text from the sources (a Station Name, an AE title) is drawn as it is: a "$" in it is not
+#: the start of mathematical notation
+PLAIN_TEXT = {"text.parse_math": False}
 
 
 def pct(share: float | None) -> str:
@@ -84,7 +88,7 @@ def svg(fig: FigureBase, title: str) -> str:
     """The figure as an inline SVG element (no XML prologue), with a title for screen readers
     and ids made unique to this figure."""
     buf = io.StringIO()
-    with _lock:
+    with _lock, rc_context(PLAIN_TEXT):
         fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None})
     text = buf.getvalue()
     text = text[text.index("<svg") :]
@@ -524,7 +528,7 @@ def all_svg(report: AuditReport) -> dict[str, str]:
     """Every chart as inline SVG, by key."""
     out = {}
     for key, title, build in CHARTS:
-        with _lock:
+        with _lock, rc_context(PLAIN_TEXT):
             fig = build(report)
         out[key] = svg(fig, title)
     return out

@@ -6,6 +6,7 @@ from __future__ import annotations
 import textwrap
 from pathlib import Path
 
+from matplotlib import rc_context
 from matplotlib.backends.backend_pdf import PdfPages
 from matplotlib.figure import Figure
 
@@ -84,7 +85,11 @@ def _first_page(report: AuditReport) -> Figure:
 def audit_pdf(report: AuditReport, path: Path) -> Path:
     """Write the audit as a PDF file; returns its path."""
     path = Path(path)
-    with F._lock, PdfPages(path, metadata={"Title": "Diastolic function audit"}) as pdf:
+    with (
+        F._lock,
+        rc_context(F.PLAIN_TEXT),
+        PdfPages(path, metadata={"Title": "Diastolic function audit"}) as pdf,
+    ):
         pdf.savefig(_first_page(report))
         for page in PAGES:
             fig = Figure(figsize=A4, layout="constrained")

@@ -107,6 +107,9 @@ def _escape(text: str) -> str:
 
 
 def _empty(fig: FigureBase, message: str) -> FigureBase:
+    """A chart with nothing to show: one line of text (short, on a page of its own)."""
+    if isinstance(fig, Figure):
+        fig.set_size_inches(fig.get_figwidth(), 0.6)
     ax = fig.add_subplot()
     ax.axis("off")
     ax.text(0.5, 0.5, message, ha="center", va="center", color=GREY, fontsize=10)

@@ -295,6 +295,9 @@ class Context(Frozen):
     special_situations: frozenset[SpecialSituation] = frozenset()
     #: where the rhythm came from, in plain words ("coded Cardiac Rhythm item", "sender default")
     rhythm_source: str = ""
+    #: the special situations the source SR states itself by a coded finding (a subset of
+    #: ``special_situations``; :mod:`service.sr.situations`), so the result can say so
+    situations_stated: frozenset[SpecialSituation] = frozenset()
     #: a value within this fraction of a cut-off is "near" it (borderline check); 0 disables
     borderline_fraction: float = 0.10
 

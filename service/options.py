@@ -75,6 +75,7 @@ def check_grading_options(args: argparse.Namespace) -> None:
 
     from service.config import GradingConfig
     from service.errors import UserError
+    from service.wording import in_sentence
 
     given = {
         "guideline": args.guideline,
@@ -91,7 +92,7 @@ def check_grading_options(args: argparse.Namespace) -> None:
         value = given.get(key, err.get("input"))
         shown = f"{value:g}" if isinstance(value, float) else str(value)
         allowed = str(err["msg"]).removeprefix("Value error, ")
-        allowed = allowed[:1].lower() + allowed[1:]
+        allowed = in_sentence(allowed)  # a pydantic message, now inside the sentence
         raise UserError(f"{option} {shown}: not allowed; {allowed}") from None
 
 

@@ -99,7 +99,18 @@ def rhythm_from_documents(
 
 
 def effective_context(documents: Sequence[SourceDocument], context: Context) -> Context:
-    """A coded rhythm in the SR beats the configured default."""
+    """A coded rhythm in the SR beats the configured default; special situations the SR states
+    by a coded finding are added to the configured ones."""
+    from service.sr.situations import situations_from_documents
+
+    stated = situations_from_documents(documents)
+    if stated:
+        context = context.model_copy(
+            update={
+                "special_situations": context.special_situations | stated,
+                "situations_stated": stated,
+            }
+        )
     found = rhythm_from_documents(documents)
     if found is None:
         if context.rhythm_source or context.rhythm is Rhythm.unknown:

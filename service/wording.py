@@ -135,6 +135,63 @@ READING_PREFIX = "This service's reading of an ambiguity in the guideline: "
 ONE_E_PRIME_CRITERION = "septal or lateral e′: one criterion"
 
 
+#: special situations as a clinician names them (abbreviations keep their capitals)
+SITUATION_NAMES: dict[SpecialSituation, str] = {
+    SpecialSituation.sinus_tachycardia: "sinus tachycardia",
+    SpecialSituation.mitral_regurgitation: "mitral regurgitation",
+    SpecialSituation.mitral_stenosis: "mitral stenosis",
+    SpecialSituation.mitral_annular_calcification: "mitral annular calcification",
+    SpecialSituation.prosthetic_mitral_valve: "prosthetic mitral valve",
+    SpecialSituation.heart_transplant: "heart transplant",
+    SpecialSituation.hypertrophic_cardiomyopathy: "hypertrophic cardiomyopathy",
+    SpecialSituation.restrictive_cardiomyopathy: "restrictive cardiomyopathy",
+    SpecialSituation.pulmonary_hypertension_non_cardiac: (
+        "pulmonary hypertension of non-cardiac cause"
+    ),
+    SpecialSituation.lbbb_or_ventricular_pacing: "LBBB or ventricular pacing",
+}
+
+#: how the result says that the source SR stated a special situation itself
+STATED_BY_FINDING = "stated by a coded finding in the source SR"
+
+#: first words whose spelling is clinical although they look like an ordinary capitalised word
+_KEEP_SPELLING = frozenset({"Ar", "Ar-A"})
+
+
+def _first_word(text: str) -> str:
+    return text.split(" ", 1)[0].rstrip(":,;.")
+
+
+def in_sentence(text: str) -> str:
+    """A name (or a sentence) as it reads after other words: only an ordinary capitalised first
+    word is lowered ("Septal e′" → "septal e′", "Mitral E" → "mitral E"); a measure symbol or
+    abbreviation keeps its clinical spelling ("LAVI", "TR peak velocity", "E/A", "LVEF",
+    "Ar-A duration", "e′").  Never lower a first letter by hand: "LAVI" would become "lAVI"."""
+    word = _first_word(text)
+    rest = word[1:]
+    ordinary = (
+        word[:1].isupper()
+        and len(rest) > 0
+        and all(ch.islower() or ch == "-" for ch in rest)
+        and word not in _KEEP_SPELLING
+    )
+    return text[:1].lower() + text[1:] if ordinary else text
+
+
+def sentence_start(text: str) -> str:
+    """``text`` as the start of a sentence: an ordinary lower-case first word gets its capital
+    ("mitral stenosis: …" → "Mitral stenosis: …"); a measure symbol keeps its spelling ("e′ is
+    reduced …" stays: E′ would be another measure)."""
+    word = _first_word(text)
+    ordinary = len(word) > 0 and all(ch.islower() or ch == "-" for ch in word)
+    return text[:1].upper() + text[1:] if ordinary else text
+
+
+def situation_name(situation: SpecialSituation) -> str:
+    """ "mitral stenosis", "LBBB or ventricular pacing" (inside a sentence)."""
+    return SITUATION_NAMES.get(situation, situation.value.replace("-", " "))
+
+
 def unit_words(unit: str) -> str:
     """A canonical UCUM unit as a reader writes it ("" for ratios)."""
     return _UNITS.get(unit, unit)
@@ -145,8 +202,8 @@ def measure_name(measure: Measure) -> str:
 
 
 def situations(items: Iterable[SpecialSituation]) -> str:
-    """ "mitral stenosis, heart transplant" (sorted, plain words)."""
-    return ", ".join(sorted(s.value.replace("-", " ") for s in items))
+    """ "heart transplant, mitral stenosis" (in the order of their tokens, clinical words)."""
+    return ", ".join(situation_name(s) for s in sorted(items))
 
 
 def pressure_phrase(pressure: FillingPressure) -> str:

@@ -120,6 +120,27 @@ def test_study_split_over_two_srs_is_graded_once_with_the_nodes_merge(tmp_path: 
     assert row["result_uid"] not in {r["result_uid"] for r in alone}
 
 
+def test_a_split_study_is_shown_by_its_first_file_in_path_order(tmp_path: Path):
+    # the demo's naming: "two-reports.dcm" and "two-reports-part2.dcm".  A plain string sort
+    # puts "-" (0x2D) before "." (0x2E), i.e. part 2 first; a person lists the shorter name first
+    first = echo_sr("first-file", instance=1, content_time="101500", values=FIRST_HALF)
+    second = echo_sr("first-file", instance=2, content_time="103000", values=SECOND_HALF)
+    p1 = _save(first, tmp_path / "in" / "study.dcm")
+    p2 = _save(second, tmp_path / "in" / "study-part2.dcm")
+    assert sorted([str(p1), str(p2)]) == [str(p2), str(p1)]
+    out = tmp_path / "out"
+    for given in ([tmp_path / "in"], [p2, p1], [p1, p2]):
+        [row] = json_rows(run_cli("grade", *given, "--json", "--out", out))
+        assert row["input"] == str(p1), given
+        assert row["inputs"] == [str(p1), str(p2)], given
+        assert row["output"] == str(out / "study.result.dcm"), given
+    table = run_cli("grade", p2, p1, "--out", tmp_path / "t")
+    assert table.returncode == 0, table.stderr
+    [line] = [ln for ln in table.stdout.splitlines() if "more of the study" in ln]
+    assert line.startswith(f"{p1} (+1 more of the study)"), line
+    assert str(tmp_path / "t" / "study.result.dcm") in line
+
+
 # -- options are checked before any file is read ---------------------------------------------
 
 

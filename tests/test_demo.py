@@ -25,6 +25,19 @@ def test_each_demo_case_gets_its_designed_grade(case):
 
 def test_demo_covers_every_outcome():
     assert {c.expected_2016 for c in CASES} == set(Grade)
+    # every outcome token (service.model.Outcome), a special situation among them: stated by
+    # the study's own SR (a coded finding), not by a run option
+    from service.demo.scenario import SITE_MAPPING
+    from service.model import Outcome
+    from service.vocabulary.mapper import load_mapping_table
+
+    table = load_mapping_table([SITE_MAPPING])
+    outcomes = {
+        c.key: grade_study(case_datasets(c), GradeOptions(), table=table).assessment.outcome
+        for c in CASES
+    }
+    assert set(outcomes.values()) == set(Outcome)
+    assert outcomes["mitral-stenosis"] is Outcome.special_situation
 
 
 def test_two_reports_of_one_study_are_merged():
@@ -71,6 +84,9 @@ def test_demo_command_runs_end_to_end():
     for case in CASES:
         # each row names its scenario beside its patient
         assert any(case.title in x and case.patient.id in x for x in lines), case.key
+    # the special situation the study's SR states is found on the node too
+    [row] = [x for x in lines if "HV100210" in x]
+    assert "special-situation" in row
     assert CAUTION in proc.stdout
 
 

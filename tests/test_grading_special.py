@@ -31,7 +31,7 @@ from service.model import (
     SpecialSituation,
     Verdict,
 )
-from service.wording import headline
+from service.wording import headline, situation_name
 
 S = SpecialSituation
 ELEVATED = FillingPressure.elevated
@@ -92,7 +92,7 @@ def test_every_situation_has_an_explicit_outcome(guideline, situation):
     assert a.grade is Grade.not_applicable  # never a standard grade
     assert a.outcome is Outcome.special_situation  # never counted as "not gradable"
     assert a.special_situations == (situation,)
-    words = situation.value.replace("-", " ")
+    words = situation_name(situation)  # clinical spelling ("LBBB or ventricular pacing")
     assert words in a.pathway_reason
     if a.pathway is Pathway.not_applicable:  # said once, in the conclusion
         assert "the standard algorithm does not apply" in headline(a)

@@ -194,6 +194,44 @@ def test_result_sent_back_with_dcmtk_storescu_is_acknowledged_and_ignored(
         assert listed[first["result_uid"]]["kind"] == "result SR"
 
 
+@needs_dcmtk
+@pytest.mark.network
+def test_summary_pdf_sent_back_with_dcmtk_storescu_is_recorded_as_ignored(
+    tmp_path, loopback_nodes, graded, capsys
+):
+    # access.accept_images accepts Encapsulated PDF Storage (PS3.4 Annex B.5) with the image
+    # classes: the node's own summary coming back is kept and listed, like an own result SR
+    source, outcome = graded
+    summary = build_summary(outcome, [source])
+    assert summary is not None and own_result_reason(summary).startswith("summary PDF")
+    foreign = copy.deepcopy(summary)  # another vendor's PDF report of the same study
+    for keyword in (*EQUIPMENT, "CodingSchemeIdentificationSequence", "ConceptNameCodeSequence"):
+        if keyword in foreign:
+            delattr(foreign, keyword)
+    foreign.Manufacturer = "Lanternfish Acoustics"
+    foreign.SOPInstanceUID = foreign.file_meta.MediaStorageSOPInstanceUID = generate_uid()
+    assert own_result_reason(foreign) is None
+    files = write_files([summary, foreign], tmp_path / "pacs-out")
+    node = loopback_nodes.start({"access": {"accept_images": True}, "http": {"port": 0}})
+    sent = run_storescu(files, node.port, calling="PACS")  # DCMTK storescu -R
+    assert sent.returncode == 0, sent.stderr
+    [row] = wait_for(lambda: node.journal.ignored_objects() or None, 20)
+    assert row["sop_instance_uid"] == summary.SOPInstanceUID
+    assert row["reason"].startswith(IGNORED_OWN_RESULT) and "summary PDF" in row["reason"]
+    assert row["study_uid"] == summary.StudyInstanceUID and Path(row["path"]).is_file()
+    kept = pydicom.dcmread(row["path"])  # kept as received: the PDF itself
+    assert kept.EncapsulatedDocument == summary.EncapsulatedDocument
+    # never graded: no study opened, nothing queued; the foreign PDF discarded as before
+    assert node.journal.study(summary.StudyInstanceUID) is None
+    assert node.journal.objects() == []
+    capsys.readouterr()
+    assert cli_main(["queue", "--data-dir", str(node.config.data_dir), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    [listed] = report["objects_ignored"]
+    assert listed["sop_instance_uid"] == summary.SOPInstanceUID
+    assert listed["kind"] == "summary PDF"
+
+
 def test_ignored_object_is_kept_then_purged_with_finished_work(tmp_path):
     from service.store.sqlite_journal import SqliteJournal
 

@@ -42,8 +42,9 @@ CASES: dict[str, tuple[str, tuple[str, ...], Outcome]] = {
     "indeterminate": ("indeterminate", (), Outcome.indeterminate),
     "not-gradable": ("not-gradable", (), Outcome.not_gradable),
     "atrial-fibrillation": ("atrial-fibrillation", (), Outcome.atrial_fibrillation),
-    # alternative criteria (ASE/EACVI 2016 section V.C) and no alternative at all
-    "special-situation": ("grade-2", ("--situation", "mitral-stenosis"), Outcome.special_situation),
+    # alternative criteria (ASE/EACVI 2016 section V.C), stated by the study's own SR (a coded
+    # finding), and no alternative at all, given by the run option
+    "special-situation": ("mitral-stenosis", (), Outcome.special_situation),
     "special-not-applicable": (
         "grade-2",
         ("--situation", "heart-transplant"),
@@ -254,6 +255,92 @@ def test_each_criterion_once_in_the_content_tree(case: str) -> None:
         assert dump.count('"Counted as one criterion")="septal or lateral e′: one criterion"') == 2
 
 
+#: what a sentence about one criterion looks like ("Septal e′ 5.1 cm/s against < 7 cm/s: met.",
+#: "LAVI > 34 mL/m²: not evaluated, LAVI not available.", "Septal or lateral e′: one
+#: criterion, met."): the criteria are written once, in the Criteria container, and the
+#: reasoning holds only the decisions made from them
+CRITERION_SENTENCE = re.compile(
+    r"\bagainst [<>≤≥]|: not evaluated\b|: one criterion, (?:met|not met|not available)\b"
+)
+#: a verdict said after a criterion's rule ("E/A ≤ 0.8: not met")
+VERDICTS = (": met", ": not met", ": not evaluated", ": unavailable", ": not available")
+#: the result SR's sentences a person reads, other than a criterion's own items (its rule and
+#: the source of its cut-off) and the comparison of two guidelines, which names the one
+#: finding they judge differently with both cut-offs side by side
+OTHER_PROSE = tuple(n for n in PROSE if n not in ("Criterion rule", "Cut-off source"))
+
+
+def _reasoning_steps(assessment) -> list[str]:
+    return [i.TextValue for i in _items(assessment, "Reasoning step")]
+
+
+@pytest.mark.external
+@pytest.mark.parametrize("case", list(CASES))
+def test_reasoning_holds_the_decisions_and_no_criterion_twice(case: str) -> None:
+    g = graded(case)
+    assessments = _items(g.sr, "LV diastolic function assessment")
+    rules = [i.TextValue for a in assessments for i in _items(a, "Criterion rule")]
+    prose = [
+        i.TextValue
+        for name in OTHER_PROSE
+        if name != "Guideline disagreement"
+        for i in _items(g.sr, name)
+    ]
+    assert prose
+    for text in prose:
+        assert not CRITERION_SENTENCE.search(text), text
+        for rule in rules:
+            low = text.casefold()
+            assert not any(rule.casefold() + v in low for v in VERDICTS), (rule, text)
+            # a criterion's rule is never a sentence of its own outside its criterion item
+            sentences = {s.strip().rstrip(".").casefold() for s in re.split(r"(?<=\.)\s", text)}
+            assert rule.casefold() not in sentences, (rule, text)
+    # the JSON's reasoning is the primary assessment's reasoning, step for step
+    assert g.json["reasoning"] == _reasoning_steps(assessments[0])
+    for text in (*g.json["reasoning"], *g.json["notes"]):
+        assert not CRITERION_SENTENCE.search(text), text
+    # within one guideline's assessment nothing is said twice (the pathway refers to the
+    # reasoning step that chose it, by reference, instead of repeating it)
+    for a in assessments:
+        said = [i.TextValue for name in OTHER_PROSE for i in _items(a, name)]
+        assert len(said) == len(set(said)), [t for t in said if said.count(t) > 1]
+
+
+@pytest.mark.external
+@pytest.mark.parametrize("case", list(CASES))
+def test_measure_names_keep_their_clinical_spelling(case: str) -> None:
+    from test_clinical_spelling import BROKEN
+
+    g = graded(case)
+    for text in (g.dsrdump(), g.pdf_text(), g.table, json.dumps(g.json, ensure_ascii=False)):
+        found = BROKEN.search(text)
+        assert found is None, text[max(0, found.start() - 80) : found.end() + 40]
+
+
+@pytest.mark.external
+def test_grade_2_reasoning_is_the_four_decisions_of_figures_8a_and_8b() -> None:
+    # Nagueh 2016 JASE 29:277, Figure 8A (more than half of 4 criteria met: dysfunction) and
+    # Figure 8B (E/A between 0.8 and 2: step 2; 2 or 3 of 3 met: grade II)
+    g = graded("grade-2")
+    expected = [
+        "LVEF 58 % is not below 50 % and no myocardial disease is flagged: Algorithm A "
+        "(Figure 8A) for normal LVEF applies.",
+        "Algorithm A: 4 of 4 available criteria met (more than half): diastolic dysfunction "
+        "present; Algorithm B (Figure 8B) grades it.",
+        "Algorithm B: E/A between the branches; step 2 applies.",
+        "Step 2: 3 of 3 available criteria met: grade II, elevated filling pressure.",
+    ]
+    assert g.json["reasoning"] == expected
+    [primary] = _items(g.sr, "LV diastolic function assessment")
+    assert _reasoning_steps(primary) == expected
+    dump = g.dsrdump()
+    # the routing sentence once, the pathway inferred from it by reference (DCMTK resolves it)
+    assert dump.count(expected[0]) == 1
+    assert '"Pathway reason"' not in dump
+    pathway = dump.index('(,,"Grading pathway")')
+    assert re.match(r"\s*<inferred from 1(?:\.\d+)+>", dump[dump.index("\n", pathway) :])
+
+
 @pytest.mark.external
 @pytest.mark.parametrize("case", list(CASES))
 def test_nothing_cut_and_nothing_said_twice_in_the_summary(case: str) -> None:
@@ -289,6 +376,25 @@ def test_every_word_stays_inside_the_margins(case: str) -> None:
 
 
 @pytest.mark.external
+def test_special_situation_stated_by_the_sr_or_given_by_the_option() -> None:
+    # the demo study's SR states mitral stenosis by a coded finding (121071 DCM "Finding" =
+    # 79619009 SCT "Mitral stenosis", both in pydicom's PS3.16 dictionary); the same situation
+    # given by --situation on another study is applied alike, without that attribution
+    g = graded("special-situation")
+    assert g.json["pathway_reason"].startswith(
+        "mitral stenosis (stated by a coded finding in the source SR): "
+    )
+    assert "stated by a coded finding in the source SR" in g.dsrdump()
+    assert g.json["conclusion"].startswith("Grade not applicable in mitral stenosis;")
+    root = _demo_folder()
+    common = [str(root / "demo" / "grade-2.dcm"), "--mapping", str(SITE_MAPPING), "--jobs", "1"]
+    flagged = json.loads(_run_cli(["grade", *common, "--json", "--situation", "mitral-stenosis"]))
+    assert flagged["outcome"] == "special-situation"
+    assert flagged["conclusion"].startswith("Grade not applicable in mitral stenosis;")
+    assert "stated by a coded finding" not in flagged["pathway_reason"]
+
+
+@pytest.mark.external
 def test_compared_guidelines_say_where_they_differ() -> None:
     g = graded("compared")
     [other] = g.json["compared"]
@@ -316,7 +422,7 @@ def test_borderline_names_the_measure_clinically() -> None:
 def test_vocabulary_document_lists_every_token_and_reading() -> None:
     # docs/vocabulary.md is the one place the vocabulary is written down: it must not drift
     from service.grading.readings import READINGS, SWITCHED
-    from service.wording import OUTCOME_WORDS, PRESSURE_WORDS
+    from service.wording import OUTCOME_WORDS, PRESSURE_WORDS, SITUATION_NAMES
 
     doc = (Path(__file__).parents[1] / "docs" / "vocabulary.md").read_text(encoding="utf-8")
     for outcome, words in OUTCOME_WORDS.items():
@@ -327,6 +433,8 @@ def test_vocabulary_document_lists_every_token_and_reading() -> None:
         assert f"| `{ident}` | {words} |" in doc, ident
     for (ident, setting), words in SWITCHED.items():
         assert f"| `{ident}` | `{setting}` | {words} |" in doc, (ident, setting)
+    for situation, words in SITUATION_NAMES.items():
+        assert f"| `{situation.value}` | {words} |" in doc, situation
 
 
 # ---------------------------------------------------------------------------------------------

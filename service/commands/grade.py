@@ -10,7 +10,7 @@ import stat
 import sys
 from collections.abc import Iterator, Sequence
 from concurrent.futures import ProcessPoolExecutor
-from pathlib import Path
+from pathlib import Path, PurePath
 from typing import Any, NamedTuple
 
 from pydicom import Dataset
@@ -77,14 +77,29 @@ class _Entry(NamedTuple):
     root: Path  # the folder argument it was found in, or the file argument itself
 
 
+def name_order(name: str) -> tuple[str, str]:
+    """Sort key of one file or folder name: the name without its extension, then the
+    extension, so that a name comes before the same name with more added ("two-reports.dcm"
+    before "two-reports-part2.dcm", as a person lists them; a plain string sort puts "-"
+    before ".")."""
+    pure = PurePath(name)
+    return pure.stem, pure.suffix
+
+
+def path_order(path: Path) -> tuple[tuple[str, str], ...]:
+    """Sort key of a path: folder by folder, each name by :func:`name_order`."""
+    return tuple(name_order(part) for part in path.parts)
+
+
 def iter_inputs(paths: list[str]) -> Iterator[_Entry]:
-    """Files in the order given; folders searched recursively in sorted order."""
+    """Files in the order given; folders searched recursively in path order
+    (:func:`path_order`)."""
     for raw in paths:
         path = Path(raw)
         if path.is_dir():
             for root, dirs, files in os.walk(path):
-                dirs.sort()
-                for name in sorted(files):
+                dirs.sort(key=name_order)
+                for name in sorted(files, key=name_order):
                     yield _Entry(Path(root) / name, path)
         else:
             yield _Entry(path, path)
@@ -196,7 +211,9 @@ def plan_units(
         if isinstance(o, dict):
             units.append(_Unit(rows=(o,)))
             continue
-        group = groups[o]
+        # a study's files in path order: its first file names the row, the JSON's ``input``
+        # and the output, whatever order the files were given in
+        group = sorted(groups[o], key=lambda e: path_order(e.path))
         base = None if out_dir is None else _unique_base(out_dir, group[0], used)
         units.append(_Unit(files=tuple(e.path for e in group), out_base=base))
     return units

@@ -2,7 +2,8 @@
 
 Every patient, identifier and value here is made up.  The cases cover normal function, each
 ASE/EACVI 2016 grade, an indeterminate and a not-gradable study, a borderline value, atrial
-fibrillation stated by a coded rhythm item, and a study sent as two SRs; they use both
+fibrillation stated by a coded rhythm item, mitral stenosis (a special situation) stated by a
+coded finding, and a study sent as two SRs; they use both
 encodings (TID 5300 pre-/post-coordinated, TID 5200 sections, site-private codes) and mixed
 units (m/s and cm/s, s and ms), as scanners do.
 """
@@ -31,6 +32,8 @@ M = Measure
 #: config/mappings/example-site.toml)
 SITE_MAPPING = Path(__file__).with_name("harbour-vale-mapping.toml")
 AF = Code(value="49436004", scheme="SCT", meaning="Atrial Fibrillation")
+#: PS3.16 CID 12248 / 3728 (pydicom's dictionary): the value of a coded finding
+MITRAL_STENOSIS = Code(value="79619009", scheme="SCT", meaning="Mitral stenosis")
 
 
 class DemoCase(BaseModel):
@@ -44,6 +47,8 @@ class DemoCase(BaseModel):
     template: Template = Template.tid5300
     sop_class: SopClass = SopClass.comprehensive
     rhythm: Code | None = None
+    #: coded findings the SR states, e.g. a special situation
+    findings: tuple[Code, ...] = ()
     items: tuple[EchoItem, ...]
     #: a second SR of the same study, created later (the newer SR wins for shared measures)
     follow_up: tuple[EchoItem, ...] = ()
@@ -214,6 +219,26 @@ CASES: tuple[DemoCase, ...] = (
         ),
     ),
     DemoCase(
+        key="mitral-stenosis",
+        title="Special situation: mitral stenosis stated by a coded finding",
+        expected_2016=Grade.not_applicable,
+        patient=Patient(
+            name="Ashgrove^Petra", id="HV100210", birth_date="19610922", sex="F", age="065Y"
+        ),
+        study=_study(10, "13"),
+        findings=(MITRAL_STENOSIS,),
+        items=(
+            _i(M.lvef, 60, "%"),
+            _i(M.mitral_e, 1.46, "m/s"),
+            _i(M.mitral_a, 1.72, "m/s"),
+            _i(M.ivrt, 52, "ms"),
+            _i(M.e_prime_septal, 6.4, "cm/s"),
+            _i(M.e_prime_lateral, 8.1, "cm/s"),
+            _i(M.tr_peak_velocity, 2.9, "m/s"),
+            _i(M.lavi, 52, "ml/m2"),
+        ),
+    ),
+    DemoCase(
         key="two-reports",
         title="One study sent as two SRs; the later SR adds TR velocity and LAVI",
         expected_2016=Grade.grade_2,
@@ -245,6 +270,7 @@ def case_datasets(case: DemoCase) -> list[Dataset]:
         sop_class=case.sop_class,
         template=case.template,
         rhythm=case.rhythm,
+        findings=case.findings,
     )
     if not case.follow_up:
         return [first]

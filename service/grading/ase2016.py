@@ -18,7 +18,7 @@ from service.grading.criteria import (
     tally,
     value_of,
 )
-from service.grading.trace import Trace, verdict_words_of
+from service.grading.trace import Trace
 from service.model import (
     CAUTION,
     Assessment,
@@ -32,7 +32,7 @@ from service.model import (
     Rhythm,
     Verdict,
 )
-from service.wording import ONE_E_PRIME_CRITERION
+from service.wording import ONE_E_PRIME_CRITERION, in_sentence
 
 RULE_SET_VERSION = "ase-eacvi-2016/1"
 CITATION = (
@@ -211,7 +211,7 @@ def _e_over_e_prime(trace: Trace, prefix: str, step: str) -> Verdict:
     ]
     if not singles:
         return trace.check(T.E_E_PRIME_AVERAGE, f"{prefix}.e_e_prime_average", step).verdict
-    names = " and ".join(row.name for row in singles)
+    names = " and ".join(in_sentence(row.name) for row in singles)
     trace.note(
         f"Average E/e′ was not available; {names} used with the single-site cut-off "
         "(septal > 15, lateral > 13)."
@@ -238,7 +238,6 @@ def _algorithm_a(
             trace.check(T.E_PRIME_LATERAL, f"{p}.e_prime_lateral", STEP_A, group=one).verdict,
         )
     )
-    trace.say(f"{one[:1].upper()}{one[1:]}, {verdict_words_of(e_prime)}.")
     known = [c.verdict for c in trace.criteria[-2:] if c.verdict is not Verdict.unavailable]
     if len(known) == 1 or len(set(known)) > 1:  # one site, or the sites differ: "or" decides
         trace.reading("I-16-2")
@@ -268,9 +267,9 @@ def _algorithm_a(
     counted = f"{t.met} of {t.available} available criteria met"
     if 2 * t.met > t.available:
         trace.reasoning.append(
-            f"Algorithm A: {counted} (more than half): diastolic dysfunction present."
+            f"Algorithm A: {counted} (more than half): diastolic dysfunction present; "
+            "Algorithm B (Figure 8B) grades it."
         )
-        trace.reasoning.append("Dysfunction present; Algorithm B (Figure 8B) grades it.")
         return _algorithm_b(trace, lvef_depressed)
     if 2 * t.met == t.available:
         trace.reasoning.append(

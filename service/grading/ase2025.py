@@ -36,6 +36,7 @@ from service.model import (
     Rhythm,
     Verdict,
 )
+from service.wording import in_sentence, sentence_start
 
 RULE_SET_VERSION = "ase-2025/1"
 CITATION = (
@@ -132,7 +133,7 @@ def _assess(measurements: Measurements, context: Context, opts: Ase2025Options) 
         f"{rhythm}, no special situation: the ASE 2025 general algorithm (Figure 3) applies at "
         "any LVEF"
     )
-    trace.say(f"{reason[0].upper()}{reason[1:]}.")
+    trace.say(f"{sentence_start(reason)}.")
     grade, pressure = _general(trace, opts)
     return Assessment(
         **base_fields(Guideline.ase_2025, CITATION, RULE_SET_VERSION, context),
@@ -175,7 +176,7 @@ def _sites(
     singles = [row for row in (septal, lateral) if value_of(m, row.measure) is not None]
     if not singles:
         return trace.check(average, f"{prefix}.{average.key}", STEP_1).verdict
-    names = " and ".join(row.name for row in singles)
+    names = " and ".join(in_sentence(row.name) for row in singles)
     trace.note(
         f"{average.name} was not available; {names} used with the site cut-off"
         f"{' (either site counts)' if len(singles) == 2 else ''}."
@@ -326,7 +327,7 @@ def _step_2(trace: Trace, opts: Ase2025Options) -> FillingPressure | None:
         row, first = next((row, c) for row, c in checked if c.verdict is not Verdict.unavailable)
         lap = FillingPressure.elevated if first.verdict is Verdict.met else FillingPressure.normal
         trace.say(
-            f"Step 2: {row.name} is the first available marker and decides: "
+            f"Step 2: {in_sentence(row.name)} is the first available marker and decides: "
             f"{'raised' if lap is FillingPressure.elevated else 'normal'} LAP."
         )
         return lap

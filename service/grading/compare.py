@@ -25,7 +25,7 @@ from service.model import (
     Pathway,
     Verdict,
 )
-from service.wording import outcome_phrase
+from service.wording import in_sentence, outcome_phrase
 
 LABELS: dict[Guideline, str] = {
     Guideline.ase_eacvi_2016: "ASE/EACVI 2016",
@@ -116,7 +116,7 @@ def _why_undecided(a: Assessment) -> str | None:
         low = sentence.lower()
         if any(k in low for k in ("indeterminate", "not estimated", "not gradable")):
             text = sentence.rstrip(".")
-            return f"{LABELS[a.guideline]}: {text[:1].lower()}{text[1:]}"
+            return f"{LABELS[a.guideline]}: {in_sentence(text)}"
     return None
 
 
@@ -136,9 +136,7 @@ def _name_and_unit(c: Criterion) -> tuple[str, str]:
         if marker in c.label:
             name, rest = c.label.split(marker, 1)
             unit = rest.split(" ", 1)[1] if " " in rest else ""
-            if name[1:2].islower():
-                name = name[:1].lower() + name[1:]
-            return name, unit
+            return in_sentence(name), unit
     return c.measure.value, ""  # pragma: no cover - labels always carry a symbol
 
 

@@ -9,7 +9,6 @@ its cut-offs in one cited table of :class:`Threshold` rows and uses these helper
 from __future__ import annotations
 
 import math
-import re
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 
@@ -135,35 +134,6 @@ def tally(verdicts: Iterable[Verdict]) -> Tally:
         available=sum(v is not Verdict.unavailable for v in vs),
         met=sum(v is Verdict.met for v in vs),
     )
-
-
-def describe(criterion: Criterion, name: str, unit: str) -> str:
-    """One reasoning sentence for an evaluated criterion, e.g.
-    "Average E/e′ 15.2 against > 14: met."."""
-    if criterion.value is None:
-        return f"{criterion.label}: not evaluated, {name[:1].lower()}{name[1:]} not available."
-    u = f" {unit}" if unit else ""
-    return (
-        f"{name} {fmt(criterion.value)}{u} against {SYMBOLS[criterion.comparison]} "
-        f"{fmt(criterion.threshold)}{u}: {verdict_words(criterion)}."
-    )
-
-
-#: matches the sentences :func:`describe` writes (and the one saying that several rows count as
-#: one criterion), so a reader that shows the criteria themselves can leave them out
-CRITERION_SENTENCE = re.compile(
-    r"^.+ against [<>≤≥] \S+.*: (met|not met|unavailable)\.$"
-    r"|^.+: not evaluated, .+ not available\.$"
-    r"|^.+: one criterion, (met|not met|not available)\.$"
-)
-
-
-def verdict_words(criterion: Criterion) -> str:
-    return {
-        Verdict.met: "met",
-        Verdict.not_met: "not met",
-        Verdict.unavailable: "unavailable",
-    }[criterion.verdict]
 
 
 # ---------------------------------------------------------------------------------------------

@@ -41,7 +41,7 @@ from service.grading.thresholds_ase2016 import (
     TACHY_E_E_PRIME_LATERAL,
     TACHY_IVRT,
 )
-from service.grading.trace import Trace, base_fields, situation_words
+from service.grading.trace import Trace, base_fields
 from service.model import (
     Assessment,
     Context,
@@ -56,6 +56,7 @@ from service.model import (
     SpecialSituation,
     Verdict,
 )
+from service.wording import STATED_BY_FINDING, sentence_start, situation_name
 
 S = SpecialSituation
 
@@ -164,16 +165,16 @@ def assess(
     """The result for a context with one or more special situations (never a standard grade)."""
     base = base_fields(guideline, citation, version, context)
     situations = sorted(context.special_situations)
-    words = situation_words(context.special_situations)
+    words = _named_with_source(context)
     label = _LABEL.get(guideline, guideline.value)
     blocked = [(s, r) for s in situations if (r := not_applicable_reason(s, guideline))]
     rhythm = _rhythm_sentence(context)
     if blocked:
-        why = "; ".join(f"{s.value.replace('-', ' ')}: {r}" for s, r in blocked)
+        why = "; ".join(f"{situation_name(s)}: {r}" for s, r in blocked)
         # the conclusion says "the standard algorithm does not apply"; the reason says why,
         # once, and no other sentence repeats it
         reason = f"{words}: {label} gives no alternative criteria that this service can apply"
-        reasoning = [f"{why[:1].upper()}{why[1:]}."]
+        reasoning = [f"{sentence_start(why)}."]
         if rhythm:
             reasoning.append(rhythm)
         readings: tuple[Reading, ...] = ()
@@ -210,6 +211,15 @@ def assess(
     )
 
 
+def _named_with_source(context: Context) -> str:
+    """ "mitral stenosis (stated by a coded finding in the source SR)": each situation, and
+    where the source SR stated it itself (the others were configured or given by the user)."""
+    return ", ".join(
+        situation_name(s) + (f" ({STATED_BY_FINDING})" if s in context.situations_stated else "")
+        for s in sorted(context.special_situations)
+    )
+
+
 def _rhythm_sentence(context: Context) -> str:
     if context.rhythm is Rhythm.af:
         src = f" ({context.rhythm_source})" if context.rhythm_source else ""
@@ -230,7 +240,7 @@ def _combine(trace: Trace, outcomes: list[_Outcome]) -> FillingPressure:
             return FillingPressure.not_estimated
         trace.say(
             "The guideline lists these criteria without a rule combining them, so the filling "
-            "pressure is indeterminate; each criterion met supports elevated filling pressure."
+            "pressure is indeterminate."
         )
         return FillingPressure.indeterminate
     pressures = {o.pressure for o in stated}
@@ -251,19 +261,17 @@ def _flags(
     rows: tuple[Threshold, ...],
     prefix: str,
 ) -> _Outcome:
-    step = f"special situation: {situation.value.replace('-', ' ')}"
+    name = situation_name(situation)
+    step = f"special situation: {name}"
     verdicts = [trace.check(row, f"{prefix}.{row.key}", step).verdict for row in rows]
     for text in UNREAD_2016.get(situation, ()):
-        trace.note(
-            f"{situation.value.replace('-', ' ').capitalize()}: the criterion {text} is not "
-            "read by this service."
-        )
+        trace.note(f"{sentence_start(name)}: the criterion {text} is not read by this service.")
     t = tally(verdicts)
     return _Outcome(
         situation,
         None,
-        f"{situation.value.replace('-', ' ').capitalize()}: {t.met} of {t.available} available "
-        "criteria support elevated filling pressure (no combination rule stated).",
+        f"{sentence_start(name)}: {t.met} of {t.available} available "
+        "criteria support elevated filling pressure.",
     )
 
 
@@ -308,7 +316,7 @@ def _rcm16(trace: Trace, context: Context) -> _Outcome:
 
 
 def _hcm16(trace: Trace, context: Context) -> _Outcome:
-    step = "special situation: hypertrophic cardiomyopathy"
+    step = f"special situation: {situation_name(S.hypertrophic_cardiomyopathy)}"
     rows = (HCM_E_E_PRIME_AVERAGE, HCM_AR_A, HCM_TR, HCM_LAVI)
     t = tally(trace.check(row, f"ase16.hcm.{row.key}", step).verdict for row in rows)
     counted = f"{t.met} of {t.available} available criteria met"
@@ -335,7 +343,7 @@ def _hcm16(trace: Trace, context: Context) -> _Outcome:
 def _lateral_ph(
     trace: Trace, high: Threshold, low: Threshold, prefix: str, unresolved: str
 ) -> _Outcome:
-    step = "special situation: pulmonary hypertension non cardiac"
+    step = f"special situation: {situation_name(S.pulmonary_hypertension_non_cardiac)}"
     hi = trace.check(high, f"{prefix}.{high.key}", step)
     lo = trace.check(low, f"{prefix}.{low.key}", step)
     name = "Pulmonary hypertension"
@@ -389,7 +397,7 @@ _RULES_2016: dict[SpecialSituation, _Rule] = {
 
 
 def _mac25(trace: Trace, context: Context) -> _Outcome:
-    step = "special situation: mitral annular calcification"
+    step = f"special situation: {situation_name(S.mitral_annular_calcification)}"
     p = "ase25.mac"
     low = trace.check(T25.MAC_E_A_LOW, f"{p}.{T25.MAC_E_A_LOW.key}", step)
     high = trace.check(T25.MAC_E_A_HIGH, f"{p}.{T25.MAC_E_A_HIGH.key}", step)

@@ -10,7 +10,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from service.grading import readings as R
-from service.grading.criteria import Threshold, describe, evaluate, value_of
+from service.grading.criteria import Threshold, evaluate, value_of
 from service.model import (
     CAUTION,
     Context,
@@ -19,8 +19,6 @@ from service.model import (
     Measurements,
     Reading,
     Rhythm,
-    SpecialSituation,
-    Verdict,
 )
 
 
@@ -41,11 +39,13 @@ class Trace:
         *,
         group: str = "",
     ) -> Criterion:
-        """Evaluate a row on its measure, record the criterion and a reasoning sentence.
-        ``group``: words for rows that count together as one criterion (e.g. "septal or
-        lateral e′: one criterion").  A criterion already evaluated by an earlier step (same
-        measure and cut-off, e.g. average E/e′ > 14 in Figure 8A and in Figure 8B step 2) is
-        recorded once, with both steps named, and said once."""
+        """Evaluate a row on its measure and record the criterion: written once, with its
+        value, rule, cut-off, verdict and source, wherever the result is shown.  The reasoning
+        holds only the decisions made from the criteria (:meth:`say`), never a sentence per
+        criterion.  ``group``: words for rows that count together as one criterion (e.g.
+        "septal or lateral e′: one criterion").  A criterion already evaluated by an earlier
+        step (same measure and cut-off, e.g. average E/e′ > 14 in Figure 8A and in Figure 8B
+        step 2) is recorded once, with both steps named."""
         t = row.value if threshold is None else threshold
         for i, seen in enumerate(self.criteria):
             if (seen.measure, seen.comparison, seen.threshold) == (row.measure, row.comparison, t):
@@ -63,7 +63,6 @@ class Trace:
         if group:
             c = c.model_copy(update={"group": group})
         self.criteria.append(c)
-        self.reasoning.append(describe(c, row.name, row.unit))
         if row.reading:
             self.reading(row.reading)
         return c
@@ -79,21 +78,13 @@ class Trace:
             self.notes.append(text)
 
     def say(self, text: str) -> None:
+        """Record a decision step: routing, a count and what it decided, a branch taken."""
         self.reasoning.append(text)
 
     def note_unstated_rhythm(self, context: Context) -> None:
         """Say so when the rhythm is unknown: the sinus-rhythm algorithm is applied to it."""
         if context.rhythm is Rhythm.unknown:
             self.note("Cardiac rhythm was not stated; sinus rhythm was assumed for the algorithm.")
-
-
-def verdict_words_of(verdict: Verdict) -> str:
-    """ "met", "not met", "not available" (a combined criterion's verdict in words)."""
-    return {
-        Verdict.met: "met",
-        Verdict.not_met: "not met",
-        Verdict.unavailable: "not available",
-    }[verdict]
 
 
 def base_fields(
@@ -108,10 +99,3 @@ def base_fields(
         "special_situations": tuple(sorted(context.special_situations)),
         "caution": CAUTION,
     }
-
-
-def situation_words(situations: frozenset[SpecialSituation] | tuple[SpecialSituation, ...]) -> str:
-    """ "mitral stenosis, heart transplant" (sorted, plain words)."""
-    from service.wording import situations as words
-
-    return words(situations)

@@ -2,7 +2,8 @@
 
 * Verification (C-ECHO) and C-STORE of the SR storage SOP classes, in implicit and explicit VR
   little endian and deflated explicit VR little endian.
-* Optionally every image storage class too, accepted and discarded (``access.accept_images``).
+* Optionally every image storage class too, accepted and discarded (``access.accept_images``);
+  a summary PDF the node wrote itself is kept and recorded as ignored, like an own result SR.
 * The called AE title must match ours (pynetdicom rejects others); calling AE titles may be
   limited to an allow-list, and an AE title may be pinned to addresses: both are checked on the
   association request against the configuration in force, so a reload (SIGHUP) applies to the
@@ -32,6 +33,7 @@ from pydicom import Dataset
 from pydicom.filereader import read_dataset
 from pydicom.uid import (
     DeflatedExplicitVRLittleEndian,
+    EncapsulatedPDFStorage,
     ExplicitVRLittleEndian,
     ImplicitVRLittleEndian,
 )
@@ -397,6 +399,43 @@ class Listener:
         )
         return SUCCESS
 
+    def _keep_own_summary(self, ev: Any, calling: str, affected: str) -> int | None:
+        """A summary PDF this node (any version) wrote, sent back to it (``accept_images``
+        accepts Encapsulated PDF Storage): kept and recorded as ignored, like an own result
+        SR, so that ``queue`` lists it.  None for any other PDF (discarded as before)."""
+        syntax = str(ev.context.transfer_syntax)
+        try:
+            # little endian: the identifying attributes only; otherwise pynetdicom decodes it
+            le = syntax in _LE_SYNTAXES
+            ds = identifying_attributes(_body(ev), syntax) if le else ev.dataset
+            own = received_own_result_reason(
+                ds, _body(ev), implicit=syntax == ImplicitVRLittleEndian
+            )
+            sop_uid = str(ds.get("SOPInstanceUID", "") or "")
+            study_uid = str(ds.get("StudyInstanceUID", "") or "")
+        except Exception:  # not decodable: not recognisably ours
+            return None
+        if own is None or not valid_uid(sop_uid) or not valid_uid(study_uid):
+            return None
+        try:
+            self.journal.store_ignored(
+                sop_instance_uid=sop_uid,
+                study_uid=study_uid,
+                sop_class_uid=EncapsulatedPDFStorage,
+                calling_ae=calling,
+                data=part10_bytes(ev),
+                reason=f"{IGNORED_OWN_RESULT}: {own}",
+            )
+        except Exception as exc:
+            return self._object_rejected(
+                calling,
+                sop_uid or affected,
+                OUT_OF_RESOURCES,
+                f"could not be stored ({type(exc).__name__}: {exc})",
+                study_uid,
+            )
+        return self._object_ignored(calling, sop_uid, study_uid, own)
+
     def _on_echo(self, ev: Any) -> int:
         return SUCCESS
 
@@ -405,6 +444,10 @@ class Listener:
         context_class = str(ev.context.abstract_syntax)
         affected = str(ev.request.AffectedSOPInstanceUID or "")
         if context_class not in SR_STORAGE_CLASSES:
+            if context_class == EncapsulatedPDFStorage:  # the class of the node's summaries
+                kept = self._keep_own_summary(ev, calling, affected)
+                if kept is not None:
+                    return kept
             # accept_images: the object is acknowledged and discarded, by design
             self.metrics.objects.labels(outcome="discarded").inc()
             log.info("discarded non-SR object of class %s from %s", context_class, calling)

@@ -6,7 +6,7 @@ ambiguous rules, other guidelines, the measurements behind it all; the footer on
 Each section turns the result into :class:`service.report.layout.Row` s at a type scale.  The
 words are those of :mod:`service.wording`, so the headline is the sentence the result SR's
 impression, the command-line table and the JSON say.  Each thing is said once: the criteria
-are in the chart only (their reasoning sentences stay in the result SR), the pathway's reason
+are in the chart only (the reasoning holds the decisions made from them), the pathway's reason
 only where the reasoning does not already give it.
 """
 
@@ -17,7 +17,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass, replace
 
 from service import SOFTWARE_NAME, __version__
-from service.grading.criteria import CRITERION_SENTENCE
 from service.model import (
     CAUTION,
     Assessment,
@@ -58,6 +57,7 @@ from service.wording import (
     SHORT_CITATIONS,
     headline,
     measure_name,
+    sentence_start,
 )
 
 TITLE = "Automated LV diastolic function assessment"
@@ -462,9 +462,9 @@ def _criterion_row(
 
 
 def decisions(a: Assessment) -> list[str]:
-    """The reasoning sentences that are decisions: the per-criterion sentences ("Septal e′
-    5.1 against < 7: met.") are left out, because the chart shows each criterion."""
-    return [r for r in a.reasoning if r.strip() and not CRITERION_SENTENCE.match(r)]
+    """The reasoning: the decision steps only (each criterion is in the chart, and the rule
+    sets write no sentence per criterion)."""
+    return [r for r in a.reasoning if r.strip()]
 
 
 def reasoning(p: Page, t: Type) -> list[Row]:
@@ -476,7 +476,7 @@ def reasoning(p: Page, t: Type) -> list[Row]:
         p,
         t,
         "This service's readings of ambiguities in the guideline",
-        [r.text[:1].upper() + r.text[1:] for r in a.readings],
+        [sentence_start(r.text) for r in a.readings],
         numbered=False,
     )
     rows += _list(

@@ -494,12 +494,14 @@ def build_echo_sr(
     sop_class: SopClass | str = SopClass.comprehensive,
     template: Template = Template.tid5300,
     rhythm: Code | None = None,
+    findings: Sequence[Code] = (),
     raw_content: Sequence[Dataset] = (),
     instance_number: int = 1,
     equipment: Equipment | None = None,
 ) -> Dataset:
     """An echo measurement SR dataset with file meta (``save_as(..., enforce_file_format=True)``
-    works).  ``rhythm`` adds a (8884-9, LN, "Cardiac Rhythm") CODE item."""
+    works).  ``rhythm`` adds a (8884-9, LN, "Cardiac Rhythm") CODE item; each of ``findings``
+    a (121071, DCM, "Finding") CODE item with that value (PS3.16 CID 7002)."""
     patient = patient or Patient()
     study = study or Study()
     sop_class = str(sop_class)
@@ -566,6 +568,8 @@ def build_echo_sr(
     content: list[Dataset] = []
     if rhythm is not None:
         content.append(code_item(code("cardiac_rhythm"), rhythm, "CONTAINS"))
+    for finding in findings:
+        content.append(code_item(_c("121071", "DCM", "Finding"), finding, "CONTAINS"))
     if template is Template.tid5300:
         content += _content_5300(items)
     else:

@@ -7,14 +7,16 @@ Shape (all content by value, following the TID 2000 pattern of PS3.16 without cl
       CONTAINS CONTAINER (19005-8, LN, "Impressions")       the conclusion + the caution, first
       CONTAINS CONTAINER (ASSESSMENT, 99DSRG)              one per guideline, primary first
         CODE role, CODE guideline, TEXT citation, TEXT algorithm name / version
-        CODE pathway  > INFERRED FROM TEXT pathway reason
+        CODE pathway  > INFERRED FROM (by reference) the reasoning step that chose it, or
+                        TEXT pathway reason when no reasoning step says it
         CODE (8884-9, LN, "Cardiac Rhythm"), CODE special situations
         CODE grade              > INFERRED FROM (by reference) each criterion, or the pathway
         CODE filling pressure   > INFERRED FROM (by reference) each criterion, or the pathway
         CODE borderline (Yes/No) > INFERRED FROM TEXT flag > HAS PROPERTIES alternative results
         CONTAINER (CRITERIA, 99DSRG)   each criterion once: NUM (TEXT when unavailable)
                                         > HAS PROPERTIES verdict, rule, cut-off, step, source ...
-        TEXT reasoning steps (in order), TEXT notes,
+        TEXT reasoning steps: the decisions only, in order (routing, counts, branches; the
+                              criteria themselves are in the Criteria container), TEXT notes,
         TEXT readings of ambiguous rules > HAS PROPERTIES TEXT reading identifier,
         TEXT supporting findings
       CONTAINS CONTAINER (GLCOMPARISON, 99DSRG)             only when guidelines are compared
@@ -91,8 +93,10 @@ DEVICE_UID = derive_uid("diastolic-sr", "device observer")
 #: never reuses the UID of an earlier one with other content (a re-sent study then gets a new
 #: instance that names the earlier one as its predecessor).  Layout 2: Impressions first.
 #: Layout 3: document title of its own, criteria once (referenced by grade and filling
-#: pressure), readings of ambiguous rules as items of their own.
-DOCUMENT_LAYOUT = "layout-3"
+#: pressure), readings of ambiguous rules as items of their own.  Layout 4: the reasoning holds
+#: only the decision steps (no sentence per criterion), the pathway refers to the reasoning
+#: step that chose it instead of repeating it, special situations in their clinical spelling.
+DOCUMENT_LAYOUT = "layout-4"
 
 
 _ORIGIN_WORDS: dict[Origin, str] = {
@@ -205,6 +209,15 @@ def criterion_item(c: Criterion) -> Item:
     return _with(item, props)
 
 
+def _same_sentence(a: str, b: str) -> bool:
+    """The same sentence, whatever its case and its full stop (a comparison, never prose)."""
+
+    def norm(s: str) -> str:
+        return s.strip().rstrip(".").casefold()
+
+    return bool(norm(a)) and norm(a) == norm(b)
+
+
 def _reading_item(r: Reading) -> Item:
     """A reading of an ambiguous rule: the words a person reads, the identifier apart."""
     return _with(
@@ -269,8 +282,16 @@ def assessment_container(a: Assessment, *, primary: bool) -> Item:
         _text(C.ALGORITHM_NAME, f"{service.SOFTWARE_NAME} {a.guideline.value}", Rel.CONTAINS),
         _text(C.ALGORITHM_VERSION, a.rule_set_version.strip() or "unspecified", Rel.CONTAINS),
     ]
+    # the reasoning steps, in order; where one of them is the routing decision (the pathway's
+    # reason), the pathway refers to it instead of saying it a second time
+    reasoning = [_text(C.REASONING, r, Rel.CONTAINS) for r in a.reasoning if r.strip()]
+    routing = next(
+        (item for item in reasoning if _same_sentence(str(item.value), a.pathway_reason)), None
+    )
     pathway = _code(C.PATHWAY, C.PATHWAY_VALUES[a.pathway], Rel.CONTAINS)
-    if a.pathway_reason.strip():
+    if routing is not None:
+        pathway = _with(pathway, [reference_item(Rel.INFERRED_FROM, routing)])
+    elif a.pathway_reason.strip():
         pathway = _with(pathway, [_text(C.PATHWAY_REASON, a.pathway_reason, Rel.INFERRED_FROM)])
     items.append(pathway)
     items.append(_code(C.CARDIAC_RHYTHM, C.RHYTHM_VALUES[a.rhythm], Rel.CONTAINS))
@@ -293,7 +314,7 @@ def assessment_container(a: Assessment, *, primary: bool) -> Item:
     items.append(_borderline_items(a.borderline))
     if criteria:
         items.append(_container(C.CRITERIA, criteria))
-    items += [_opt_text(C.REASONING, r, Rel.CONTAINS) for r in a.reasoning]
+    items += reasoning
     items += [_opt_text(C.NOTE, n, Rel.CONTAINS) for n in a.notes]
     items += [_reading_item(r) for r in a.readings]
     items += [_supporting_item(s) for s in a.supporting]

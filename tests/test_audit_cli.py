@@ -178,3 +178,14 @@ def test_patient_identity_only_when_recorded_configured_and_listed(tmp_path, cap
         html = page.read_text(encoding="utf-8")
         assert ("Testperson^Ada" in out) is shown and ("HV-0001" in out) is shown
         assert ("Testperson^Ada" in html) is shown
+
+
+def test_invented_history_in_a_span_without_working_hours():
+    """The demo history picks working hours; a span with none (a Saturday night) still gives
+    its studies, inside the span."""
+    from service.demo.history import invented_studies
+
+    saturday_night = datetime(2026, 11, 28, 23, 0).timestamp()  # a Saturday
+    studies = list(invented_studies(3, days=0.1, now=saturday_night, seed=3))
+    assert len(studies) == 3
+    assert all(saturday_night - 0.1 * 86400 <= h.received_at < saturday_night for h in studies)

@@ -173,13 +173,16 @@ def invented_studies(
     start = now - days * DAY
     # two afternoons when the PACS was down: results went out hours late
     outages = [(start + days * DAY * f, 4 * 3600.0) for f in (0.35, 0.8)]
-    times = []
+    times: list[float] = []
+    tries = 0
     while len(times) < count:
-        t = start + rng.random() * (days - 1) * DAY
+        t = start + rng.random() * days * DAY
+        tries += 1
         lt = time.localtime(t)
-        if lt.tm_wday >= 5 or not 8 <= lt.tm_hour < 18:
+        # working hours on working days, while the span has any (a short span may not)
+        if tries < 50 * count and (lt.tm_wday >= 5 or not 8 <= lt.tm_hour < 18):
             continue
-        times.append(t)
+        times.append(min(t, now - 60.0))
     times.sort()
     kinds = [k for k, _, _ in KINDS]
     weights = [w for _, w, _ in KINDS]

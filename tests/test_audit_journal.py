@@ -239,12 +239,12 @@ def test_a_journal_of_the_previous_schema_gets_the_audit_tables(tmp_path):
     j = SqliteJournal(path)
     j._db.execute("DROP TABLE audit_studies")
     j._db.execute("DROP TABLE audit_identities")
-    j._db.execute("UPDATE meta SET value = '3' WHERE key = 'schema_version'")
+    j._db.execute("UPDATE meta SET value = '4' WHERE key = 'schema_version'")
     j.close()
     j = SqliteJournal(path)
     try:
         version = j._query("SELECT value FROM meta WHERE key = 'schema_version'")[0][0]
-        assert int(version) == sqlite_schema.SCHEMA_VERSION >= 4
+        assert int(version) == sqlite_schema.SCHEMA_VERSION >= 5
         assert j.audit_rows() == []
     finally:
         j.close()

@@ -117,8 +117,7 @@ def destination_targets(config: Config, calling_ae: str) -> list[tuple[str, str]
     """(name, description) of every place a result of ``calling_ae``'s study goes."""
     out = []
     for name in config.destinations_for(calling_ae):
-        d = config.destinations[name]
-        out.append((name, f"{d.ae_title}@{d.host}:{d.port}"))
+        out.append((name, config.destinations[name].target))
     if config.results_dir is not None:
         out.append((FOLDER_DESTINATION, str(config.results_dir)))
     return out

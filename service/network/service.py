@@ -62,8 +62,12 @@ class Node:
         grade_fn: GradeFunction | None = None,
         poll_seconds: float = 0.5,
         registry: CollectorRegistry | None = None,
+        listen: bool = True,
     ) -> None:
         self.config = config
+        #: False: the grading and delivery roles only (no listener, no HTTP endpoint, no
+        #: retention), for ``backfill`` when no node runs on the data directory
+        self._listen = listen
         #: metrics of this node only (a registry per node: nodes in one process never mix)
         self.metrics = Metrics(registry)
         self.http: HttpEndpoint | None = None
@@ -120,6 +124,9 @@ class Node:
         )
         self.sender.start()
         self.assembler.start()
+        self._started_at = time.time()
+        if not self._listen:
+            return 0
         try:
             self.port = self.listener.start()
         except OSError as exc:
@@ -136,7 +143,6 @@ class Node:
             target=self._retention_loop, name="retention", daemon=True
         )
         self._retention_thread.start()
-        self._started_at = time.time()
         self._write_status()
         return self.port
 

@@ -14,7 +14,7 @@ status page.
 Separate from the node's work tables on purpose: the statements here are plain SQL that SQLite
 and PostgreSQL both run (upserts with ``ON CONFLICT``, ``?`` parameters which the PostgreSQL
 backend turns into its own); the tables are created by each backend's schema module
-(``sqlite_schema.py``, version 4).
+(``sqlite_schema.py``, version 5).
 """
 
 from __future__ import annotations

@@ -44,6 +44,8 @@ from enum import StrEnum
 from pathlib import Path
 from typing import Any
 
+from service.store.backfill_journal import BackfillRecords
+
 
 class ObjectState(StrEnum):
     received = "received"
@@ -137,9 +139,10 @@ def backoff_delay(attempt: int, initial: float, maximum: float) -> float:
     return min(initial * 2 ** (attempt - 1), maximum)
 
 
-class Journal(abc.ABC):
-    """What every role of the node may ask of the journal.  Times are epoch seconds; ``now``
-    defaults to the current time (tests pass it explicitly)."""
+class Journal(BackfillRecords, abc.ABC):
+    """What every role of the node may ask of the journal (and ``backfill``, in methods of
+    its own, :class:`~service.store.backfill_journal.BackfillRecords`).  Times are epoch
+    seconds; ``now`` defaults to the current time (tests pass it explicitly)."""
 
     #: where the journal is, for logs (never a password)
     location: str = ""

@@ -21,6 +21,7 @@ from typing import Any
 from service.errors import UserError
 from service.store.activity import ActivityQueries
 from service.store.audit_records import AuditRecords
+from service.store.backfill_journal import SqlBackfillRecords
 from service.store.journal import (
     Companion,
     DeliveryState,
@@ -42,7 +43,7 @@ class Cursor(abc.ABC):
         and its rows can be read by column name and by position."""
 
 
-class SqlJournal(AuditRecords, ActivityQueries, Journal):
+class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
     #: ORDER BY of results: oldest first, in the order they were recorded
     RESULT_ORDER = "created_at, rowid"
     #: appended to the SELECT that picks rows to claim (rows other transactions hold are

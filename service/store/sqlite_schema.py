@@ -8,6 +8,8 @@ types.
 
 from __future__ import annotations
 
+from service.store.backfill_journal import SQLITE_DDL as BACKFILL_DDL
+
 #: statements of each schema version, oldest first (version n is ``MIGRATIONS[n - 1]``)
 MIGRATIONS: list[list[str]] = [
     # 1: objects, studies, results, deliveries, companions
@@ -99,7 +101,9 @@ MIGRATIONS: list[list[str]] = [
             outcome TEXT NOT NULL
         )""",
     ],
-    # 4: the audit's facts per study (service/store/audit_records.py), kept when retention
+    # 4: what backfill keeps between runs (service/store/backfill_journal.py)
+    BACKFILL_DDL,
+    # 5: the audit's facts per study (service/store/audit_records.py), kept when retention
     # purges the study, and the patient identity recorded only when configured
     [
         """CREATE TABLE IF NOT EXISTS audit_studies (

@@ -23,6 +23,7 @@ COMMAND_MODULES = (
     "serve",
     "queue",
     "backfill",
+    "audit",
     "check_config",
 )
 

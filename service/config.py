@@ -426,7 +426,8 @@ class LoggingConfig(Section):
 
 
 class HttpConfig(Section):
-    """The health and metrics endpoint (/healthz, /metrics)."""
+    """The node's HTTP endpoint: /healthz, /metrics, and the status page (/) with the audit
+    (/audit)."""
 
     enabled: bool = True
     #: loopback by default: expose it deliberately (e.g. "0.0.0.0" in a container)
@@ -435,6 +436,30 @@ class HttpConfig(Section):
     port: int = Field(default=DEFAULT_HTTP_PORT, ge=0, le=65535)
     #: /healthz fails below this much free space in the data directory, megabytes
     min_free_disk_mb: int = Field(default=500, ge=0)
+    #: serve the status page (/) and the audit (/audit)
+    status_page: bool = True
+    #: HTTP basic authentication for every path but /healthz: give both user name and
+    #: password, or neither (no authentication); the password is masked by check-config and
+    #: never logged
+    username: str = ""
+    password: str = Field(default="", repr=False)
+
+    @field_validator("username")
+    @classmethod
+    def _user(cls, v: str) -> str:
+        if ":" in v or any(not ch.isprintable() for ch in v):
+            raise ValueError("a user name has no colon and no control characters (RFC 7617)")
+        return v
+
+
+class AuditConfig(Section):
+    """What the node records for the quality audit (``diastolic-sr audit``, ``/audit``)."""
+
+    #: record patient name and ID with each study's audit facts, and show them where studies
+    #: are listed (off: studies are counted, and listed by Study Instance UID only on request)
+    include_patient_identifiers: bool = False
+    #: the status page's /audit covers this many days back by default
+    default_days: int = Field(default=30, ge=1, le=3660)
 
 
 class Config(Section):
@@ -453,6 +478,7 @@ class Config(Section):
     retention: RetentionConfig = Field(default_factory=RetentionConfig)
     logging: LoggingConfig = Field(default_factory=LoggingConfig)
     http: HttpConfig = Field(default_factory=HttpConfig)
+    audit: AuditConfig = Field(default_factory=AuditConfig)
     #: folder of the configuration file (relative paths are resolved from it); not a TOML key
     base_dir: str = Field(default="", exclude=True)
 
@@ -523,7 +549,10 @@ class Config(Section):
 
 
 #: (section, key) of every secret: never printed or logged
-SECRET_KEYS: tuple[tuple[str, str], ...] = (("tls", "private_key_password"),)
+SECRET_KEYS: tuple[tuple[str, str], ...] = (
+    ("tls", "private_key_password"),
+    ("http", "password"),
+)
 #: keys of a destination or archive entry that are secrets: never printed or logged
 PEER_SECRET_KEYS: tuple[str, ...] = ("password", "token")
 
@@ -663,6 +692,11 @@ def _cross_check(cfg: Config) -> Iterable[str]:
     same_port = cfg.http.enabled and cfg.http.port and cfg.http.port == cfg.node.port
     if same_port and (cfg.http.bind in (cfg.node.bind, "", "0.0.0.0") or cfg.node.bind == ""):
         yield f"http.port: {cfg.http.port} is the DICOM port (node.port); choose another"
+    if bool(cfg.http.username) != bool(cfg.http.password):
+        yield (
+            "http.username and http.password: give both (basic authentication) or neither; got "
+            + ("a user name only" if cfg.http.username else "a password only")
+        )
     for name, dest in cfg.destinations.items():
         if dest.password and not dest.username:
             yield f"destinations.{name}.password: set destinations.{name}.username too"

@@ -39,7 +39,7 @@ def test_a_version_1_journal_gets_the_backfill_tables_and_keeps_its_rows(tmp_pat
     j = SqliteJournal(path)
     try:
         version = j._query("SELECT value FROM meta WHERE key = 'schema_version'")[0][0]
-        assert int(version) == 4 == sqlite_schema.SCHEMA_VERSION
+        assert int(version) == sqlite_schema.SCHEMA_VERSION >= 4  # backfill came with 4
         assert j.study("1.2.3")["state"] == "delivered"
         assert j.backfill_runs() == [] and j.backfill_counts() == {}
     finally:

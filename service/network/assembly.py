@@ -388,6 +388,8 @@ class Assembler:
             spooled=spooled,
             summary_page_size=self.config.delivery.summary_page_size if summary else None,
             uid_root=self.config.grading.uid_root or None,
+            calling_ae=claim.calling_ae,
+            audit_patient_identity=self.config.audit.include_patient_identifiers,
         )
 
     def _object_data(self, uid: str) -> bytes | str:
@@ -431,6 +433,7 @@ class Assembler:
                 result=None,
                 failure="no usable source: " + "; ".join(notes.values()),
                 object_notes=notes,
+                audit=record.facts,
             )
             self._graded(claim, "rejected", reason="no usable source")
             return
@@ -441,7 +444,11 @@ class Assembler:
         if record.result is None:
             reason = record.reason or status
             self.journal.finish_grading(
-                claim, result=None, failure=f"{status}: {reason}", object_notes=notes
+                claim,
+                result=None,
+                failure=f"{status}: {reason}",
+                object_notes=notes,
+                audit=record.facts,
             )
             self._graded(claim, outcome, reason=reason)
             return
@@ -466,6 +473,7 @@ class Assembler:
             destinations=destination_targets(self.config, claim.calling_ae),
             object_notes=notes,
             companions=companions,
+            audit=record.facts,
         )
         self._graded(
             claim,

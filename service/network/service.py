@@ -84,6 +84,7 @@ class Node:
         self.sender: Sender | None = None
         self.port: int | None = None
         self._stopped = threading.Event()
+        self._pages: Any = None
 
     def start(self) -> int:
         """Open the store, resume pending work, start listening; returns the port."""
@@ -165,9 +166,20 @@ class Node:
         cfg = self.config.http
         if not cfg.enabled:
             return
+        pages = {}
+        if cfg.status_page:
+            from service.observability.status_page import StatusPages
+
+            self._pages = StatusPages(self)
+            pages = self._pages.pages()
         try:
             self.http = HttpEndpoint(
-                cfg.bind, cfg.port, health=self.health, metrics=self.metrics.exposition
+                cfg.bind,
+                cfg.port,
+                health=self.health,
+                metrics=self.metrics.exposition,
+                pages=pages,
+                auth=(cfg.username, cfg.password) if cfg.username else None,
             )
         except OSError as exc:
             # the DICOM service goes on; the missing endpoint shows in monitoring
@@ -181,9 +193,11 @@ class Node:
             )
             return
         self.http_port = self.http.start()
+        what = "status page, audit, health and metrics" if pages else "health and metrics"
         event(
             "http_listening",
-            f"health and metrics on http://{cfg.bind}:{self.http_port}/healthz and /metrics",
+            f"{what} on http://{cfg.bind}:{self.http_port}/"
+            + (" (basic authentication)" if cfg.username else ""),
             bind=cfg.bind,
             port=self.http_port,
         )
@@ -287,6 +301,8 @@ class Node:
             self._retention_thread.join(30)
         if self.http is not None:
             self.http.stop()
+        if self._pages is not None:
+            self._pages.close()
         if self.assembler is not None:
             self.assembler.stop()
         if self.sender is not None:

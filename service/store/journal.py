@@ -38,7 +38,7 @@ acknowledged object.  A result's bytes are durable before its journal record nam
 from __future__ import annotations
 
 import abc
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from enum import StrEnum
 from pathlib import Path
@@ -216,6 +216,7 @@ class Journal(BackfillRecords, abc.ABC):
         failure: str = "",
         object_notes: dict[str, str] | None = None,
         companions: Sequence[Companion] = (),
+        audit: Any = None,
         now: float | None = None,
     ) -> bool:
         """Record the outcome of grading ``claim``.
@@ -227,7 +228,9 @@ class Journal(BackfillRecords, abc.ABC):
         on the same association.  Without: the study fails with ``failure``.  A newer object
         that arrived meanwhile keeps the study open for another grading.  Returns True when
         new deliveries were queued.  OSError when a result's bytes cannot be stored (nothing
-        is recorded then)."""
+        is recorded then).  ``audit``: the study's audit facts
+        (:class:`service.audit.facts.StudyFacts`), recorded in the same transaction (a row
+        that records the failure when there are none); see :meth:`audit_rows`."""
 
     @abc.abstractmethod
     def release_claim(
@@ -351,6 +354,40 @@ class Journal(BackfillRecords, abc.ABC):
     def check_writable(self, *, now: float | None = None) -> None:
         """One committed write; raises when the journal cannot take writes."""
 
+    # -- the audit and the status page (read) ---------------------------------------------------
+
+    @abc.abstractmethod
+    def audit_rows(
+        self, since: float | None = None, until: float | None = None, *, identities: bool = False
+    ) -> list[Any]:
+        """Audit rows (:class:`service.store.audit_records.AuditRow`) of the studies graded in
+        [since, until), oldest first; patient identity only with ``identities`` (and only
+        where it was recorded)."""
+
+    @abc.abstractmethod
+    def iter_audit_rows(
+        self,
+        since: float | None = None,
+        until: float | None = None,
+        *,
+        identities: bool = False,
+        page: int = 5000,
+    ) -> Iterator[Any]:
+        """:meth:`audit_rows` read a page at a time (memory bounded)."""
+
+    @abc.abstractmethod
+    def activity_since(self, since: float) -> dict[str, Any]:
+        """Objects received, studies graded by outcome, deliveries done per destination and
+        failed, since ``since``."""
+
+    @abc.abstractmethod
+    def recent_failures(self, limit: int = 20) -> list[dict[str, Any]]:
+        """Failed deliveries and studies that could not be graded, newest first."""
+
+    @abc.abstractmethod
+    def patient_identities(self, study_uids: Sequence[str]) -> dict[str, tuple[str, str]]:
+        """Patient name and ID of these studies where the audit recorded them."""
+
     # -- retention ---------------------------------------------------------------------------
 
     @abc.abstractmethod
@@ -362,7 +399,8 @@ class Journal(BackfillRecords, abc.ABC):
         failed to deliver (a study that could not be graded).  Studies waiting to be graded,
         results waiting to be delivered and failed deliveries (which an administrator may
         re-queue) are never purged.  Objects kept by :meth:`store_ignored` before
-        ``older_than`` go too."""
+        ``older_than`` go too.  A purged study's audit facts stay (no patient identity is in
+        them); its recorded patient identity goes."""
 
     def __enter__(self) -> Journal:
         return self

@@ -1079,9 +1079,17 @@ def _meta_end(data: bytes) -> int:
     return _meta_walk(data, None)
 
 
+#: the VRs of PS3.5 Table 6.2-1, as the two bytes of an explicit VR element
+_KNOWN_VRS = frozenset(vr.value.encode("ascii") for vr in _VR)
+
+
 def _meta_walk(data: bytes, values: dict[int, bytes] | None) -> int:
     pos = 132
     while pos + 8 <= len(data) and struct.unpack_from("<H", data, pos)[0] == 0x0002:
+        if data[pos + 4 : pos + 6] not in _KNOWN_VRS:
+            # the meta group is explicit VR (PS3.10 7.1); a damaged VR leaves the element's
+            # length unknown (pydicom then guesses implicit VR), so nothing after it is trusted
+            raise struct.error("file meta element with an unknown VR")
         if data[pos + 4 : pos + 6] in _LONG_VRS:
             (length,) = struct.unpack_from("<I", data, pos + 8)
             start = pos + 12

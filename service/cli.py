@@ -15,7 +15,17 @@ from service import SOFTWARE_NAME, __version__
 from service.errors import UserError
 
 #: sub-command modules, in the order shown by --help
-COMMAND_MODULES = ("grade", "inspect", "codes", "demo", "serve", "queue", "check_config")
+COMMAND_MODULES = (
+    "grade",
+    "inspect",
+    "codes",
+    "demo",
+    "serve",
+    "queue",
+    "backfill",
+    "audit",
+    "check_config",
+)
 
 
 def build_parser() -> argparse.ArgumentParser:

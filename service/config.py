@@ -21,7 +21,15 @@ from collections.abc import Iterable, Sequence
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Discriminator,
+    Field,
+    Tag,
+    ValidationError,
+    field_validator,
+)
 
 from service.errors import UserError
 from service.grading import IMPLEMENTED_GUIDELINES, NOT_AVAILABLE, RuleSwitches
@@ -90,7 +98,9 @@ class AccessConfig(Section):
     #: calling AE titles allowed to associate; empty allows any
     allowed_calling_aes: list[AETitle] = Field(default_factory=list)
     #: accept image storage SOP classes and discard the objects (so a rule that forwards a
-    #: whole study does not fail); SR objects are always kept
+    #: whole study does not fail); SR objects are always kept.  Encapsulated PDF Storage is
+    #: accepted either way: the node's own summary is kept as ignored; another PDF is refused
+    #: (0x0122) when this is off and discarded when it is on
     accept_images: bool = False
     #: address pinning: calling AE title -> addresses or networks (CIDR) it must come from;
     #: a pinned AE calling from anywhere else is rejected like an unknown AE
@@ -232,6 +242,145 @@ class DestinationConfig(Section):
     def _ae(cls, v: str) -> str:
         return check_ae_title(v)
 
+    @property
+    def target(self) -> str:
+        """How logs and the journal name this peer: ``AET@HOST:PORT``."""
+        return f"{self.ae_title}@{self.host}:{self.port}"
+
+
+_URL = re.compile(r"^(?P<scheme>https?)://(?P<rest>[^/?#]+)(?P<path>/[^?#]*)?$", re.I)
+
+
+def check_web_url(value: str) -> str:
+    """A DICOMweb base URL: http or https, a host, an optional path; no user name or password
+    in it (they would show wherever the URL is printed), no query or fragment."""
+    text = value.strip()
+    m = _URL.match(text)
+    if not m:
+        raise ValueError(
+            "expected an http:// or https:// base URL of a DICOMweb service, without query or "
+            "fragment, e.g. https://pacs.example/dicom-web"
+        )
+    if "@" in m["rest"]:
+        raise ValueError(
+            "a user name or password in the URL is not accepted (it would be printed and "
+            "logged with the URL); give username and password, or token, as keys of their own"
+        )
+    return text.rstrip("/")
+
+
+class WebPeer(Section):
+    """A DICOMweb service (PS3.18): its base URL and how to authenticate to it."""
+
+    #: base URL of the DICOMweb service (QIDO-RS, WADO-RS and STOW-RS below it)
+    url: str
+    #: HTTP basic authentication (both, or neither)
+    username: str = ""
+    password: str = Field(default="", repr=False)
+    #: HTTP bearer token (instead of username and password)
+    token: str = Field(default="", repr=False)
+    #: verify the server's TLS certificate (https); switch off only for a test server
+    tls_verify: bool = True
+    #: CA certificates (PEM) to verify the server with; "" uses the HTTP client's defaults
+    ca_bundle: str = ""
+    #: seconds to wait for the server to connect and for each response
+    timeout: float = Field(default=30.0, gt=0, le=3600)
+
+    @field_validator("url")
+    @classmethod
+    def _url(cls, v: str) -> str:
+        return check_web_url(v)
+
+    @property
+    def target(self) -> str:
+        """How logs and the journal name this peer: its base URL (never a credential)."""
+        return self.url
+
+    @property
+    def secure(self) -> bool:
+        return self.url.lower().startswith("https://")
+
+
+class DicomwebDestinationConfig(WebPeer):
+    """A DICOMweb service that receives results by STOW-RS."""
+
+    #: also send the one-page summary (Encapsulated PDF) right after each result SR
+    summary_pdf: bool = False
+
+
+#: tags of the two kinds of peer in error locations (``destinations.X.dicomweb.url``): left out
+#: of the key paths shown to the user
+_PEER_TAGS = ("dicom", "dicomweb")
+
+
+def _peer_kind(value: Any) -> str:
+    """A table with ``url`` is a DICOMweb peer; any other a DICOM (DIMSE) one."""
+    if isinstance(value, dict):
+        return "dicomweb" if "url" in value else "dicom"
+    return "dicomweb" if isinstance(value, WebPeer) else "dicom"
+
+
+AnyDestination = Annotated[
+    Annotated[DestinationConfig, Tag("dicom")]
+    | Annotated[DicomwebDestinationConfig, Tag("dicomweb")],
+    Discriminator(_peer_kind),
+]
+
+
+class DimseArchiveConfig(Section):
+    """An archive queried by C-FIND and retrieved from by C-GET or C-MOVE (``backfill``)."""
+
+    ae_title: AETitle
+    host: str = Field(min_length=1)
+    port: int = Field(ge=1, le=65535)
+    #: call the archive over TLS (as for destinations: tls.ca_bundle, tls.certificate)
+    tls: bool = False
+    #: retrieve by C-MOVE to this AE title (a node the archive knows) instead of C-GET; ""
+    #: retrieves by C-GET
+    move_to: str = ""
+
+    @field_validator("ae_title")
+    @classmethod
+    def _ae(cls, v: str) -> str:
+        return check_ae_title(v)
+
+    @field_validator("move_to")
+    @classmethod
+    def _move_to(cls, v: str) -> str:
+        return check_ae_title(v) if v.strip() else ""
+
+    @property
+    def target(self) -> str:
+        return f"{self.ae_title}@{self.host}:{self.port}"
+
+    @property
+    def calling_ae(self) -> str:
+        """The AE title its objects are recorded under (routes, [senders] defaults): the
+        archive's own, as when it sends them by C-MOVE."""
+        return self.ae_title
+
+
+class DicomwebArchiveConfig(WebPeer):
+    """An archive queried by QIDO-RS and retrieved from by WADO-RS (``backfill``)."""
+
+    #: the AE title its studies are recorded under, for routes and [senders] defaults
+    ae_title: AETitle = "DICOMWEB"
+
+    @field_validator("ae_title")
+    @classmethod
+    def _ae(cls, v: str) -> str:
+        return check_ae_title(v)
+
+    @property
+    def calling_ae(self) -> str:
+        return self.ae_title
+
+
+AnyArchive = Annotated[
+    Annotated[DimseArchiveConfig, Tag("dicom")] | Annotated[DicomwebArchiveConfig, Tag("dicomweb")],
+    Discriminator(_peer_kind),
+]
+
 
 class RouteConfig(Section):
     #: calling AE title of the sender, or "*" for every sender without a route of its own
@@ -293,7 +442,8 @@ class LoggingConfig(Section):
 
 
 class HttpConfig(Section):
-    """The health and metrics endpoint (/healthz, /metrics)."""
+    """The node's HTTP endpoint: /healthz, /metrics, and the status page (/) with the audit
+    (/audit)."""
 
     enabled: bool = True
     #: loopback by default: expose it deliberately (e.g. "0.0.0.0" in a container)
@@ -302,6 +452,30 @@ class HttpConfig(Section):
     port: int = Field(default=DEFAULT_HTTP_PORT, ge=0, le=65535)
     #: /healthz fails below this much free space in the data directory, megabytes
     min_free_disk_mb: int = Field(default=500, ge=0)
+    #: serve the status page (/) and the audit (/audit)
+    status_page: bool = True
+    #: HTTP basic authentication for every path but /healthz: give both user name and
+    #: password, or neither (no authentication); the password is masked by check-config and
+    #: never logged
+    username: str = ""
+    password: str = Field(default="", repr=False)
+
+    @field_validator("username")
+    @classmethod
+    def _user(cls, v: str) -> str:
+        if ":" in v or any(not ch.isprintable() for ch in v):
+            raise ValueError("a user name has no colon and no control characters (RFC 7617)")
+        return v
+
+
+class AuditConfig(Section):
+    """What the node records for the quality audit (``diastolic-sr audit``, ``/audit``)."""
+
+    #: record patient name and ID with each study's audit facts, and show them where studies
+    #: are listed (off: studies are counted, and listed by Study Instance UID only on request)
+    include_patient_identifiers: bool = False
+    #: the status page's /audit covers this many days back by default
+    default_days: int = Field(default=30, ge=1, le=3660)
 
 
 class Config(Section):
@@ -311,14 +485,17 @@ class Config(Section):
     assembly: AssemblyConfig = Field(default_factory=AssemblyConfig)
     grading: GradingConfig = Field(default_factory=GradingConfig)
     senders: dict[str, SenderDefaults] = Field(default_factory=dict)
-    destinations: dict[str, DestinationConfig] = Field(default_factory=dict)
+    destinations: dict[str, AnyDestination] = Field(default_factory=dict)
     routes: list[RouteConfig] = Field(default_factory=list)
+    #: archives that ``backfill`` queries and retrieves from, by name
+    archives: dict[str, AnyArchive] = Field(default_factory=dict)
     delivery: DeliveryConfig = Field(default_factory=DeliveryConfig)
     tls: TlsConfig = Field(default_factory=TlsConfig)
     retention: RetentionConfig = Field(default_factory=RetentionConfig)
     journal: JournalConfig = Field(default_factory=JournalConfig)
     logging: LoggingConfig = Field(default_factory=LoggingConfig)
     http: HttpConfig = Field(default_factory=HttpConfig)
+    audit: AuditConfig = Field(default_factory=AuditConfig)
     #: folder of the configuration file (relative paths are resolved from it); not a TOML key
     base_dir: str = Field(default="", exclude=True)
 
@@ -380,10 +557,11 @@ class Config(Section):
         for section, key in SECRET_KEYS:
             if data.get(section, {}).get(key):
                 data[section][key] = MASK
-        for dest in data.get("destinations", {}).values():
-            for key in DESTINATION_SECRET_KEYS:
-                if dest.get(key):
-                    dest[key] = MASK
+        for section in ("destinations", "archives"):
+            for peer in data.get(section, {}).values():
+                for key in PEER_SECRET_KEYS:
+                    if peer.get(key):
+                        peer[key] = MASK
         return data
 
 
@@ -391,9 +569,10 @@ class Config(Section):
 SECRET_KEYS: tuple[tuple[str, str], ...] = (
     ("tls", "private_key_password"),
     ("journal", "password"),
+    ("http", "password"),
 )
-#: keys of every destination that are secrets
-DESTINATION_SECRET_KEYS: tuple[str, ...] = ("password",)
+#: keys of a destination or archive entry that are secrets: never printed or logged
+PEER_SECRET_KEYS: tuple[str, ...] = ("password", "token")
 
 #: sections and keys that only take effect on a restart (a reload keeps the running values)
 RESTART_ONLY: tuple[str, ...] = (
@@ -467,6 +646,16 @@ def _cross_check(cfg: Config) -> Iterable[str]:
                 f'destinations.{name}: bad destination name "{name}"; allowed: letters, digits, '
                 "'_', '.', '-' (at most 64)"
             )
+    for name in cfg.archives:
+        if not re.match(r"^[A-Za-z0-9_.-]{1,64}$", name):
+            yield (
+                f'archives.{name}: bad archive name "{name}"; allowed: letters, digits, '
+                "'_', '.', '-' (at most 64)"
+            )
+    for section, peers in (("destinations", cfg.destinations), ("archives", cfg.archives)):
+        for name, peer in peers.items():
+            if isinstance(peer, WebPeer):
+                yield from _check_web_peer(cfg, f"{section}.{name}", peer)
     for name in cfg.senders:
         try:
             check_ae_title(name)
@@ -529,6 +718,11 @@ def _cross_check(cfg: Config) -> Iterable[str]:
             check_url(cfg.journal.url)
         except UserError as exc:
             yield f"journal.url: {str(exc).removeprefix('journal: ')}"
+    if bool(cfg.http.username) != bool(cfg.http.password):
+        yield (
+            "http.username and http.password: give both (basic authentication) or neither; got "
+            + ("a user name only" if cfg.http.username else "a password only")
+        )
     for name, dest in cfg.destinations.items():
         if dest.password and not dest.username:
             yield f"destinations.{name}.password: set destinations.{name}.username too"
@@ -539,7 +733,30 @@ def _cross_check(cfg: Config) -> Iterable[str]:
         )
 
 
+_LOOPBACK_HOSTS = ("localhost", "127.0.0.1", "[::1]")
+
+
+def _check_web_peer(cfg: Config, where: str, peer: WebPeer) -> Iterable[str]:
+    if bool(peer.username) != bool(peer.password):
+        yield f"{where}: give both username and password (HTTP basic authentication), or neither"
+    if peer.token and (peer.username or peer.password):
+        yield f"{where}: token (bearer) and username/password exclude each other; give one"
+    host = peer.url.split("://", 1)[1].split("/", 1)[0].rsplit(":", 1)[0].lower()
+    if (peer.password or peer.token) and not peer.secure and host not in _LOOPBACK_HOSTS:
+        yield (
+            f'{where}.url: "{peer.url}" is plain http; credentials are sent only over https '
+            "(or to a loopback address)"
+        )
+    if peer.ca_bundle:
+        path = _resolve(cfg.base_dir, peer.ca_bundle)
+        if not path.is_file():
+            yield f'{where}.ca_bundle: "{peer.ca_bundle}" is not a readable file ({path})'
+        if not peer.tls_verify:
+            yield f"{where}.ca_bundle: set, but tls_verify = false verifies nothing"
+
+
 def _loc(loc: Sequence[int | str]) -> str:
+    loc = _without_tags(loc)
     out = ""
     for part in loc:
         if isinstance(part, int):
@@ -549,9 +766,24 @@ def _loc(loc: Sequence[int | str]) -> str:
     return out or "(top level)"
 
 
+def _without_tags(loc: Sequence[int | str]) -> list[int | str]:
+    """``loc`` without the tag pydantic puts after a destination's or archive's name."""
+    parts = list(loc)
+    if len(parts) > 2 and parts[0] in ("destinations", "archives") and parts[2] in _PEER_TAGS:
+        del parts[2]
+    return parts
+
+
 def _model_at(loc: Sequence[int | str]) -> type[BaseModel] | None:
     """The model class that holds the last key of ``loc`` (to list the allowed keys)."""
     model: Any = Config
+    if len(loc) > 2 and loc[0] in ("destinations", "archives") and loc[2] in _PEER_TAGS:
+        kinds = {
+            "destinations": (DestinationConfig, DicomwebDestinationConfig),
+            "archives": (DimseArchiveConfig, DicomwebArchiveConfig),
+        }[str(loc[0])]
+        model = kinds[_PEER_TAGS.index(str(loc[2]))]
+        loc = loc[3:]
     for part in loc[:-1]:
         if isinstance(model, type) and issubclass(model, BaseModel):
             field = model.model_fields.get(str(part))
@@ -584,6 +816,10 @@ def _describe(exc: ValidationError) -> str:
             lines.append(f"{where}: unknown key; allowed: {allowed}")
             continue
         bad = err.get("input")
+        if loc and loc[-1] in (*PEER_SECRET_KEYS, "private_key_password"):
+            bad = MASK  # a secret is never printed, not even a wrong one
+        elif loc and loc[-1] == "url" and isinstance(bad, str):
+            bad = re.sub(r"//[^/@]*@", f"//{MASK}@", bad)  # credentials in a URL
         msg = str(err["msg"]).removeprefix("Value error, ")
         if kind == "enum" and err.get("ctx", {}).get("expected"):
             msg = f"must be one of {err['ctx']['expected']}"

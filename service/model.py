@@ -438,6 +438,9 @@ class Assessment(Frozen):
     criteria: tuple[Criterion, ...] = ()
     reasoning: tuple[str, ...] = ()  # short sentences in the order the algorithm took
     notes: tuple[str, ...] = ()  # caveats, missing data, inconsistencies
+    #: notes about the study that hold whichever guideline is applied (e.g. the rhythm the
+    #: algorithm assumed): a result says each once (:attr:`AssessmentSet.context_notes`)
+    context_notes: tuple[str, ...] = ()
     rhythm: Rhythm = Rhythm.unknown
     special_situations: tuple[SpecialSituation, ...] = ()
     borderline: tuple[BorderlineFlag, ...] = ()
@@ -465,3 +468,10 @@ class AssessmentSet(Frozen):
     primary: Assessment
     others: tuple[Assessment, ...] = ()
     disagreements: tuple[str, ...] = ()  # plain-language sentences where guidelines differ
+
+    @property
+    def context_notes(self) -> tuple[str, ...]:
+        """The notes about the study (not about one guideline's rules), each once, in the
+        order the assessments give them."""
+        notes = (n for a in (self.primary, *self.others) for n in a.context_notes)
+        return tuple(dict.fromkeys(n for n in notes if n.strip()))

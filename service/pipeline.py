@@ -120,6 +120,26 @@ def effective_context(documents: Sequence[SourceDocument], context: Context) -> 
     return context.model_copy(update={"rhythm": rhythm, "rhythm_source": source})
 
 
+def study_order(datasets: Sequence[Dataset]) -> list[Dataset]:
+    """A study's sources in one order, whatever order they arrived in or were given in: by
+    when each was made (Content Date and Time, else Instance Creation Date and Time;
+    :func:`service.sr.read.created_at`), then by SOP Instance UID; a source that states
+    neither comes last.  The node and ``grade`` both grade and summarise a study in this
+    order (:func:`grade_study`, :func:`build_summary`), so a study gives the same result
+    offline and on the node: the same evidence list, the same source whose patient and study
+    modules the result copies, the same measurements where two sources overlap."""
+    from service.sr.read import created_at
+
+    def key(ds: Dataset) -> tuple[bool, str, str]:
+        try:
+            when = created_at(ds)
+        except Exception:  # an undecodable date is no date
+            when = ""
+        return (not when, when, _instance_uid(ds))
+
+    return sorted(datasets, key=key)
+
+
 @functools.lru_cache(maxsize=64)
 def _settings_digest(options: GradeOptions, table_digest: str) -> str:
     """Digest of the options and the mapping table (the same for every study graded under
@@ -166,8 +186,9 @@ def grade_study(
     predecessors: Sequence[InstanceRef] = (),
     content_datetime: datetime | None = None,
 ) -> StudyOutcome:
-    """Grade the SRs of one study together.  Never raises for bad input: returns a ``rejected``
-    outcome with the reason instead.
+    """Grade the SRs of one study together, in :func:`study_order` (the order they are given
+    in does not matter).  Never raises for bad input: returns a ``rejected`` outcome with the
+    reason instead.
 
     A source the reader refuses (not an echo measurement SR, damaged, ...) is set aside and
     named in ``set_aside``; the study is graded from the others and rejected only when no
@@ -180,6 +201,7 @@ def grade_study(
 
     if not datasets:
         return StudyOutcome(status=GradeStatus.rejected, reason="no source objects")
+    datasets = study_order(datasets)
     documents: list[SourceDocument] = []
     usable: list[Dataset] = []
     set_aside: list[tuple[str, str]] = []
@@ -295,6 +317,7 @@ def build_summary(
     )
 
     result = outcome.result
+    datasets = study_order(datasets)  # the order the result was made in
     identity = identity_from_dataset(*datasets)
     pdf = render_summary_pdf(
         outcome.assessments,

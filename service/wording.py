@@ -244,6 +244,39 @@ def headline(a: Assessment) -> str:
     return f"{OUTCOME_WORDS[outcome]}; {pressure}."
 
 
+def count_of(count: int, total: int, singular: str, plural: str) -> str:
+    """How many of the available criteria, the noun agreeing with the number available (English
+    grammar): "1 of 1 available criterion", "0 of 1 available criterion", "2 of 3 available
+    criteria".  A count is never said of nothing: a caller says "none … is available" itself."""
+    if total < 1 or not 0 <= count <= total:
+        raise ValueError(f"a count of {count} of {total} is not a count of available criteria")
+    return f"{count} of {total} available {singular if total == 1 else plural}"
+
+
+def verb_for(count: int, singular: str, plural: str) -> str:
+    """The verb agreeing with a count as its subject: "1 of 3 … supports", "0 of 3 … support",
+    "2 of 3 … support"."""
+    return singular if count == 1 else plural
+
+
+def supporting_count(met: int, available: int) -> str:
+    """ "1 of 3 available criteria supports elevated filling pressure": criteria a guideline
+    lists one by one, each supporting elevated filling pressure when met (ASE/EACVI 2016
+    atrial fibrillation, section V.E, and its special situations)."""
+    criteria = count_of(met, available, "criterion", "criteria")
+    return f"{criteria} {verb_for(met, 'supports', 'support')} elevated filling pressure"
+
+
+def borderline_words(measures: Iterable[Measure]) -> str:
+    """ "Borderline: Average E/e′." (each measure once, by its clinical name), or "" when the
+    result is not borderline.  The impression and the table say this much; the sentence saying
+    how near the cut-off the value is and what the result would be on its other side is said
+    once, in the result's borderline item (the summary's headline panel, the JSON's
+    ``borderline``)."""
+    names = list(dict.fromkeys(measure_name(m) for m in measures))
+    return f"Borderline: {', '.join(names)}." if names else ""
+
+
 def reading_sentence(text: str) -> str:
     """A reading of an ambiguous rule, as a reader meets it."""
     return READING_PREFIX + text

@@ -284,3 +284,112 @@ def test_split_study_gives_the_same_result_offline_and_on_the_node(tmp_path: Pat
     # one study, one result: the same instance offline and on the node
     assert done["state"] == "delivered"
     assert done["result_uid"] == row["result_uid"]
+
+
+def test_the_order_sources_are_given_in_does_not_change_the_result():
+    # service.pipeline.study_order: content date/time, then SOP Instance UID, undated last
+    import itertools
+    from datetime import datetime
+
+    from service.pipeline import GradeOptions, grade_study, study_order
+    from service.sr.encode import file_bytes
+
+    a = echo_sr("any-order", instance=1, content_time="101500", values=FIRST_HALF)
+    b = echo_sr("any-order", instance=2, content_time="103000", values=SECOND_HALF)
+    c = echo_sr("any-order", instance=3, content_time="103000", values={"ivrt": 80.0})
+    undated = echo_sr("any-order", instance=4, values={"deceleration_time": 190.0})
+    for keyword in ("ContentDate", "ContentTime", "InstanceCreationDate", "InstanceCreationTime"):
+        if keyword in undated:
+            delattr(undated, keyword)
+    tied = sorted([b, c], key=lambda ds: str(ds.SOPInstanceUID))
+    assert study_order([undated, c, b, a]) == [a, *tied, undated]
+    when = datetime(2026, 1, 2, 3, 4, 5)
+    made = {
+        file_bytes(grade_study(list(given), GradeOptions(), content_datetime=when).result)
+        for given in itertools.permutations([a, b, c, undated])
+    }
+    assert len(made) == 1
+
+
+def test_files_set_aside_are_listed_in_the_order_given(tmp_path: Path):
+    # the study is graded in its own order (the later SR first here would be wrong: b.dcm was
+    # made first), but the rows about files keep the order the files were given in
+    from netutil import simple_sr
+
+    study = "1.2.826.0.1.3680043.10.1.77"
+    later = simple_sr(study, sop_uid="1.2.826.0.1.3680043.10.1.77.2", created="20260101130000")
+    earlier = simple_sr(study, sop_uid="1.2.826.0.1.3680043.10.1.77.1", created="20260101120000")
+    a = _save(later, tmp_path / "in" / "a.dcm")
+    b = _save(earlier, tmp_path / "in" / "b.dcm")
+    rows = json_rows(run_cli("grade", tmp_path / "in", "--json"))
+    assert [r["input"] for r in rows] == [str(a), str(b)]
+    assert all(r["status"] == "rejected" for r in rows)
+
+
+#: what must differ between two results of the same study made at different moments: the
+#: date and time each was made (SOP Common: Instance Creation Date/Time, PS3.3 C.12.1; SR
+#: Document General: Content Date/Time, PS3.3 C.17.2).  Nothing else may.
+MADE_AT = (0x00080012, 0x00080013, 0x00080023, 0x00080033)
+
+
+def _content(ds: pydicom.Dataset) -> pydicom.Dataset:
+    """The result without the moment it was made, decoded (file meta included)."""
+    ds = pydicom.dcmread(ds) if isinstance(ds, str | Path) else ds
+    for tag in MADE_AT:
+        if tag in ds:
+            del ds[tag]
+    for elem in ds.iterall():  # decode every element, nested ones too
+        _ = elem.value
+    return ds
+
+
+@pytest.mark.network
+@pytest.mark.skipif(SKIP_WITHOUT_DCMTK, reason=DCMTK_REASON)
+def test_a_study_gives_the_same_result_content_offline_and_on_the_node(
+    tmp_path: Path, loopback_nodes
+):
+    # two SRs of one study whose header details differ (a workstation's later SR carries
+    # another Study Description): whichever source comes first is the one the result copies
+    # its study module from, and the evidence list follows the same order.  The files' path
+    # order (a.dcm: the later SR) is the reverse of the order they are sent in and of when they
+    # were made, so only a rule of its own orders them the same offline and on the node.
+    first = echo_sr("order", instance=1, content_time="101500", values=FIRST_HALF)
+    second = echo_sr("order", instance=2, content_time="103000", values=SECOND_HALF)
+    first.StudyDescription = "Echocardiogram (scanner)"
+    second.StudyDescription = "Echocardiogram (workstation)"
+    earlier = _save(first, tmp_path / "in" / "b.dcm")
+    later = _save(second, tmp_path / "in" / "a.dcm")
+    [row] = json_rows(run_cli("grade", tmp_path / "in", "--json", "--out", tmp_path / "out"))
+    assert row["inputs"] == [str(later), str(earlier)]  # path order
+    offline = _content(row["output"])
+    node = loopback_nodes.start({"http": {"port": 0}}, settle=3.0)
+    assert run_storescu([earlier, later], node.port).returncode == 0  # DCMTK storescu -R
+    study = str(first.StudyInstanceUID)
+
+    def graded_from_both():
+        done = node.journal.study(study)
+        if done is None or not done["result_uid"]:
+            return None
+        result = node.journal.result(done["result_uid"])
+        return result if result and len(result["sources"]) == 2 else None
+
+    result = wait_for(graded_from_both, 60)
+    online = _content(result["path"])
+    if result["predecessors"]:
+        # the node graded the first SR before the second arrived (a settle window that ran
+        # out under load) and names that result as the predecessor; offline there was none
+        del online.PredecessorDocumentsSequence
+    # the same study module (from the earlier SR), the same evidence order, the same tree
+    assert offline.StudyDescription == online.StudyDescription == "Echocardiogram (scanner)"
+    evidence = [
+        str(i.ReferencedSOPInstanceUID)
+        for s in online.CurrentRequestedProcedureEvidenceSequence
+        for r in s.ReferencedSeriesSequence
+        for i in r.ReferencedSOPSequence
+    ]
+    assert evidence == [first.SOPInstanceUID, second.SOPInstanceUID]
+    assert offline.file_meta == online.file_meta
+    differing = [
+        str(e.tag) for e in offline if e.tag not in online or online[e.tag].value != e.value
+    ] + [str(e.tag) for e in online if e.tag not in offline]
+    assert not differing, differing

@@ -3,8 +3,9 @@ pipeline receives mutated echo SRs (the mutations of ``test_fuzz_grade``; hypoth
 and bounded), truncated datasets on the wire, garbage, oversized PDUs and abrupt disconnects.
 
 Every object gets a C-STORE response (success, or a failure status: 0xA700 / 0xA900 / 0xC000,
-PS3.4 Annex B.2.3); every study the node acknowledged ends delivered or failed with a reason;
-and after each case the node still answers C-ECHO (PS3.7 9.1.5)."""
+PS3.4 Annex B.2.3, or 0x0122 for a PDF the node did not write, PS3.7 Annex C); every study the
+node acknowledged ends delivered or failed with a reason; and after each case the node still
+answers C-ECHO (PS3.7 9.1.5)."""
 
 from __future__ import annotations
 
@@ -32,8 +33,9 @@ from service.sr.echo_builder import Template
 pytestmark = [pytest.mark.network]
 
 #: C-STORE statuses the node may answer (PS3.4 Annex B.2.3): success, Out of Resources,
-#: Data Set does not match SOP Class, Cannot understand
-ANSWERS = {0x0000, 0xA700, 0xA900, 0xC000}
+#: Data Set does not match SOP Class, Cannot understand; and Refused: SOP Class not supported
+#: (a general status, PS3.7 Annex C) for an Encapsulated PDF it did not write
+ANSWERS = {0x0000, 0xA700, 0xA900, 0xC000, 0x0122}
 COMPREHENSIVE_SR = "1.2.840.10008.5.1.4.1.1.88.33"  # PS3.4 Annex B.5
 
 

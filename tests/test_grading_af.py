@@ -295,11 +295,24 @@ def test_2016_flags_only_by_default():
     assert a.pathway is Pathway.atrial_fibrillation
     assert any("3 of 3 available criteria support elevated" in r for r in a.reasoning)
     # one state, one name: the sentence says indeterminate, as the coded value does
-    assert any("the filling pressure is indeterminate" in r for r in a.reasoning)
+    assert any("filling pressure indeterminate" in r for r in a.reasoning)
     assert not any("not estimated" in r or "I-16" in r for r in a.reasoning)
     assert [r.id for r in a.readings] == ["I-16-11"]
     assert any("E/Vp" in n for n in a.notes)  # criteria the service cannot read are named
     assert run16(lvef=60).filling_pressure is UNKNOWN
+
+
+@pytest.mark.parametrize("summary", ["flags-only", "majority"])
+def test_2016_reasoning_says_the_decision_and_the_reading_says_why(summary: str):
+    # Nagueh 2016 JASE 29:277, section V.E lists the AF criteria without a rule combining them;
+    # the result says so once, in the reading (I-16-11), not again in the reasoning step
+    a = run16(summary=summary, lvef=60, ivrt=60, e_e_prime_septal=12, e_acceleration_rate=1500)
+    [step] = a.reasoning
+    [reading] = a.readings
+    assert reading.id == "I-16-11" and "without a rule combining them" in reading.text
+    for idea in ("rule", "combin", "majority", "states no", "ASE/EACVI 2016"):
+        assert idea not in step, (idea, step)
+    assert step.startswith("2 of 3 available criteria support elevated filling pressure")
 
 
 # ---------------------------------------------------------------------------------------------

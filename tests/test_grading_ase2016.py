@@ -544,7 +544,7 @@ def test_missing_a_wave_note():
 
 def test_unknown_rhythm_is_noted():
     a = assess(measurements(lvef=60, lavi=30), Context(rhythm=Rhythm.unknown))
-    assert any("sinus rhythm was assumed" in n for n in a.notes)
+    assert any("sinus rhythm was assumed" in n for n in a.context_notes)
     assert a.grade is Grade.normal
 
 

@@ -412,7 +412,7 @@ def test_unknown_rhythm_with_a_wave_present_is_graded_with_note():
         mitral_a=60,
     )
     assert a.pathway is Pathway.sinus_general
-    assert any("sinus rhythm was assumed" in n for n in a.notes)
+    assert any("sinus rhythm was assumed" in n for n in a.context_notes)
 
 
 def test_missing_a_wave_in_stated_sinus_rhythm_is_graded():

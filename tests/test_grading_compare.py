@@ -131,7 +131,7 @@ def test_no_sentence_when_they_agree():
     assert s.disagreements == ()
 
 
-def test_af_comparison_explains_the_missing_rule():
+def test_af_comparison_names_the_decision_its_reading_explains():
     ctx = Context(rhythm=Rhythm.af, borderline_fraction=0.0)
     vals = {"mitral_e": 110, "e_e_prime_septal": 12, "deceleration_time": 150, "ivrt": 60}
     s = assess_all(measurements(lvef=40, **vals), ctx, Guideline.ase_2025)
@@ -140,7 +140,14 @@ def test_af_comparison_explains_the_missing_rule():
         "ASE 2025: no grade (atrial fibrillation), LV filling pressure elevated; "
         "ASE/EACVI 2016: no grade (atrial fibrillation), LV filling pressure indeterminate"
     )
-    assert "states no rule combining them" in sentence and "I-16" not in sentence
+    # the decision that left ASE/EACVI 2016 undecided; why (no rule combining the criteria)
+    # is said once, by that assessment's reading I-16-11, not again here
+    assert (
+        "ASE/EACVI 2016: 3 of 3 available criteria support elevated filling pressure: filling "
+        "pressure indeterminate" in sentence
+    )
+    assert "I-16" not in sentence and "rule combining" not in sentence
+    assert "I-16-11" in [r.id for r in s.others[0].readings]
 
 
 def test_special_situation_comparison_gives_both_reasons():

@@ -28,7 +28,7 @@ from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
 from service.errors import RejectedInput
 from service.network.grading_worker import GradeJob, run_job
 from service.network.listener import identifying_attributes
-from service.pipeline import GradeOptions, GradeStatus, grade_study
+from service.pipeline import GradeOptions, GradeStatus, grade_study, study_order
 from service.sr.encode import file_bytes
 from service.sr.read import read_document
 
@@ -74,7 +74,10 @@ def test_no_usable_source_among_several_is_rejected_naming_each():
     outcome = grade_study([a, b], GradeOptions())
     assert outcome.status is GradeStatus.rejected
     assert outcome.reason.startswith("no usable source: ")
-    assert [uid for uid, _ in outcome.set_aside] == [a.SOPInstanceUID, b.SOPInstanceUID]
+    # each named, in the order the study is graded in (service.pipeline.study_order)
+    expected = [ds.SOPInstanceUID for ds in study_order([a, b])]
+    assert [uid for uid, _ in outcome.set_aside] == expected
+    assert [uid for uid, _ in grade_study([b, a], GradeOptions()).set_aside] == expected
 
 
 def test_a_job_notes_unreadable_spooled_files_in_the_claims_order(tmp_path):

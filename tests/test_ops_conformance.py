@@ -6,6 +6,7 @@ configuration key the document names exists."""
 from __future__ import annotations
 
 import re
+import typing
 from pathlib import Path
 
 import pytest
@@ -48,25 +49,44 @@ def test_sop_classes_and_transfer_syntaxes_as_dicom_names_them(text):
         assert f"| SCP | {name} | `{uid}` |" in text
     assert UID("1.2.840.10008.5.1.4.1.1.104.1").name == "Encapsulated PDF Storage"  # PS3.6
     assert "| SCU | Encapsulated PDF Storage (summary) | `1.2.840.10008.5.1.4.1.1.104.1` |" in text
+    # as SCP too, whatever the configuration: the node's own summary may come back
+    assert "| SCP | Encapsulated PDF Storage (the node's own summary coming back;" in text
     assert "| SCU | Comprehensive SR Storage (result) |" in text
     assert "| SCP | Verification | `1.2.840.10008.1.1` |" in text
     for ts in SR_TRANSFER_SYNTAXES:
         assert f"| {UID(ts).name} | `{ts}` |" in text  # PS3.6 names
 
 
+def test_the_query_retrieve_classes_backfill_uses_are_listed_as_dicom_names_them(text):
+    from service.archive.dimse import FIND, GET, MOVE
+
+    for uid in (FIND, GET, MOVE):
+        name = UID(uid).name  # PS3.6 Annex A, via pydicom's UID dictionary
+        assert name.startswith("Study Root Query/Retrieve Information Model - ")
+        assert f"| SCU | {name} | `{uid}` |" in text
+
+
+def _models(annotation: object) -> list[type]:
+    """The pydantic models a field's annotation may hold (through dict, list, unions and
+    Annotated, e.g. a destination that is a DICOM peer or a DICOMweb service)."""
+    if hasattr(annotation, "model_fields"):
+        return [annotation]  # type: ignore[list-item]
+    out: list[type] = []
+    for arg in typing.get_args(annotation):
+        out += _models(arg)
+    return out
+
+
 def _exists(path: str) -> bool:
-    model: object = Config
+    models: list[type] = [Config]
     for part in path.split("."):
         if part in ("NAME", "AET", "*"):  # placeholders of a dict key
             continue
         part = part.removesuffix("[]")
-        fields = getattr(model, "model_fields", None)
-        if fields is None or part not in fields:
+        fields = [m.model_fields[part] for m in models if part in m.model_fields]
+        if not fields:
             return False
-        ann = fields[part].annotation
-        while getattr(ann, "__args__", None) and not hasattr(ann, "model_fields"):
-            ann = ann.__args__[-1]
-        model = ann
+        models = [m for f in fields for m in _models(f.annotation)]
     return True
 
 

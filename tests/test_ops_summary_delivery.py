@@ -177,6 +177,8 @@ def test_the_summary_never_goes_where_its_result_sr_did_not_arrive(tmp_path):
         assert send([source], node.port) == [0]
         study = str(source.StudyInstanceUID)
         wait_for(lambda: (node.journal.study(study) or {}).get("state") == "failed", 60)
+        # the SR's delivery can give up a moment before its summary's: wait for both
+        wait_for(lambda: len(node.journal.deliveries(states=["failed"])) >= 2, 60)
         assert pacs.received == []  # no summary without its SR
         failed = node.journal.deliveries(states=["failed"])
         assert len(failed) == 2  # the SR and its summary, both with reasons

@@ -16,7 +16,9 @@ import pytest
 from netutil import (
     DCMTK_REASON,
     LOOPBACK,
+    NODE_AE,
     SKIP_WITHOUT_DCMTK,
+    STORESCU,
     bytes_kept,
     echo_sr,
     free_port,
@@ -232,6 +234,70 @@ def test_summary_pdf_sent_back_with_dcmtk_storescu_is_recorded_as_ignored(
     assert cli_main(["queue", *journal_args(node), "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
     [listed] = report["objects_ignored"]
+    assert listed["sop_instance_uid"] == summary.SOPInstanceUID
+    assert listed["kind"] == "summary PDF"
+
+
+def _storescu_debug(path: Path, port: int) -> subprocess.CompletedProcess:
+    """DCMTK storescu proposing the file's own SOP class (-R), with the response dumped (-d):
+    DCMTK words the status itself ("0x0122: Refused: SOP Class not supported") and prints the
+    status detail, Error Comment included."""
+    return subprocess.run(
+        [STORESCU, "-R", "-d", "-aet", "PACS", "-aec", NODE_AE, "-to", "10", LOOPBACK,
+         str(port), str(path)],
+        capture_output=True, text=True, timeout=60, check=False,
+    )  # fmt: skip
+
+
+@needs_dcmtk
+@pytest.mark.network
+@pytest.mark.parametrize("accept_images", [False, True])
+def test_summary_pdf_sent_back_is_answered_success_however_the_node_is_configured(
+    tmp_path, loopback_nodes, graded, capsys, accept_images
+):
+    # Encapsulated PDF Storage (PS3.4 Annex B.5, 1.2.840.10008.5.1.4.1.1.104.1) is always
+    # accepted, so a PACS rule forwarding the node's summary back never fails nor retries:
+    # the node's own PDF is answered 0x0000 Success (PS3.4 B.2.3), kept and listed as ignored.
+    # Another PDF is refused with 0x0122 "Refused: SOP Class not supported" (a general status,
+    # PS3.7 Annex C) and an Error Comment (0000,0902) unless access.accept_images is on, when it
+    # is acknowledged and discarded as before.
+    source, outcome = graded
+    summary = build_summary(outcome, [source])
+    foreign = copy.deepcopy(summary)  # another vendor's PDF report of the same study
+    for keyword in (*EQUIPMENT, "CodingSchemeIdentificationSequence", "ConceptNameCodeSequence"):
+        if keyword in foreign:
+            delattr(foreign, keyword)
+    foreign.Manufacturer = "Lanternfish Acoustics"
+    foreign.SOPInstanceUID = foreign.file_meta.MediaStorageSOPInstanceUID = generate_uid()
+    own_file, foreign_file = write_files([summary, foreign], tmp_path / "pacs-out")
+    node = loopback_nodes.start({"access": {"accept_images": accept_images}, "http": {"port": 0}})
+
+    own = _storescu_debug(own_file, node.port)
+    assert own.returncode == 0, own.stderr
+    assert "0x0000: Success" in own.stderr
+    [row] = wait_for(lambda: node.journal.ignored_objects() or None, 20)
+    assert row["sop_instance_uid"] == summary.SOPInstanceUID
+    assert row["reason"].startswith(IGNORED_OWN_RESULT) and "summary PDF" in row["reason"]
+
+    other = _storescu_debug(foreign_file, node.port)
+    if accept_images:
+        assert other.returncode == 0, other.stderr
+        assert "0x0000: Success" in other.stderr
+    else:
+        assert other.returncode != 0
+        assert "0x0122: Refused: SOP Class not supported" in other.stderr
+        assert "(0000,0902) LO [Only summary PDFs written by this node are accepted]" in (
+            other.stderr
+        )
+    # never graded nor forwarded, and the foreign PDF not kept
+    assert [r["sop_instance_uid"] for r in node.journal.ignored_objects()] == [
+        summary.SOPInstanceUID
+    ]
+    assert node.journal.study(summary.StudyInstanceUID) is None
+    assert node.journal.objects() == []
+    capsys.readouterr()
+    assert cli_main(["queue", "--data-dir", str(node.config.data_dir), "--json"]) == 0
+    [listed] = json.loads(capsys.readouterr().out)["objects_ignored"]
     assert listed["sop_instance_uid"] == summary.SOPInstanceUID
     assert listed["kind"] == "summary PDF"
 

@@ -485,3 +485,27 @@ def test_file_meta_uids_refuse_what_is_not_part10():
     start = file_body_start(good)
     assert start is not None and file_meta_uids(good[:start]) is not None
     assert file_meta_uids(good[: start - 3]) is None  # its last value cut short
+
+
+def test_file_meta_uids_refuse_a_meta_element_whose_vr_is_damaged():
+    # PS3.10 7.1: the meta group is explicit VR little endian; with its VR damaged the length
+    # of (0002,0010) is unknown, and pydicom, guessing implicit VR, reads another value than
+    # the one the intact length gives: the bytes are not trusted at all
+    from pydicom.filereader import read_file_meta_info
+
+    from service.sr.read import file_meta_uids
+
+    good = bytearray(_encoded(build_echo_sr(_MIXED, template=Template.tid5200)))
+    at = bytes(good).index(b"\x02\x00\x10\x00UI", 132)
+    good[at + 4] = 0
+    import tempfile
+
+    with tempfile.NamedTemporaryFile(suffix=".dcm") as f:
+        f.write(good)
+        f.flush()
+        try:
+            pydicom_reads = str(read_file_meta_info(f.name).TransferSyntaxUID)
+        except Exception:
+            pydicom_reads = None
+    assert pydicom_reads != "1.2.840.10008.1.2.1"  # so a value from the intact length is wrong
+    assert file_meta_uids(bytes(good)) is None

@@ -30,8 +30,9 @@ from pydicom import dcmread
 
 from service.cli import main
 from service.demo.scenario import SITE_MAPPING, write_demo_files
-from service.model import CAUTION, FillingPressure, Grade, Outcome
+from service.model import CAUTION, FillingPressure, Grade, Guideline, Outcome
 from service.sr import codes as C
+from service.wording import GUIDELINE_NAMES
 
 #: outcome case -> (demo file, extra grade options, the outcome token it must give)
 CASES: dict[str, tuple[str, tuple[str, ...], Outcome]] = {
@@ -53,7 +54,11 @@ CASES: dict[str, tuple[str, tuple[str, ...], Outcome]] = {
     "borderline": ("borderline", (), Outcome.grade_1),
     # ASE/EACVI 2016 indeterminate, ASE 2025 normal: the guidelines disagree
     "compared": ("indeterminate", ("--compare",), Outcome.indeterminate),
+    # both guidelines route by the same stated rhythm: the reason is written once
+    "compared-af": ("atrial-fibrillation", ("--compare",), Outcome.atrial_fibrillation),
 }
+#: the cases whose summary is pictured in docs/ (one per kind of outcome)
+PICTURED = [case for case in CASES if case != "compared-af"]
 
 #: an internal rule identifier (I-16-7, I-25-1, I-B-2)
 INTERNAL_TAG = re.compile(r"\bI-(?:16|25|B)-\d+\b")
@@ -62,6 +67,7 @@ UID = re.compile(r"\b\d+(?:\.\d+){4,}\b")
 #: concept names of the result SR's TEXT items a person reads as sentences
 PROSE = (
     "Impression",
+    "Study note",
     "Reasoning step",
     "Assessment note",
     "Pathway reason",
@@ -180,8 +186,14 @@ def test_impression_table_json_and_pdf_headline_agree(case: str) -> None:
     # the one conclusion sentence: JSON, table, SR impression (after the guideline), PDF
     conclusion = j["conclusion"]
     assert row[-1].startswith(conclusion)  # the last column (after the result path)
+    # the impression is the table's conclusion column word for word (borderline measures
+    # included), then each compared guideline's JSON conclusion
     [impression] = _items(g.sr, "Impression")
-    assert impression.TextValue.startswith(f"ASE/EACVI 2016: {conclusion}")
+    compared = "".join(
+        f" For comparison, {GUIDELINE_NAMES[Guideline(o['guideline'])]}: {o['conclusion']}"
+        for o in j.get("compared", ())
+    )
+    assert impression.TextValue == f"ASE/EACVI 2016: {row[-1]}{compared}"
     assert conclusion in _flat(g.pdf_text())
     assert conclusion in g.dsrdump()
     # the coded items say the same as the tokens
@@ -306,6 +318,66 @@ def test_reasoning_holds_the_decisions_and_no_criterion_twice(case: str) -> None
         assert len(said) == len(set(said)), [t for t in said if said.count(t) > 1]
 
 
+def _sentences(text: str) -> list[str]:
+    """The sentences and semicolon-separated clauses of a text, normalised for comparison."""
+    parts = re.split(r"(?<=[.;])\s+", text)
+    return [" ".join(p.strip().rstrip(".;").casefold().split()) for p in parts if p.strip()]
+
+
+@pytest.mark.external
+@pytest.mark.parametrize("case", list(CASES))
+def test_nothing_is_said_twice_in_the_result_sr(case: str) -> None:
+    # across the whole document (impression, study notes, every guideline's assessment): a
+    # sentence of five words or more is in one prose item only.  The guideline comparison is
+    # left out: it names both results and quotes the step that left one undecided, by design.
+    g = graded(case)
+    seen: dict[str, int] = {}
+    items = [
+        i.TextValue
+        for name in OTHER_PROSE
+        if name != "Guideline disagreement"
+        for i in _items(g.sr, name)
+    ]
+    for n, text in enumerate(items):
+        for sentence in set(_sentences(text)):
+            if len(sentence.split()) >= 5:
+                assert seen.setdefault(sentence, n) == n, (sentence, items[seen[sentence]], text)
+
+
+@pytest.mark.external
+def test_a_pathway_reason_both_guidelines_give_is_written_once() -> None:
+    # atrial fibrillation stated by a coded Cardiac Rhythm item (8884-9 LN = 49436004 SCT, both
+    # in pydicom's PS3.16 dictionary) routes both guidelines: one Pathway reason item, and
+    # the second assessment's pathway inferred from it by reference (DCMTK resolves it)
+    g = graded("compared-af")
+    [reason] = _items(g.sr, "Pathway reason")
+    assert (
+        reason.TextValue
+        == "atrial fibrillation, stated by a coded Cardiac Rhythm item in the source SR"
+    )
+    dump = g.dsrdump()
+    assert dump.count(reason.TextValue) == 1
+    pathways = [m.end() for m in re.finditer(r'\(,,"Grading pathway"\)=\(PW-AF,', dump)]
+    assert len(pathways) == 2
+    assert re.match(r"[^\n]*\n\s*<inferred from 1(?:\.\d+)+>", dump[pathways[1] :])
+
+
+@pytest.mark.external
+def test_a_study_note_is_said_once_for_the_study() -> None:
+    # the demo's indeterminate study states no rhythm: both guidelines assume sinus rhythm, and
+    # the result says so once, as a study note before the assessments (not in each of them)
+    g = graded("compared")
+    [note] = _items(g.sr, "Study note")
+    assert (
+        note.TextValue
+        == "Cardiac rhythm was not stated; sinus rhythm was assumed for the algorithm."
+    )
+    assert len(_items(g.sr, "LV diastolic function assessment")) == 2
+    assert g.dsrdump().count(note.TextValue) == 1
+    assert _flat(g.pdf_text()).count(note.TextValue) == 1
+    assert g.json["notes"].count(note.TextValue) == 1
+
+
 @pytest.mark.external
 @pytest.mark.parametrize("case", list(CASES))
 def test_measure_names_keep_their_clinical_spelling(case: str) -> None:
@@ -419,6 +491,24 @@ def test_borderline_names_the_measure_clinically() -> None:
     assert "Borderline:" in _flat(g.pdf_text())
 
 
+@pytest.mark.external
+def test_borderline_flag_is_said_once() -> None:
+    # the impression (like the table) names the measure; the sentence saying how near the
+    # cut-off the value is and what the result would be across it is the borderline item's,
+    # once in the SR (DCMTK dsrdump) and once under the summary's headline (pdftotext)
+    g = graded("borderline")
+    [flag] = g.json["borderline"]
+    sentence = flag["text"]
+    assert sentence.startswith("Average E/e′ ") and "on the other side of it" in sentence
+    [item] = _items(g.sr, "Borderline criterion")
+    assert item.TextValue == sentence
+    [impression] = _items(g.sr, "Impression")
+    assert "Borderline: Average E/e′." in impression.TextValue
+    assert "on the other side" not in impression.TextValue
+    assert g.dsrdump().count(sentence) == 1
+    assert _flat(g.pdf_text()).count(_flat(f"Borderline: {sentence}")) == 1
+
+
 def test_vocabulary_document_lists_every_token_and_reading() -> None:
     # docs/vocabulary.md is the one place the vocabulary is written down: it must not drift
     from service.grading.readings import READINGS, SWITCHED
@@ -448,7 +538,7 @@ def write_doc_pictures(folder: Path, dpi: int = 80) -> list[Path]:
 
     folder.mkdir(parents=True, exist_ok=True)
     written = []
-    for case in CASES:
+    for case in PICTURED:
         g = graded(case)
         target = folder / f"summary-{case}"
         subprocess.run(

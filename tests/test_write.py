@@ -198,6 +198,9 @@ def _set(primary: Assessment, *others: Assessment, disagreements=()) -> Assessme
     return AssessmentSet(primary=primary, others=others, disagreements=disagreements)
 
 
+AF_REASON = "atrial fibrillation, stated by a coded Cardiac Rhythm item in the source SR"
+STUDY_NOTE = "A note about the study that every guideline would give."
+
 #: constructed cases: every grade, indeterminate, not-gradable with a reason, borderline,
 #: compared guidelines, special situation, AF pathway
 CASES: dict[str, AssessmentSet] = {
@@ -282,6 +285,19 @@ CASES: dict[str, AssessmentSet] = {
     "af": _set(
         assessment(Grade.not_applicable, FillingPressure.elevated, rhythm=Rhythm.af,
                    pathway=Pathway.atrial_fibrillation, criteria=criteria_a(12, 6, 3.1, 40))
+    ),
+    # two guidelines routed by the same stated rhythm, with a note about the study: the
+    # reason and the note are written once
+    "af-compared": _set(
+        assessment(Grade.not_applicable, FillingPressure.indeterminate, rhythm=Rhythm.af,
+                   pathway=Pathway.atrial_fibrillation, criteria=criteria_a(12, 6, 3.1, 40),
+                   pathway_reason=AF_REASON, reasoning=("Two criteria support it.",),
+                   context_notes=(STUDY_NOTE,)),
+        assessment(Grade.not_applicable, FillingPressure.elevated, rhythm=Rhythm.af,
+                   guideline=Guideline.ase_2025, pathway=Pathway.atrial_fibrillation,
+                   criteria=criteria_a(12, 6, 3.1, 40), pathway_reason=AF_REASON,
+                   reasoning=("Three criteria met.",), context_notes=(STUDY_NOTE,)),
+        disagreements=("The 2016 criteria are not combined.",),
     ),
 }  # fmt: skip
 
@@ -496,11 +512,29 @@ def test_borderline_flag_and_supporting_finding():
     (finding,) = find(ds, C.SUPPORTING_FINDING)
     assert finding.TextValue.startswith("Valsalva:")
     impression = find(ds, C.IMPRESSION)[0].TextValue
-    assert "Borderline: Average E/e′ 13.4 is within 10 %" in impression
+    # the impression names the measure; the flag's sentence is said once, in its own item
+    assert impression.endswith("Borderline: Average E/e′.")
+    assert detail.TextValue.startswith("Average E/e′ 13.4 is within 10 %")
+    assert detail.TextValue not in impression
     assert "e_e_prime_average" not in impression  # plain words for the reader, no field names
     # a result without flags says No (373067005 SCT, PS3.16 CID 230)
     (no_flag,) = find(build("normal"), C.BORDERLINE)
     assert no_flag.ConceptCodeSequence[0].CodeValue == "373067005"
+
+
+def test_what_two_assessments_share_is_written_once():
+    ds = build("af-compared")
+    [note] = find(ds, C.STUDY_NOTE)
+    assert note.TextValue == STUDY_NOTE and not find(ds, C.NOTE)
+    # the study note is a child of the root, after the Impressions container and before the
+    # first assessment
+    names = [name_of(i)[0] for i in ds.ContentSequence if "ConceptNameCodeSequence" in i]
+    assert names.index("STUDYNOTE") == names.index("19005-8") + 1
+    assert names.index("STUDYNOTE") < names.index("ASSESSMENT")
+    [reason] = find(ds, C.PATHWAY_REASON)
+    assert reason.TextValue == AF_REASON
+    _first, second = find(ds, C.PATHWAY)
+    assert targets(ds, second) == [("INFERRED FROM", reason)]  # by reference, PS3.3 C.17.3.2.5
 
 
 def test_compared_guidelines_primary_first_with_disagreement():

@@ -20,7 +20,7 @@ from service.model import CAUTION, Measure
 from service.options import add_grading_arguments, grade_options_from_args
 from service.pipeline import GradeOptions, GradeStatus, StudyOutcome, grade_study
 from service.sr.encode import file_bytes
-from service.wording import headline, measure_name
+from service.wording import borderline_words, headline
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -377,7 +377,9 @@ def _grade_files(unit: _Unit, job: _Job) -> list[dict]:
         return rows
     datasets = [ds for _, ds in loaded]
     outcome = grade_study(datasets, options, table=job.table)
-    aside = dict(outcome.set_aside)
+    # the files set aside in the order they were given (the study is graded in its own order)
+    given = {_sop_uid(ds): i for i, (_, ds) in enumerate(loaded)}
+    aside = dict(sorted(outcome.set_aside, key=lambda item: given.get(item[0], -1)))
     by_uid = {_sop_uid(ds): path for path, ds in loaded}
     used = [p for p, ds in loaded if _sop_uid(ds) not in aside]
     if outcome.status is GradeStatus.rejected and (not used or len(loaded) == 1):
@@ -512,7 +514,7 @@ def outcome_row(
         },
         criteria=[c.model_dump(mode="json") for c in a.criteria],
         reasoning=list(a.reasoning),
-        notes=list(a.notes) + list(m.notes),
+        notes=list(_context_notes(outcome)) + list(a.notes) + list(m.notes),
         excluded=[e.model_dump(mode="json") for e in m.excluded],
         output=output,
         result_uid=outcome.result_uid,
@@ -534,6 +536,11 @@ def outcome_row(
     return row
 
 
+def _context_notes(outcome: StudyOutcome) -> tuple[str, ...]:
+    """What holds for the study whichever guideline is applied, once."""
+    return () if outcome.assessments is None else outcome.assessments.context_notes
+
+
 def _input_cell(row: dict) -> str:
     more = len(row.get("inputs") or ()) - 1
     return row["input"] + (f" (+{more} more of the study)" if more > 0 else "")
@@ -546,10 +553,7 @@ def table_note(row: dict) -> str:
         return row.get("reason") or ""
     note = row["conclusion"]
     if row.get("borderline"):
-        names = ", ".join(
-            dict.fromkeys(measure_name(Measure(b["measure"])) for b in row["borderline"])
-        )
-        note += f" Borderline: {names}."
+        note += " " + borderline_words(Measure(b["measure"]) for b in row["borderline"])
     return note
 
 

@@ -186,6 +186,24 @@ def build_report(journal: Any, *, recent: int) -> dict[str, Any]:
             for o in journal.ignored_objects()
         ],
         "recent": [_recent(journal, s) for s in journal.studies(limit=recent)],
+        "backfill_runs": [_backfill_run(r) for r in journal.backfill_runs(limit=5)],
+    }
+
+
+def _backfill_run(run: dict[str, Any]) -> dict[str, Any]:
+    """A backfill run as the journal keeps it: where from, when, how it ended, its counts."""
+    summary = run.get("summary") or {}
+    return {
+        "source": run["source"],
+        "since": run["since"] or "-",
+        "until": run["until"] or "-",
+        "state": run["state"],
+        "started": _when(run["started_at"]),
+        "finished": _when(run["finished_at"]),
+        "found": summary.get("found", 0),
+        "graded": summary.get("graded", 0),
+        "skipped": summary.get("skipped", 0),
+        "failed": len(summary.get("failed", [])),
     }
 
 
@@ -215,6 +233,7 @@ def print_report(report: dict[str, Any]) -> None:
         ("objects set aside", report["objects_set_aside"]),
         ("objects ignored (never graded)", report["objects_ignored"]),
         ("recent studies", report["recent"]),
+        ("backfill runs (latest first)", report["backfill_runs"]),
     ]
     for title, rows in sections:
         print(f"\n{title}: {len(rows)}")

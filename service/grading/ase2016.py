@@ -32,7 +32,7 @@ from service.model import (
     Rhythm,
     Verdict,
 )
-from service.wording import ONE_E_PRIME_CRITERION, in_sentence
+from service.wording import ONE_E_PRIME_CRITERION, count_of, in_sentence
 
 RULE_SET_VERSION = "ase-eacvi-2016/1"
 CITATION = (
@@ -173,6 +173,7 @@ def _assess(
         criteria=tuple(trace.criteria),
         reasoning=tuple(trace.reasoning),
         notes=tuple(trace.notes),
+        context_notes=tuple(trace.context_notes),
         readings=tuple(trace.readings),
     )
 
@@ -264,7 +265,7 @@ def _algorithm_a(
             "required; not gradable."
         )
         return Grade.not_gradable, FillingPressure.not_estimated
-    counted = f"{t.met} of {t.available} available criteria met"
+    counted = f"{count_of(t.met, t.available, 'criterion', 'criteria')} met"
     if 2 * t.met > t.available:
         trace.reasoning.append(
             f"Algorithm A: {counted} (more than half): diastolic dysfunction present; "
@@ -352,7 +353,7 @@ def _step_2(trace: Trace, lvef_depressed: bool) -> _Result:
     if missing:
         trace.note(f"Algorithm B step 2 criteria not available: {', '.join(missing)}.")
     t = tally(votes)
-    counted = f"{t.met} of {t.available} available criteria met"
+    counted = f"{count_of(t.met, t.available, 'criterion', 'criteria')} met" if t.available else ""
     if t.available == 3:
         if t.met >= 2:
             trace.reasoning.append(f"Step 2: {counted}: grade II, elevated filling pressure.")
@@ -387,9 +388,9 @@ def _step_2(trace: Trace, lvef_depressed: bool) -> _Result:
             "indeterminate."
         )
         return _INDETERMINATE
+    available = f"only {t.available} of 3 criteria" if t.available else "none of the 3 criteria"
     trace.reasoning.append(
-        f"Step 2: only {t.available} of 3 criteria available: grade and filling pressure "
-        "indeterminate."
+        f"Step 2: {available} available: grade and filling pressure indeterminate."
     )
     trace.reading("I-16-7")
     trace.note("Algorithm B step 2 needs at least 2 of E/e′, TR velocity and LAVI.")

@@ -36,7 +36,7 @@ from service.model import (
     Rhythm,
     Verdict,
 )
-from service.wording import in_sentence, sentence_start
+from service.wording import count_of, in_sentence, sentence_start
 
 RULE_SET_VERSION = "ase-2025/1"
 CITATION = (
@@ -144,6 +144,7 @@ def _assess(measurements: Measurements, context: Context, opts: Ase2025Options) 
         criteria=tuple(trace.criteria),
         reasoning=tuple(trace.reasoning),
         notes=tuple(trace.notes),
+        context_notes=tuple(trace.context_notes),
         readings=tuple(trace.readings),
     )
 
@@ -311,7 +312,6 @@ def _step_2(trace: Trace, opts: Ase2025Options) -> FillingPressure | None:
     checked = [(row, trace.check(row, f"{p}.{row.key}", STEP_2)) for row in rows]
     votes = [c.verdict for _, c in checked]
     t = tally(votes)
-    counted = f"{t.met} of {t.available} available supplementary markers abnormal"
     if t.available == 0:
         if not any(c.verdict is not Verdict.unavailable for c in trace.criteria):
             trace.say("No index of step 1 or step 2 is available: not gradable.")
@@ -323,6 +323,8 @@ def _step_2(trace: Trace, opts: Ase2025Options) -> FillingPressure | None:
             "echocardiography or other tests in symptomatic patients."
         )
         return FillingPressure.indeterminate
+    markers = count_of(t.met, t.available, "supplementary marker", "supplementary markers")
+    counted = f"{markers} abnormal"
     if opts.supplementary == "hierarchy":
         row, first = next((row, c) for row, c in checked if c.verdict is not Verdict.unavailable)
         lap = FillingPressure.elevated if first.verdict is Verdict.met else FillingPressure.normal

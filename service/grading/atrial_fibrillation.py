@@ -45,6 +45,7 @@ from service.model import (
     Pathway,
     Verdict,
 )
+from service.wording import count_of, supporting_count
 
 
 class Ase2016AfOptions(BaseModel):
@@ -122,6 +123,7 @@ def _result(
         criteria=tuple(trace.criteria),
         reasoning=tuple(trace.reasoning),
         notes=tuple(trace.notes),
+        context_notes=tuple(trace.context_notes),
         readings=tuple(trace.readings),
     )
 
@@ -157,28 +159,27 @@ def assess_2016(
         "Atrial fibrillation criteria not read by this service: " + "; ".join(UNREAD_2016) + "."
     )
     t = tally(votes)
-    counted = f"{t.met} of {t.available} available criteria support elevated filling pressure"
     if t.available == 0:
         trace.say(
             "None of the atrial-fibrillation criteria is available: filling pressure not estimated."
         )
         pressure = FillingPressure.not_estimated
-    elif opts.summary == "majority":
-        if 2 * t.met > t.available:
-            pressure, words = FillingPressure.elevated, "more than half: elevated"
-        elif 2 * t.met < t.available:
-            pressure, words = FillingPressure.normal, "less than half: normal"
-        else:
-            pressure, words = FillingPressure.indeterminate, "exactly half: indeterminate"
-        trace.say(f"{counted} ({words} filling pressure by the majority of the criteria).")
-        trace.reading("I-16-11", opts.summary)
     else:
-        trace.say(
-            f"{counted}; ASE/EACVI 2016 states no rule combining them, so the filling pressure "
-            "is indeterminate."
-        )
+        # the decision only: why the criteria are combined this way (the guideline states no
+        # rule) is said once, by the reading I-16-11 the result carries
+        counted = supporting_count(t.met, t.available)
+        if opts.summary == "majority":
+            if 2 * t.met > t.available:
+                pressure, words = FillingPressure.elevated, "more than half: elevated"
+            elif 2 * t.met < t.available:
+                pressure, words = FillingPressure.normal, "less than half: normal"
+            else:
+                pressure, words = FillingPressure.indeterminate, "exactly half: indeterminate"
+            trace.say(f"{counted} ({words} filling pressure).")
+        else:
+            pressure = FillingPressure.indeterminate
+            trace.say(f"{counted}: filling pressure indeterminate.")
         trace.reading("I-16-11", opts.summary)
-        pressure = FillingPressure.indeterminate
     return _result(
         trace,
         context,
@@ -231,13 +232,14 @@ def _two_step(trace: Trace, opts: Ase2025AfOptions) -> FillingPressure:
     )
     dt = trace.check(T25.AF_DECELERATION_TIME, f"{p}.deceleration_time", s1).verdict
     primary = tally((e, r, t, dt))
-    counted = f"{primary.met} of {primary.available} available primary criteria met"
     if primary.available == 0:
         trace.say(
             "AF step 1: none of the 4 primary criteria is available; filling pressure not "
             "estimated."
         )
         return FillingPressure.not_estimated
+    criteria = count_of(primary.met, primary.available, "primary criterion", "primary criteria")
+    counted = f"{criteria} met"
     if primary.met >= 3:
         trace.say(f"AF step 1: {counted} (3 or more): elevated filling pressure.")
         return FillingPressure.elevated

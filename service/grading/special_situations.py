@@ -56,7 +56,13 @@ from service.model import (
     SpecialSituation,
     Verdict,
 )
-from service.wording import STATED_BY_FINDING, sentence_start, situation_name
+from service.wording import (
+    STATED_BY_FINDING,
+    count_of,
+    sentence_start,
+    situation_name,
+    supporting_count,
+)
 
 S = SpecialSituation
 
@@ -207,6 +213,7 @@ def assess(
         criteria=tuple(trace.criteria),
         reasoning=tuple(trace.reasoning),
         notes=tuple(trace.notes),
+        context_notes=tuple(trace.context_notes),
         readings=tuple(trace.readings),
     )
 
@@ -267,11 +274,12 @@ def _flags(
     for text in UNREAD_2016.get(situation, ()):
         trace.note(f"{sentence_start(name)}: the criterion {text} is not read by this service.")
     t = tally(verdicts)
+    if t.available == 0:
+        return _Outcome(
+            situation, None, f"{sentence_start(name)}: none of its criteria is available."
+        )
     return _Outcome(
-        situation,
-        None,
-        f"{sentence_start(name)}: {t.met} of {t.available} available "
-        "criteria support elevated filling pressure.",
+        situation, None, f"{sentence_start(name)}: {supporting_count(t.met, t.available)}."
     )
 
 
@@ -319,7 +327,6 @@ def _hcm16(trace: Trace, context: Context) -> _Outcome:
     step = f"special situation: {situation_name(S.hypertrophic_cardiomyopathy)}"
     rows = (HCM_E_E_PRIME_AVERAGE, HCM_AR_A, HCM_TR, HCM_LAVI)
     t = tally(trace.check(row, f"ase16.hcm.{row.key}", step).verdict for row in rows)
-    counted = f"{t.met} of {t.available} available criteria met"
     if t.available == 0:
         return _Outcome(
             S.hypertrophic_cardiomyopathy,
@@ -327,6 +334,7 @@ def _hcm16(trace: Trace, context: Context) -> _Outcome:
             "Hypertrophic cardiomyopathy: none of the criteria is available; filling pressure "
             "not estimated.",
         )
+    counted = f"{count_of(t.met, t.available, 'criterion', 'criteria')} met"
     if 2 * t.met > t.available:
         pressure, words = FillingPressure.elevated, "more than half: elevated"
     elif 2 * t.met < t.available:

@@ -21,6 +21,9 @@ from service.model import (
     Rhythm,
 )
 
+#: the note of a study whose rhythm was not stated, graded by a sinus-rhythm algorithm
+UNSTATED_RHYTHM = "Cardiac rhythm was not stated; sinus rhythm was assumed for the algorithm."
+
 
 @dataclass
 class Trace:
@@ -28,6 +31,8 @@ class Trace:
     criteria: list[Criterion] = field(default_factory=list)
     reasoning: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    #: notes about the study that hold whichever guideline is applied (said once per result)
+    context_notes: list[str] = field(default_factory=list)
     readings: list[Reading] = field(default_factory=list)
 
     def check(
@@ -81,10 +86,16 @@ class Trace:
         """Record a decision step: routing, a count and what it decided, a branch taken."""
         self.reasoning.append(text)
 
+    def context_note(self, text: str) -> None:
+        """A note about the study rather than about this rule set: every guideline applied to
+        the study would say the same, so the result says it once."""
+        if text not in self.context_notes:
+            self.context_notes.append(text)
+
     def note_unstated_rhythm(self, context: Context) -> None:
         """Say so when the rhythm is unknown: the sinus-rhythm algorithm is applied to it."""
         if context.rhythm is Rhythm.unknown:
-            self.note("Cardiac rhythm was not stated; sinus rhythm was assumed for the algorithm.")
+            self.context_note(UNSTATED_RHYTHM)
 
 
 def base_fields(

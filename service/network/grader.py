@@ -103,8 +103,7 @@ def destination_targets(config: Config, calling_ae: str) -> list[tuple[str, str]
     """(name, description) of every place a result of ``calling_ae``'s study goes."""
     out = []
     for name in config.destinations_for(calling_ae):
-        d = config.destinations[name]
-        out.append((name, f"{d.ae_title}@{d.host}:{d.port}"))
+        out.append((name, config.destinations[name].target))
     if config.results_dir is not None:
         out.append((FOLDER_DESTINATION, str(config.results_dir)))
     return out
@@ -349,6 +348,8 @@ class Grader:
             spooled=spooled,
             summary_page_size=self.config.delivery.summary_page_size if summary else None,
             uid_root=self.config.grading.uid_root or None,
+            calling_ae=claim.calling_ae,
+            audit_patient_identity=self.config.audit.include_patient_identifiers,
         )
 
     def _object_data(self, uid: str) -> bytes | str:
@@ -380,6 +381,7 @@ class Grader:
                 result=None,
                 failure="no usable source: " + "; ".join(notes.values()),
                 object_notes=notes,
+                audit=record.facts,
             )
             self._graded(claim, "rejected", reason="no usable source")
             return
@@ -390,7 +392,11 @@ class Grader:
         if record.result is None:
             reason = record.reason or status
             self.journal.finish_grading(
-                claim, result=None, failure=f"{status}: {reason}", object_notes=notes
+                claim,
+                result=None,
+                failure=f"{status}: {reason}",
+                object_notes=notes,
+                audit=record.facts,
             )
             self._graded(claim, outcome, reason=reason)
             return
@@ -415,6 +421,7 @@ class Grader:
             destinations=destination_targets(self.config, claim.calling_ae),
             object_notes=notes,
             companions=companions,
+            audit=record.facts,
         )
         self._graded(
             claim,

@@ -35,6 +35,10 @@ class GradeJob:
     #: build the summary PDF (page size), or None
     summary_page_size: str | None = None
     uid_root: str | None = None
+    #: calling AE title of the association the study came on (the audit's sending device)
+    calling_ae: str = ""
+    #: record patient name and ID with the study's audit facts
+    audit_patient_identity: bool = False
 
 
 @dataclass(frozen=True)
@@ -66,6 +70,8 @@ class GradeRecord:
     summary: EncodedObject | None = None
     #: why the summary PDF was not built ("" when it was, or was not wanted)
     summary_error: str = ""
+    #: what the audit records about the study (service.audit.facts.StudyFacts), or None
+    facts: Any = None
 
     @property
     def no_usable_source(self) -> bool:
@@ -132,12 +138,27 @@ def run_job(job: GradeJob, grade_fn: Callable[..., Any], table: Any) -> GradeRec
             notes[claim_uid.get(ds_uid, ds_uid)] = f"set aside: {why}"
     notes = {uid: notes[uid] for uid in job.object_uids if uid in notes} | notes
     sources = tuple(uid for uid, _ in usable if uid not in notes)
+    facts = None
+    if outcome is not None:
+        from service.audit.facts import safe_study_facts
+
+        facts = safe_study_facts(
+            outcome,
+            [ds for uid, ds in usable if uid not in notes] or [ds for _, ds in usable],
+            job.options,
+            calling_ae=job.calling_ae,
+            patient_identity=job.audit_patient_identity,
+        )
     if outcome is None or not sources:
-        return GradeRecord(status="rejected", reason="no usable source", notes=notes)
+        return GradeRecord(status="rejected", reason="no usable source", notes=notes, facts=facts)
     status = str(getattr(outcome.status, "value", outcome.status))
     if outcome.result is None:
         return GradeRecord(
-            status=status, reason=outcome.reason or status, notes=notes, sources=sources
+            status=status,
+            reason=outcome.reason or status,
+            notes=notes,
+            sources=sources,
+            facts=facts,
         )
     ds = outcome.result
     result_uid = str(ds.SOPInstanceUID)
@@ -163,6 +184,7 @@ def run_job(job: GradeJob, grade_fn: Callable[..., Any], table: Any) -> GradeRec
         outcome=None if assessment is None else str(assessment.outcome.value),
         summary=summary,
         summary_error=summary_error,
+        facts=facts,
     )
 
 

@@ -2,8 +2,10 @@
 
 * Verification (C-ECHO) and C-STORE of the SR storage SOP classes, in implicit and explicit VR
   little endian and deflated explicit VR little endian.
-* Optionally every image storage class too, accepted and discarded (``access.accept_images``);
-  a summary PDF the node wrote itself is kept and recorded as ignored, like an own result SR.
+* Encapsulated PDF Storage always, so that a PACS forwarding the node's own summary PDF back
+  is answered success: a summary this node wrote is kept and recorded as ignored, like an own
+  result SR; any other PDF is refused (0x0122) unless ``access.accept_images`` is on.
+* Optionally every image storage class too, accepted and discarded (``access.accept_images``).
 * The called AE title must match ours (pynetdicom rejects others); calling AE titles may be
   limited to an allow-list, and an AE title may be pinned to addresses: both are checked on the
   association request against the configuration in force, so a reload (SIGHUP) applies to the
@@ -21,11 +23,13 @@ Grading is never done here: after recording an object the handler only wakes the
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import logging
 import re
 import socket
 import struct
 from collections.abc import Callable
+from dataclasses import dataclass
 from io import BytesIO
 from typing import Any
 
@@ -80,6 +84,12 @@ SUCCESS = 0x0000
 OUT_OF_RESOURCES = 0xA700
 DOES_NOT_MATCH_SOP_CLASS = 0xA900
 CANNOT_UNDERSTAND = 0xC000
+#: Refused: SOP Class not supported, a general status of the C-STORE response (PS3.7 Annex C;
+#: PS3.4 B.2.3 Table B.2-1 leaves general statuses to PS3.7): an Encapsulated PDF other than
+#: the node's own summary, with ``access.accept_images`` off
+SOP_CLASS_NOT_SUPPORTED = 0x0122
+#: the Error Comment (0000,0902) sent with it: VR LO, at most 64 characters (PS3.5 6.2)
+ONLY_OWN_SUMMARIES = "Only summary PDFs written by this node are accepted"
 
 _UID = re.compile(r"^[0-9]+(\.[0-9]+)*$")
 _LE_SYNTAXES = (ExplicitVRLittleEndian, ImplicitVRLittleEndian)
@@ -159,18 +169,13 @@ def identifying_attributes(body: bytes, transfer_syntax: str) -> Dataset:
     return ds
 
 
-def part10_bytes(event: Any) -> bytes:
-    """The received dataset exactly as encoded on the wire, wrapped as a Part 10 file."""
-    req = event.request
+def part10_bytes(arrival: Arrival) -> bytes:
+    """The received data set exactly as encoded on the wire, wrapped as a Part 10 file."""
     return (
         b"\x00" * 128
         + b"DICM"
-        + file_meta_bytes(
-            str(req.AffectedSOPClassUID or ""),
-            str(req.AffectedSOPInstanceUID or ""),
-            str(event.context.transfer_syntax),
-        )
-        + _body(event)
+        + file_meta_bytes(arrival.affected_class, arrival.affected, arrival.transfer_syntax)
+        + arrival.body
     )
 
 
@@ -207,6 +212,263 @@ def file_meta_bytes(sop_class: str, sop_instance: str, transfer_syntax: str) -> 
     return _element(0x0002, 0x0000, b"UL", struct.pack("<I", len(group))) + group
 
 
+@dataclass(frozen=True)
+class Arrival:
+    """One object as it arrived, by C-STORE on an association we accepted or on one we
+    opened to retrieve (C-GET), or over DICOMweb: the data set bytes as encoded on the wire."""
+
+    calling_ae: str
+    #: the SOP class of the presentation context (or the one the sender declared)
+    context_class: str
+    #: the Affected SOP Instance UID of the request (or the one the sender declared)
+    affected: str
+    #: the Affected SOP Class UID of the request (or the one the sender declared)
+    affected_class: str
+    transfer_syntax: str
+    body: bytes
+    #: the whole data set, decoded (used for a deflated transfer syntax)
+    decode: Callable[[], Dataset]
+
+
+def store_arrival(ev: Any, calling_ae: str) -> Arrival:
+    """The :class:`Arrival` of a pynetdicom C-STORE event (``evt.EVT_C_STORE``)."""
+    return Arrival(
+        calling_ae=calling_ae.strip(),
+        context_class=str(ev.context.abstract_syntax),
+        affected=str(ev.request.AffectedSOPInstanceUID or ""),
+        affected_class=str(ev.request.AffectedSOPClassUID or ""),
+        transfer_syntax=str(ev.context.transfer_syntax),
+        body=_body(ev),
+        decode=lambda: ev.dataset,
+    )
+
+
+@dataclass(frozen=True)
+class Received:
+    """What became of an arrival: the C-STORE status to answer, and what it was."""
+
+    status: int
+    sop_instance_uid: str = ""
+    study_uid: str = ""
+    reason: str = ""
+    #: kept and acknowledged, never graded (the node's own result coming back)
+    ignored: bool = False
+    #: the Error Comment (0000,0902) sent with a failure status, "" for none
+    error_comment: str = ""
+
+    def response(self) -> int | Dataset:
+        """The C-STORE response status for pynetdicom: the status, with its Error Comment
+        when it has one (PS3.7 Annex C)."""
+        if not self.error_comment:
+            return self.status
+        status = Dataset()
+        status.Status = self.status
+        status.ErrorComment = self.error_comment
+        return status
+
+    @property
+    def stored(self) -> bool:
+        """Recorded for grading."""
+        return self.status == SUCCESS and bool(self.study_uid) and not self.ignored
+
+
+class ObjectIntake:
+    """The one path of a received object into the node: checks, the object stored and
+    recorded in the journal (durable), then the wake-up of the grading.  The listener uses it
+    for every C-STORE, and ``backfill`` for what it retrieves, so a retrieved object is
+    recorded exactly as a received one."""
+
+    def __init__(
+        self,
+        owner: Any,
+        journal: Journal,
+        *,
+        on_received: Callable[[str], None] = lambda study_uid: None,
+        metrics: Metrics | None = None,
+    ) -> None:
+        #: ``owner.config`` is the configuration in force (it changes on a reload)
+        self._owner = owner
+        self.journal = journal
+        self.on_received = on_received
+        self.metrics = metrics or Metrics()
+
+    def _keep_own_summary(self, arrival: Arrival) -> Received | None:
+        """A summary PDF this node (any version) wrote, sent back to it: kept and recorded as
+        ignored, like an own result SR, so that ``queue`` lists it, whatever the configuration.
+        None for any other PDF (refused, or discarded with ``accept_images``)."""
+        syntax = arrival.transfer_syntax
+        try:
+            # little endian: the identifying attributes only; otherwise pynetdicom decodes it
+            le = syntax in _LE_SYNTAXES
+            ds = identifying_attributes(arrival.body, syntax) if le else arrival.decode()
+            own = received_own_result_reason(
+                ds, arrival.body, implicit=syntax == ImplicitVRLittleEndian
+            )
+            sop_uid = str(ds.get("SOPInstanceUID", "") or "")
+            study_uid = str(ds.get("StudyInstanceUID", "") or "")
+        except Exception:  # not decodable: not recognisably ours
+            return None
+        if own is None or not valid_uid(sop_uid) or not valid_uid(study_uid):
+            return None
+        try:
+            self.journal.store_ignored(
+                sop_instance_uid=sop_uid,
+                study_uid=study_uid,
+                sop_class_uid=EncapsulatedPDFStorage,
+                calling_ae=arrival.calling_ae,
+                data=part10_bytes(arrival),
+                reason=f"{IGNORED_OWN_RESULT}: {own}",
+            )
+        except Exception as exc:
+            return self._rejected(
+                arrival.calling_ae,
+                sop_uid or arrival.affected,
+                OUT_OF_RESOURCES,
+                f"could not be stored ({type(exc).__name__}: {exc})",
+                study_uid,
+            )
+        return self._ignored(arrival.calling_ae, sop_uid, study_uid, own)
+
+    def _ignored(self, calling: str, uid: str, study_uid: str, reason: str) -> Received:
+        self.metrics.objects.labels(outcome="ignored").inc()
+        event(
+            "object_ignored",
+            f"C-STORE from {calling}: object {uid} of study {study_uid} kept, not graded "
+            f"({IGNORED_OWN_RESULT}: {reason}); answered 0x{SUCCESS:04X}",
+            calling_ae=calling,
+            sop_instance_uid=uid,
+            study_uid=study_uid,
+            reason=f"{IGNORED_OWN_RESULT}: {reason}",
+        )
+        return Received(SUCCESS, uid, study_uid, f"{IGNORED_OWN_RESULT}: {reason}", ignored=True)
+
+    def receive(self, arrival: Arrival) -> Received:
+        config: Config = self._owner.config
+        calling = arrival.calling_ae
+        context_class = arrival.context_class
+        affected = arrival.affected
+        if context_class not in SR_STORAGE_CLASSES:
+            if context_class == EncapsulatedPDFStorage:  # the class of the node's summaries
+                kept = self._keep_own_summary(arrival)
+                if kept is not None:
+                    return kept
+                if not config.access.accept_images:
+                    return self._refuse_document(calling, affected)
+            # accept_images: the object is acknowledged and discarded, by design
+            self.metrics.objects.labels(outcome="discarded").inc()
+            log.info("discarded non-SR object of class %s from %s", context_class, calling)
+            return Received(SUCCESS, affected, reason="not an SR: discarded")
+        syntax = arrival.transfer_syntax
+        try:
+            if syntax in _LE_SYNTAXES:
+                ds = identifying_attributes(arrival.body, syntax)
+            else:  # deflated: inflate and decode every element now
+                ds = arrival.decode()
+                for _ in ds.iterall():
+                    pass
+        except Exception as exc:
+            return self._rejected(
+                calling,
+                affected,
+                CANNOT_UNDERSTAND,
+                f"cannot be decoded ({type(exc).__name__}: {exc})",
+            )
+        sop_class = str(ds.get("SOPClassUID", "") or "")
+        sop_uid = str(ds.get("SOPInstanceUID", "") or "")
+        study_uid = str(ds.get("StudyInstanceUID", "") or "")
+        problem = ""
+        if sop_class != context_class:
+            problem = f"SOP Class UID {sop_class or '(missing)'} is not the negotiated class"
+        elif not valid_uid(sop_uid):
+            problem = "SOP Instance UID missing or malformed"
+        elif sop_uid != affected:
+            problem = "SOP Instance UID differs from the request's Affected SOP Instance UID"
+        elif not valid_uid(study_uid):
+            problem = "Study Instance UID missing or malformed"
+        if problem:
+            return self._rejected(calling, affected, DOES_NOT_MATCH_SOP_CLASS, problem)
+        own = received_own_result_reason(
+            ds, arrival.body, implicit=syntax == ImplicitVRLittleEndian
+        )
+        try:
+            if own is not None:  # kept and acknowledged, never graded nor forwarded
+                self.journal.store_ignored(
+                    sop_instance_uid=sop_uid,
+                    study_uid=study_uid,
+                    sop_class_uid=sop_class,
+                    calling_ae=calling,
+                    data=part10_bytes(arrival),
+                    reason=f"{IGNORED_OWN_RESULT}: {own}",
+                )
+                return self._ignored(calling, sop_uid, study_uid, own)
+            self.journal.store_object(
+                sop_instance_uid=sop_uid,
+                study_uid=study_uid,
+                sop_class_uid=sop_class,
+                transfer_syntax=syntax,
+                calling_ae=calling,
+                data=part10_bytes(arrival),
+                settle_seconds=config.assembly.settle_seconds,
+            )
+        except Exception as exc:
+            return self._rejected(
+                calling,
+                sop_uid,
+                OUT_OF_RESOURCES,
+                f"could not be stored ({type(exc).__name__}: {exc})",
+                study_uid,
+            )
+        self.metrics.objects.labels(outcome="stored").inc()
+        extra: dict[str, Any] = {}
+        if config.logging.include_patient_identifiers:
+            extra = {
+                "patient_name": str(ds.get("PatientName", "") or ""),
+                "patient_id": str(ds.get("PatientID", "") or ""),
+            }
+        event(
+            "object_received",
+            f"received {sop_uid} of study {study_uid} from {calling}",
+            calling_ae=calling,
+            sop_instance_uid=sop_uid,
+            sop_class_uid=sop_class,
+            study_uid=study_uid,
+            transfer_syntax=syntax,
+            **extra,
+        )
+        try:
+            self.on_received(study_uid)
+        except Exception:  # waking the assembler must never fail the store
+            log.exception("wake-up after receipt failed")
+        return Received(SUCCESS, sop_uid, study_uid)
+
+    def _refuse_document(self, calling: str, affected: str) -> Received:
+        """A PDF that is not this node's own summary, with ``access.accept_images`` off: a
+        failure the sender sees, with the reason in the Error Comment."""
+        refused = self._rejected(
+            calling,
+            affected,
+            SOP_CLASS_NOT_SUPPORTED,
+            "an Encapsulated PDF that this node did not write (access.accept_images is off)",
+        )
+        return dataclasses.replace(refused, error_comment=ONLY_OWN_SUMMARIES)
+
+    def _rejected(
+        self, calling: str, uid: str, status: int, reason: str, study_uid: str = ""
+    ) -> Received:
+        self.metrics.objects.labels(outcome="rejected").inc()
+        event(
+            "object_rejected",
+            f"C-STORE from {calling}: object {uid} rejected: {reason}; answered 0x{status:04X}",
+            level=logging.WARNING if status != OUT_OF_RESOURCES else logging.ERROR,
+            calling_ae=calling,
+            sop_instance_uid=uid,
+            study_uid=study_uid,
+            status=f"0x{status:04X}",
+            reason=reason,
+        )
+        return Received(status, uid, study_uid, reason)
+
+
 class Listener:
     def __init__(
         self,
@@ -220,6 +482,12 @@ class Listener:
         self.metrics = metrics or Metrics()
         self.journal = journal
         self.on_received = on_received
+        self.intake = ObjectIntake(
+            self,
+            journal,
+            on_received=lambda uid: self.on_received(uid),
+            metrics=self.metrics,
+        )
         self.server: ThreadedAssociationServer | None = None
         self._closed = False
         self.ae = self._build_ae()
@@ -239,6 +507,10 @@ class Listener:
         ae.add_supported_context(VERIFICATION, SR_TRANSFER_SYNTAXES)
         for uid in SR_STORAGE_CLASSES:
             ae.add_supported_context(uid, SR_TRANSFER_SYNTAXES)
+        # the class of the node's own summaries, whatever the configuration: one sent back is
+        # answered success (ObjectIntake.receive); a rule retrying a refused association would
+        # never end
+        ae.add_supported_context(EncapsulatedPDFStorage, SR_TRANSFER_SYNTAXES)
         if cfg.access.accept_images:
             for uid in image_storage_classes():
                 ae.add_supported_context(uid, ALL_TRANSFER_SYNTAXES)
@@ -370,164 +642,9 @@ class Listener:
             reason=why,
         )
 
-    def _object_rejected(
-        self, calling: str, uid: str, status: int, reason: str, study_uid: str = ""
-    ) -> int:
-        self.metrics.objects.labels(outcome="rejected").inc()
-        event(
-            "object_rejected",
-            f"C-STORE from {calling}: object {uid} rejected: {reason}; answered 0x{status:04X}",
-            level=logging.WARNING if status != OUT_OF_RESOURCES else logging.ERROR,
-            calling_ae=calling,
-            sop_instance_uid=uid,
-            study_uid=study_uid,
-            status=f"0x{status:04X}",
-            reason=reason,
-        )
-        return status
-
-    def _object_ignored(self, calling: str, uid: str, study_uid: str, reason: str) -> int:
-        self.metrics.objects.labels(outcome="ignored").inc()
-        event(
-            "object_ignored",
-            f"C-STORE from {calling}: object {uid} of study {study_uid} kept, not graded "
-            f"({IGNORED_OWN_RESULT}: {reason}); answered 0x{SUCCESS:04X}",
-            calling_ae=calling,
-            sop_instance_uid=uid,
-            study_uid=study_uid,
-            reason=f"{IGNORED_OWN_RESULT}: {reason}",
-        )
-        return SUCCESS
-
-    def _keep_own_summary(self, ev: Any, calling: str, affected: str) -> int | None:
-        """A summary PDF this node (any version) wrote, sent back to it (``accept_images``
-        accepts Encapsulated PDF Storage): kept and recorded as ignored, like an own result
-        SR, so that ``queue`` lists it.  None for any other PDF (discarded as before)."""
-        syntax = str(ev.context.transfer_syntax)
-        try:
-            # little endian: the identifying attributes only; otherwise pynetdicom decodes it
-            le = syntax in _LE_SYNTAXES
-            ds = identifying_attributes(_body(ev), syntax) if le else ev.dataset
-            own = received_own_result_reason(
-                ds, _body(ev), implicit=syntax == ImplicitVRLittleEndian
-            )
-            sop_uid = str(ds.get("SOPInstanceUID", "") or "")
-            study_uid = str(ds.get("StudyInstanceUID", "") or "")
-        except Exception:  # not decodable: not recognisably ours
-            return None
-        if own is None or not valid_uid(sop_uid) or not valid_uid(study_uid):
-            return None
-        try:
-            self.journal.store_ignored(
-                sop_instance_uid=sop_uid,
-                study_uid=study_uid,
-                sop_class_uid=EncapsulatedPDFStorage,
-                calling_ae=calling,
-                data=part10_bytes(ev),
-                reason=f"{IGNORED_OWN_RESULT}: {own}",
-            )
-        except Exception as exc:
-            return self._object_rejected(
-                calling,
-                sop_uid or affected,
-                OUT_OF_RESOURCES,
-                f"could not be stored ({type(exc).__name__}: {exc})",
-                study_uid,
-            )
-        return self._object_ignored(calling, sop_uid, study_uid, own)
-
     def _on_echo(self, ev: Any) -> int:
         return SUCCESS
 
-    def _on_store(self, ev: Any) -> int:
-        calling = str(ev.assoc.requestor.ae_title).strip()
-        context_class = str(ev.context.abstract_syntax)
-        affected = str(ev.request.AffectedSOPInstanceUID or "")
-        if context_class not in SR_STORAGE_CLASSES:
-            if context_class == EncapsulatedPDFStorage:  # the class of the node's summaries
-                kept = self._keep_own_summary(ev, calling, affected)
-                if kept is not None:
-                    return kept
-            # accept_images: the object is acknowledged and discarded, by design
-            self.metrics.objects.labels(outcome="discarded").inc()
-            log.info("discarded non-SR object of class %s from %s", context_class, calling)
-            return SUCCESS
-        syntax = str(ev.context.transfer_syntax)
-        try:
-            ds = identifying_attributes(_body(ev), syntax) if syntax in _LE_SYNTAXES else None
-            if ds is None:  # deflated: inflate and decode every element now
-                ds = ev.dataset
-                for _ in ds.iterall():
-                    pass
-        except Exception as exc:
-            return self._object_rejected(
-                calling,
-                affected,
-                CANNOT_UNDERSTAND,
-                f"cannot be decoded ({type(exc).__name__}: {exc})",
-            )
-        sop_class = str(ds.get("SOPClassUID", "") or "")
-        sop_uid = str(ds.get("SOPInstanceUID", "") or "")
-        study_uid = str(ds.get("StudyInstanceUID", "") or "")
-        problem = ""
-        if sop_class != context_class:
-            problem = f"SOP Class UID {sop_class or '(missing)'} is not the negotiated class"
-        elif not valid_uid(sop_uid):
-            problem = "SOP Instance UID missing or malformed"
-        elif sop_uid != affected:
-            problem = "SOP Instance UID differs from the request's Affected SOP Instance UID"
-        elif not valid_uid(study_uid):
-            problem = "Study Instance UID missing or malformed"
-        if problem:
-            return self._object_rejected(calling, affected, DOES_NOT_MATCH_SOP_CLASS, problem)
-        own = received_own_result_reason(ds, _body(ev), implicit=syntax == ImplicitVRLittleEndian)
-        try:
-            if own is not None:  # kept and acknowledged, never graded nor forwarded
-                self.journal.store_ignored(
-                    sop_instance_uid=sop_uid,
-                    study_uid=study_uid,
-                    sop_class_uid=sop_class,
-                    calling_ae=calling,
-                    data=part10_bytes(ev),
-                    reason=f"{IGNORED_OWN_RESULT}: {own}",
-                )
-                return self._object_ignored(calling, sop_uid, study_uid, own)
-            self.journal.store_object(
-                sop_instance_uid=sop_uid,
-                study_uid=study_uid,
-                sop_class_uid=sop_class,
-                transfer_syntax=str(ev.context.transfer_syntax),
-                calling_ae=calling,
-                data=part10_bytes(ev),
-                settle_seconds=self.config.assembly.settle_seconds,
-            )
-        except Exception as exc:
-            return self._object_rejected(
-                calling,
-                sop_uid,
-                OUT_OF_RESOURCES,
-                f"could not be stored ({type(exc).__name__}: {exc})",
-                study_uid,
-            )
-        self.metrics.objects.labels(outcome="stored").inc()
-        extra: dict[str, Any] = {}
-        if self.config.logging.include_patient_identifiers:
-            extra = {
-                "patient_name": str(ds.get("PatientName", "") or ""),
-                "patient_id": str(ds.get("PatientID", "") or ""),
-            }
-        event(
-            "object_received",
-            f"received {sop_uid} of study {study_uid} from {calling}",
-            calling_ae=calling,
-            sop_instance_uid=sop_uid,
-            sop_class_uid=sop_class,
-            study_uid=study_uid,
-            transfer_syntax=str(ev.context.transfer_syntax),
-            **extra,
-        )
-        try:
-            self.on_received(study_uid)
-        except Exception:  # waking the assembler must never fail the store
-            log.exception("wake-up after receipt failed")
-        return SUCCESS
+    def _on_store(self, ev: Any) -> int | Dataset:
+        received = self.intake.receive(store_arrival(ev, str(ev.assoc.requestor.ae_title)))
+        return received.response()

@@ -1,5 +1,6 @@
 """Delivery of result SRs (and their summary PDFs): C-STORE (SCU, through pynetdicom) to the
-configured destinations, over TLS where a destination asks for it, and the results folder.
+configured destinations, over TLS where a destination asks for it, STOW-RS to a destination
+that is a DICOMweb base URL (:mod:`service.dicomweb.stow`), and the results folder.
 
 Each destination has a worker thread of its own, and every step of an association has a total
 deadline (:mod:`service.network.store_scu`), so a destination that is down, slow or trickling
@@ -24,7 +25,7 @@ import time
 from dataclasses import dataclass
 from pathlib import Path
 
-from service.config import Config, DestinationConfig
+from service.config import Config, DestinationConfig, DicomwebDestinationConfig
 from service.network.grader import OutageLog, idle
 from service.network.store_scu import (
     AssociationFailed,
@@ -295,8 +296,42 @@ class _Worker(threading.Thread):
         if name == FOLDER_DESTINATION:
             self._to_folder(items)
         else:
-            self._to_peer(self.config.destinations[name], items)
+            dest = self.config.destinations[name]
+            if isinstance(dest, DicomwebDestinationConfig):
+                self._to_web(dest, items)
+            else:
+                self._to_peer(dest, items)
         return True
+
+    def _to_web(self, dest: DicomwebDestinationConfig, items: list[DueDelivery]) -> None:
+        """STOW-RS to a DICOMweb destination (:mod:`service.dicomweb.stow`): the result SRs
+        in one request, then the summaries that go with those that arrived."""
+        from service.dicomweb.stow import store_files
+
+        sender = self.sender
+        batch = sender._readable(items)
+        results = [o for o in batch if o.due.parent_uid is None]
+        companions = [o for o in batch if o.due.parent_uid is not None]
+        #: claimed and not yet sent: given back when a stop comes first
+        unsent = {o.due.id for o in batch}
+        try:
+            for part in (results, companions):
+                if sender.stopping:
+                    break
+                # one waiting for its result SR is failed (to be tried again) by the check
+                ready = [o for o in part if not sender._waits_for_parent(o.due, o.kind)]
+                unsent.difference_update(o.due.id for o in part)
+                if not ready:
+                    continue
+                outcomes = store_files(dest, [o.data for o in ready], config=self.config)
+                for o, outcome in zip(ready, outcomes, strict=True):
+                    if outcome.stored:
+                        sender._delivered(o.due, dest.url, o.kind, outcome.reason)
+                    else:
+                        sender._failed(o.due, outcome.reason, o.kind)
+        finally:
+            if unsent:
+                self.journal.release_deliveries(sorted(unsent))
 
     def _to_folder(self, items: list[DueDelivery]) -> None:
         folder = self.config.results_dir

@@ -111,6 +111,7 @@ class NodeBase:
         self.port: int | None = None
         self._started_at = time.time()
         self._stopped = threading.Event()
+        self._pages: Any = None
 
     # -- start ----------------------------------------------------------------------------------
 
@@ -170,9 +171,20 @@ class NodeBase:
         cfg = self.config.http
         if not cfg.enabled:
             return
+        pages = {}
+        if cfg.status_page:
+            from service.observability.status_page import StatusPages
+
+            self._pages = StatusPages(self)
+            pages = self._pages.pages()
         try:
             self.http = HttpEndpoint(
-                cfg.bind, cfg.port, health=self.health, metrics=self.metrics.exposition
+                cfg.bind,
+                cfg.port,
+                health=self.health,
+                metrics=self.metrics.exposition,
+                pages=pages,
+                auth=(cfg.username, cfg.password) if cfg.username else None,
             )
         except OSError as exc:
             # the DICOM service goes on; the missing endpoint shows in monitoring
@@ -186,9 +198,11 @@ class NodeBase:
             )
             return
         self.http_port = self.http.start()
+        what = "status page, audit, health and metrics" if pages else "health and metrics"
         event(
             "http_listening",
-            f"health and metrics on http://{cfg.bind}:{self.http_port}/healthz and /metrics",
+            f"{what} on http://{cfg.bind}:{self.http_port}/"
+            + (" (basic authentication)" if cfg.username else ""),
             bind=cfg.bind,
             port=self.http_port,
         )
@@ -284,6 +298,8 @@ class NodeBase:
         self._stop_retention()
         if self.http is not None:
             self.http.stop()
+        if self._pages is not None:
+            self._pages.close()
         if self.journal is not None:
             try:
                 log.info("stopped; journal: %s", _summary(self.journal.counts()))
@@ -308,8 +324,12 @@ class Node(NodeBase):
         poll_seconds: float = 0.5,
         registry: CollectorRegistry | None = None,
         lease_seconds: float | None = None,
+        listen: bool = True,
     ) -> None:
         super().__init__(config, registry=registry, lease_seconds=lease_seconds)
+        #: False: the grading and delivery roles only (no listener, no HTTP endpoint, no
+        #: retention), for ``backfill`` when no node runs on the data directory
+        self._listen = listen
         self._grade_fn = grade_fn
         self._poll = poll_seconds
         self.listener: Listener | None = None
@@ -359,6 +379,8 @@ class Node(NodeBase):
         for g in self.graders:
             g.start()
         self.leases.start()
+        if not self._listen:
+            return 0
         try:
             self.port = self.listener.start()
         except OSError as exc:

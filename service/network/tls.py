@@ -70,5 +70,6 @@ def client_context(cfg: Config) -> ssl.SSLContext:
 def check(cfg: Config) -> None:
     """Build every context the configuration needs (raises UserError on a problem)."""
     server_context(cfg)
-    if any(d.tls for d in cfg.destinations.values()):
+    peers = [*cfg.destinations.values(), *cfg.archives.values()]
+    if any(getattr(p, "tls", False) for p in peers):  # DICOM peers over TLS
         client_context(cfg)

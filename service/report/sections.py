@@ -470,7 +470,8 @@ def decisions(a: Assessment) -> list[str]:
 def reasoning(p: Page, t: Type) -> list[Row]:
     a = p.a
     rows = _list(p, t, "How the result was reached", decisions(a), numbered=True)
-    notes = list(dict.fromkeys(n for n in (*a.notes, *p.measurements.notes) if n.strip()))
+    study = p.assessments.context_notes
+    notes = list(dict.fromkeys(n for n in (*study, *a.notes, *p.measurements.notes) if n.strip()))
     rows += _list(p, t, "Notes", notes, numbered=False)
     rows += _list(
         p,

@@ -198,6 +198,11 @@ EXCLUDED_OBSERVATION = _p(
     "EXCLUDED", "Excluded observation", "A recognised source value not used, with the reason"
 )
 MEASUREMENT_NOTE = _p("MEASNOTE", "Measurement note", "Note about the measurements")
+STUDY_NOTE = _p(
+    "STUDYNOTE",
+    "Study note",
+    "Note about the study that holds for every guideline applied, said once (TEXT)",
+)
 CAUTION = _p("CAUTION", "Decision support caution", "Result must be confirmed by a reader")
 CRITERIA = _p(
     "CRITERIA", "Criteria evaluated", "Container: each criterion once, referenced by the results"

@@ -86,6 +86,17 @@ class Study(BaseModel):
     seed: str = "harbour-vale-demo"  # entropy for deterministic UIDs
 
 
+class Equipment(BaseModel):
+    """The sending device as the General Equipment module states it (invented devices)."""
+
+    model_config = ConfigDict(frozen=True)
+
+    manufacturer: str = "Harbour Vale test scanner (fictional)"
+    model: str = "HV-Echo"
+    station_name: str | None = None  # (0008,1010); None leaves it out
+    serial_number: str = "HV-0001"
+
+
 class EchoItem(BaseModel):
     """One measurement to write.  ``unit`` None writes no unit (a defect, for tests)."""
 
@@ -486,6 +497,7 @@ def build_echo_sr(
     findings: Sequence[Code] = (),
     raw_content: Sequence[Dataset] = (),
     instance_number: int = 1,
+    equipment: Equipment | None = None,
 ) -> Dataset:
     """An echo measurement SR dataset with file meta (``save_as(..., enforce_file_format=True)``
     works).  ``rhythm`` adds a (8884-9, LN, "Cardiac Rhythm") CODE item; each of ``findings``
@@ -526,10 +538,13 @@ def build_echo_sr(
     ds.SeriesInstanceUID = series_uid
     ds.SeriesNumber = 1
     ds.ReferencedPerformedProcedureStepSequence = DicomSequence([])
-    ds.Manufacturer = "Harbour Vale test scanner (fictional)"
+    equipment = equipment or Equipment()
+    ds.Manufacturer = equipment.manufacturer
     ds.InstitutionName = INSTITUTION
-    ds.ManufacturerModelName = "HV-Echo"
-    ds.DeviceSerialNumber = "HV-0001"
+    if equipment.station_name is not None:
+        ds.StationName = equipment.station_name
+    ds.ManufacturerModelName = equipment.model
+    ds.DeviceSerialNumber = equipment.serial_number
     ds.SoftwareVersions = "1.0"
     # SR Document General
     ds.InstanceNumber = instance_number

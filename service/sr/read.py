@@ -397,7 +397,10 @@ def _datetime(date: str, time: str) -> str:
     return f"{date}{whole}.{frac}"
 
 
-def _created(ds: Dataset) -> str:
+def created_at(ds: Dataset) -> str:
+    """When a document was made, as "YYYYMMDDHHMMSS.ffffff" (sorts as text): its Content Date
+    and Time (SR Document General module, PS3.3 C.17.2), else its Instance Creation Date and
+    Time (SOP Common module, PS3.3 C.12.1); "" when it carries neither in a valid form."""
     for d, t in (("ContentDate", "ContentTime"), ("InstanceCreationDate", "InstanceCreationTime")):
         value = _datetime(_text(ds.get(d)), _text(ds.get(t)))
         if value:
@@ -496,7 +499,7 @@ def _read(ds: Dataset) -> SourceDocument:
         warnings.append(f"patient age unreadable ({type(exc).__name__}); ignored")
         age = None
     try:
-        created = _created(ds)
+        created = created_at(ds)
     except Exception as exc:
         warnings.append(f"content date/time unreadable ({type(exc).__name__}); ignored")
         created = ""
@@ -1076,9 +1079,17 @@ def _meta_end(data: bytes) -> int:
     return _meta_walk(data, None)
 
 
+#: the VRs of PS3.5 Table 6.2-1, as the two bytes of an explicit VR element
+_KNOWN_VRS = frozenset(vr.value.encode("ascii") for vr in _VR)
+
+
 def _meta_walk(data: bytes, values: dict[int, bytes] | None) -> int:
     pos = 132
     while pos + 8 <= len(data) and struct.unpack_from("<H", data, pos)[0] == 0x0002:
+        if data[pos + 4 : pos + 6] not in _KNOWN_VRS:
+            # the meta group is explicit VR (PS3.10 7.1); a damaged VR leaves the element's
+            # length unknown (pydicom then guesses implicit VR), so nothing after it is trusted
+            raise struct.error("file meta element with an unknown VR")
         if data[pos + 4 : pos + 6] in _LONG_VRS:
             (length,) = struct.unpack_from("<I", data, pos + 8)
             start = pos + 12

@@ -5,10 +5,12 @@ Shape (all content by value, following the TID 2000 pattern of PS3.16 without cl
     CONTAINER (DFREPORT, 99DSRG, "Automated LV diastolic function assessment")
       HAS OBS CONTEXT   device observer (TID 1002 / TID 1004)
       CONTAINS CONTAINER (19005-8, LN, "Impressions")       the conclusion + the caution, first
+      CONTAINS TEXT (STUDYNOTE, 99DSRG)                    what holds for every guideline, once
       CONTAINS CONTAINER (ASSESSMENT, 99DSRG)              one per guideline, primary first
         CODE role, CODE guideline, TEXT citation, TEXT algorithm name / version
         CODE pathway  > INFERRED FROM (by reference) the reasoning step that chose it, or
-                        TEXT pathway reason when no reasoning step says it
+                        TEXT pathway reason when no reasoning step says it (by reference to
+                        an earlier assessment's when it gave the same reason)
         CODE (8884-9, LN, "Cardiac Rhythm"), CODE special situations
         CODE grade              > INFERRED FROM (by reference) each criterion, or the pathway
         CODE filling pressure   > INFERRED FROM (by reference) each criterion, or the pathway
@@ -77,6 +79,7 @@ from service.sr.identity import derive_uid, is_valid_uid
 from service.wording import (
     GRADE_WORDS,
     GUIDELINE_NAMES,
+    borderline_words,
     headline,
     reading_sentence,
 )
@@ -96,7 +99,12 @@ DEVICE_UID = derive_uid("diastolic-sr", "device observer")
 #: pressure), readings of ambiguous rules as items of their own.  Layout 4: the reasoning holds
 #: only the decision steps (no sentence per criterion), the pathway refers to the reasoning
 #: step that chose it instead of repeating it, special situations in their clinical spelling.
-DOCUMENT_LAYOUT = "layout-4"
+#: Layout 5: counts agree in number ("1 of 1 available criterion"), a reasoning step no longer
+#: repeats the reading it rests on, the impression names a borderline measure and leaves the
+#: flag's sentence to the borderline item, a note that holds for every guideline (the rhythm
+#: assumed) is a study note said once instead of a note in each assessment, and a study's
+#: sources are in one order offline and on the node (service.pipeline.study_order).
+DOCUMENT_LAYOUT = "layout-5"
 
 
 _ORIGIN_WORDS: dict[Origin, str] = {
@@ -120,12 +128,13 @@ def grade_words(grade: Grade) -> str:
 
 def summary_text(assessments: AssessmentSet) -> str:
     """The impression: the guideline and the conclusion (:func:`service.wording.headline`, the
-    same sentence as the summary's headline, the table and the JSON), then any borderline
-    flag, then the other guidelines' results."""
+    same sentence as the summary's headline, the table and the JSON), then the measures a
+    borderline flag names (the flag itself is said once, in the "Borderline criterion" item),
+    then the other guidelines' results."""
     p = assessments.primary
     text = f"{GUIDELINE_NAMES[p.guideline]}: {headline(p)}"
     if p.borderline:
-        text += " Borderline: " + " ".join(f.text for f in p.borderline)
+        text += " " + borderline_words(f.measure for f in p.borderline)
     for o in assessments.others:
         text += f" For comparison, {GUIDELINE_NAMES[o.guideline]}: {headline(o)}"
     return text
@@ -209,13 +218,14 @@ def criterion_item(c: Criterion) -> Item:
     return _with(item, props)
 
 
+def _sentence_key(text: str) -> str:
+    """A sentence as compared with another: whatever its case and its full stop."""
+    return text.strip().rstrip(".").casefold()
+
+
 def _same_sentence(a: str, b: str) -> bool:
     """The same sentence, whatever its case and its full stop (a comparison, never prose)."""
-
-    def norm(s: str) -> str:
-        return s.strip().rstrip(".").casefold()
-
-    return bool(norm(a)) and norm(a) == norm(b)
+    return bool(_sentence_key(a)) and _sentence_key(a) == _sentence_key(b)
 
 
 def _reading_item(r: Reading) -> Item:
@@ -272,7 +282,14 @@ def _supporting_item(s: SupportingFinding) -> Item:
     return _with(_text(C.SUPPORTING_FINDING, text, Rel.CONTAINS), props)
 
 
-def assessment_container(a: Assessment, *, primary: bool) -> Item:
+def assessment_container(
+    a: Assessment, *, primary: bool, said: dict[str, Item] | None = None
+) -> Item:
+    """One guideline's assessment.  ``said``: pathway reasons already written by an earlier
+    assessment of the same result, by sentence; a pathway with the same reason (e.g. both
+    guidelines route an atrial-fibrillation study the same way, for the same stated rhythm)
+    refers to that item by reference instead of saying it again."""
+    said = {} if said is None else said
     items: list[Item | None] = [
         _code(C.ASSESSMENT_ROLE, C.PRIMARY if primary else C.COMPARISON, Rel.CONTAINS),
         _code(C.GUIDELINE, C.GUIDELINE_VALUES[a.guideline], Rel.CONTAINS),
@@ -289,10 +306,15 @@ def assessment_container(a: Assessment, *, primary: bool) -> Item:
         (item for item in reasoning if _same_sentence(str(item.value), a.pathway_reason)), None
     )
     pathway = _code(C.PATHWAY, C.PATHWAY_VALUES[a.pathway], Rel.CONTAINS)
+    earlier = said.get(_sentence_key(a.pathway_reason))
     if routing is not None:
         pathway = _with(pathway, [reference_item(Rel.INFERRED_FROM, routing)])
+    elif earlier is not None:
+        pathway = _with(pathway, [reference_item(Rel.INFERRED_FROM, earlier)])
     elif a.pathway_reason.strip():
-        pathway = _with(pathway, [_text(C.PATHWAY_REASON, a.pathway_reason, Rel.INFERRED_FROM)])
+        reason = _text(C.PATHWAY_REASON, a.pathway_reason, Rel.INFERRED_FROM)
+        said[_sentence_key(a.pathway_reason)] = reason
+        pathway = _with(pathway, [reason])
     items.append(pathway)
     items.append(_code(C.CARDIAC_RHYTHM, C.RHYTHM_VALUES[a.rhythm], Rel.CONTAINS))
     for s in a.special_situations:
@@ -371,8 +393,12 @@ def content_tree(
             ],
         )
     ]
-    body.append(assessment_container(assessments.primary, primary=True))
-    body += [assessment_container(o, primary=False) for o in assessments.others]
+    # what holds for the study whichever guideline is applied (e.g. the rhythm assumed): said
+    # once, before the assessments that rest on it
+    body += [_text(C.STUDY_NOTE, n, Rel.CONTAINS) for n in assessments.context_notes]
+    said: dict[str, Item] = {}
+    body.append(assessment_container(assessments.primary, primary=True, said=said))
+    body += [assessment_container(o, primary=False, said=said) for o in assessments.others]
     if assessments.others:
         sentences = [d for d in assessments.disagreements if d.strip()] or [
             "The guidelines evaluated agree on grade and filling pressure."

@@ -49,7 +49,7 @@ from __future__ import annotations
 
 import abc
 import time
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from enum import StrEnum
 from pathlib import Path
@@ -57,6 +57,8 @@ from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
     from service.config import Config
+
+from service.store.backfill_journal import BackfillRecords
 
 
 class ObjectState(StrEnum):
@@ -160,9 +162,10 @@ def backoff_delay(attempt: int, initial: float, maximum: float) -> float:
     return min(initial * 2 ** (attempt - 1), maximum)
 
 
-class Journal(abc.ABC):
-    """What every role of the node may ask of the journal.  Times are epoch seconds; ``now``
-    defaults to the current time (tests pass it explicitly)."""
+class Journal(BackfillRecords, abc.ABC):
+    """What every role of the node may ask of the journal (and ``backfill``, in methods of
+    its own, :class:`~service.store.backfill_journal.BackfillRecords`).  Times are epoch
+    seconds; ``now`` defaults to the current time (tests pass it explicitly)."""
 
     #: where the journal is, for logs (never a password)
     location: str = ""
@@ -255,6 +258,7 @@ class Journal(abc.ABC):
         failure: str = "",
         object_notes: dict[str, str] | None = None,
         companions: Sequence[Companion] = (),
+        audit: Any = None,
         now: float | None = None,
     ) -> bool:
         """Record the outcome of grading ``claim``.
@@ -266,7 +270,9 @@ class Journal(abc.ABC):
         on the same association.  Without: the study fails with ``failure``.  A newer object
         that arrived meanwhile keeps the study open for another grading.  Returns True when
         new deliveries were queued.  OSError when a result's bytes cannot be stored (nothing
-        is recorded then)."""
+        is recorded then).  ``audit``: the study's audit facts
+        (:class:`service.audit.facts.StudyFacts`), recorded in the same transaction (a row
+        that records the failure when there are none); see :meth:`audit_rows`."""
 
     @abc.abstractmethod
     def release_claim(
@@ -434,6 +440,40 @@ class Journal(abc.ABC):
     def check_writable(self, *, now: float | None = None) -> None:
         """One committed write; raises when the journal cannot take writes."""
 
+    # -- the audit and the status page (read) ---------------------------------------------------
+
+    @abc.abstractmethod
+    def audit_rows(
+        self, since: float | None = None, until: float | None = None, *, identities: bool = False
+    ) -> list[Any]:
+        """Audit rows (:class:`service.store.audit_records.AuditRow`) of the studies graded in
+        [since, until), oldest first; patient identity only with ``identities`` (and only
+        where it was recorded)."""
+
+    @abc.abstractmethod
+    def iter_audit_rows(
+        self,
+        since: float | None = None,
+        until: float | None = None,
+        *,
+        identities: bool = False,
+        page: int = 5000,
+    ) -> Iterator[Any]:
+        """:meth:`audit_rows` read a page at a time (memory bounded)."""
+
+    @abc.abstractmethod
+    def activity_since(self, since: float) -> dict[str, Any]:
+        """Objects received, studies graded by outcome, deliveries done per destination and
+        failed, since ``since``."""
+
+    @abc.abstractmethod
+    def recent_failures(self, limit: int = 20) -> list[dict[str, Any]]:
+        """Failed deliveries and studies that could not be graded, newest first."""
+
+    @abc.abstractmethod
+    def patient_identities(self, study_uids: Sequence[str]) -> dict[str, tuple[str, str]]:
+        """Patient name and ID of these studies where the audit recorded them."""
+
     # -- retention ---------------------------------------------------------------------------
 
     @abc.abstractmethod
@@ -445,7 +485,8 @@ class Journal(abc.ABC):
         failed to deliver (a study that could not be graded).  Studies waiting to be graded,
         results waiting to be delivered and failed deliveries (which an administrator may
         re-queue) are never purged.  Objects kept by :meth:`store_ignored` before
-        ``older_than`` go too."""
+        ``older_than`` go too.  A purged study's audit facts stay (no patient identity is in
+        them); its recorded patient identity goes."""
 
     def __enter__(self) -> Journal:
         return self

@@ -107,7 +107,66 @@ MIGRATIONS: list[list[str]] = [
             outcome TEXT NOT NULL
         )""",
     ],
-    # 4: claims with leases
+    # 4: what backfill keeps between runs (service/store/backfill_journal.py)
+    [
+        """CREATE TABLE IF NOT EXISTS backfill_runs (
+            id BIGSERIAL PRIMARY KEY,
+            source TEXT NOT NULL,
+            since TEXT NOT NULL DEFAULT '',
+            until TEXT NOT NULL DEFAULT '',
+            state TEXT NOT NULL,
+            started_at DOUBLE PRECISION NOT NULL,
+            finished_at DOUBLE PRECISION,
+            summary TEXT NOT NULL DEFAULT '{}'
+        )""",
+        """CREATE TABLE IF NOT EXISTS backfill_studies (
+            study_uid TEXT PRIMARY KEY,
+            source TEXT NOT NULL,
+            state TEXT NOT NULL,
+            rules TEXT NOT NULL DEFAULT '',
+            sources TEXT NOT NULL DEFAULT '[]',
+            generation INTEGER NOT NULL DEFAULT 0,
+            outcome TEXT NOT NULL DEFAULT '',
+            reason TEXT NOT NULL DEFAULT '',
+            attempts INTEGER NOT NULL DEFAULT 0,
+            run_id BIGINT,
+            updated_at DOUBLE PRECISION NOT NULL
+        )""",
+        "CREATE INDEX IF NOT EXISTS backfill_studies_state ON backfill_studies (state, rules)",
+    ],
+    # 5: the audit's facts per study (service/store/audit_records.py)
+    [
+        """CREATE TABLE IF NOT EXISTS audit_studies (
+            study_uid TEXT PRIMARY KEY,
+            graded_at DOUBLE PRECISION NOT NULL,
+            last_received_at DOUBLE PRECISION,
+            delivered_at DOUBLE PRECISION,
+            status TEXT NOT NULL,
+            outcome TEXT,
+            pathway TEXT,
+            guideline TEXT,
+            device TEXT NOT NULL,
+            calling_ae TEXT NOT NULL DEFAULT '',
+            station_name TEXT NOT NULL DEFAULT '',
+            manufacturer TEXT NOT NULL DEFAULT '',
+            model TEXT NOT NULL DEFAULT '',
+            measures TEXT NOT NULL DEFAULT '[]',
+            borderline TEXT NOT NULL DEFAULT '[]',
+            missing TEXT NOT NULL DEFAULT '[]',
+            compared INTEGER NOT NULL DEFAULT 0,
+            disagreement INTEGER,
+            other_outcomes TEXT NOT NULL DEFAULT '{}',
+            failure TEXT NOT NULL DEFAULT '',
+            facts_version INTEGER NOT NULL DEFAULT 1
+        )""",
+        "CREATE INDEX IF NOT EXISTS audit_studies_time ON audit_studies (graded_at, study_uid)",
+        """CREATE TABLE IF NOT EXISTS audit_identities (
+            study_uid TEXT PRIMARY KEY,
+            patient_name TEXT NOT NULL,
+            patient_id TEXT NOT NULL
+        )""",
+    ],
+    # 6: claims with leases
     [
         "ALTER TABLE studies ADD COLUMN IF NOT EXISTS claimed_by TEXT NOT NULL DEFAULT ''",
         "ALTER TABLE studies ADD COLUMN IF NOT EXISTS lease_until DOUBLE PRECISION NOT NULL "

@@ -20,6 +20,9 @@ from contextlib import AbstractContextManager
 from typing import Any
 
 from service.errors import UserError
+from service.store.activity import ActivityQueries
+from service.store.audit_records import AuditRecords
+from service.store.backfill_journal import SqlBackfillRecords
 from service.store.journal import (
     DEFAULT_LEASE_SECONDS,
     MAX_CLAIMS,
@@ -66,7 +69,7 @@ def _retried(method: Any) -> Any:
 RETRIES = 5
 
 
-class SqlJournal(Journal):
+class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
     #: ORDER BY of results: oldest first, in the order they were recorded
     RESULT_ORDER = "created_at, rowid"
     #: appended to the SELECT that picks rows to claim (rows other transactions hold are
@@ -405,6 +408,7 @@ class SqlJournal(Journal):
         failure: str = "",
         object_notes: dict[str, str] | None = None,
         companions: Sequence[Companion] = (),
+        audit: Any = None,
         now: float | None = None,
     ) -> bool:
         # the bytes first, durably: a row never names bytes that are not whole
@@ -464,6 +468,14 @@ class SqlJournal(Journal):
                     (result.result_uid, now, claim.study_uid),
                 )
             if same_generation:
+                self._audit_graded(
+                    db,
+                    claim.study_uid,
+                    audit,
+                    calling_ae=claim.calling_ae,
+                    failure="" if result is not None else (failure or "not graded"),
+                    now=now,
+                )
                 if result is None:
                     db.execute(
                         "UPDATE studies SET state = 'failed', reason = ?, updated_at = ? "
@@ -843,6 +855,7 @@ class SqlJournal(Journal):
             "UPDATE studies SET state = ?, reason = ?, updated_at = ? WHERE study_uid = ?",
             (state, reason, now, study_uid),
         )
+        self._audit_settled(db, study_uid, state, reason, now)
 
     # -- reading ----------------------------------------------------------------------------------
 
@@ -990,6 +1003,7 @@ class SqlJournal(Journal):
                     (study,),
                 )
                 db.execute("DELETE FROM results WHERE study_uid = ?", (study,))
+                self._audit_forget(db, (study,))
                 db.execute("DELETE FROM objects WHERE study_uid = ?", (study,))
                 db.execute("DELETE FROM studies WHERE study_uid = ?", (study,))
             ignored = db.execute(

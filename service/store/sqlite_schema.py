@@ -8,6 +8,8 @@ types.
 
 from __future__ import annotations
 
+from service.store.backfill_journal import SQLITE_DDL as BACKFILL_DDL
+
 #: statements of each schema version, oldest first (version n is ``MIGRATIONS[n - 1]``)
 MIGRATIONS: list[list[str]] = [
     # 1: objects, studies, results, deliveries, companions
@@ -99,7 +101,42 @@ MIGRATIONS: list[list[str]] = [
             outcome TEXT NOT NULL
         )""",
     ],
-    # 4: claims with leases (several processes take work from one journal)
+    # 4: what backfill keeps between runs (service/store/backfill_journal.py)
+    BACKFILL_DDL,
+    # 5: the audit's facts per study (service/store/audit_records.py), kept when retention
+    # purges the study, and the patient identity recorded only when configured
+    [
+        """CREATE TABLE IF NOT EXISTS audit_studies (
+            study_uid TEXT PRIMARY KEY,
+            graded_at REAL NOT NULL,
+            last_received_at REAL,
+            delivered_at REAL,
+            status TEXT NOT NULL,            -- graded, not-gradable, rejected, error
+            outcome TEXT,                    -- service.model.Outcome token
+            pathway TEXT,
+            guideline TEXT,
+            device TEXT NOT NULL,            -- calling AE, else Station Name, else make + model
+            calling_ae TEXT NOT NULL DEFAULT '',
+            station_name TEXT NOT NULL DEFAULT '',
+            manufacturer TEXT NOT NULL DEFAULT '',
+            model TEXT NOT NULL DEFAULT '',
+            measures TEXT NOT NULL DEFAULT '[]',    -- JSON: canonical measure names present
+            borderline TEXT NOT NULL DEFAULT '[]',  -- JSON: cut-offs a value sat on
+            missing TEXT NOT NULL DEFAULT '[]',     -- JSON: missing measures that would decide
+            compared INTEGER NOT NULL DEFAULT 0,    -- number of guidelines compared
+            disagreement INTEGER,                   -- 1/0, NULL when not compared
+            other_outcomes TEXT NOT NULL DEFAULT '{}',  -- JSON: {guideline: outcome} differing
+            failure TEXT NOT NULL DEFAULT '',       -- why the study failed, while it does
+            facts_version INTEGER NOT NULL DEFAULT 1
+        )""",
+        "CREATE INDEX IF NOT EXISTS audit_studies_time ON audit_studies (graded_at, study_uid)",
+        """CREATE TABLE IF NOT EXISTS audit_identities (
+            study_uid TEXT PRIMARY KEY,
+            patient_name TEXT NOT NULL,
+            patient_id TEXT NOT NULL
+        )""",
+    ],
+    # 6: claims with leases (several processes take work from one journal)
     [
         # who holds a study being graded, until when, and how many claims of this generation
         # ended without a result (a grading process that died)

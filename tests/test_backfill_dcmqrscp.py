@@ -59,13 +59,14 @@ def dcmqrscp(tmp_path):
             proc.wait(5)
 
 
-def test_c_find_and_c_get_backfill_from_dcmqrscp(dcmqrscp, tmp_path):
+def test_c_find_and_c_get_backfill_from_dcmqrscp(dcmqrscp, tmp_path, node_backend):
+    # on each journal: SQLite in the data directory, or a PostgreSQL database several nodes share
     day = date(2022, 9, 14)
     echo = echo_study("qr-echo", day, reports=2)
     images_only = image_in(echo_study("qr-images-only", day)[0])
     assert send([*echo, image_in(echo[0]), images_only], dcmqrscp, called=QR_AE) == [0] * 4
     data_dir = tmp_path / "data"
-    config = node_config(data_dir)
+    config = node_config(data_dir, extra={"journal": node_backend(data_dir)})
     source = f"{QR_AE}@{LOOPBACK}:{dcmqrscp}"
 
     summary, _ = run_backfill(config, source, since=day, until=day)
@@ -76,8 +77,9 @@ def test_c_find_and_c_get_backfill_from_dcmqrscp(dcmqrscp, tmp_path):
     assert summary.skipped_reasons == {"no SR object in the study": 1}
     from service.store.journal import open_journal
 
-    journal = open_journal(data_dir)
+    journal = open_journal(config)
     try:
+        assert journal.shared == bool(config.journal.url)
         objects = journal.objects()
         assert {o["sop_instance_uid"] for o in objects} == {str(ds.SOPInstanceUID) for ds in echo}
         assert {o["calling_ae"] for o in objects} == {QR_AE}

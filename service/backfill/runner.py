@@ -146,7 +146,7 @@ def rules_key(config: Config, calling_ae: str) -> str:
     studies recorded under ``calling_ae``, the mapping table in force, the software version
     and the result document's layout (the parts of the result's identity,
     :func:`service.pipeline.result_identity`, that do not come from the sources)."""
-    from service.network.assembly import grade_options
+    from service.network.grader import grade_options
     from service.sr.identity import config_digest
     from service.sr.write import DOCUMENT_LAYOUT
     from service.vocabulary.mapper import load_mapping_table
@@ -210,8 +210,7 @@ class Roles:
         node = Node(self.config, listen=False, grade_fn=self._grade_fn, poll_seconds=self._poll)
         node.start()
         self._node = node
-        assembler = node.assembler
-        self._intake.on_received = lambda _uid: assembler.wake() if assembler else None
+        self._intake.on_received = node.wake_graders
         self._intake.metrics = node.metrics
         return self._intake
 
@@ -267,7 +266,7 @@ def open_roles(
         )
     roles = Roles(
         config,
-        open_journal(data_dir),
+        open_journal(config, max_connections=4),
         node_running=running,
         node_ae=node_ae,
         grade_fn=grade_fn,
@@ -758,7 +757,8 @@ class Backfill:
         done: set[str] = set()
         results: Callable[[str], bool] = lambda _uid: False  # noqa: E731
         path = journal_path(self.config.data_dir.resolve())
-        journal = open_journal(self.config.data_dir.resolve()) if path.exists() else None
+        there = bool(self.config.journal.url) or path.exists()
+        journal = open_journal(self.config, max_connections=1) if there else None
         try:
             if journal is not None:
                 done = journal.backfill_done_under(self.rules)

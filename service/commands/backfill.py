@@ -76,6 +76,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     p.add_argument("--config", metavar="FILE", help="configuration file (TOML)")
     p.add_argument("--data-dir", metavar="DIR", help="the node's data directory (its journal)")
+    from service.commands.serve import add_journal_argument
+
+    add_journal_argument(p)
     p.add_argument(
         "--forward",
         action="append",
@@ -194,6 +197,7 @@ def run(args: argparse.Namespace) -> int:
         load_config(args.config),
         forward=args.forward,
         data_dir=args.data_dir,
+        journal=args.journal,
         settle_seconds=args.settle_seconds,
     )
     configure_logging("text", args.log_level)

@@ -368,7 +368,7 @@ class Node(NodeBase):
             for i in range(1, self.config.assembly.workers + 1)
         ]
         self.listener = Listener(
-            self.config, journal, on_received=self._wake_graders, metrics=self.metrics
+            self.config, journal, on_received=self.wake_graders, metrics=self.metrics
         )
         self.leases = LeaseKeeper(
             journal,
@@ -395,7 +395,7 @@ class Node(NodeBase):
         self._start_services()
         return self.port
 
-    def _wake_graders(self, _study_uid: str) -> None:
+    def wake_graders(self, _study_uid: str) -> None:
         for g in self.graders:
             g.wake()
 

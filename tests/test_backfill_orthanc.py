@@ -172,7 +172,8 @@ def test_c_move_backfill_into_a_running_node(orthanc, tmp_path, loopback_nodes):
     uids = [s[0].StudyInstanceUID for s in studies]
     node = loopback_nodes.start({"assembly": {"workers": 1}}, settle=0.5, forward=[orthanc.source])
     orthanc.register("node", NODE_AE, node.port)  # where C-MOVE sends the objects
-    config = node_config(node.data_dir)
+    # the node's journal: SQLite in its data directory, or the PostgreSQL database it uses
+    config = node_config(node.data_dir, extra={"journal": node.config.journal.model_dump()})
 
     summary, _ = run_backfill(config, orthanc.source, since=day, until=day, move_to=NODE_AE)
 

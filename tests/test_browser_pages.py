@@ -17,6 +17,7 @@ from netutil import (
     LOOPBACK,
     SKIP_WITHOUT_DCMTK,
     free_port,
+    journal_args,
     storescp,
     wait_for,
 )
@@ -91,7 +92,7 @@ def test_two_devices_one_never_sends_tr_velocity(loopback_nodes, tmp_path):
         # the audit from the command line: JSON and the HTML page
         page_file = tmp_path / "audit.html"
         run = subprocess.run(
-            [sys.executable, "-m", "service.cli", "audit", "--data-dir", str(node.data_dir),
+            [sys.executable, "-m", "service.cli", "audit", *journal_args(node),
              "--json", "--html", str(page_file)],
             capture_output=True, text=True, timeout=120,
         )  # fmt: skip

@@ -8,6 +8,7 @@ import json
 import os
 import subprocess
 import sys
+from io import BytesIO
 from pathlib import Path
 
 import pydicom
@@ -374,7 +375,7 @@ def test_a_study_gives_the_same_result_content_offline_and_on_the_node(
         return result if result and len(result["sources"]) == 2 else None
 
     result = wait_for(graded_from_both, 60)
-    online = _content(result["path"])
+    online = _content(pydicom.dcmread(BytesIO(node.journal.result_data(result["result_uid"]))))
     if result["predecessors"]:
         # the node graded the first SR before the second arrived (a settle window that ran
         # out under load) and names that result as the predecessor; offline there was none

@@ -296,7 +296,7 @@ def test_summary_pdf_sent_back_is_answered_success_however_the_node_is_configure
     assert node.journal.study(summary.StudyInstanceUID) is None
     assert node.journal.objects() == []
     capsys.readouterr()
-    assert cli_main(["queue", "--data-dir", str(node.config.data_dir), "--json"]) == 0
+    assert cli_main(["queue", *journal_args(node), "--json"]) == 0
     [listed] = json.loads(capsys.readouterr().out)["objects_ignored"]
     assert listed["sop_instance_uid"] == summary.SOPInstanceUID
     assert listed["kind"] == "summary PDF"

@@ -73,6 +73,9 @@ class StatusPages:
         listener = getattr(node, "listener", None)  # in this process only when it runs here
         associations = None if listener is None else listener.active_associations()
         data_dir = str(node.data_dir)
+        where = "--data-dir " + shlex.quote(data_dir)
+        if cfg.journal.url:  # the password from journal.password or PGPASSWORD, never here
+            where += " --journal " + shlex.quote(cfg.journal.url)
         return {
             "now": now,
             "version": __version__,
@@ -90,12 +93,8 @@ class StatusPages:
             "activity": activity,
             "failures": failures,
             "show_patients": cfg.audit.include_patient_identifiers,
-            "requeue_command": "diastolic-sr queue --data-dir "
-            + shlex.quote(data_dir)
-            + " --requeue-failed",
-            "regrade_command": "diastolic-sr queue --data-dir "
-            + shlex.quote(data_dir)
-            + " --regrade STUDY_INSTANCE_UID",
+            "requeue_command": f"diastolic-sr queue {where} --requeue-failed",
+            "regrade_command": f"diastolic-sr queue {where} --regrade STUDY_INSTANCE_UID",
             "config_digest": cfg.digest(),
             "config_toml": effective_toml(cfg),
             "audit_days": cfg.audit.default_days,

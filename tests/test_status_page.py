@@ -172,3 +172,34 @@ def test_status_page_can_be_switched_off(start_node):
     node = start_node({"http": {"status_page": False}})
     assert get(node, "/")[0] == 404
     assert get(node, "/healthz")[0] == 200
+
+
+def test_a_delivery_being_retried_shows_with_its_reason_and_next_attempt(start_node):
+    # the PACS is away: the first attempt fails and the next is minutes off; the page says why
+    # and when, before the delivery has used up its attempts (PACS administrator's view)
+    closed = free_port()  # nothing listens there: the attempt fails at once
+    node = start_node(
+        {
+            "delivery": {
+                "max_attempts": 5,
+                "backoff_initial_seconds": 300,
+                "backoff_max_seconds": 600,
+            }
+        },
+        forward=[f"HV_PACS@{LOOPBACK}:{closed}"],
+    )
+    assert send_datasets(case_datasets(NORMAL), node.port, called_ae="DIASTOLIC_SR") == [0]
+
+    def retrying():
+        rows = node.journal.deliveries(states=["pending"])
+        return rows if rows and rows[0]["attempts"] >= 1 else None
+
+    [row] = wait_for(retrying, 60)
+    assert row["last_error"]
+    code, _, html = get(node, "/")
+    assert code == 200
+    assert figure(html, "deliveries-failed") == "0"
+    assert figure(html, "deliveries-pending") == "1"
+    assert 'data-retrying="1"' in html and "being retried; next attempt" in html
+    assert "Connection refused" in html or "cannot connect" in html
+    assert f"HV_PACS@{LOOPBACK}:{closed}" in html

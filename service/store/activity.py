@@ -48,16 +48,19 @@ class ActivityQueries:
         }
 
     def recent_failures(self, limit: int = 20) -> list[dict[str, Any]]:
-        """Failed deliveries (result SR or summary PDF, per destination) and studies that could
-        not be graded, newest first."""
+        """Failed deliveries (result SR or summary PDF, per destination), deliveries whose
+        last attempt failed and that are being retried (``what`` = "retrying", with the time
+        of the next attempt) and studies that could not be graded, newest first."""
         deliveries = self._query(
             """SELECT d.updated_at AS at, r.study_uid, d.result_uid, d.destination, d.target,
-                      d.attempts, d.last_error AS reason,
+                      d.attempts, d.last_error AS reason, d.state, d.next_attempt_at,
                       CASE WHEN EXISTS (SELECT 1 FROM companions c
                                         WHERE c.companion_uid = d.result_uid)
                            THEN 'summary PDF' ELSE 'result SR' END AS kind
                FROM deliveries d JOIN results r ON r.result_uid = d.result_uid
-               WHERE d.state = 'failed' ORDER BY d.updated_at DESC LIMIT ?""",
+               WHERE d.state = 'failed'
+                  OR (d.state = 'pending' AND d.attempts > 0 AND d.last_error <> '')
+               ORDER BY d.updated_at DESC LIMIT ?""",
             (limit,),
         )
         studies = self._query(
@@ -69,7 +72,8 @@ class ActivityQueries:
         out = [
             {
                 "at": r["at"],
-                "what": "delivery",
+                "what": "delivery" if r["state"] == "failed" else "retrying",
+                "next_at": r["next_attempt_at"] if r["state"] != "failed" else None,
                 "kind": r["kind"],
                 "study_uid": r["study_uid"],
                 "uid": r["result_uid"],
@@ -84,6 +88,7 @@ class ActivityQueries:
             {
                 "at": r["at"],
                 "what": "grading",
+                "next_at": None,
                 "kind": "study",
                 "study_uid": r["study_uid"],
                 "uid": r["study_uid"],

@@ -354,6 +354,28 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
             (study_uid,),
         )
 
+    @staticmethod
+    def _give_back(
+        db: Cursor, study_uid: str, holder: str, who: str, now: float, *, uncount: bool
+    ) -> None:
+        """Put a study held in grading (``holder``: the SQL condition on ``claimed_by``, with
+        ``who`` its parameter) back in the queue, due now at the latest, with its objects;
+        ``uncount``: the claim is not counted against the study (a node's own restart).
+        Nothing happens when another took it over meanwhile."""
+        uncounted = "claims = CASE WHEN claims > 0 THEN claims - 1 ELSE 0 END, " if uncount else ""
+        if not db.execute(
+            "UPDATE studies SET state = 'received', claimed_by = '', lease_until = 0, "
+            + uncounted
+            + "due_at = CASE WHEN due_at < ? THEN due_at ELSE ? END, updated_at = ? "
+            f"WHERE study_uid = ? AND state = 'assembled' AND {holder}",
+            (now, now, now, study_uid, who),
+        ).rowcount:
+            return
+        db.execute(
+            "UPDATE objects SET state = 'received' WHERE study_uid = ? AND state = 'assembled'",
+            (study_uid,),
+        )
+
     @_retried
     def release_owner(self, owner: str, *, now: float | None = None) -> dict[str, int]:
         now = self.now() if now is None else now
@@ -364,18 +386,7 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
                 (owner,),
             ).fetchall()
             for s in studies:
-                if not db.execute(
-                    "UPDATE studies SET state = 'received', claimed_by = '', lease_until = 0, "
-                    "due_at = CASE WHEN due_at < ? THEN due_at ELSE ? END, updated_at = ? "
-                    "WHERE study_uid = ? AND state = 'assembled' AND claimed_by = ?",
-                    (now, now, now, s[0], owner),
-                ).rowcount:
-                    continue  # taken over meanwhile
-                db.execute(
-                    "UPDATE objects SET state = 'received' WHERE study_uid = ? "
-                    "AND state = 'assembled'",
-                    (s[0],),
-                )
+                self._give_back(db, s[0], "claimed_by = ?", owner, now, uncount=False)
             deliveries = db.execute(
                 "UPDATE deliveries SET claimed_by = '', lease_until = 0 "
                 "WHERE claimed_by = ? AND state = 'pending'",
@@ -575,20 +586,8 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
                 (pattern,),
             ).fetchall()
             for s in held:
-                if not db.execute(
-                    "UPDATE studies SET state = 'received', claimed_by = '', lease_until = 0, "
-                    "claims = CASE WHEN claims > 0 THEN claims - 1 ELSE 0 END, "
-                    "due_at = CASE WHEN due_at < ? THEN due_at ELSE ? END, updated_at = ? "
-                    "WHERE study_uid = ? AND state = 'assembled' AND claimed_by LIKE ? "
-                    "ESCAPE '!'",
-                    (now, now, now, s[0], pattern),
-                ).rowcount:
-                    continue  # taken over meanwhile
-                db.execute(
-                    "UPDATE objects SET state = 'received' WHERE study_uid = ? "
-                    "AND state = 'assembled'",
-                    (s[0],),
-                )
+                holder = "claimed_by LIKE ? ESCAPE '!'"
+                self._give_back(db, s[0], holder, pattern, now, uncount=True)
             db.execute(
                 "UPDATE deliveries SET claimed_by = '', lease_until = 0 "
                 "WHERE state = 'pending' AND claimed_by LIKE ? ESCAPE '!'",

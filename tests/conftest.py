@@ -107,3 +107,12 @@ def journal_backend(request):
 
     url = request.getfixturevalue("pg_url")
     return "postgresql", lambda: PostgresJournal(url, password=NODE_PASSWORD)
+
+
+@pytest.fixture
+def journal(journal_backend):
+    """The journal, once per implementation (SQLite, PostgreSQL)."""
+    _, open_journal = journal_backend
+    j = open_journal()
+    yield j
+    j.close()

@@ -15,15 +15,6 @@ from service.store.sqlite_journal import SqliteJournal
 STUDY = "1.2.826.0.1.3680043.10.999.17"
 
 
-@pytest.fixture
-def journal(journal_backend):
-    """The journal, once per implementation (SQLite, PostgreSQL)."""
-    _, open_journal = journal_backend
-    j = open_journal()
-    yield j
-    j.close()
-
-
 def _receive(j: Journal, sop: str, *, study: str = STUDY, now: float) -> None:
     j.store_object(
         sop_instance_uid=sop,

@@ -6,19 +6,8 @@ from __future__ import annotations
 
 import sqlite3
 
-import pytest
-
 from service.store.backfill_journal import RunState
 from service.store.sqlite_journal import SqliteJournal
-
-
-@pytest.fixture
-def journal(journal_backend):
-    """The journal, once per implementation (SQLite, PostgreSQL)."""
-    _, open_journal = journal_backend
-    j = open_journal()
-    yield j
-    j.close()
 
 
 def test_a_version_1_journal_gets_the_backfill_tables_and_keeps_its_rows(tmp_path):

@@ -45,15 +45,6 @@ def sqlite_journal(tmp_path):
     j.close()
 
 
-@pytest.fixture
-def journal(journal_backend):
-    """The journal, once per implementation (SQLite, PostgreSQL)."""
-    _, open_journal = journal_backend
-    j = open_journal()
-    yield j
-    j.close()
-
-
 def _receive(j: Journal, sop: str, *, study: str = STUDY, now: float = 1000.0, settle=5.0):
     j.store_object(
         sop_instance_uid=sop,

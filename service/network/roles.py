@@ -180,7 +180,7 @@ def run_receiver(config: Config, args: Any, signals: _Signals, run_dir: Path) ->
 
 
 def run_grader(config: Config, args: Any, signals: _Signals, run_dir: Path) -> int:
-    from service.network.grader import Grader, LeaseKeeper
+    from service.network.grader import Grader
     from service.network.grading_worker import warm_up_pipeline
     from service.observability.metrics import Metrics
 
@@ -197,18 +197,10 @@ def run_grader(config: Config, args: Any, signals: _Signals, run_dir: Path) -> i
         metrics=Metrics(),
         name=args.name or "grader",
     )
-    leases = LeaseKeeper(journal, lambda: [grader.owner], config.journal.lease_seconds)
-    grader.start()
-    leases.start()
-    _serve_until_stopped(signals, run_dir, [grader])
-    grader.stop()
-    leases.stop()
-    journal.close()
-    return 0
+    return _run_leased(grader, journal, config, signals, run_dir)
 
 
 def run_sender(config: Config, args: Any, signals: _Signals, run_dir: Path) -> int:
-    from service.network.grader import LeaseKeeper
     from service.network.sender import Sender
     from service.observability.metrics import Metrics
 
@@ -221,11 +213,19 @@ def run_sender(config: Config, args: Any, signals: _Signals, run_dir: Path) -> i
         lease_seconds=config.journal.lease_seconds,
         metrics=Metrics(),
     )
-    leases = LeaseKeeper(journal, lambda: [sender.owner], config.journal.lease_seconds)
-    sender.start()
+    return _run_leased(sender, journal, config, signals, run_dir)
+
+
+def _run_leased(worker: Any, journal: Any, config: Config, signals: _Signals, run_dir: Path) -> int:
+    """Run a role that claims work (a grader, the sender) with its leases kept renewed, until
+    the supervisor stops it; then stop it, let its leases go and close the journal."""
+    from service.network.grader import LeaseKeeper
+
+    leases = LeaseKeeper(journal, lambda: [worker.owner], config.journal.lease_seconds)
+    worker.start()
     leases.start()
-    _serve_until_stopped(signals, run_dir, [sender])
-    sender.stop()
+    _serve_until_stopped(signals, run_dir, [worker])
+    worker.stop()
     leases.stop()
     journal.close()
     return 0

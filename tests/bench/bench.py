@@ -873,12 +873,12 @@ def bench_sender(work: Path, n: int) -> dict[str, Any]:
         ae.add_requested_context(sop_class, ExplicitVRLittleEndian)
         assoc = ae.associate(LOOPBACK, port, ae_title=PACS_AE)
         no_delay(assoc)
-        _config.STORE_SEND_CHUNKED_DATASET = True
+        before, _config.STORE_SEND_CHUNKED_DATASET = _config.STORE_SEND_CHUNKED_DATASET, True
         try:
             for f in files:
                 assert assoc.send_c_store(f).Status == 0
         finally:
-            _config.STORE_SEND_CHUNKED_DATASET = False
+            _config.STORE_SEND_CHUNKED_DATASET = before
             assoc.release()
 
     out: dict[str, Any] = {"n": len(files), "median_bytes": statistics.median(sizes)}

@@ -6,7 +6,8 @@ intake, as the listener does).
 :class:`BackfillRecords` is the contract (part of :class:`~service.store.journal.Journal`);
 :class:`SqlBackfillRecords` its statements, shared by every SQL backend
 (:class:`~service.store.sql_journal.SqlJournal`); the tables are in each backend's schema
-module (:data:`SQLITE_DDL` for SQLite, schema version 4).
+module, schema version 4 (:data:`SQLITE_DDL` for SQLite; PostgreSQL's types in
+:mod:`service.store.postgres_schema`).
 
 Study states::
 

@@ -255,3 +255,17 @@ def test_summary_lists_a_reading_that_starts_with_e_prime_as_e_prime(tmp_path: P
     text = " ".join(done.stdout.decode("utf-8").split())
     assert "e′ is reduced when any of average" in text
     assert not BROKEN.search(text), BROKEN.search(text)
+
+
+def test_an_assumed_rhythm_is_said_once_in_an_ase_2025_result():
+    # the study note says that sinus rhythm was assumed; the routing step does not say it again
+    from service.demo.scenario import CASES, case_datasets
+    from service.model import Guideline
+    from service.pipeline import GradeOptions, grade_study
+
+    case = next(c for c in CASES if c.key == "normal")
+    outcome = grade_study(case_datasets(case), GradeOptions(guideline=Guideline.ase_2025))
+    assessment = outcome.assessment
+    said = [*outcome.assessments.context_notes, *assessment.notes, *assessment.reasoning]
+    assert sum("assumed" in s for s in said) == 1, said
+    assert any("ASE 2025 general algorithm for sinus rhythm" in s for s in assessment.reasoning)

@@ -126,13 +126,17 @@ def _assess(measurements: Measurements, context: Context, opts: Ase2025Options) 
             "E/A is unavailable for the grade."
         )
     trace.note_unstated_rhythm(context)
-    rhythm = "sinus rhythm" if context.rhythm is Rhythm.sinus else "sinus rhythm assumed"
-    if context.rhythm_source and context.rhythm is Rhythm.sinus:
-        rhythm += f" ({context.rhythm_source})"
-    reason = (
-        f"{rhythm}, no special situation: the ASE 2025 general algorithm (Figure 3) applies at "
-        "any LVEF"
-    )
+    if context.rhythm is Rhythm.sinus:
+        rhythm = "sinus rhythm" + (f" ({context.rhythm_source})" if context.rhythm_source else "")
+        reason = (
+            f"{rhythm}, no special situation: the ASE 2025 general algorithm (Figure 3) "
+            "applies at any LVEF"
+        )
+    else:  # the rhythm assumed: the study note says so once
+        reason = (
+            "no special situation: the ASE 2025 general algorithm for sinus rhythm (Figure 3) "
+            "applies at any LVEF"
+        )
     trace.say(f"{sentence_start(reason)}.")
     grade, pressure = _general(trace, opts)
     return Assessment(

@@ -124,6 +124,17 @@ def test_i_16_14_transplant_and_mac_not_graded_under_2016():
         assert "I-16-14" not in " ".join((a.pathway_reason, *a.reasoning))
 
 
+def test_criteria_without_a_combining_rule_name_their_reading():
+    # mitral stenosis under ASE/EACVI 2016: its criteria are listed without a rule combining
+    # them; the result says so in a sentence and names the reading as an identifier item only
+    a = run(Guideline.ase_eacvi_2016, S.mitral_stenosis, **ABNORMAL)
+    assert a.pathway is Pathway.special_situation
+    assert a.filling_pressure is INDET
+    assert any("without a rule combining them" in s for s in a.reasoning)
+    assert "I-16-15" in [r.id for r in a.readings]
+    assert "I-16-15" not in " ".join((a.pathway_reason, *a.reasoning, *a.notes))
+
+
 # ---------------------------------------------------------------------------------------------
 # ASE/EACVI 2016 alternative criteria (flags, no combination rule)
 # ---------------------------------------------------------------------------------------------

@@ -65,6 +65,11 @@ READINGS: dict[str, str] = {
         "no validated numeric rule of the guideline is applied for mitral annular calcification "
         "or heart transplant; the standard algorithm is not used."
     ),
+    "I-16-15": (
+        "the guideline lists the criteria of a special situation such as mitral stenosis without "
+        "a rule combining them; when none decides alone, each is reported and the filling "
+        "pressure is left indeterminate."
+    ),
     "I-25-1": (
         "with both e′ sites, average e′ ≤ 6.5 cm/s decides; the septal (≤ 6) and lateral (≤ 7) "
         "cut-offs are used only when the average is not available (either site then counts)."

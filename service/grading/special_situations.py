@@ -249,6 +249,7 @@ def _combine(trace: Trace, outcomes: list[_Outcome]) -> FillingPressure:
             "The guideline lists these criteria without a rule combining them, so the filling "
             "pressure is indeterminate."
         )
+        trace.reading("I-16-15")
         return FillingPressure.indeterminate
     pressures = {o.pressure for o in stated}
     if len(pressures) == 1:

@@ -426,13 +426,7 @@ class Backfill:
             # the study-level query said it holds SR objects: none is listed now
             raise StudyGone(f"study {uid} lists no SR object at {self.archive.description}")
         if not wanted:
-            self.log.backfill_done(
-                uid,
-                outcome="nothing to grade",
-                reason="only results of this node",
-                rules=self.rules,
-            )
-            self._skip(1, "only results of this node", progress=True)
+            self._only_own_results(uid)
             return
         row = self.log.backfill_study(uid)
         have = {o["sop_instance_uid"] for o in journal.objects(uid)}
@@ -495,13 +489,7 @@ class Backfill:
         refused = [r for r in received if not r.stored and not r.ignored]
         self.summary.objects += len(stored)
         if not stored and ignored and not refused:
-            self.log.backfill_done(
-                uid,
-                outcome="nothing to grade",
-                reason="only results of this node",
-                rules=self.rules,
-            )
-            self._skip(1, "only results of this node", progress=True)
+            self._only_own_results(uid)
             return
         if not stored:
             self._fail(
@@ -663,6 +651,12 @@ class Backfill:
                 self.summary.delivery_pending.append((uid, why))
 
     # -- bookkeeping -------------------------------------------------------------------------------
+
+    def _only_own_results(self, uid: str) -> None:
+        """The study holds no SR but this node's own results: done, nothing to grade."""
+        why = "only results of this node"
+        self.log.backfill_done(uid, outcome="nothing to grade", reason=why, rules=self.rules)
+        self._skip(1, why, progress=True)
 
     def _skip(self, n: int, why: str, *, progress: bool = False) -> None:
         if n <= 0:

@@ -83,16 +83,6 @@ def image_in(study: Dataset) -> Dataset:
     return ds
 
 
-def save(datasets: Sequence[Dataset], folder: Path) -> list[Path]:
-    folder.mkdir(parents=True, exist_ok=True)
-    paths = []
-    for ds in datasets:
-        p = folder / f"{ds.SOPInstanceUID}.dcm"
-        ds.save_as(p, enforce_file_format=True)
-        paths.append(p)
-    return paths
-
-
 def node_config(data_dir: Path, *, forward: Sequence[str] = (), extra: dict | None = None) -> Any:
     """A configuration for tests: one grading process, a short settle window, quick retries."""
     from service.config import apply_overrides, config_from_dict

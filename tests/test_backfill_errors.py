@@ -15,8 +15,8 @@ from datetime import date
 from pathlib import Path
 
 import pytest
-from backfillutil import echo_study, node_config, run_backfill, save
-from netutil import LOOPBACK, NODE_AE, REPO, free_port, wait_for
+from backfillutil import echo_study, node_config, run_backfill
+from netutil import LOOPBACK, NODE_AE, REPO, free_port, wait_for, write_files
 from orthancutil import ORTHANC_REASON, SKIP_WITHOUT_ORTHANC, Orthanc
 
 pytestmark = [
@@ -35,7 +35,7 @@ def orthanc(tmp_path_factory):
 
 
 def _put(orthanc, tmp_path, studies):
-    orthanc.upload(save([ds for study in studies for ds in study], tmp_path / "archive-in"))
+    orthanc.upload(write_files([ds for study in studies for ds in study], tmp_path / "archive-in"))
 
 
 def _journal(data_dir):

@@ -21,9 +21,8 @@ from backfillutil import (
     image_in,
     node_config,
     run_backfill,
-    save,
 )
-from netutil import NODE_AE, wait_for
+from netutil import NODE_AE, wait_for, write_files
 from orthancutil import ORTHANC_REASON, SKIP_WITHOUT_ORTHANC, Orthanc
 
 pytestmark = [
@@ -50,7 +49,7 @@ def orthanc(tmp_path_factory):
 
 def _put(orthanc, tmp_path, studies):
     files = [ds for study in studies for ds in study]
-    orthanc.upload(save(files, tmp_path / "archive-in"))
+    orthanc.upload(write_files(files, tmp_path / "archive-in"))
 
 
 def _results_by_study(journal, study_uids):

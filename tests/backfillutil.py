@@ -11,7 +11,7 @@ from datetime import date
 from pathlib import Path
 from typing import Any
 
-from netutil import LOOPBACK
+from netutil import LOOPBACK, NORMAL_VALUES, echo_sr
 from pydicom import Dataset
 from pydicom.dataset import FileMetaDataset
 from pydicom.uid import ExplicitVRLittleEndian, generate_uid
@@ -23,35 +23,22 @@ SECONDARY_CAPTURE = "1.2.840.10008.5.1.4.1.1.7"
 def echo_study(tag: str, day: date, *, reports: int = 1, patient_id: str = "") -> list[Dataset]:
     """``reports`` echo measurement SRs (TID 5300, a complete normal-LVEF set, each in a series
     of its own) in one invented study on ``day``."""
-    from service.model import Measure
-    from service.sr.echo_builder import EchoItem, Patient, Study, build_echo_sr
-
-    values = {
-        "mitral_e": 80.0,
-        "mitral_a": 60.0,
-        "e_prime_septal": 6.0,
-        "e_prime_lateral": 8.0,
-        "tr_peak_velocity": 3.0,
-        "lavi": 40.0,
-        "lvef": 60.0,
-    }
     study_uid = generate_uid(entropy_srcs=[tag, "study"])
     out = []
     for k in range(reports):
-        items = [EchoItem(measure=Measure(m), value=v) for m, v in values.items()]
+        values = dict(NORMAL_VALUES)
         if k:  # a second report of the same study: a measurement of its own
-            items = items[3:]
+            values = dict(list(values.items())[3:])
         out.append(
-            build_echo_sr(
-                items,
-                patient=Patient(name=f"Backfill^{tag}", id=patient_id or f"HVBF-{tag}"),
-                study=Study(
-                    study_uid=study_uid,
-                    seed=f"{tag}-{k}",
-                    study_date=day.strftime("%Y%m%d"),
-                    content_time=f"10{k:02d}00",
-                ),
-                instance_number=k + 1,
+            echo_sr(
+                f"{tag}-{k}",
+                instance=k + 1,
+                study_uid=study_uid,
+                content_time=f"10{k:02d}00",
+                values=values,
+                patient_name=f"Backfill^{tag}",
+                patient_id=patient_id or f"HVBF-{tag}",
+                study_date=day.strftime("%Y%m%d"),
             )
         )
     return out

@@ -384,6 +384,19 @@ def which(name: str) -> str | None:
 # ---------------------------------------------------------------------------------------------
 
 
+#: a complete normal-LVEF set of measurements (canonical measure name -> value in its
+#: canonical unit), the default of the invented echo SRs of the tests
+NORMAL_VALUES: dict[str, float] = {
+    "mitral_e": 80.0,
+    "mitral_a": 60.0,
+    "e_prime_septal": 6.0,
+    "e_prime_lateral": 8.0,
+    "tr_peak_velocity": 3.0,
+    "lavi": 40.0,
+    "lvef": 60.0,
+}
+
+
 def echo_sr(
     seed: str,
     *,
@@ -394,6 +407,7 @@ def echo_sr(
     patient_name: str = "Harbourvale^Test",
     patient_id: str = "HV-T-0001",
     sop_class: str = COMPREHENSIVE_SR,
+    study_date: str | None = None,
 ) -> Dataset:
     """An invented TID 5300 echo SR (Harbour Vale Cardiac Centre) built by the project's
     echo SR builder.  ``values``: canonical measure name -> value in its canonical unit;
@@ -401,20 +415,15 @@ def echo_sr(
     from service.model import Measure
     from service.sr.echo_builder import EchoItem, Patient, Study, build_echo_sr
 
-    values = values or {
-        "mitral_e": 80.0,
-        "mitral_a": 60.0,
-        "e_prime_septal": 6.0,
-        "e_prime_lateral": 8.0,
-        "tr_peak_velocity": 3.0,
-        "lavi": 40.0,
-        "lvef": 60.0,
-    }
+    values = values or NORMAL_VALUES
     items = [EchoItem(measure=Measure(k), value=v) for k, v in values.items()]
+    study = Study(study_uid=study_uid, seed=seed, content_time=content_time)
+    if study_date is not None:
+        study = study.model_copy(update={"study_date": study_date})
     return build_echo_sr(
         items,
         patient=Patient(name=patient_name, id=patient_id),
-        study=Study(study_uid=study_uid, seed=seed, content_time=content_time),
+        study=study,
         instance_number=instance,
         sop_class=sop_class,
     )

@@ -169,12 +169,7 @@ def assess_2016(
         # rule) is said once, by the reading I-16-11 the result carries
         counted = supporting_count(t.met, t.available)
         if opts.summary == "majority":
-            if 2 * t.met > t.available:
-                pressure, words = FillingPressure.elevated, "more than half: elevated"
-            elif 2 * t.met < t.available:
-                pressure, words = FillingPressure.normal, "less than half: normal"
-            else:
-                pressure, words = FillingPressure.indeterminate, "exactly half: indeterminate"
+            pressure, words = t.majority()
             trace.say(f"{counted} ({words} filling pressure).")
         else:
             pressure = FillingPressure.indeterminate

@@ -19,6 +19,7 @@ from service.model import (
     Comparison,
     Context,
     Criterion,
+    FillingPressure,
     Measure,
     Measurements,
     Verdict,
@@ -125,6 +126,15 @@ class Tally:
     @property
     def not_met(self) -> int:
         return self.available - self.met
+
+    def majority(self) -> tuple[FillingPressure, str]:
+        """The filling pressure by the majority of the available criteria, and its words:
+        more than half met elevated, less than half normal, exactly half indeterminate."""
+        if 2 * self.met > self.available:
+            return FillingPressure.elevated, "more than half: elevated"
+        if 2 * self.met < self.available:
+            return FillingPressure.normal, "less than half: normal"
+        return FillingPressure.indeterminate, "exactly half: indeterminate"
 
 
 def tally(verdicts: Iterable[Verdict]) -> Tally:

@@ -336,12 +336,7 @@ def _hcm16(trace: Trace, context: Context) -> _Outcome:
             "not estimated.",
         )
     counted = f"{count_of(t.met, t.available, 'criterion', 'criteria')} met"
-    if 2 * t.met > t.available:
-        pressure, words = FillingPressure.elevated, "more than half: elevated"
-    elif 2 * t.met < t.available:
-        pressure, words = FillingPressure.normal, "less than half: normal"
-    else:
-        pressure, words = FillingPressure.indeterminate, "exactly half: indeterminate"
+    pressure, words = t.majority()
     return _Outcome(
         S.hypertrophic_cardiomyopathy,
         pressure,

@@ -287,9 +287,11 @@ def test_kill9_of_one_node_mid_stream_the_other_completes_every_acknowledged_stu
     from test_drills import acknowledged, sop_uid_of
 
     rng = random.Random(16)
-    files = write_studies(tmp_path / "load", 160, run="two-nodes-kill")
+    files = write_studies(tmp_path / "load", 380, run="two-nodes-kill")
     sent = {str(f): sop_uid_of(f) for f in files}
-    to_a, to_b = files[::2], files[1::2]
+    # node A's stream is the long one (300 studies, a few seconds on loopback), so that the
+    # kill, which waits for A to hold a claim (after the settle window), falls inside it
+    to_a, to_b = files[80:], files[:80]
     pacs_port, pacs_dir = free_port(), tmp_path / "pacs"
     lease, settle = 5.0, 0.5
     with storescp(pacs_dir, pacs_port):

@@ -177,6 +177,24 @@ def run_storescu(port: int, called: str, files: Sequence[Path]) -> float:
     return elapsed
 
 
+#: studies each receiver takes before a timed load, so that every figure is of a running
+#: receiver (imports done, processes started), as a node in service is: a node's grading and
+#: sending processes start after its listener answers, and a cold start would be counted as
+#: throughput (on a 300-study load it halved the node's end-to-end figure)
+WARM_UP = 8
+
+
+def warm_up_files(work: Path, tag: str) -> list[Path]:
+    """Studies of their own (UIDs of their own) for a receiver's warm-up."""
+    return write_studies(work / f"warm-up-{tag}", WARM_UP, run=f"warm-up-{tag}")
+
+
+def warm_up(port: int, called: str, files: Sequence[Path], done: Callable[[], bool]) -> None:
+    """Send the warm-up studies and wait until ``done`` (all of them stored, or settled)."""
+    run_storescu(port, called, files)
+    wait_for(done, 120)
+
+
 @contextlib.contextmanager
 def process(cmd: Sequence[str], log: Path, **kw: Any) -> Iterator[subprocess.Popen[bytes]]:
     with open(log, "ab") as fh:
@@ -443,7 +461,7 @@ def bench_receivers(work: Path, n: int, workers: int, rounds: int = 1) -> dict[s
     by_round = ", ".join(f"{r['ratio_to_pynetdicom']:.2f}" for r in per_round)
     say(
         f"ratio end to end / pynetdicom storescp: {out['ratio_to_pynetdicom']:.2f}   "
-        f"/ DCMTK storescp: {out['ratio_to_dcmtk']:.2f}   (target >= 0.5 x pynetdicom)"
+        f"/ DCMTK storescp: {out['ratio_to_dcmtk']:.2f}   (target >= 0.8 x pynetdicom)"
         + (f"; by round: {by_round}" if rounds > 1 else "")
     )
     return out
@@ -455,17 +473,10 @@ def _receivers_round(work: Path, files: Sequence[Path], workers: int) -> dict[st
     n = len(files)
     out: dict[str, Any] = {}
 
-    port = free_port()
-    with pynetdicom_storescp(work / "pyn-out", port, work / "pyn-storescp.log") as folder:
-        t = run_storescu(port, "BASE", files)
-        wait_for(lambda: count_files(folder) >= n, 60)
-    out["pynetdicom_storescp"] = n / t
-
-    port = free_port()
-    with dcmtk_storescp(work / "dcmtk-out", port, work / "dcmtk-storescp.log", "BASE") as folder:
-        t = run_storescu(port, "BASE", files)
-        wait_for(lambda: count_files(folder) >= n, 60)
-    out["dcmtk_storescp"] = n / t
+    warm = warm_up_files(work, "receivers")
+    k = len(warm)
+    out["pynetdicom_storescp"] = _bare_receiver(pynetdicom_storescp, work, "pyn", files, warm)
+    out["dcmtk_storescp"] = _bare_receiver(dcmtk_storescp, work, "dcmtk", files, warm)
 
     pacs_port = free_port()
     pacs_dir = work / "pacs-throughput"
@@ -473,11 +484,12 @@ def _receivers_round(work: Path, files: Sequence[Path], workers: int) -> dict[st
         dcmtk_storescp(pacs_dir, pacs_port, work / "pacs-throughput.log"),
         Node(work, pacs_port, workers=workers, name="node-throughput") as node,
     ):
+        warm_up(node.port, NODE_AE, warm, lambda: node.settled() >= k)
         t0 = time.perf_counter()
         t_ack = run_storescu(node.port, NODE_AE, files)
-        wait_for(lambda: node.settled() >= n, 60 + n * 2, interval=0.05)
+        wait_for(lambda: node.settled() >= k + n, 60 + n * 2, interval=0.05)
         t_all = time.perf_counter() - t0
-        delivered = count_files(pacs_dir)
+        delivered = count_files(pacs_dir) - k
         failed = node.journal_rows("SELECT COUNT(*) FROM studies WHERE state = 'failed'")[0][0]
     out["diastolic_sr_acknowledged"] = n / t_ack
     out["diastolic_sr_end_to_end"] = n / t_all
@@ -486,6 +498,19 @@ def _receivers_round(work: Path, files: Sequence[Path], workers: int) -> dict[st
     out["ratio_to_pynetdicom"] = out["diastolic_sr_end_to_end"] / out["pynetdicom_storescp"]
     out["ratio_to_dcmtk"] = out["diastolic_sr_end_to_end"] / out["dcmtk_storescp"]
     return out
+
+
+def _bare_receiver(
+    server: Callable[..., Any], work: Path, tag: str, files: Sequence[Path], warm: Sequence[Path]
+) -> float:
+    """objects/s of a bare storescp (pynetdicom's or DCMTK's, writing to disk) under the load,
+    after the same warm-up as the node's."""
+    port, n, k = free_port(), len(files), len(warm)
+    with server(work / f"{tag}-out", port, work / f"{tag}-storescp.log", ae="BASE") as folder:
+        warm_up(port, "BASE", warm, lambda: count_files(folder) >= k)
+        t = run_storescu(port, "BASE", files)
+        wait_for(lambda: count_files(folder) >= k + n, 60)
+    return n / t
 
 
 def _end_to_end(
@@ -497,7 +522,19 @@ def _end_to_end(
 ) -> dict[str, Any]:
     """Send each stream's files to its node (one storescu per stream, all at once); objects/s
     acknowledged (the slowest stream) and end to end (until every study of every node is
-    delivered or failed)."""
+    delivered or failed).  Each node takes warm-up studies of its own first (not timed)."""
+    nodes = list({id(node): node for node, _ in streams}.values())
+    # one journal (several nodes on one database): each node's count is the whole count
+    shared = (
+        len(nodes) > 1 and nodes[0].journal_url and nodes[0].journal_url == nodes[1].journal_url
+    )
+    counted = nodes[:1] if shared else nodes
+    for i, node in enumerate(nodes):
+        warm = warm_up_files(work, f"{name}-{i}")
+        want = (i + 1) * len(warm)
+        warm_up(node.port, NODE_AE, warm, lambda w=want: sum(x.settled() for x in counted) >= w)
+    base = sum(node.settled() for node in counted)
+    pacs_base = count_files(pacs_dir)
     t0 = time.perf_counter()
     procs = [
         subprocess.Popen(
@@ -514,13 +551,9 @@ def _end_to_end(
         if p.returncode != 0:
             raise RuntimeError(f"storescu failed ({p.returncode}) in {name}: {err[-2000:]}")
     t_ack = time.perf_counter() - t0
-    nodes = list({id(node): node for node, _ in streams}.values())
-    # one journal (several nodes on one database): each node's count is the whole count
-    shared = (
-        len(nodes) > 1 and nodes[0].journal_url and nodes[0].journal_url == nodes[1].journal_url
+    wait_for(
+        lambda: sum(node.settled() for node in counted) >= base + n, 120 + n * 2, interval=0.05
     )
-    counted = nodes[:1] if shared else nodes
-    wait_for(lambda: sum(node.settled() for node in counted) >= n, 120 + n * 2, interval=0.05)
     t_all = time.perf_counter() - t0
     failed = sum(
         node.journal_rows("SELECT COUNT(*) FROM studies WHERE state = 'failed'")[0][0]
@@ -529,7 +562,7 @@ def _end_to_end(
     return {
         "acknowledged": n / t_ack,
         "end_to_end": n / t_all,
-        "delivered": count_files(pacs_dir),
+        "delivered": count_files(pacs_dir) - pacs_base,
         "failed": failed,
     }
 
@@ -556,11 +589,8 @@ def bench_journals(work: Path, n: int, workers: int, rounds: int, pg: Any) -> di
         w = work / f"journals{i + 1}"
         w.mkdir(parents=True)
         r: dict[str, Any] = {}
-        port = free_port()
-        with pynetdicom_storescp(w / "pyn-out", port, w / "pyn.log") as folder:
-            t = run_storescu(port, "BASE", files)
-            wait_for(lambda folder=folder: count_files(folder) >= n, 60)
-        r["pynetdicom_storescp"] = n / t
+        warm = warm_up_files(w, "pyn")
+        r["pynetdicom_storescp"] = _bare_receiver(pynetdicom_storescp, w, "pyn", files, warm)
         for name in ("sqlite", "postgresql"):
             pacs_port, pacs_dir = free_port(), w / f"pacs-{name}"
             url = pg.url(pg.create_database()) if name == "postgresql" else ""

@@ -47,6 +47,7 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import functools
 import io
 import json
 import math
@@ -225,13 +226,16 @@ def dcmtk_storescp(out: Path, port: int, log: Path, ae: str = PACS_AE) -> Iterat
 
 
 @contextlib.contextmanager
-def pynetdicom_storescp(out: Path, port: int, log: Path, ae: str = "BASE") -> Iterator[Path]:
+def pynetdicom_storescp(
+    out: Path, port: int, log: Path, ae: str = "BASE", *, durable: bool = False
+) -> Iterator[Path]:
+    """pynetdicom's ``storescp`` app writing to ``out``; ``durable``: each file and its folder
+    fsync'ed before the response (``durable_storescp.py``, the app with only that changed)."""
     out.mkdir(parents=True, exist_ok=True)
+    app = [str(HERE / "durable_storescp.py")] if durable else ["-m", "pynetdicom", "storescp"]
     cmd = [
         sys.executable,
-        "-m",
-        "pynetdicom",
-        "storescp",
+        *app,
         str(port),
         "-aet",
         ae,
@@ -427,6 +431,10 @@ def bench_receivers(work: Path, n: int, workers: int, rounds: int = 1) -> dict[s
         if rounds > 1:
             say(f"-- round {i}")
         say(f"pynetdicom storescp (to disk):     {r['pynetdicom_storescp']:8.1f} objects/s")
+        say(
+            f"pynetdicom storescp, durable:      {r['pynetdicom_durable']:8.1f} objects/s "
+            "(each file and its folder fsync'ed before the response)"
+        )
         say(f"DCMTK storescp (to disk):          {r['dcmtk_storescp']:8.1f} objects/s")
         say(
             f"diastolic-sr receive+journal:      {r['diastolic_sr_acknowledged']:8.1f} "
@@ -437,9 +445,16 @@ def bench_receivers(work: Path, n: int, workers: int, rounds: int = 1) -> dict[s
             f"({r['diastolic_sr_delivered']} results at the PACS, "
             f"{r['diastolic_sr_failed']} studies failed)"
         )
-        say(f"ratio end to end / pynetdicom storescp: {r['ratio_to_pynetdicom']:.2f}")
+        say(
+            f"ratio end to end / pynetdicom storescp: {r['ratio_to_pynetdicom']:.2f}; "
+            f"/ durable pynetdicom storescp: {r['ratio_to_durable']:.2f}; durable / plain "
+            f"pynetdicom storescp: {r['durable_to_pynetdicom']:.2f}"
+        )
     keys = (
         "pynetdicom_storescp",
+        "pynetdicom_durable",
+        "ratio_to_durable",
+        "durable_to_pynetdicom",
         "dcmtk_storescp",
         "diastolic_sr_acknowledged",
         "diastolic_sr_end_to_end",
@@ -453,7 +468,8 @@ def bench_receivers(work: Path, n: int, workers: int, rounds: int = 1) -> dict[s
     if rounds > 1:
         say(f"-- median of {rounds} rounds")
         say(
-            f"objects/s: pynetdicom storescp {out['pynetdicom_storescp']:.1f}, DCMTK storescp "
+            f"objects/s: pynetdicom storescp {out['pynetdicom_storescp']:.1f}, durable "
+            f"{out['pynetdicom_durable']:.1f}, DCMTK storescp "
             f"{out['dcmtk_storescp']:.1f}, diastolic-sr acknowledged "
             f"{out['diastolic_sr_acknowledged']:.1f}, end to end "
             f"{out['diastolic_sr_end_to_end']:.1f}"
@@ -463,6 +479,10 @@ def bench_receivers(work: Path, n: int, workers: int, rounds: int = 1) -> dict[s
         f"ratio end to end / pynetdicom storescp: {out['ratio_to_pynetdicom']:.2f}   "
         f"/ DCMTK storescp: {out['ratio_to_dcmtk']:.2f}   (target >= 0.8 x pynetdicom)"
         + (f"; by round: {by_round}" if rounds > 1 else "")
+    )
+    say(
+        f"ratio end to end / durable pynetdicom storescp: {out['ratio_to_durable']:.2f}; "
+        f"durable / plain pynetdicom storescp: {out['durable_to_pynetdicom']:.2f}"
     )
     return out
 
@@ -476,6 +496,9 @@ def _receivers_round(work: Path, files: Sequence[Path], workers: int) -> dict[st
     warm = warm_up_files(work, "receivers")
     k = len(warm)
     out["pynetdicom_storescp"] = _bare_receiver(pynetdicom_storescp, work, "pyn", files, warm)
+    out["pynetdicom_durable"] = _bare_receiver(
+        functools.partial(pynetdicom_storescp, durable=True), work, "pyn-durable", files, warm
+    )
     out["dcmtk_storescp"] = _bare_receiver(dcmtk_storescp, work, "dcmtk", files, warm)
 
     pacs_port = free_port()
@@ -497,6 +520,8 @@ def _receivers_round(work: Path, files: Sequence[Path], workers: int) -> dict[st
     out["diastolic_sr_failed"] = failed
     out["ratio_to_pynetdicom"] = out["diastolic_sr_end_to_end"] / out["pynetdicom_storescp"]
     out["ratio_to_dcmtk"] = out["diastolic_sr_end_to_end"] / out["dcmtk_storescp"]
+    out["ratio_to_durable"] = out["diastolic_sr_end_to_end"] / out["pynetdicom_durable"]
+    out["durable_to_pynetdicom"] = out["pynetdicom_durable"] / out["pynetdicom_storescp"]
     return out
 
 

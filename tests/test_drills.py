@@ -341,7 +341,7 @@ def test_disk_full_answers_out_of_resources_then_recovers(tmp_path):
 
 
 def test_disk_full_while_grading_recovers_without_manual_action(tmp_path, monkeypatch):
-    """In-process node (the real pipeline); the result spool write fails twice with ENOSPC,
+    """In-process node (the real pipeline); storing the result fails twice with a full disk,
     then space returns: the study must end delivered without anyone re-queueing it."""
     from service.config import apply_overrides, config_from_dict
     from service.network.service import Node
@@ -362,17 +362,19 @@ def test_disk_full_while_grading_recovers_without_manual_action(tmp_path, monkey
     node = Node(cfg, poll_seconds=0.05)
     node.start()
     try:
-        spool = node.journal.spool
-        real = spool.write_result
+        real = node.journal._put_result_in_tx
         failures = {"left": 2}
 
         def full_then_space(*args, **kwargs):
             if failures["left"] > 0:
                 failures["left"] -= 1
-                raise OSError(28, "No space left on device")
+                # what SQLite raises when the disk is full (https://www.sqlite.org/rescode.html)
+                full = sqlite3.OperationalError("database or disk is full")
+                full.sqlite_errorcode = sqlite3.SQLITE_FULL
+                raise full
             return real(*args, **kwargs)
 
-        monkeypatch.setattr(spool, "write_result", full_then_space)
+        monkeypatch.setattr(node.journal, "_put_result_in_tx", full_then_space)
         files = write_studies(tmp_path / "load", 1, run="grading-disk-full")
         import pydicom
         from netutil import send

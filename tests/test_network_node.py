@@ -255,22 +255,23 @@ def test_store_failure_answers_out_of_resources_and_nothing_is_acknowledged(
     start_node, monkeypatch
 ):
     node = start_node(grade_fn=fake_grade)
-    spool = node.journal.spool
-    real_write = spool.write_object
-
-    def disk_full(*args, **kwargs):
-        raise OSError(28, "No space left on device")
-
-    monkeypatch.setattr(spool, "write_object", disk_full)
     first, second = simple_sr(), simple_sr()
+    # a full disk, for real: SQLite refuses to grow the journal past the pages it has
+    # (https://www.sqlite.org/pragma.html#pragma_max_page_count), so the object cannot be stored
+    with node.journal._lock:
+        pages = node.journal._db.execute("PRAGMA page_count").fetchone()[0]
+        node.journal._db.execute(f"PRAGMA max_page_count={pages}")
+    first.add_new((0x0009, 0x0010), "LO", "HARBOUR VALE PADDING")
+    first.add_new((0x0009, 0x1001), "OB", b"\0" * 200_000)  # more than a free page can take
     assert send([first], node.port) == [0xA700]  # PS3.4 B.2.3: Out of Resources
     assert node.journal.objects() == []
+    with node.journal._lock:
+        node.journal._db.execute("PRAGMA max_page_count=1073741823")
     real_tx = node.journal._tx
 
     def journal_broken(**kwargs):
         raise sqlite3.OperationalError("disk I/O error")
 
-    monkeypatch.setattr(spool, "write_object", real_write)
     monkeypatch.setattr(node.journal, "_tx", journal_broken)
     assert send([first], node.port) == [0xA700]
     monkeypatch.setattr(node.journal, "_tx", real_tx)
@@ -374,7 +375,9 @@ def test_images_are_refused_by_default_and_discarded_when_configured(start_node,
     ct = _ct_image()
     assert send([ct], images.port, transfer_syntaxes=[ExplicitVRLittleEndian]) == [0]
     assert images.journal.objects() == []
-    assert not any((tmp_path / "n2" / "spool" / "objects").rglob("*.dcm"))
+    # discarded: no bytes kept anywhere (the journal holds them; before, a spool folder did)
+    assert images.journal._query("SELECT COUNT(*) FROM object_data")[0][0] == 0
+    assert not any((tmp_path / "n2").rglob("*.dcm"))
 
 
 # -- the real grading pipeline end to end --------------------------------------------------------
@@ -568,8 +571,7 @@ def test_pacs_down_then_up_every_result_is_delivered(start_node, tmp_path):
 
 
 @needs_dcmtk
-@pytest.mark.sqlite_only
-def test_spooled_result_damaged_before_delivery_fails_with_a_reason(start_node, tmp_path):
+def test_stored_result_damaged_before_delivery_fails_with_a_reason(start_node, tmp_path):
     pacs_port, pacs_dir = free_port(), tmp_path / "pacs"
     node = start_node(forward=[f"PACS@{LOOPBACK}:{pacs_port}"])  # the PACS is down at first
     study = echo_sr("damaged-spool")
@@ -584,8 +586,11 @@ def test_spooled_result_damaged_before_delivery_fails_with_a_reason(start_node, 
 
     wait_for(lambda: to_pacs("pending"), 30)
     (pending,) = to_pacs("pending")
-    path = Path(node.journal.result(pending["result_uid"])["path"])
-    path.write_bytes(b"not a DICOM file")  # e.g. a disk fault after grading
+    with node.journal._tx() as db:  # e.g. a disk fault after grading
+        db.execute(
+            "UPDATE result_data SET data = ? WHERE result_uid = ?",
+            (b"not a DICOM file", pending["result_uid"]),
+        )
     with storescp(pacs_dir, pacs_port):
         wait_for(lambda: to_pacs("failed"), 30)
     (failed,) = to_pacs("failed")

@@ -6,7 +6,6 @@ import os
 import sqlite3
 import stat
 import tempfile
-from pathlib import Path
 
 import pytest
 
@@ -402,16 +401,23 @@ def test_claim_given_back_for_a_retry_is_not_due_before_its_time(journal):
     assert journal.claim_due(now=1011.0)
 
 
-def test_result_bytes_a_crash_left_unrecorded_are_written_anew_recorded_ones_kept(sqlite_journal):
-    # a new spool file is written under its own name, so a crash can leave it short before the
-    # sqlite_journal records it; such a file must be written anew, a recorded one kept
-    left = sqlite_journal.spool.result_path(STUDY, "2.25.11")
-    left.parent.mkdir(parents=True)
-    left.write_bytes(b"")  # created, never written: the process died here
+def test_result_bytes_are_committed_with_their_row_and_a_recorded_result_is_kept(sqlite_journal):
+    # the result's bytes go into the journal in the transaction that records the result: no
+    # spool file, and a later grading that finds the result recorded does not write it again
     _receive(sqlite_journal, "1.1", now=0.0, settle=0)
     (claim,) = sqlite_journal.claim_due(now=0.0)
-    sqlite_journal.finish_grading(claim, result=_result("2.25.11", ("1.1",), b"%PDF-new"), now=1.0)
-    assert left.read_bytes() == b"%PDF-new"
+    statements: list[str] = []
+    sqlite_journal._db.set_trace_callback(statements.append)
+    try:
+        sqlite_journal.finish_grading(
+            claim, result=_result("2.25.11", ("1.1",), b"%PDF-new"), now=1.0
+        )
+    finally:
+        sqlite_journal._db.set_trace_callback(None)
+    words = [" ".join(sql.split()[:3]).upper() for sql in statements]
+    begin, commit = words.index("BEGIN IMMEDIATE"), words.index("COMMIT")
+    assert begin < words.index("INSERT INTO RESULT_DATA") < commit
+    assert not sqlite_journal.spool.result_path(STUDY, "2.25.11").exists()
     assert sqlite_journal.result_data("2.25.11") == b"%PDF-new"
     assert sqlite_journal.result_stored("2.25.11")
     _receive(sqlite_journal, "1.2", now=2.0, settle=0)
@@ -419,7 +425,76 @@ def test_result_bytes_a_crash_left_unrecorded_are_written_anew_recorded_ones_kep
     sqlite_journal.finish_grading(
         again, result=_result("2.25.11", ("1.1",), b"%PDF-later"), now=3.0
     )
-    assert left.read_bytes() == b"%PDF-new"
+    assert sqlite_journal.result_data("2.25.11") == b"%PDF-new"
+
+
+def test_a_full_disk_is_a_storage_error_and_records_nothing(sqlite_journal):
+    # SQLite's SQLITE_FULL, provoked for real by capping the database's pages
+    # (https://www.sqlite.org/pragma.html#pragma_max_page_count), is an OSError (ENOSPC), as a
+    # full disk was for a spool file: the receiver answers Out of Resources, a grader retries
+    import errno
+
+    pages = sqlite_journal._db.execute("PRAGMA page_count").fetchone()[0]
+    sqlite_journal._db.execute(f"PRAGMA max_page_count={pages}")
+    with pytest.raises(OSError) as caught:
+        sqlite_journal.store_object(
+            sop_instance_uid="1.1",
+            study_uid=STUDY,
+            sop_class_uid="1.2.840.10008.5.1.4.1.1.88.33",
+            transfer_syntax="1.2.840.10008.1.2.1",
+            calling_ae="HV_ECHO1",
+            data=b"x" * 200_000,
+            settle_seconds=0,
+            now=0.0,
+        )
+    assert caught.value.errno == errno.ENOSPC
+    assert sqlite_journal.objects() == []
+    sqlite_journal._db.execute("PRAGMA max_page_count=1073741823")
+    _receive(sqlite_journal, "1.1", now=1.0, settle=0)  # space again: stored as usual
+    assert sqlite_journal.object_data("1.1") == b"object 1.1"
+
+
+def test_rows_recorded_before_version_7_are_read_from_their_spool_files(tmp_path):
+    # a journal of schema version 6 kept the bytes in spool files: after the upgrade its rows
+    # are read from them, new rows from the journal, and a purge deletes the old files
+    from service.store import sqlite_schema
+    from service.store.sql_journal import migrate
+
+    path = tmp_path / "journal.sqlite3"
+    old = sqlite3.connect(path, isolation_level=None)
+    old.execute(sqlite_schema.META)
+    old.execute("BEGIN")
+    migrate(old, sqlite_schema.MIGRATIONS[:6])
+    old.execute("COMMIT")
+    spooled = tmp_path / "spool" / "objects" / STUDY / "1.1.dcm"
+    spooled.parent.mkdir(parents=True)
+    spooled.write_bytes(b"object 1.1, spooled")
+    old.execute(
+        "INSERT INTO studies (study_uid, calling_ae, state, first_received_at, "
+        "last_received_at, due_at, updated_at) VALUES (?, 'HV_ECHO1', 'received', 0, 0, 0, 0)",
+        (STUDY,),
+    )
+    old.execute(
+        "INSERT INTO objects (sop_instance_uid, study_uid, sop_class_uid, transfer_syntax, "
+        "calling_ae, path, state, received_at) VALUES ('1.1', ?, "
+        "'1.2.840.10008.5.1.4.1.1.88.33', '1.2.840.10008.1.2.1', 'HV_ECHO1', ?, 'received', 0)",
+        (STUDY, str(spooled)),
+    )
+    old.close()
+    journal = SqliteJournal(path)
+    try:
+        version = journal._query("SELECT value FROM meta WHERE key = 'schema_version'")[0][0]
+        assert int(version) == 7
+        assert journal.object_data("1.1") == b"object 1.1, spooled"
+        _receive(journal, "1.2", now=1.0, settle=0)
+        assert journal.object_data("1.2") == b"object 1.2"
+        (claim,) = journal.claim_due(now=1.0)
+        assert set(claim.object_uids) == {"1.1", "1.2"}
+        journal.finish_grading(claim, result=None, failure="not gradable: test", now=2.0)
+        assert journal.purge_finished(older_than=3.0).files == 2  # its spool file, its row's bytes
+        assert not spooled.exists()
+    finally:
+        journal.close()
 
 
 def test_a_result_said_to_be_stored_that_is_not_raises_and_records_nothing(journal):
@@ -431,24 +506,20 @@ def test_a_result_said_to_be_stored_that_is_not_raises_and_records_nothing(journ
     assert journal.study(STUDY)["state"] == "assembled"
 
 
-def test_received_bytes_are_in_the_spool_before_the_row_and_read_back(sqlite_journal):
-    order: list[str] = []
-    real_write = sqlite_journal.spool.write_object
-
-    def write(*args):
-        order.append("file")
-        return real_write(*args)
-
-    sqlite_journal.spool.write_object = write
-    sqlite_journal._db.set_trace_callback(lambda sql: order.append(sql.split()[0].upper()))
+def test_received_bytes_are_committed_with_their_row_and_read_back(sqlite_journal):
+    statements: list[str] = []
+    sqlite_journal._db.set_trace_callback(statements.append)
     try:
         _receive(sqlite_journal, "1.1", now=0.0)
     finally:
         sqlite_journal._db.set_trace_callback(None)
-    assert order[0] == "file" and "COMMIT" in order
+    words = [" ".join(sql.split()[:3]).upper() for sql in statements]
+    begin, commit = words.index("BEGIN IMMEDIATE"), words.index("COMMIT")
+    assert begin < words.index("INSERT INTO OBJECTS") < words.index("INSERT INTO OBJECT_DATA")
+    assert words.index("INSERT INTO OBJECT_DATA") < commit
     assert sqlite_journal.object_data("1.1") == b"object 1.1"
-    row = sqlite_journal.objects(STUDY)[0]
-    assert Path(row["path"]) == sqlite_journal.spool.object_path(STUDY, "1.1")
+    assert sqlite_journal.objects(STUDY)[0]["path"] == ""
+    assert not sqlite_journal.spool.object_path(STUDY, "1.1").exists()
     with pytest.raises(FileNotFoundError):
         sqlite_journal.object_data("9.9")
 

@@ -179,6 +179,13 @@ MIGRATIONS: list[list[str]] = [
         "CREATE INDEX IF NOT EXISTS deliveries_destination "
         "ON deliveries (destination, state, next_attempt_at)",
     ],
+    # 7: SQLite's journal takes the objects' and results' bytes in, as this one has since
+    # version 1; the versions stay in step (nothing changes here)
+    [
+        "CREATE TABLE IF NOT EXISTS object_data "
+        "(sop_instance_uid TEXT PRIMARY KEY, data BYTEA NOT NULL)",
+        "CREATE TABLE IF NOT EXISTS result_data (result_uid TEXT PRIMARY KEY, data BYTEA NOT NULL)",
+    ],
 ]
 
 #: the version this program writes

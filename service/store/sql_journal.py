@@ -94,47 +94,82 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
     def _query(self, sql: str, params: Sequence[Any] = ()) -> list[Any]:
         """Rows of one read-only statement."""
 
-    @abc.abstractmethod
+    # -- the bytes: in the database, in the transaction that records them ----------------------
+
     def _put_object(self, study_uid: str, sop_instance_uid: str, data: bytes) -> str:
-        """Store an object's bytes before its record is written (durably); the ``path`` its
-        row keeps ('' when the bytes go in with the row, :meth:`_put_object_in_tx`)."""
+        """Store an object's bytes before its record is written; the ``path`` its row keeps
+        ('' when the bytes go in with the row, :meth:`_put_object_in_tx`, as they do now on
+        both backends)."""
+        return ""
 
     def _put_object_in_tx(self, db: Cursor, sop_instance_uid: str, data: bytes) -> None:
-        """Store an object's bytes in the transaction that records it (databases that hold
-        the bytes); nothing by default."""
+        """Store an object's bytes in the transaction that records it: the row and its bytes
+        are committed together, with one commit (one flush to disk) for both."""
+        db.execute(
+            "INSERT INTO object_data (sop_instance_uid, data) VALUES (?, ?) "
+            "ON CONFLICT (sop_instance_uid) DO UPDATE SET data = excluded.data",
+            (sop_instance_uid, data),
+        )
 
-    @abc.abstractmethod
     def _read_object(self, row: Any) -> bytes:
         """The bytes of the object whose row is ``row``."""
+        rows = self._query(
+            "SELECT data FROM object_data WHERE sop_instance_uid = ?", (row["sop_instance_uid"],)
+        )
+        if not rows:
+            raise FileNotFoundError(f"the bytes of object {row['sop_instance_uid']} are missing")
+        return bytes(rows[0][0])
 
-    @abc.abstractmethod
     def _put_result(self, study_uid: str, result_uid: str, data: bytes) -> str:
         """As :meth:`_put_object`, for a result object."""
+        return ""
 
     def _put_result_in_tx(self, db: Cursor, result_uid: str, data: bytes) -> None:
         """As :meth:`_put_object_in_tx`, for a result object."""
+        db.execute(
+            "INSERT INTO result_data (result_uid, data) VALUES (?, ?) "
+            "ON CONFLICT (result_uid) DO UPDATE SET data = excluded.data",
+            (result_uid, data),
+        )
 
-    @abc.abstractmethod
     def _read_result(self, row: Any) -> bytes:
         """The bytes of the result whose row is ``row``."""
+        rows = self._query(
+            "SELECT data FROM result_data WHERE result_uid = ?", (row["result_uid"],)
+        )
+        if not rows:
+            raise FileNotFoundError(f"the bytes of result {row['result_uid']} are missing")
+        return bytes(rows[0][0])
 
-    @abc.abstractmethod
     def _result_bytes_present(self, row: Any) -> bool:
         """The bytes of the recorded result ``row`` are there."""
+        return bool(
+            self._query("SELECT 1 FROM result_data WHERE result_uid = ?", (row["result_uid"],))
+        )
 
     def _purge_study_bytes(self, db: Cursor, study_uid: str) -> int:
         """Inside a purge's transaction, before the study's rows go: drop the bytes of its
-        objects and results held in the database; returns how many.  Nothing by default."""
+        objects and results; returns how many."""
+        a = db.execute(
+            "DELETE FROM object_data WHERE sop_instance_uid IN "
+            "(SELECT sop_instance_uid FROM objects WHERE study_uid = ?)",
+            (study_uid,),
+        ).rowcount
+        b = db.execute(
+            "DELETE FROM result_data WHERE result_uid IN "
+            "(SELECT result_uid FROM results WHERE study_uid = ?)",
+            (study_uid,),
+        ).rowcount
+        return int(a) + int(b)
+
+    def _after_purge(self, paths: list[str]) -> int:
+        """After a purge's commit: delete bytes held outside the database; returns how many."""
         return 0
 
     def _work_added(self, db: Cursor) -> None:
         """Inside a transaction that gives the roles new work (an object stored, deliveries
         queued, claims given back): let the other connections know, where the backend needs
         to be told (:meth:`Journal.changed`).  Nothing by default."""
-
-    def _after_purge(self, paths: list[str]) -> int:
-        """After a purge's commit: delete bytes held outside the database; returns how many."""
-        return 0
 
     # -- receiving ------------------------------------------------------------------------------
 
@@ -247,9 +282,16 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
         return [dict(r) for r in rows]
 
     def _purge_ignored_bytes(self, db: Cursor, sop_instance_uids: Sequence[str]) -> int:
-        """Inside a purge's transaction: drop the bytes of these ignored objects held in the
-        database; returns how many.  Nothing by default."""
-        return 0
+        """Inside a purge's transaction: drop the bytes of these ignored objects (unless an
+        object of the same UID was received for grading since); returns how many."""
+        n = 0
+        for uid in sop_instance_uids:
+            n += db.execute(
+                "DELETE FROM object_data WHERE sop_instance_uid = ? AND NOT EXISTS "
+                "(SELECT 1 FROM objects WHERE sop_instance_uid = ?)",
+                (uid, uid),
+            ).rowcount
+        return n
 
     def object_data(self, sop_instance_uid: str) -> bytes:
         rows = self._query("SELECT * FROM objects WHERE sop_instance_uid = ?", (sop_instance_uid,))

@@ -1,6 +1,9 @@
 """The journal on one machine: an embedded SQLite database (stdlib ``sqlite3``, WAL mode) in the
-data directory, the objects' and results' bytes in spool files beside it
-(:mod:`service.store.spool`).
+data directory.  The objects' and results' bytes are rows of the journal (``object_data``,
+``result_data``), written in the transaction that records them, as on PostgreSQL: one commit
+makes an object and its record durable together (before schema version 7 they were spool files
+beside the journal, :mod:`service.store.spool`; rows of that time keep their file's path and
+are read from it until retention purges them).
 
 Durability
 ----------
@@ -15,8 +18,10 @@ synchronous": "WAL mode is always consistent with synchronous=NORMAL, but WAL mo
 durability"; https://www.sqlite.org/pragma.html#pragma_synchronous).  What that can cost is
 work done again, never an acknowledged object: a study graded again (the same result, whose UID
 is derived from its sources) or a result sent again (the same SOP Instance UID, which a PACS
-keeps once).  A spool file is fsync'ed before its journal row is written, so a row that
-survives always names a whole file.
+keeps once).  A row and its bytes are committed together, so a row that survives always has
+its bytes.  A full disk (SQLite's ``SQLITE_FULL``) or a failed write (``SQLITE_IOERR``) is
+raised as :class:`OSError`, as a full disk was when the bytes were files: the receiver answers
+Out of Resources and a grader gives its study back for a retry.
 
 One connection is shared by the threads of a process behind a lock; other processes (the
 ``queue`` command) may open the same file at the same time (WAL readers never block).
@@ -25,6 +30,7 @@ One connection is shared by the threads of a process behind a lock; other proces
 from __future__ import annotations
 
 import contextlib
+import errno
 import sqlite3
 import threading
 import time
@@ -40,6 +46,25 @@ from service.store.sql_journal import Cursor, SqlJournal, migrate
 JOURNAL_NAME = "journal.sqlite3"
 
 SCHEMA_VERSION = sqlite_schema.SCHEMA_VERSION
+
+
+#: SQLite result codes of a storage failure (https://www.sqlite.org/rescode.html), and the
+#: errno each is raised as
+_STORAGE_ERRORS = {13: errno.ENOSPC, 10: errno.EIO}  # SQLITE_FULL, SQLITE_IOERR
+
+
+@contextlib.contextmanager
+def _storage_errors() -> Iterator[None]:
+    """Raise SQLite's full-disk and I/O errors as :class:`OSError` (the storage failed, not
+    the statement)."""
+    try:
+        yield
+    except sqlite3.Error as exc:
+        code = getattr(exc, "sqlite_errorcode", None)
+        primary = None if code is None else code & 0xFF  # extended codes keep it in the low byte
+        if primary in _STORAGE_ERRORS:
+            raise OSError(_STORAGE_ERRORS[primary], f"journal storage failed: {exc}") from exc
+        raise
 
 
 def journal_path(data_dir: Path) -> Path:
@@ -90,7 +115,7 @@ class SqliteJournal(SqlJournal):
 
     @contextlib.contextmanager
     def _tx(self, *, durable: bool = True) -> Iterator[Cursor]:
-        with self._lock:
+        with self._lock, _storage_errors():
             if not durable:
                 self._db.execute("PRAGMA synchronous=NORMAL")
             try:
@@ -98,7 +123,8 @@ class SqliteJournal(SqlJournal):
                 try:
                     yield self._db  # type: ignore[misc]
                 except BaseException:
-                    self._db.execute("ROLLBACK")
+                    with contextlib.suppress(sqlite3.Error):  # SQLite may have rolled back
+                        self._db.execute("ROLLBACK")
                     raise
                 self._db.execute("COMMIT")
             finally:
@@ -130,22 +156,22 @@ class SqliteJournal(SqlJournal):
         with self._lock:
             return self._db.execute(sql, params).fetchall()
 
-    # -- the bytes: spool files ----------------------------------------------------------------
-
-    def _put_object(self, study_uid: str, sop_instance_uid: str, data: bytes) -> str:
-        return str(self.spool.write_object(study_uid, sop_instance_uid, data))
+    # -- the bytes: in the journal; spool files of rows recorded before schema version 7 --------
 
     def _read_object(self, row: Any) -> bytes:
-        return Path(row["path"]).read_bytes()
-
-    def _put_result(self, study_uid: str, result_uid: str, data: bytes) -> str:
-        return str(self.spool.write_result(study_uid, result_uid, data))
+        if row["path"]:
+            return Path(row["path"]).read_bytes()
+        return super()._read_object(row)
 
     def _read_result(self, row: Any) -> bytes:
-        return Path(row["path"]).read_bytes()
+        if row["path"]:
+            return Path(row["path"]).read_bytes()
+        return super()._read_result(row)
 
     def _result_bytes_present(self, row: Any) -> bool:
-        return Path(row["path"]).exists()
+        if row["path"]:
+            return Path(row["path"]).exists()
+        return super()._result_bytes_present(row)
 
     def _after_purge(self, paths: list[str]) -> int:
         """Delete the purged spool files (only ever inside the spool) and their emptied

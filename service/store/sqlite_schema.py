@@ -150,6 +150,19 @@ MIGRATIONS: list[list[str]] = [
         "CREATE INDEX IF NOT EXISTS deliveries_destination "
         "ON deliveries (destination, state, next_attempt_at)",
     ],
+    # 7: the bytes of received objects and of results in the journal, written in the
+    # transaction that records them (one commit, one flush to disk, instead of a spool file,
+    # its folders and the journal); rows recorded before keep the path of their spool file
+    [
+        """CREATE TABLE IF NOT EXISTS object_data (
+            sop_instance_uid TEXT PRIMARY KEY,
+            data BLOB NOT NULL
+        )""",
+        """CREATE TABLE IF NOT EXISTS result_data (
+            result_uid TEXT PRIMARY KEY,
+            data BLOB NOT NULL
+        )""",
+    ],
 ]
 
 #: the version this program writes

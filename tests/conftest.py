@@ -22,7 +22,7 @@ if _BIN not in os.environ.get("PATH", "").split(os.pathsep):
 
 def pytest_generate_tests(metafunc):
     """Tests of in-process nodes run once per journal implementation (``node_backend``), but
-    those marked ``sqlite_only`` (they reach into the spool files)."""
+    those marked ``sqlite_only`` (they reach into SQLite itself)."""
     if "node_backend" in metafunc.fixturenames:
         only = metafunc.definition.get_closest_marker("sqlite_only")
         metafunc.parametrize(

@@ -852,3 +852,18 @@ def test_postgresql_two_deliveries_of_a_study_finishing_at_once_leave_it_deliver
     assert ja.study(STUDY)["state"] == "delivered"
     ja.close()
     jb.close()
+
+
+def test_what_a_result_concluded_is_recorded_with_it_in_one_transaction(journal):
+    # the grader records the assessment's outcome with the result (one commit), not after it
+    import dataclasses
+
+    _receive(journal, "1.1", now=0.0, settle=0)
+    (claim,) = journal.claim_due(now=0.0)
+    result = dataclasses.replace(_result("2.25.11", ("1.1",)), outcome="atrial-fibrillation")
+    journal.finish_grading(claim, result=result, destinations=[("PACS", "PACS@h:1")], now=1.0)
+    assert journal.outcome_of("2.25.11") == "atrial-fibrillation"
+    _receive(journal, "1.2", now=2.0, settle=0)
+    (again,) = journal.claim_due(now=2.0)
+    journal.finish_grading(again, result=_result("2.25.12", ("1.1", "1.2")), now=3.0)
+    assert journal.outcome_of("2.25.12") is None  # none said: none recorded

@@ -35,6 +35,8 @@ from highdicom.sr import (
     TextContentItem,
     UIDRefContentItem,
 )
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from pydicom import Dataset, dcmread
 from pydicom.dataelem import DataElement
 from pydicom.filebase import DicomBytesIO
@@ -614,3 +616,26 @@ def test_copied_modules_are_highdicoms_patient_and_study_modules(sop_class):
     ]
     ours = [k for keywords in PATIENT_AND_STUDY_MODULES.values() for k in keywords]
     assert ours == theirs
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    st.text(alphabet=st.characters(max_codepoint=0x17F), max_size=40),
+    st.sampled_from(["SH", "LO", "ST", "LT", "UT"]),
+)
+def test_clean_text_replaces_exactly_what_each_text_vr_forbids(value, vr):
+    # PS3.5 6.2, Table 6.2-1: no control character in SH and LO (ESC only for ISO 2022
+    # extensions, unused in a UTF-8 document) and no backslash there (the value delimiter);
+    # TAB, LF, FF and CR allowed in ST, LT and UT.  The reference is written out per character.
+    from service.sr.content import clean_text
+
+    def forbidden(ch: str) -> bool:
+        control = ord(ch) < 0x20 or 0x7F <= ord(ch) < 0xA0
+        if vr in ("SH", "LO"):
+            return control or ch == "\\"
+        return control and ch not in "\t\n\f\r"
+
+    expected = "".join(" " if forbidden(ch) else ch for ch in value)
+    if expected != value and not expected.strip():
+        expected = "?"
+    assert clean_text(value, vr) == expected

@@ -413,6 +413,7 @@ class Grader:
             filling_pressure=record.filling_pressure,
             sources=record.sources,
             predecessors=tuple(p for p in predecessors if p != result_uid),
+            outcome=record.outcome or None,
         )
         companions = self._summary(claim, record, summary_to)
         queued = self.journal.finish_grading(
@@ -435,8 +436,6 @@ class Grader:
             summary_uid=companions[0].result.result_uid if companions else None,
             note="" if queued else "already delivered or no destination: nothing new to send",
         )
-        if record.outcome:
-            self.journal.record_outcome(result_uid, record.outcome)
         if queued:
             self._on_result()
 

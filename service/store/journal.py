@@ -125,6 +125,9 @@ class NewResult:
     sources: tuple[str, ...]
     predecessors: tuple[str, ...]
     data: bytes | None = None
+    #: what the primary assessment concluded (a service.model.Outcome token), recorded with
+    #: the result in the same transaction (:meth:`Journal.outcome_of`), or None
+    outcome: str | None = None
 
 
 @dataclass(frozen=True)

@@ -579,6 +579,12 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
                 now,
             ),
         )
+        if result.outcome:
+            db.execute(
+                """INSERT INTO result_outcomes (result_uid, outcome) VALUES (?, ?)
+                   ON CONFLICT (result_uid) DO UPDATE SET outcome = excluded.outcome""",
+                (result.result_uid, result.outcome),
+            )
         queued = False
         for name, target in destinations:
             if db.execute(  # a plain read waits for nobody (an insert that conflicts may)

@@ -74,7 +74,8 @@ class NodeConfig(Section):
     bind: str = ""
     #: TCP port; 0 lets the system pick a free one (it is written to ``run/listener.json``)
     port: int = Field(default=DEFAULT_PORT, ge=0, le=65535)
-    #: spool and journal; relative paths are taken from the configuration file's folder
+    #: the journal (with the received objects and results); relative paths are taken from the
+    #: configuration file's folder
     data_dir: str = DEFAULT_DATA_DIR
 
     @field_validator("ae_title")
@@ -408,9 +409,9 @@ class DeliveryConfig(Section):
 
 
 class RetentionConfig(Section):
-    """Purge of finished work from the spool and journal (never pending work)."""
+    """Purge of finished work from the journal (never pending work)."""
 
-    #: delete spooled sources and results of studies finished this many days ago (delivered,
+    #: delete the stored sources and results of studies finished this many days ago (delivered,
     #: or not gradable with nothing left to deliver); 0 keeps everything
     days: float = Field(default=0, ge=0, le=36500)
     #: how often the purge runs, hours

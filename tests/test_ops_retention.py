@@ -1,4 +1,4 @@
-"""Retention: spooled sources and results of studies finished more than N days ago are purged;
+"""Retention: stored sources and results of studies finished more than N days ago are purged;
 pending work (studies waiting to be graded, results waiting to be delivered) and failed
 deliveries never are.  The journal and spool are driven directly with explicit times."""
 
@@ -206,7 +206,7 @@ def test_queue_purge_command(tmp_path, capsys):
         assert src.exists()
         assert cli_main(["queue", "--config", str(cfg), "--purge"]) == 0
         assert (
-            "1 finished study older than 30 days purged (2 spooled files)"
+            "1 finished study older than 30 days purged (2 stored objects and results)"
             in capsys.readouterr().out
         )
         assert not src.exists()

@@ -36,12 +36,13 @@ def register(sub: argparse._SubParsersAction) -> None:
         action="append",
         default=[],
         metavar="STUDY_UID",
-        help="grade this study again from its spooled objects (repeatable)",
+        help="grade this study again from its stored objects (repeatable)",
     )
     p.add_argument(
         "--purge",
         action="store_true",
-        help="delete now the spooled files of studies finished more than retention.days ago "
+        help="delete now the stored objects and results of studies finished more than "
+        "retention.days ago "
         "(never pending work or failed deliveries; needs --config with retention.days > 0)",
     )
     p.add_argument("--recent", type=int, default=20, metavar="N", help="recent studies shown")
@@ -85,7 +86,7 @@ def run(args: argparse.Namespace) -> int:
             done = purge(journal, days)
             actions.append(
                 f"{done.studies} finished stud{'y' if done.studies == 1 else 'ies'} older than "
-                f"{days:g} days purged ({done.files} spooled files)"
+                f"{days:g} days purged ({done.files} stored objects and results)"
             )
         report = build_report(journal, recent=args.recent)
     finally:

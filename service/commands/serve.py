@@ -66,7 +66,7 @@ def add_node_arguments(p: argparse.ArgumentParser) -> None:
         metavar="AET@HOST:PORT",
         help="send results to this DICOM peer (repeatable; joins the default route)",
     )
-    p.add_argument("--data-dir", metavar="DIR", help="spool and journal folder")
+    p.add_argument("--data-dir", metavar="DIR", help="the journal's folder")
     p.add_argument(
         "--settle-seconds",
         type=float,

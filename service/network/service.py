@@ -248,7 +248,8 @@ class NodeBase:
             event(
                 "retention_purge",
                 f"purged {report.studies} finished stud{'y' if report.studies == 1 else 'ies'} "
-                f"({report.files} spooled files) older than {self.config.retention.days:g} days",
+                f"({report.files} stored objects and results) older than "
+                f"{self.config.retention.days:g} days",
                 studies=report.studies,
                 files=report.files,
             )

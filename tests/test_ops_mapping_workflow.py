@@ -5,6 +5,7 @@ again and the new result uses the measure."""
 
 from __future__ import annotations
 
+import io
 import json
 import signal
 import tomllib
@@ -53,8 +54,16 @@ def test_private_code_taught_on_a_running_node(tmp_path, capsys):
             finally:
                 j.close()
 
+        def stored(result):
+            """The result SR as the node stored it in its journal."""
+            j = SqliteJournal(data / "journal.sqlite3")
+            try:
+                return pydicom.dcmread(io.BytesIO(j.result_data(result["result_uid"])))
+            finally:
+                j.close()
+
         first = wait_for(lambda: results(), 60)[0]
-        before = pydicom.dcmread(first["path"])
+        before = stored(first)
         assert _num_values(before, "LAVI") == []  # not recognised yet
 
         assert cli_main(["inspect", "--json", str(src_file)]) == 0
@@ -71,7 +80,7 @@ def test_private_code_taught_on_a_running_node(tmp_path, capsys):
         assert cli_main(["queue", "--data-dir", str(data), "--regrade", study]) == 0
         capsys.readouterr()
         second = wait_for(lambda: results()[1:] and results()[-1], 60)
-        after = pydicom.dcmread(second["path"])
+        after = stored(second)
         assert set(_num_values(after, "LAVI")) == {41.0}  # the value the scanner sent
         assert second["result_uid"] != first["result_uid"]
         assert node.terminate() == 0

@@ -96,7 +96,7 @@ def test_a_job_notes_unreadable_spooled_files_in_the_claims_order(tmp_path):
     assert record.status == "graded"
     assert record.sources == (str(good.SOPInstanceUID),)
     assert list(record.notes) == ["1.2.3.1", "1.2.3.2"]
-    assert all(n.startswith("set aside: spooled file unreadable") for n in record.notes.values())
+    assert all(n.startswith("set aside: stored object unreadable") for n in record.notes.values())
     assert record.result is not None and record.result.data
     assert pydicom.dcmread(BytesIO(record.result.data)).SOPInstanceUID == record.result.uid
 

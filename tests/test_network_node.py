@@ -594,7 +594,7 @@ def test_stored_result_damaged_before_delivery_fails_with_a_reason(start_node, t
     with storescp(pacs_dir, pacs_port):
         wait_for(lambda: to_pacs("failed"), 30)
     (failed,) = to_pacs("failed")
-    assert failed["last_error"].startswith("spooled result unreadable: no DICOM file meta")
+    assert failed["last_error"].startswith("stored result unreadable: no DICOM file meta")
     assert pacs_uids(pacs_dir) == []  # nothing was sent
 
 

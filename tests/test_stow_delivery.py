@@ -159,7 +159,7 @@ def test_one_object_the_server_refuses_does_not_hold_back_the_others(orthanc):
     outcomes = store_files(dest, [part10(bad), part10(good), b"not DICOM"])
     assert [o.stored for o in outcomes] == [False, True, False]
     assert "HTTP 400" in outcomes[0].reason
-    assert outcomes[2].reason.startswith("spooled object unreadable")
+    assert outcomes[2].reason.startswith("stored object unreadable")
     assert orthanc.study_instances(str(good.StudyInstanceUID))
 
 

@@ -64,7 +64,7 @@ def store_files(
         try:
             readable.append((i, pydicom.dcmread(io.BytesIO(data))))
         except Exception as exc:
-            outcomes[i] = StowOutcome("", False, f"spooled object unreadable: {exc}")
+            outcomes[i] = StowOutcome("", False, f"stored object unreadable: {exc}")
     if readable:
         client = client_for(destination, config)
         batch = _store(client, [ds for _, ds in readable], where)

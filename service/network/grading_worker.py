@@ -116,12 +116,12 @@ def run_job(job: GradeJob, grade_fn: Callable[..., Any], table: Any) -> GradeRec
     usable: list[tuple[str, Any]] = []
     for uid, data in zip(job.object_uids, job.objects, strict=True):
         if isinstance(data, str):
-            notes[uid] = f"set aside: spooled file unreadable ({data})"
+            notes[uid] = f"set aside: stored object unreadable ({data})"
             continue
         try:
             ds = pydicom.dcmread(io.BytesIO(data))
-        except Exception as exc:  # spooled file unreadable: say so, do not guess
-            notes[uid] = f"set aside: spooled file unreadable ({type(exc).__name__}: {exc})"
+        except Exception as exc:  # stored object unreadable: say so, do not guess
+            notes[uid] = f"set aside: stored object unreadable ({type(exc).__name__}: {exc})"
         else:
             usable.append((uid, ds))
     outcome = None

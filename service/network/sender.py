@@ -235,7 +235,7 @@ class Sender:
                 meta = file_meta_uids(data)
                 why = "no DICOM file meta information (PS3.10 section 7.1)"
             if meta is None:
-                self.journal.mark_failed(d.id, f"spooled result unreadable: {why}")
+                self.journal.mark_failed(d.id, f"stored result unreadable: {why}")
                 self.metrics.deliveries.labels(outcome="failed", kind="result").inc()
                 continue
             sop_class = meta["MediaStorageSOPClassUID"]

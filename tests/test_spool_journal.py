@@ -867,3 +867,19 @@ def test_what_a_result_concluded_is_recorded_with_it_in_one_transaction(journal)
     (again,) = journal.claim_due(now=2.0)
     journal.finish_grading(again, result=_result("2.25.12", ("1.1", "1.2")), now=3.0)
     assert journal.outcome_of("2.25.12") is None  # none said: none recorded
+
+
+def test_the_journal_holding_the_objects_is_readable_by_its_owner_only(tmp_path):
+    # it holds patient data: owner-only, as the spool files were (an older journal's files
+    # with wider permissions are narrowed when it is opened)
+    path = tmp_path / "journal.sqlite3"
+    journal = SqliteJournal(path)
+    _receive(journal, "1.1", now=0.0)
+    files = sorted(p.name for p in tmp_path.glob("journal.sqlite3*"))
+    assert files == ["journal.sqlite3", "journal.sqlite3-shm", "journal.sqlite3-wal"]
+    for name in files:
+        assert stat.S_IMODE((tmp_path / name).stat().st_mode) == 0o600, name
+    journal.close()
+    path.chmod(0o644)
+    SqliteJournal(path).close()
+    assert stat.S_IMODE(path.stat().st_mode) == 0o600

@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import os
 import sqlite3
 import threading
 import time
@@ -67,6 +68,20 @@ def _storage_errors() -> Iterator[None]:
         raise
 
 
+def _owner_only(path: Path) -> None:
+    """The journal holds patient data (the received objects): its file is created readable
+    by its owner only, as the spool files were, and an older journal's file (with its WAL
+    and shared-memory files, which SQLite creates with the database's permissions) loses any
+    access by others."""
+    fd = os.open(path, os.O_RDWR | os.O_CREAT | getattr(os, "O_CLOEXEC", 0), 0o600)
+    os.close(fd)
+    for p in (path, Path(f"{path}-wal"), Path(f"{path}-shm")):
+        with contextlib.suppress(FileNotFoundError):
+            mode = p.stat().st_mode & 0o777
+            if mode & 0o077:
+                os.chmod(p, mode & 0o700)
+
+
 def journal_path(data_dir: Path) -> Path:
     return Path(data_dir) / JOURNAL_NAME
 
@@ -78,6 +93,7 @@ class SqliteJournal(SqlJournal):
         self.path = Path(path)
         self.location = str(self.path)
         self.path.parent.mkdir(parents=True, exist_ok=True)
+        _owner_only(self.path)
         #: where the objects' and results' bytes are kept
         self.spool = Spool(
             self.path.parent / "spool" if spool_root is None else spool_root, clean=False

@@ -28,6 +28,8 @@ class _Pacs(ResultReceiver):
         super().__init__(ae_title)
         self._statuses = list(statuses)
         self.identities: list[tuple[int, bytes, bytes]] = []
+        #: associations requested by the node
+        self.associations = 0
         self.start()
 
     def _on_store(self, event):
@@ -38,8 +40,15 @@ class _Pacs(ResultReceiver):
         self.identities.append((event.user_id_type, event.primary_field, event.secondary_field))
         return True, None
 
+    def _on_requested(self, event):
+        self.associations += 1
+
     def _handlers(self):
-        return [*super()._handlers(), (evt.EVT_USER_ID, self._on_user_id)]
+        return [
+            *super()._handlers(),
+            (evt.EVT_USER_ID, self._on_user_id),
+            (evt.EVT_REQUESTED, self._on_requested),
+        ]
 
 
 @pytest.fixture
@@ -153,3 +162,23 @@ def test_user_identity_goes_to_the_destination_that_asks_for_it(loopback_nodes, 
     assert with_id.identities == [(2, b"hv-node", b"s3cret")]
     assert without.identities == []
     assert "s3cret" not in json.dumps(node.config.masked())
+
+
+def test_results_graded_one_after_another_go_over_one_association(loopback_nodes, peers):
+    # the sender keeps an association whose deliveries are sent open for a moment
+    # (LINGER_SECONDS), so a stream of studies graded one by one reaches the PACS over one
+    # association rather than one each; once idle past it, the association is released
+    from service.network.sender import LINGER_SECONDS
+
+    pacs = peers("PACS")
+    node = _node(loopback_nodes, {"PACS": _dest("PACS", pacs.port)})
+    first, second, third = simple_sr(), simple_sr(), simple_sr()
+    assert send([first], node.port) == [0]
+    wait_for(lambda: len(pacs.uids()) == 1, 20)
+    assert send([second], node.port) == [0]  # graded and due well within the linger
+    wait_for(lambda: len(pacs.uids()) == 2, 20)
+    assert pacs.associations == 1
+    time.sleep(LINGER_SECONDS + 1.0)  # idle past the linger: released
+    assert send([third], node.port) == [0]
+    wait_for(lambda: len(pacs.uids()) == 3, 20)
+    assert pacs.associations == 2

@@ -8,7 +8,8 @@ delays nobody else: its own deliveries wait and back off, the others go on.  A w
 its destination's due deliveries from the journal's outbox (with a lease: senders of other
 processes or nodes never send the same delivery at the same time, and take over one whose
 sender died), opens one association and sends each result as it is stored; results that fall
-due while the association is open follow on it (bounded).  A failed attempt (destination
+due while the association is open, or within a second after the last was sent, follow on it
+(bounded).  A failed attempt (destination
 down, association rejected, failure status, no answer in time) backs off exponentially
 (``backoff_initial_seconds * 2**(attempts-1)``, at most ``backoff_max_seconds``); past
 ``max_attempts`` the delivery is marked failed with its reason,
@@ -55,6 +56,12 @@ COMPREHENSIVE_SR = "1.2.840.10008.5.1.4.1.1.88.33"
 #: objects sent over one association at most (results that fall due while it is open follow
 #: on it up to this number; then it is released and the next round opens a new one)
 MAX_PER_ASSOCIATION = 200
+#: seconds an association whose deliveries are all sent stays open for results about to fall
+#: due (a stream of studies is graded one by one: its results go over one association instead
+#: of one association each); far below any peer's idle timeout
+LINGER_SECONDS = 1.0
+#: how often a lingering worker looks whether its destination has a delivery due
+LINGER_POLL_SECONDS = 0.01
 
 
 class Sender:
@@ -416,8 +423,17 @@ class _Worker(threading.Thread):
                     self._send(session, o, where)
                 if sender.stopping or not session.is_established:
                     return
-                # results graded while these went out: on the same association
-                more = [d for d in sender.claim(self.destination, budget) if d.id not in seen]
+                # results graded while these went out, or about to be: on the same association;
+                # a delivery already tried on it (failed, due again) goes back for a new one
+                if budget <= 0:
+                    return
+                claimed = sender.claim(self.destination, budget) or self._more_within(
+                    LINGER_SECONDS, session, budget
+                )
+                more = [d for d in claimed if d.id not in seen]
+                again = [d.id for d in claimed if d.id in seen]
+                if again:
+                    self.journal.release_deliveries(again)
                 seen.update(d.id for d in more)
                 batch = sender._readable(more)
                 unsent.update(o.due.id for o in batch)
@@ -426,6 +442,23 @@ class _Worker(threading.Thread):
             session.release()
             if unsent:
                 self.journal.release_deliveries(sorted(unsent))
+
+    def _more_within(self, seconds: float, session: StoreSession, budget: int) -> list[DueDelivery]:
+        """Deliveries to this destination that fall due within ``seconds``, claimed (none when
+        the node stops or the association ends meanwhile).  Looks with a read of the journal,
+        and claims only when one is due."""
+        deadline = time.monotonic() + seconds
+        while time.monotonic() < deadline:
+            self.wake.wait(LINGER_POLL_SECONDS)
+            self.wake.clear()
+            if self.sender.stopping or not session.is_established:
+                return []
+            due = self.journal.next_delivery_at(destination=self.destination)
+            if due is not None and due <= self.journal.now():
+                claimed = self.sender.claim(self.destination, budget)
+                if claimed:
+                    return claimed
+        return []
 
     def _send(self, session: StoreSession, o: _Outgoing, where: str) -> None:
         """One C-STORE and its outcome in the journal."""

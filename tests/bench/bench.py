@@ -278,6 +278,26 @@ def _status_kib(pid: int) -> tuple[int, int]:
     return rss, hwm
 
 
+def _cpu_seconds(pid: int) -> float:
+    """User + system CPU time of a process so far, from /proc (0 when it has gone)."""
+    try:
+        fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    except OSError:
+        return 0.0
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+def _role_of(pid: int) -> str:
+    """A node's process by its role: supervisor, receiver, grader, sender."""
+    try:
+        args = Path(f"/proc/{pid}/cmdline").read_bytes().split(b"\0")
+    except OSError:
+        return "?"
+    if b"service.network.roles" in args:
+        return args[args.index(b"service.network.roles") + 1].decode()
+    return "supervisor"
+
+
 def _descendants(pid: int) -> list[int]:
     """Every process below ``pid`` (from the parent ids in /proc/*/stat)."""
     children: dict[int, list[int]] = {}
@@ -446,6 +466,11 @@ def bench_receivers(work: Path, n: int, workers: int, rounds: int = 1) -> dict[s
             f"{r['diastolic_sr_failed']} studies failed)"
         )
         say(
+            "diastolic-sr CPU per study (ms):   "
+            + ", ".join(f"{role} {ms:.1f}" for role, ms in sorted(r["cpu_ms_per_study"].items()))
+            + f"; all {sum(r['cpu_ms_per_study'].values()):.1f}"
+        )
+        say(
             f"ratio end to end / pynetdicom storescp: {r['ratio_to_pynetdicom']:.2f}; "
             f"/ durable pynetdicom storescp: {r['ratio_to_durable']:.2f}; durable / plain "
             f"pynetdicom storescp: {r['durable_to_pynetdicom']:.2f}"
@@ -508,12 +533,20 @@ def _receivers_round(work: Path, files: Sequence[Path], workers: int) -> dict[st
         Node(work, pacs_port, workers=workers, name="node-throughput") as node,
     ):
         warm_up(node.port, NODE_AE, warm, lambda: node.settled() >= k)
+        assert node.proc is not None
+        pids = [node.proc.pid, *_descendants(node.proc.pid)]
+        cpu0 = {pid: _cpu_seconds(pid) for pid in pids}
         t0 = time.perf_counter()
         t_ack = run_storescu(node.port, NODE_AE, files)
         wait_for(lambda: node.settled() >= k + n, 60 + n * 2, interval=0.05)
         t_all = time.perf_counter() - t0
+        cpu: dict[str, float] = {}
+        for pid in pids:  # CPU ms per study of each role over the timed load
+            role = _role_of(pid)
+            cpu[role] = cpu.get(role, 0.0) + (_cpu_seconds(pid) - cpu0[pid]) * 1000 / n
         delivered = count_files(pacs_dir) - k
         failed = node.journal_rows("SELECT COUNT(*) FROM studies WHERE state = 'failed'")[0][0]
+    out["cpu_ms_per_study"] = cpu
     out["diastolic_sr_acknowledged"] = n / t_ack
     out["diastolic_sr_end_to_end"] = n / t_all
     out["diastolic_sr_delivered"] = delivered

@@ -98,8 +98,8 @@ def test_receivers_latency_and_memory_sections(tmp_path):
     for key in ("pynetdicom_storescp", "pynetdicom_durable", "dcmtk_storescp"):
         assert rec[key] > 0, key
     assert rec["diastolic_sr_end_to_end"] > 0
-    for r in rec["rounds"]:  # every role of the node was measured
-        assert set(r["cpu_ms_per_study"]) == {"supervisor", "receiver", "grader", "sender"}
+    for one in rec["rounds"]:  # every role of the node was measured
+        assert set(one["cpu_ms_per_study"]) == {"supervisor", "receiver", "grader", "sender"}
     assert rec["diastolic_sr_delivered"] + rec["diastolic_sr_failed"] >= 5
     lat = figures["latency"]
     assert lat["delivered"] == 4 and lat["p50_ms"] <= lat["p95_ms"] <= lat["p99_ms"]

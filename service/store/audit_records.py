@@ -243,13 +243,16 @@ class AuditRecords:
         calling_ae: str,
         failure: str,
         now: float,
+        last_received_at: Any = ...,
     ) -> None:
         """Record (or replace, on a re-grade) a study's audit row; patient identity only when
-        the facts carry it."""
-        row = db.execute(
-            "SELECT last_received_at FROM studies WHERE study_uid = ?", (study_uid,)
-        ).fetchone()
-        last = None if row is None else row[0]
+        the facts carry it.  ``last_received_at``: the study's, when the caller has read it."""
+        last = last_received_at
+        if last is ...:
+            row = db.execute(
+                "SELECT last_received_at FROM studies WHERE study_uid = ?", (study_uid,)
+            ).fetchone()
+            last = None if row is None else row[0]
         db.execute(
             INSERT_AUDIT,
             audit_values(

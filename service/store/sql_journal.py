@@ -128,7 +128,7 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
         """As :meth:`_put_object_in_tx`, for a result object."""
         db.execute(
             "INSERT INTO result_data (result_uid, data) VALUES (?, ?) "
-            "ON CONFLICT (result_uid) DO UPDATE SET data = excluded.data",
+            "ON CONFLICT (result_uid) DO NOTHING",
             (result_uid, data),
         )
 
@@ -464,11 +464,12 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
         audit: Any = None,
         now: float | None = None,
     ) -> bool:
-        # the bytes first, durably: a row never names bytes that are not whole
+        # a result without bytes must be recorded already; one with bytes goes in with its row
+        # (a result recorded before keeps its row and its bytes: both inserts do nothing then)
         paths: dict[str, str] = {}
         held: list[NewResult] = []
         for new in ([result] if result is not None else []) + [c.result for c in companions]:
-            if new.data is None or self.result_stored(new.result_uid):
+            if new.data is None:
                 rows = self._query("SELECT * FROM results WHERE result_uid = ?", (new.result_uid,))
                 if not rows or not self._result_bytes_present(rows[0]):
                     raise FileNotFoundError(f"stored result {new.result_uid} vanished")
@@ -481,7 +482,8 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
         with self._tx(durable=False) as db:
             self._work_added(db)
             current = db.execute(
-                "SELECT generation FROM studies WHERE study_uid = ?" + self.LOCK_ROW,
+                "SELECT generation, last_received_at FROM studies WHERE study_uid = ?"
+                + self.LOCK_ROW,
                 (claim.study_uid,),
             ).fetchone()
             same_generation = current is not None and current["generation"] == claim.generation
@@ -516,11 +518,26 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
                         "INSERT INTO companions VALUES (?, ?) ON CONFLICT DO NOTHING",
                         (result.result_uid, comp.result.result_uid),
                     )
-                db.execute(
-                    "UPDATE studies SET result_uid = ?, updated_at = ? WHERE study_uid = ?",
-                    (result.result_uid, now, claim.study_uid),
-                )
+                if not same_generation:  # a newer object arrived: 'received' again, kept so
+                    db.execute(
+                        "UPDATE studies SET result_uid = ?, updated_at = ? WHERE study_uid = ?",
+                        (result.result_uid, now, claim.study_uid),
+                    )
             if same_generation:
+                # the outcome and the end of the claim, in one statement (one round trip)
+                if result is None:
+                    db.execute(
+                        "UPDATE studies SET state = 'failed', reason = ?, updated_at = ?, "
+                        "claimed_by = '', lease_until = 0, claims = 0 WHERE study_uid = ?",
+                        (failure or "not graded", now, claim.study_uid),
+                    )
+                else:
+                    db.execute(
+                        "UPDATE studies SET result_uid = ?, state = 'graded', reason = '', "
+                        "updated_at = ?, claimed_by = '', lease_until = 0, claims = 0 "
+                        "WHERE study_uid = ?",
+                        (result.result_uid, now, claim.study_uid),
+                    )
                 self._audit_graded(
                     db,
                     claim.study_uid,
@@ -528,25 +545,10 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
                     calling_ae=claim.calling_ae,
                     failure="" if result is not None else (failure or "not graded"),
                     now=now,
+                    last_received_at=current["last_received_at"],
                 )
-                if result is None:
-                    db.execute(
-                        "UPDATE studies SET state = 'failed', reason = ?, updated_at = ? "
-                        "WHERE study_uid = ?",
-                        (failure or "not graded", now, claim.study_uid),
-                    )
-                else:
-                    db.execute(
-                        "UPDATE studies SET state = 'graded', reason = '', updated_at = ? "
-                        "WHERE study_uid = ?",
-                        (now, claim.study_uid),
-                    )
+                if result is not None:
                     self._settle_study_state(db, claim.study_uid, now)
-                db.execute(
-                    "UPDATE studies SET claimed_by = '', lease_until = 0, claims = 0 "
-                    "WHERE study_uid = ?",
-                    (claim.study_uid,),
-                )
             # else: a newer object arrived while grading; the study is 'received' again
         return queued
 
@@ -744,10 +746,11 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
                 + self.LOCK_ROWS.format(table="d"),
                 (destination, now, now, limit),
             ).fetchall()
-            for r in rows:
+            if rows:  # one statement for all of them (one round trip to a database server)
+                marks = ",".join("?" * len(rows))
                 db.execute(
-                    "UPDATE deliveries SET claimed_by = ?, lease_until = ? WHERE id = ?",
-                    (owner, now + lease_seconds, r["id"]),
+                    f"UPDATE deliveries SET claimed_by = ?, lease_until = ? WHERE id IN ({marks})",
+                    (owner, now + lease_seconds, *(r["id"] for r in rows)),
                 )
         return [_due(r) for r in rows]
 

@@ -651,7 +651,7 @@ class TricklingProxy:
 
 
 # ---------------------------------------------------------------------------------------------
-# Journal-neutral looks at a node's journal (SQLite with spool files, or PostgreSQL)
+# Journal-neutral looks at a node's journal (SQLite or PostgreSQL)
 # ---------------------------------------------------------------------------------------------
 
 
@@ -666,7 +666,7 @@ def journal_args(node: Any) -> list[str]:
 
 def bytes_kept(journal: Any, row: dict[str, Any]) -> bool:
     """Whether the bytes of an object row (``objects`` or ``ignored_objects``) are stored: its
-    spool file (SQLite) or its row of ``object_data`` (PostgreSQL)."""
+    row of ``object_data``, or the spool file of a row recorded before SQLite's schema 7."""
     if row.get("path"):
         return Path(row["path"]).is_file()
     return bool(

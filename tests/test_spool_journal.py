@@ -5,7 +5,6 @@ from __future__ import annotations
 import os
 import sqlite3
 import stat
-import tempfile
 
 import pytest
 
@@ -81,39 +80,26 @@ def _record_fsyncs(monkeypatch) -> list[str]:
     return seen
 
 
-def test_new_file_is_written_under_its_name_then_fsynced_before_its_folders(tmp_path, monkeypatch):
-    # POSIX fsync(2): a new name is durable once its folder is fsync'ed; the file's own fsync
-    # comes first, so that its folders' fsyncs find the file system's journal committed
-    target = tmp_path / "objects" / "study" / "file.dcm"
-    seen = _record_fsyncs(monkeypatch)
-    monkeypatch.setattr(tempfile, "mkstemp", lambda **kw: pytest.fail("no temporary file"))
-    durable_write(target, b"DICM", atomic=False)
-    assert target.read_bytes() == b"DICM"
-    assert seen == [str(target), str(target.parent), str(target.parent.parent), str(tmp_path)]
-
-
-def test_a_new_file_outside_the_spool_appears_only_when_whole(tmp_path, monkeypatch):
+def test_a_new_file_appears_only_when_whole_and_its_new_folders_are_fsynced(tmp_path, monkeypatch):
     # the results folder may be watched by an importer: no file under its final name before
-    # its content is complete (temporary file, then rename; POSIX rename(2) is atomic)
-    target = tmp_path / "results" / "file.dcm"
+    # its content is complete (temporary file, then rename; POSIX rename(2) is atomic); POSIX
+    # fsync(2): a new name is durable once its folder is fsync'ed, so every folder created
+    # for it is fsync'ed too, from the innermost
+    target = tmp_path / "results" / "study" / "file.dcm"
     seen = _record_fsyncs(monkeypatch)
     durable_write(target, b"DICM")
     assert target.read_bytes() == b"DICM"
-    assert seen[0].endswith(".part") and seen[1] == str(target.parent)
-    spool = Spool(tmp_path / "spool")
-    monkeypatch.setattr(tempfile, "mkstemp", lambda **kw: pytest.fail("no temporary file"))
-    spool.write_object(STUDY, "1.2.3.4", b"DICM")  # the spool: under its name at once
-    spool.write_result(STUDY, "1.2.3.5", b"DICM")
+    assert seen[0].endswith(".part")
+    assert seen[1:] == [str(target.parent), str(target.parent.parent), str(tmp_path)]
 
 
-def test_spool_files_are_readable_by_their_owner_only(tmp_path):
+def test_durable_files_are_readable_by_their_owner_only(tmp_path):
     # they hold patient data; the same mode as a temporary file (Python tempfile.mkstemp: 0600)
-    spool = Spool(tmp_path / "spool")
-    new = spool.write_object(STUDY, "1.2.3.4", b"DICM")
-    replaced = spool.write_object(STUDY, "1.2.3.4", b"DICM again")
-    result = spool.write_result(STUDY, "1.2.3.5", b"DICM")
-    for path in (new, replaced, result):
-        assert stat.S_IMODE(path.stat().st_mode) == 0o600, path
+    new = tmp_path / "results" / "1.2.3.4.dcm"
+    durable_write(new, b"DICM")
+    assert stat.S_IMODE(new.stat().st_mode) == 0o600
+    durable_write(new, b"DICM again")
+    assert stat.S_IMODE(new.stat().st_mode) == 0o600
 
 
 def test_existing_file_is_never_written_in_place(tmp_path, monkeypatch):
@@ -141,17 +127,18 @@ def test_failed_new_file_leaves_nothing_under_its_name(tmp_path, monkeypatch):
 
     monkeypatch.setattr(os, "fsync", failing_fsync)
     with pytest.raises(OSError):
-        durable_write(target, b"DICM", atomic=False)
-    assert not target.exists()
+        durable_write(target, b"DICM")
+    assert list(tmp_path.iterdir()) == []  # neither the file nor its temporary
     monkeypatch.undo()
-    durable_write(target, b"DICM", atomic=False)  # the object comes again: written as new
+    durable_write(target, b"DICM")  # written again: whole
     assert target.read_bytes() == b"DICM"
 
 
 def test_spool_layout_and_crash_leftovers_are_cleaned(tmp_path):
-    spool = Spool(tmp_path / "spool")
-    p = spool.write_object(STUDY, "1.2.3.4", b"DICM")
+    spool = Spool(tmp_path / "spool", clean=False)
+    p = spool.object_path(STUDY, "1.2.3.4")
     assert p == tmp_path / "spool" / "objects" / STUDY / "1.2.3.4.dcm"
+    p.parent.mkdir(parents=True)
     leftover = p.parent / ".tmp-abc.part"
     leftover.write_bytes(b"half")
     assert Spool(tmp_path / "spool").clean_temporaries() == 0  # constructor already cleaned

@@ -243,16 +243,10 @@ class AuditRecords:
         calling_ae: str,
         failure: str,
         now: float,
-        last_received_at: Any = ...,
+        last_received_at: float | None,
     ) -> None:
         """Record (or replace, on a re-grade) a study's audit row; patient identity only when
-        the facts carry it.  ``last_received_at``: the study's, when the caller has read it."""
-        last = last_received_at
-        if last is ...:
-            row = db.execute(
-                "SELECT last_received_at FROM studies WHERE study_uid = ?", (study_uid,)
-            ).fetchone()
-            last = None if row is None else row[0]
+        the facts carry it.  ``last_received_at``: the study's (its caller has the row locked)."""
         db.execute(
             INSERT_AUDIT,
             audit_values(
@@ -261,7 +255,7 @@ class AuditRecords:
                 calling_ae=calling_ae,
                 failure=failure,
                 graded_at=now,
-                last_received_at=last,
+                last_received_at=last_received_at,
             ),
         )
         if facts is not None and (facts.patient_name or facts.patient_id):

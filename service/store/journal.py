@@ -418,12 +418,6 @@ class Journal(BackfillRecords, abc.ABC):
     # -- outcomes of results (service.model.Outcome tokens) ----------------------------------
 
     @abc.abstractmethod
-    def record_outcome(self, result_uid: str, outcome: str) -> None:
-        """Record what a result concluded (an Outcome token: "grade-2",
-        "atrial-fibrillation", ...).  Not part of the grading transaction: a result whose
-        outcome was lost to a crash shows its grade instead."""
-
-    @abc.abstractmethod
     def outcome_of(self, result_uid: str) -> str | None: ...
 
     @abc.abstractmethod

@@ -96,12 +96,6 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
 
     # -- the bytes: in the database, in the transaction that records them ----------------------
 
-    def _put_object(self, study_uid: str, sop_instance_uid: str, data: bytes) -> str:
-        """Store an object's bytes before its record is written; the ``path`` its row keeps
-        ('' when the bytes go in with the row, :meth:`_put_object_in_tx`, as they do now on
-        both backends)."""
-        return ""
-
     def _put_object_in_tx(self, db: Cursor, sop_instance_uid: str, data: bytes) -> None:
         """Store an object's bytes in the transaction that records it: the row and its bytes
         are committed together, with one commit (one flush to disk) for both."""
@@ -119,10 +113,6 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
         if not rows:
             raise FileNotFoundError(f"the bytes of object {row['sop_instance_uid']} are missing")
         return bytes(rows[0][0])
-
-    def _put_result(self, study_uid: str, result_uid: str, data: bytes) -> str:
-        """As :meth:`_put_object`, for a result object."""
-        return ""
 
     def _put_result_in_tx(self, db: Cursor, result_uid: str, data: bytes) -> None:
         """As :meth:`_put_object_in_tx`, for a result object."""
@@ -186,7 +176,7 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
         settle_seconds: float,
         now: float | None = None,
     ) -> None:
-        path = self._put_object(study_uid, sop_instance_uid, data)
+        path = ""  # the bytes go in with the row (a path names a spool file of old)
         now = self.now() if now is None else now
         with self._tx() as db:
             self._work_added(db)
@@ -237,7 +227,7 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
         reason: str,
         now: float | None = None,
     ) -> None:
-        path = self._put_object(study_uid, sop_instance_uid, data)
+        path = ""  # the bytes go in with the row (a path names a spool file of old)
         now = self.now() if now is None else now
         with self._tx() as db:
             db.execute(
@@ -251,15 +241,6 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
                 (sop_instance_uid, study_uid, sop_class_uid, calling_ae, path, reason, now),
             )
             self._put_object_in_tx(db, sop_instance_uid, data)
-
-    @_retried
-    def record_outcome(self, result_uid: str, outcome: str) -> None:
-        with self._tx(durable=False) as db:
-            db.execute(
-                """INSERT INTO result_outcomes (result_uid, outcome) VALUES (?, ?)
-                   ON CONFLICT (result_uid) DO UPDATE SET outcome = excluded.outcome""",
-                (result_uid, outcome),
-            )
 
     def outcome_of(self, result_uid: str) -> str | None:
         rows = self._query(
@@ -475,7 +456,7 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
                     raise FileNotFoundError(f"stored result {new.result_uid} vanished")
                 paths[new.result_uid] = rows[0]["path"]
             else:
-                paths[new.result_uid] = self._put_result(claim.study_uid, new.result_uid, new.data)
+                paths[new.result_uid] = ""
                 held.append(new)
         now = self.now() if now is None else now
         queued = False

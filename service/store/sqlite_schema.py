@@ -94,7 +94,7 @@ MIGRATIONS: list[list[str]] = [
         "CREATE INDEX IF NOT EXISTS ignored_objects_received ON ignored_objects (received_at)",
     ],
     # 3: what each result concluded, as a service.model.Outcome token (kept apart from the
-    # results table: Journal.record_outcome / outcome_of)
+    # results table: NewResult.outcome / Journal.outcome_of)
     [
         """CREATE TABLE IF NOT EXISTS result_outcomes (
             result_uid TEXT PRIMARY KEY,

@@ -81,6 +81,7 @@ def fill(journal_file: Path, studies: int, pool: list[Any], *, now: float, seed:
                     calling_ae=facts.device.calling_ae,
                     failure=failure,
                     now=graded,
+                    last_received_at=None,  # set for every row below
                 )
             db.execute(
                 "UPDATE audit_studies SET last_received_at = graded_at - 10.1, "

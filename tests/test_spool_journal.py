@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import sqlite3
 import stat
+from pathlib import Path
 
 import pytest
 
@@ -441,14 +442,13 @@ def test_a_full_disk_is_a_storage_error_and_records_nothing(sqlite_journal):
     assert sqlite_journal.object_data("1.1") == b"object 1.1"
 
 
-def test_rows_recorded_before_version_7_are_read_from_their_spool_files(tmp_path):
-    # a journal of schema version 6 kept the bytes in spool files: after the upgrade its rows
-    # are read from them, new rows from the journal, and a purge deletes the old files
+def _version_6_journal(tmp_path: Path) -> Path:
+    """A journal of schema version 6 (the bytes in spool files) holding one received object,
+    1.1 of STUDY, in its spool file; the spool file's path."""
     from service.store import sqlite_schema
     from service.store.sql_journal import migrate
 
-    path = tmp_path / "journal.sqlite3"
-    old = sqlite3.connect(path, isolation_level=None)
+    old = sqlite3.connect(tmp_path / "journal.sqlite3", isolation_level=None)
     old.execute(sqlite_schema.META)
     old.execute("BEGIN")
     migrate(old, sqlite_schema.MIGRATIONS[:6])
@@ -468,7 +468,14 @@ def test_rows_recorded_before_version_7_are_read_from_their_spool_files(tmp_path
         (STUDY, str(spooled)),
     )
     old.close()
-    journal = SqliteJournal(path)
+    return spooled
+
+
+def test_rows_recorded_before_version_7_are_read_from_their_spool_files(tmp_path):
+    # a journal of schema version 6 kept the bytes in spool files: after the upgrade its rows
+    # are read from them, new rows from the journal, and a purge deletes the old files
+    spooled = _version_6_journal(tmp_path)
+    journal = SqliteJournal(tmp_path / "journal.sqlite3")
     try:
         version = journal._query("SELECT value FROM meta WHERE key = 'schema_version'")[0][0]
         assert int(version) == 7
@@ -480,6 +487,23 @@ def test_rows_recorded_before_version_7_are_read_from_their_spool_files(tmp_path
         journal.finish_grading(claim, result=None, failure="not gradable: test", now=2.0)
         assert journal.purge_finished(older_than=3.0).files == 2  # its spool file, its row's bytes
         assert not spooled.exists()
+    finally:
+        journal.close()
+
+
+def test_an_old_object_received_again_leaves_no_spool_file_after_the_purge(tmp_path):
+    # received before the upgrade (a spool file) and again after it: its row holds its bytes
+    # now and names no file, yet the purge of its study removes the old file too
+    spooled = _version_6_journal(tmp_path)
+    journal = SqliteJournal(tmp_path / "journal.sqlite3")
+    try:
+        _receive(journal, "1.1", now=1.0, settle=0)
+        assert journal.objects(STUDY)[0]["path"] == "" and spooled.exists()
+        assert journal.object_data("1.1") == b"object 1.1"
+        (claim,) = journal.claim_due(now=1.0)
+        journal.finish_grading(claim, result=None, failure="not gradable: test", now=2.0)
+        assert journal.purge_finished(older_than=3.0).files == 2  # the row's bytes, the old file
+        assert not spooled.exists() and not spooled.parent.exists()
     finally:
         journal.close()
 

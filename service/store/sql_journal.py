@@ -152,8 +152,9 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
         ).rowcount
         return int(a) + int(b)
 
-    def _after_purge(self, paths: list[str]) -> int:
-        """After a purge's commit: delete bytes held outside the database; returns how many."""
+    def _after_purge(self, paths: list[str], studies: Sequence[str]) -> int:
+        """After a purge's commit: delete bytes held outside the database (``paths``, and
+        what else ``studies`` left there); returns how many."""
         return 0
 
     def _work_added(self, db: Cursor) -> None:
@@ -1045,7 +1046,7 @@ class SqlJournal(AuditRecords, ActivityQueries, SqlBackfillRecords, Journal):
                 paths += [r[1] for r in ignored]
                 files += self._purge_ignored_bytes(db, [r[0] for r in ignored])
                 db.execute("DELETE FROM ignored_objects WHERE received_at < ?", (older_than,))
-        files += self._after_purge([p for p in paths if p])
+        files += self._after_purge([p for p in paths if p], studies)
         return Purged(studies=studies, files=files)
 
 

@@ -40,7 +40,7 @@ from pathlib import Path
 from typing import Any
 
 from service.store import sqlite_schema
-from service.store.spool import Spool
+from service.store.spool import Spool, safe_name
 from service.store.sql_journal import Cursor, SqlJournal, migrate
 
 #: the journal's file name in the data directory
@@ -189,13 +189,20 @@ class SqliteJournal(SqlJournal):
             return Path(row["path"]).exists()
         return super()._result_bytes_present(row)
 
-    def _after_purge(self, paths: list[str]) -> int:
+    def _after_purge(self, paths: list[str], studies: Sequence[str]) -> int:
         """Delete the purged spool files (only ever inside the spool) and their emptied
-        folders."""
+        folders, and the spool files the purged studies left that no row named any more (an
+        object received before schema version 7 and again after it: its row now holds its
+        bytes)."""
         root = self.spool.root.resolve()
         removed = 0
-        folders = set()
-        for path in paths:
+        folders = {
+            folder / safe_name(study)
+            for study in studies
+            for folder in (self.spool.objects, self.spool.results)
+        }
+        left = [str(p) for folder in folders if folder.is_dir() for p in folder.glob("*.dcm")]
+        for path in dict.fromkeys([*paths, *left]):
             p = Path(path)
             with contextlib.suppress(OSError):
                 if root in p.resolve().parents:

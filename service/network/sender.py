@@ -9,8 +9,8 @@ its destination's due deliveries from the journal's outbox (with a lease: sender
 processes or nodes never send the same delivery at the same time, and take over one whose
 sender died), opens one association and sends each result as it is stored; results that fall
 due while the association is open, or within a second after the last was sent, follow on it
-(bounded).  A failed attempt (destination
-down, association rejected, failure status, no answer in time) backs off exponentially
+(bounded).  A failed attempt (destination down, association rejected, failure status, no
+answer in time) backs off exponentially
 (``backoff_initial_seconds * 2**(attempts-1)``, at most ``backoff_max_seconds``); past
 ``max_attempts`` the delivery is marked failed with its reason,
 never dropped.  A warning status (PS3.7 Annex C: 0001, 0107, 0116, Bxxx) means the peer stored
@@ -445,19 +445,17 @@ class _Worker(threading.Thread):
 
     def _more_within(self, seconds: float, session: StoreSession, budget: int) -> list[DueDelivery]:
         """Deliveries to this destination that fall due within ``seconds``, claimed (none when
-        the node stops or the association ends meanwhile).  Looks with a read of the journal,
-        and claims only when one is due."""
+        the node stops or the association ends meanwhile).  Each look is a claim, which reads
+        first and takes the journal's write lock only when a delivery is due."""
         deadline = time.monotonic() + seconds
         while time.monotonic() < deadline:
             self.wake.wait(LINGER_POLL_SECONDS)
             self.wake.clear()
             if self.sender.stopping or not session.is_established:
                 return []
-            due = self.journal.next_delivery_at(destination=self.destination)
-            if due is not None and due <= self.journal.now():
-                claimed = self.sender.claim(self.destination, budget)
-                if claimed:
-                    return claimed
+            claimed = self.sender.claim(self.destination, budget)
+            if claimed:
+                return claimed
         return []
 
     def _send(self, session: StoreSession, o: _Outgoing, where: str) -> None:

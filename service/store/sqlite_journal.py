@@ -94,7 +94,7 @@ class SqliteJournal(SqlJournal):
         self.location = str(self.path)
         self.path.parent.mkdir(parents=True, exist_ok=True)
         _owner_only(self.path)
-        #: where the objects' and results' bytes are kept
+        #: the spool files of rows recorded before schema version 7 (read, and purged)
         self.spool = Spool(
             self.path.parent / "spool" if spool_root is None else spool_root, clean=False
         )

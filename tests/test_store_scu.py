@@ -10,6 +10,7 @@ bounded: a call that could hang runs on a thread the test joins with a limit.
 
 from __future__ import annotations
 
+import os
 import socket
 import threading
 import time
@@ -153,17 +154,40 @@ def acceptor():
 # -- real peers -----------------------------------------------------------------------------
 
 
+@pytest.fixture
+def decoded(monkeypatch):
+    """The objects the sending decoded with pydicom (not sent as encoded), by SOP Instance UID."""
+    seen: list[str] = []
+    real = pydicom.dcmread
+
+    def counting(*args, **kw):
+        ds = real(*args, **kw)
+        seen.append(str(ds.SOPInstanceUID))
+        return ds
+
+    monkeypatch.setattr(pydicom, "dcmread", counting)
+    return seen
+
+
+def _open_fds() -> set[str]:
+    return set(os.listdir("/proc/self/fd"))
+
+
 @needs_dcmtk
-def test_dcmtk_storescp_with_a_small_pdu_stores_the_object_unchanged(tmp_path):
+@pytest.mark.skipif(not hasattr(os, "memfd_create"), reason="in-memory files are Linux's")
+def test_dcmtk_storescp_with_a_small_pdu_stores_the_object_unchanged(tmp_path, decoded):
     _, data = _part10(tmp_path, copies=12)
     body = data[file_body_start(data) :]
     assert len(body) > 4 * 4096  # several PDUs at storescp's 4 KiB maximum
     port = free_port()
     with storescp(tmp_path / "pacs", port, extra=["-pdu", "4096"]):
+        fds = _open_fds()
         session = _open(port)
         first, second = session.store(data), session.store(data)  # message IDs go on
+        assert decoded == []  # sent as encoded
         session.release()
         assert not session.is_established
+        assert _open_fds() <= fds  # the in-memory file went with the association
         wait_for(lambda: len(pacs_uids(tmp_path / "pacs")) == 2, 10)
     assert (first.status, second.status) == (0x0000, 0x0000)  # PS3.7 C.4.2: success
     stored = next(p for p in (tmp_path / "pacs").iterdir() if p.is_file()).read_bytes()
@@ -172,12 +196,13 @@ def test_dcmtk_storescp_with_a_small_pdu_stores_the_object_unchanged(tmp_path):
 
 
 @needs_dcmtk
-def test_dcmtk_storescp_accepting_only_implicit_vr_gets_the_object_converted(tmp_path):
+def test_dcmtk_storescp_accepting_only_implicit_vr_gets_the_object_converted(tmp_path, decoded):
     _, data = _part10(tmp_path)
     port = free_port()
     with storescp(tmp_path / "pacs", port, extra=["+xi"]):
         session = _open(port)
         assert session.store(data).status == 0x0000
+        assert len(decoded) == 1  # decoded by pydicom, converted by pynetdicom
         session.release()
         wait_for(lambda: len(pacs_uids(tmp_path / "pacs")) == 1, 10)
     stored = pydicom.dcmread(next(p for p in (tmp_path / "pacs").iterdir() if p.is_file()))
@@ -200,6 +225,23 @@ def test_pynetdicom_acceptor_receives_the_data_set_from_our_implementation(accep
     # PS3.7 D.3.3.2: the node announces its own implementation class UID and version name
     assert peer.requestors == [(IMPLEMENTATION_CLASS_UID, IMPLEMENTATION_VERSION_NAME)]
     assert peer.released.wait(5)  # A-RELEASE, not an abort
+
+
+@needs_dcmtk
+def test_without_in_memory_files_the_object_is_sent_decoded(tmp_path, monkeypatch, decoded):
+    """Where the system has no in-memory files, pydicom decodes the object and pynetdicom
+    encodes it again: the peer gets the same data set."""
+    monkeypatch.delattr(os, "memfd_create", raising=False)
+    ds, data = _part10(tmp_path)
+    port = free_port()
+    with storescp(tmp_path / "pacs", port):
+        session = _open(port)
+        assert session.store(data).status == 0x0000
+        assert decoded == [ds.SOPInstanceUID]
+        session.release()
+        wait_for(lambda: len(pacs_uids(tmp_path / "pacs")) == 1, 10)
+    stored = next(p for p in (tmp_path / "pacs").iterdir() if p.is_file()).read_bytes()
+    assert stored[file_body_start(stored) :] == data[file_body_start(data) :]
 
 
 def test_the_connection_sends_without_delay(acceptor):

@@ -178,12 +178,19 @@ def _cores() -> int:
     return max(1, min(n, 16))
 
 
+def _graders() -> int:
+    """Grading processes by default: one per core but one, which the receiver and the sender
+    share (they answer the scanners and the PACS, and slow down when grading crowds them
+    out; docs/performance.md has the measurement), and at least one."""
+    return max(1, _cores() - 1)
+
+
 class AssemblyConfig(Section):
     #: grade a study this many seconds after its last object arrived (0: at once)
     settle_seconds: float = Field(default=10.0, ge=0, le=86400)
     #: number of studies graded at the same time, each in a grading process of its own
-    #: (default: one per core; the node's network threads keep a process of their own)
-    workers: int = Field(default_factory=_cores, ge=1, le=16)
+    #: (default: one per core but one, left to the receiver and the sender; at least one)
+    workers: int = Field(default_factory=_graders, ge=1, le=16)
 
 
 class SenderDefaults(Section):

@@ -9,6 +9,7 @@ import pytest
 
 from service.config import (
     DEFAULT_ROUTE,
+    AssemblyConfig,
     Config,
     apply_overrides,
     config_from_dict,
@@ -236,3 +237,14 @@ def test_example_file_is_valid_and_documents_every_section():
     assert cfg.destinations, "the example shows at least one destination"
     # every key line is preceded by a comment somewhere in its section (commented example)
     assert text.count("#") > 40
+
+
+@pytest.mark.parametrize("cores, graders", [(1, 1), (2, 1), (4, 3), (8, 7), (32, 15)])
+def test_default_graders_leave_a_core_to_the_receiver_and_the_sender(monkeypatch, cores, graders):
+    """One grading process per core but one (at least one, at most 16 cores counted): the
+    receiver and the sender share the core left (docs/performance.md, "Grading processes")."""
+    import os
+
+    monkeypatch.setattr(os, "sched_getaffinity", lambda pid: set(range(cores)), raising=False)
+    assert AssemblyConfig().workers == graders
+    assert AssemblyConfig(workers=min(cores, 16)).workers == min(cores, 16)  # the key decides

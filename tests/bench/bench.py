@@ -255,7 +255,7 @@ def pynetdicom_storescp(
 NODE_CONFIG = """
 [assembly]
 settle_seconds = 0
-workers = {workers}
+{workers}
 [delivery]
 results_folder = ""
 backoff_initial_seconds = 0.2
@@ -328,14 +328,16 @@ class Node:
         work: Path,
         pacs_port: int,
         *,
-        workers: int,
+        workers: int | None,
         name: str,
         journal: str = "",
         pg_password: str = "",
     ) -> None:
         self.data = work / f"{name}-data"
         self.config = work / f"{name}.toml"
-        self.config.write_text(NODE_CONFIG.format(workers=workers))
+        # None: the node's own default (assembly.workers left out)
+        line = "" if workers is None else f"workers = {workers}"
+        self.config.write_text(NODE_CONFIG.format(workers=line))
         self.log = work / f"{name}.log"
         self.pacs_port = pacs_port
         self.port = free_port()
@@ -436,14 +438,15 @@ class Node:
 # ---------------------------------------------------------------------------------------------
 
 
-def bench_receivers(work: Path, n: int, workers: int, rounds: int = 1) -> dict[str, Any]:
+def bench_receivers(work: Path, n: int, workers: int | None, rounds: int = 1) -> dict[str, Any]:
     """Each receiver takes the same load once per round, in turn (pynetdicom, DCMTK,
     diastolic-sr), so that a change in the machine's speed during the run (other virtual
     machines on the host) affects all three alike; figures are the medians over the rounds,
     the ratio the median of the rounds' own ratios."""
     say(
         f"\n== receivers: {n} studies, one SR each, DCMTK storescu (TCP_NODELAY=1), "
-        f"{rounds} round(s) =="
+        f"{rounds} round(s); node grading processes: "
+        f"{workers if workers is not None else 'its default'} =="
     )
     files = write_studies(work / "load", n, run="receivers")
     per_round = [_receivers_round(work / f"round{i + 1}", files, workers) for i in range(rounds)]
@@ -512,7 +515,7 @@ def bench_receivers(work: Path, n: int, workers: int, rounds: int = 1) -> dict[s
     return out
 
 
-def _receivers_round(work: Path, files: Sequence[Path], workers: int) -> dict[str, Any]:
+def _receivers_round(work: Path, files: Sequence[Path], workers: int | None) -> dict[str, Any]:
     """One round: the same files to each receiver in turn; objects/s of each."""
     work.mkdir(parents=True, exist_ok=True)
     n = len(files)
@@ -635,7 +638,7 @@ def postgres(work: Path) -> Iterator[Any]:
         yield server
 
 
-def bench_journals(work: Path, n: int, workers: int, rounds: int, pg: Any) -> dict[str, Any]:
+def bench_journals(work: Path, n: int, workers: int | None, rounds: int, pg: Any) -> dict[str, Any]:
     """One node end to end on the SQLite journal and on a PostgreSQL journal (a fresh database
     each round), the same load, taking turns with pynetdicom's storescp within each round."""
     from pgutil import NODE_PASSWORD
@@ -750,7 +753,7 @@ def bench_nodes(work: Path, n: int, rounds: int, pg: Any) -> dict[str, Any]:
     return out
 
 
-def bench_latency(work: Path, n: int, rate: float, workers: int) -> dict[str, Any]:
+def bench_latency(work: Path, n: int, rate: float, workers: int | None) -> dict[str, Any]:
     work.mkdir(parents=True, exist_ok=True)
     say(f"\n== latency: {n} studies offered at {rate:g} studies/s (one storescu per study) ==")
     files = write_studies(work / "latency-load", n, run="latency")
@@ -985,7 +988,9 @@ def bench_sender(work: Path, n: int) -> dict[str, Any]:
     return out
 
 
-def bench_memory(work: Path, marks: Sequence[int], workers: int, batch: int) -> dict[str, Any]:
+def bench_memory(
+    work: Path, marks: Sequence[int], workers: int | None, batch: int
+) -> dict[str, Any]:
     total = max(marks)
     say(f"\n== memory: node RSS while {total} studies stream through ==")
     pacs_port = free_port()
@@ -1193,7 +1198,11 @@ def parse(argv: list[str] | None) -> argparse.Namespace:
     p.add_argument(
         "--rate", default="10", help="offered studies/s for the latency run(s), e.g. 10,2"
     )
-    p.add_argument("--workers", type=int, default=2, help="node grading workers (default 2)")
+    p.add_argument(
+        "--workers",
+        type=int,
+        help="node grading processes (default: the node's own, one per core but one)",
+    )
     p.add_argument(
         "--rounds",
         type=int,

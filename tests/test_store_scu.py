@@ -45,6 +45,7 @@ from service.network.store_scu import (
     StoreSession,
     Timeouts,
     UserIdentity,
+    _Watchdog,
 )
 from service.sr.read import file_body_start
 
@@ -453,3 +454,50 @@ def test_a_peer_abort_between_c_stores_ends_the_next_one_at_once(acceptor, tmp_p
     assert isinstance(outcome, AssociationFailed), outcome
     assert took < 5
     assert not session.is_established
+
+
+# -- the watchdog on its own ------------------------------------------------------------------
+
+
+class _CutRecorder:
+    def __init__(self) -> None:
+        self.cuts = threading.Event()
+
+    def cut(self) -> None:
+        self.cuts.set()
+
+
+def test_the_watchdog_cuts_a_short_step_that_follows_a_long_one():
+    """Its thread sleeps until the deadline it saw last: a step with an earlier deadline must
+    wake it, or the overrun would go unnoticed until the older deadline."""
+    session = _CutRecorder()
+    dog = _Watchdog(session)  # type: ignore[arg-type]
+    try:
+        with dog.step(600, "long"):
+            time.sleep(0.1)  # the thread now sleeps until this deadline
+        t0 = time.monotonic()
+        with dog.step(0.2, "short"):
+            assert session.cuts.wait(5), "the overrun was not cut"
+        assert 0.15 <= time.monotonic() - t0 < 5 and dog.fired == "short"
+    finally:
+        dog.close()
+
+
+def test_the_watchdog_is_not_woken_by_each_step(monkeypatch):
+    """A stream of steps ending well within their time wakes the watchdog's thread a few
+    times at most, not once or twice a step (a thread switch per C-STORE)."""
+    dog = _Watchdog(_CutRecorder())  # type: ignore[arg-type]
+    waits = []
+    real_wait = dog._cond.wait
+    monkeypatch.setattr(dog._cond, "wait", lambda *a: waits.append(a) or real_wait(*a))
+    try:
+        with dog.step(60, "first"):  # the thread now sleeps until this deadline
+            time.sleep(0.1)
+        before = len(waits)
+        for _ in range(200):
+            with dog.step(60, "C-STORE"):
+                time.sleep(0.001)  # time for the thread to run, were it woken
+        time.sleep(0.1)
+        assert len(waits) - before <= 2 and not dog.fired
+    finally:
+        dog.close()

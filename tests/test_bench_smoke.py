@@ -4,6 +4,7 @@ nothing about time: speed is reported by ``tests/bench/bench.py``, not tested)."
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -71,6 +72,11 @@ def test_journals_and_nodes_sections(tmp_path):
     assert journals["delivered"] == 4  # every result at the PACS, on both journals
     nodes = figures["nodes"]
     assert nodes["one_node"] > 0 and nodes["two_nodes"] > 0 and nodes["delivered"] == 4
+    # the same with each node held to a core of its own (where there are two cores)
+    if len(os.sched_getaffinity(0)) >= 2:
+        pinned = nodes["core_each"]
+        assert pinned["one_node"] > 0 and pinned["two_nodes"] > 0 and pinned["delivered"] == 4
+        assert "a core per node" in r.stdout
     assert "two / one" in r.stdout and "PostgreSQL / SQLite" in r.stdout
 
 

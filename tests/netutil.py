@@ -343,12 +343,25 @@ def pynetdicom_echo(port: int, called: str = NODE_AE, calling: str = "ECHOER") -
         assoc.release()
 
 
+#: seconds within which a file storescp is writing may still be incomplete
+WRITING_SECONDS = 5.0
+
+
 def pacs_uids(out_dir: Path) -> list[str]:
-    """SOP Instance UIDs of the files storescp wrote (one per received object)."""
+    """SOP Instance UIDs of the files storescp wrote (one per received object).  storescp
+    writes each file under its final name as the object arrives (with ``+B``, the data set as
+    it comes off the connection), so a file it is writing is left out while it cannot be read
+    and was changed in the last :data:`WRITING_SECONDS`; an older unreadable file is an
+    error."""
     out = []
     for p in sorted(out_dir.glob("*")):
         if p.is_file() and not p.name.startswith("."):
-            out.append(str(pydicom.dcmread(p, stop_before_pixels=True).SOPInstanceUID))
+            try:
+                out.append(str(pydicom.dcmread(p, stop_before_pixels=True).SOPInstanceUID))
+            except Exception:
+                if time.time() - p.stat().st_mtime < WRITING_SECONDS:
+                    continue  # being written: counted once it is complete
+                raise
     return out
 
 

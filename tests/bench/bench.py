@@ -306,18 +306,18 @@ def _cpu_seconds(pid: int) -> float:
     return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
 
 
-def _cmdline(pid: int) -> str:
+def _args(pid: int) -> list[bytes] | None:
+    """A process's command line, argument by argument, from /proc (None when it has gone)."""
     try:
-        return Path(f"/proc/{pid}/cmdline").read_bytes().replace(b"\0", b" ").decode()
+        return Path(f"/proc/{pid}/cmdline").read_bytes().split(b"\0")
     except OSError:
-        return ""
+        return None
 
 
 def _role_of(pid: int) -> str:
     """A node's process by its role: supervisor, receiver, grader, sender."""
-    try:
-        args = Path(f"/proc/{pid}/cmdline").read_bytes().split(b"\0")
-    except OSError:
+    args = _args(pid)
+    if args is None:
         return "?"
     if b"service.network.roles" in args:
         return args[args.index(b"service.network.roles") + 1].decode()
@@ -578,7 +578,7 @@ def _receivers_round(work: Path, files: Sequence[Path], workers: int | None) -> 
         assert node.proc is not None
         pids = [node.proc.pid, *_descendants(node.proc.pid)]
         cpu0 = {pid: _cpu_seconds(pid) for pid in pids}
-        pacs = [p for p in _descendants(os.getpid()) if str(pacs_dir) in _cmdline(p)]
+        pacs = [p for p in _descendants(os.getpid()) if str(pacs_dir).encode() in (_args(p) or [])]
         pacs0 = sum(_cpu_seconds(p) for p in pacs)
         t0 = time.perf_counter()
         t_ack = run_storescu(node.port, NODE_AE, files)
@@ -809,7 +809,7 @@ def bench_nodes(work: Path, n: int, rounds: int, pg: Any) -> dict[str, Any]:
         )
         out[placement] = fig
     # the figures of the shared placement stay where they were (JSON readers)
-    out.update({k: v for k, v in out["shared"].items()})
+    out.update(out["shared"])
     return out
 
 

@@ -63,7 +63,7 @@ from service.sr.content import (
     text_item,
     uidref_item,
 )
-from service.sr.encode import coded_concept, content_sequence, encode_item
+from service.sr.encode import coded_concept, content_sequence, encode_item, file_bytes
 from service.vocabulary.mapper import load_mapping_table
 
 sys.path.insert(0, str(Path(__file__).parent / "bench"))
@@ -307,7 +307,7 @@ def test_extra_patient_and_study_attributes_are_copied_as_highdicom_copies_them(
     src = _demo_source()
     src.SpecificCharacterSet = "ISO_IR 100"
     src.PatientName = "Ní Bhriain^Sorcha"  # Latin-1 in the source, UTF-8 in the result
-    src.PatientAge = "061Y"
+    src.PatientAge = "061Y"  # read by the grading (age-related cut-offs): decoded by then
     src.PatientWeight = "71.5"
     src.PatientSize = "1.64"
     src.IssuerOfPatientID = "HVCC"
@@ -580,6 +580,78 @@ def test_part10_writes_what_pydicom_writes():
     outcome.result.file_meta.TransferSyntaxUID = "1.2.840.10008.1.2"  # implicit VR
     with pytest.raises(ValueError, match="explicit VR little endian"):
         part10(outcome.result)
+
+
+def _read_back(ds: Dataset, *, decoded: bool) -> Dataset:
+    """``ds`` written as a Part 10 file in explicit VR little endian and read again, as the
+    node reads a received object; ``decoded``: every element decoded before grading."""
+    buf = DicomBytesIO()
+    ds.save_as(buf, enforce_file_format=True)
+    again = dcmread(DicomBytesIO(buf.getvalue()))
+    if decoded:
+        for _ in again.iterall():
+            pass
+    return again
+
+
+def _copied_raw(result: Dataset, keyword: str) -> bool:
+    from pydicom.datadict import tag_for_keyword
+    from pydicom.dataelem import RawDataElement
+
+    return isinstance(result.get_item(tag_for_keyword(keyword)), RawDataElement)
+
+
+@pytest.mark.parametrize("charset", ["", "ISO_IR 100", "ISO_IR 192"])
+def test_ascii_source_elements_go_into_the_result_as_read(charset):
+    # PS3.5 6.1: with an ASCII G0 set and no code extension, an ASCII value is the same text in
+    # the source's character set and in the result's UTF-8; such elements are copied as read.
+    # The file must be byte for byte the one made from the same source decoded by pydicom.
+    src = _demo_source()
+    if charset:
+        src.SpecificCharacterSet = charset
+    elif "SpecificCharacterSet" in src:
+        del src.SpecificCharacterSet
+    src.PatientAge = "061Y"  # read by the grading (age-related cut-offs): decoded by then
+    src.StudyDescription = "Transthoracic echo"
+    as_read = grade_study([_read_back(src, decoded=False)], GradeOptions(), content_datetime=WHEN)
+    decoded = grade_study([_read_back(src, decoded=True)], GradeOptions(), content_datetime=WHEN)
+    for keyword in ("PatientID", "PatientName", "StudyDescription", "StudyDate"):
+        assert _copied_raw(as_read.result, keyword), keyword  # the path under test was taken
+        assert not _copied_raw(decoded.result, keyword), keyword
+    assert file_bytes(as_read.result) == file_bytes(decoded.result)
+    # and the same as highdicom's copy (PS3.3 C.7.1.1, C.7.2.1, C.7.2.2)
+    assert_same_as_highdicom([_read_back(src, decoded=False)])
+
+
+def test_source_elements_that_differ_in_utf8_are_decoded_and_encoded_again():
+    # PS3.3 C.12.1.1.2: a Latin-1 name (ISO_IR 100) is different bytes in UTF-8 (ISO_IR 192);
+    # ISO 2022 sets may switch sets with ESC; an odd-length value needs padding (PS3.5 7.1.1)
+    latin = _demo_source()
+    latin.SpecificCharacterSet = "ISO_IR 100"
+    latin.PatientName = "Ní Bhriain^Sorcha"
+    result = grade_study([_read_back(latin, decoded=False)], GradeOptions()).result
+    assert not _copied_raw(result, "PatientName")
+    assert _copied_raw(result, "PatientID")  # ASCII: as read
+    again = dcmread(DicomBytesIO(file_bytes(result)))
+    assert str(again.PatientName) == "Ní Bhriain^Sorcha"
+    assert "Ní".encode() in file_bytes(result)
+
+    iso2022 = _demo_source()
+    iso2022.SpecificCharacterSet = ["", "ISO 2022 IR 87"]
+    result = grade_study([_read_back(iso2022, decoded=False)], GradeOptions()).result
+    assert not _copied_raw(result, "PatientID")
+
+    odd = _read_back(_demo_source(), decoded=False)
+    from pydicom.dataelem import RawDataElement
+    from pydicom.tag import Tag
+
+    pid = odd.get_item(Tag("PatientID"))
+    odd["PatientID"] = RawDataElement(
+        Tag("PatientID"), "LO", 3, b"HV7", pid.value_tell, False, True
+    )  # not padded to even length, as some writers leave it
+    result = grade_study([odd], GradeOptions()).result
+    assert not _copied_raw(result, "PatientID")
+    assert b"HV7 " in file_bytes(result)  # padded with a space (PS3.5 6.2)
 
 
 SR_CLASSES = (

@@ -21,7 +21,8 @@ from dataclasses import dataclass
 from datetime import datetime
 
 from pydicom import Dataset
-from pydicom.datadict import tag_for_keyword
+from pydicom.datadict import dictionary_VR, tag_for_keyword
+from pydicom.dataelem import RawDataElement
 from pydicom.dataset import FileMetaDataset
 from pydicom.sr.coding import Code
 from pydicom.uid import ExplicitVRLittleEndian
@@ -187,6 +188,63 @@ _COPIED_TAGS: tuple[int, ...] = tuple(
     for k in keywords
 )
 
+#: (tag, VR) of each Type 2 attribute filled in empty when the source lacks it
+_TYPE2_TAGS: tuple[tuple[int, str], ...] = tuple(
+    (int(tag_for_keyword(k)), dictionary_VR(k))  # type: ignore[arg-type]
+    for k in TYPE2_FROM_SOURCE
+)
+
+#: Specific Character Set values (PS3.3 C.12.1.1.2) whose G0 set is ASCII and which use no
+#: code extension: in them, as in UTF-8 (ISO_IR 192, the result's), a value made only of
+#: ASCII bytes is the same text.  (ISO_IR 13 is left out: its G0 set is JIS X 0201, which puts
+#: the yen sign at 5C; ISO 2022 sets are left out: their values may switch sets with ESC.)
+_ASCII_G0_CHARSETS = frozenset(
+    {
+        "",
+        "ISO_IR 6",
+        "ISO_IR 100",
+        "ISO_IR 101",
+        "ISO_IR 109",
+        "ISO_IR 110",
+        "ISO_IR 126",
+        "ISO_IR 127",
+        "ISO_IR 138",
+        "ISO_IR 144",
+        "ISO_IR 148",
+        "ISO_IR 166",
+        "ISO_IR 203",
+        "ISO_IR 192",
+    }
+)
+
+
+def _ascii_compatible(ds: Dataset) -> bool:
+    """Whether ``ds``'s character set writes an ASCII-only value as UTF-8 would."""
+    charset = ds.get("SpecificCharacterSet", "")
+    return isinstance(charset, str) and charset.strip() in _ASCII_G0_CHARSETS
+
+
+def _as_encoded(ds: Dataset, tag: int) -> RawDataElement | None:
+    """The element ``tag`` of ``ds`` as read, when it can go into the result byte for byte:
+    not decoded yet, explicit VR little endian with the VR PS3.6 gives the attribute, an even
+    length (PS3.5 7.1.1), not a sequence, and ASCII without ESC.  None otherwise: pydicom
+    decodes it and writes it again, as highdicom's copy would."""
+    elem = ds.get_item(tag)
+    if not isinstance(elem, RawDataElement) or elem.is_implicit_VR or not elem.is_little_endian:
+        return None
+    value = elem.value
+    if (
+        not isinstance(value, bytes)
+        or elem.VR == "SQ"
+        or dictionary_VR(tag) != elem.VR
+        or len(value) % 2
+        or elem.length != len(value)
+        or not value.isascii()
+        or b"\x1b" in value
+    ):
+        return None
+    return elem
+
 
 def references(refs: Sequence[InstanceRef]) -> bytes:
     """The value of a SOP Instance Reference Macro sequence (PS3.3 Table C.17-3): items grouped
@@ -285,8 +343,10 @@ def result_header(
     Character Set ISO_IR 192 (UTF-8).  Creation and content date/time are ``when`` (with its
     offset from UTC when it has one); ``predecessors`` fill the Predecessor Documents Sequence.
 
-    The elements made here are stored already encoded (pydicom writes them as they are); the
-    ones copied from the source are pydicom's, encoded when the document is written."""
+    The elements made here are stored already encoded (pydicom writes them as they are). The
+    ones copied from the source are too when they were read from its bytes and mean the same
+    in UTF-8 (:func:`_as_encoded`); the others are pydicom's, encoded when the document is
+    written."""
     first = evidence[0]
     ds = Dataset()
     meta = FileMetaDataset()
@@ -294,14 +354,21 @@ def result_header(
     meta.MediaStorageSOPInstanceUID = sop_instance_uid
     meta.TransferSyntaxUID = ExplicitVRLittleEndian
     ds.file_meta = meta
-    # Patient, General Study, Patient Study...: copied; the caller's dataset is left unchanged
+    # Patient, General Study, Patient Study...: copied; the caller's dataset is left unchanged.
+    # An element read from the source's bytes that means the same in the result's character
+    # set goes as it was read, others are decoded and written again by pydicom.
     present = first.keys()
+    as_read = _ascii_compatible(first)
     for tag in _COPIED_TAGS:
         if tag in present:
-            ds.add(first[tag])
-    for keyword in TYPE2_FROM_SOURCE:
-        if keyword not in ds:
-            setattr(ds, keyword, "")
+            raw = _as_encoded(first, tag) if as_read else None
+            if raw is not None:
+                ds[tag] = raw
+            else:
+                ds.add(first[tag])
+    for tag, vr in _TYPE2_TAGS:
+        if tag not in ds:
+            _put(ds, tag, vr, b"")
     study_uid = str(first.StudyInstanceUID)
     _uid(ds, 0x0020000D, study_uid)  # Study Instance UID
     # SOP Common, SR Document Series, General Equipment

@@ -489,7 +489,10 @@ def bench_receivers(work: Path, n: int, workers: int | None, rounds: int = 1) ->
     for i, r in enumerate(per_round, 1):
         if rounds > 1:
             say(f"-- round {i}")
-        say(f"pynetdicom storescp (to disk):     {r['pynetdicom_storescp']:8.1f} objects/s")
+        say(
+            f"pynetdicom storescp (to disk):     {r['pynetdicom_storescp']:8.1f} objects/s, "
+            f"{r['pynetdicom_storescp_cpu_ms']:.1f} ms CPU per object"
+        )
         say(
             f"pynetdicom storescp, durable:      {r['pynetdicom_durable']:8.1f} objects/s "
             "(each file and its folder fsync'ed before the response)"
@@ -562,7 +565,10 @@ def _receivers_round(work: Path, files: Sequence[Path], workers: int | None) -> 
 
     warm = warm_up_files(work, "receivers")
     k = len(warm)
-    out["pynetdicom_storescp"] = _bare_receiver(pynetdicom_storescp, work, "pyn", files, warm)
+    bare_cpu: dict[str, float] = {}
+    out["pynetdicom_storescp"] = _bare_receiver(
+        pynetdicom_storescp, work, "pyn", files, warm, cpu=bare_cpu
+    )
     out["pynetdicom_durable"] = _bare_receiver(
         functools.partial(pynetdicom_storescp, durable=True), work, "pyn-durable", files, warm
     )
@@ -593,6 +599,7 @@ def _receivers_round(work: Path, files: Sequence[Path], workers: int | None) -> 
         failed = node.journal_rows("SELECT COUNT(*) FROM studies WHERE state = 'failed'")[0][0]
     out["cpu_ms_per_study"] = cpu
     out["pacs_cpu_ms_per_result"] = pacs_ms
+    out["pynetdicom_storescp_cpu_ms"] = bare_cpu["pyn"]
     out["diastolic_sr_acknowledged"] = n / t_ack
     out["diastolic_sr_end_to_end"] = n / t_all
     out["diastolic_sr_delivered"] = delivered
@@ -605,15 +612,26 @@ def _receivers_round(work: Path, files: Sequence[Path], workers: int | None) -> 
 
 
 def _bare_receiver(
-    server: Callable[..., Any], work: Path, tag: str, files: Sequence[Path], warm: Sequence[Path]
+    server: Callable[..., Any],
+    work: Path,
+    tag: str,
+    files: Sequence[Path],
+    warm: Sequence[Path],
+    cpu: dict[str, float] | None = None,
 ) -> float:
     """objects/s of a bare storescp (pynetdicom's or DCMTK's, writing to disk) under the load,
-    after the same warm-up as the node's."""
+    after the same warm-up as the node's.  With ``cpu``, its CPU per object (ms, every process
+    the server started, from /proc) goes there under ``tag``."""
     port, n, k = free_port(), len(files), len(warm)
+    before = set(_descendants(os.getpid()))
     with server(work / f"{tag}-out", port, work / f"{tag}-storescp.log", ae="BASE") as folder:
         warm_up(port, "BASE", warm, lambda: count_files(folder) >= k)
+        pids = [p for p in _descendants(os.getpid()) if p not in before]
+        cpu0 = {p: _cpu_seconds(p) for p in pids}
         t = run_storescu(port, "BASE", files)
         wait_for(lambda: count_files(folder) >= k + n, 60)
+        if cpu is not None:
+            cpu[tag] = sum(_cpu_seconds(p) - cpu0[p] for p in pids) * 1000 / n
     return n / t
 
 

@@ -191,6 +191,11 @@ class AssemblyConfig(Section):
     #: number of studies graded at the same time, each in a grading process of its own
     #: (default: one per core but one, left to the receiver and the sender; at least one)
     workers: int = Field(default_factory=_graders, ge=1, le=16)
+    #: grading processes of ``serve`` that grade only on CPU time nothing else on the machine
+    #: wants (Linux SCHED_IDLE while grading; their journal work at the normal priority): they
+    #: take up a backlog on cores the receiver and the sender leave idle and give way at once
+    #: when those want the core; 0: none
+    spare_workers: int = Field(default=1, ge=0, le=16)
 
 
 class SenderDefaults(Section):
@@ -589,6 +594,7 @@ RESTART_ONLY: tuple[str, ...] = (
     "tls",
     "http",
     "assembly.workers",
+    "assembly.spare_workers",
     "journal",
     "logging.format",
 )

@@ -7,6 +7,7 @@ bounded; the load is invented (fictional Harbour Vale Cardiac Centre)."""
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import signal
@@ -35,7 +36,7 @@ pytestmark = [
     pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc"),
 ]
 
-ROLES = {"receiver", "grader-1", "grader-2", "sender"}
+ROLES = {"receiver", "grader-1", "grader-2", "grader-spare-1", "sender"}
 
 
 def _children(pid: int) -> dict[str, int]:
@@ -57,10 +58,19 @@ def _children(pid: int) -> dict[str, int]:
 
 
 def _all_roles(node: NodeProcess) -> dict[str, int]:
-    """The role processes of a node, once all four are up."""
+    """The role processes of a node, once all of them are up."""
     assert node.proc is not None
     pid = node.proc.pid
     return wait_for(lambda: (lambda c: c if set(c) == ROLES else None)(_children(pid)), 60)
+
+
+def _policies(pid: int) -> set[int]:
+    """The scheduling classes of a process's threads (Linux: per thread)."""
+    out = set()
+    for task in Path(f"/proc/{pid}/task").glob("*"):
+        with contextlib.suppress(OSError):
+            out.add(os.sched_getscheduler(int(task.name)))
+    return out
 
 
 def _alive(pid: int) -> bool:
@@ -140,13 +150,20 @@ def test_each_role_runs_in_a_process_of_its_own_and_metrics_sum_them(node_proces
     node = node_process()
     assert node.proc is not None
     children = _all_roles(node)
-    assert len(set(children.values())) == 4 and node.proc.pid not in children.values()
+    assert len(set(children.values())) == 5 and node.proc.pid not in children.values()
+    # the spare grader (assembly.spare_workers, one by default) grades on a thread of the
+    # SCHED_IDLE class (sched(7)); its other threads keep the process's class
+    spare = children["grader-spare-1"]
+    policies = wait_for(lambda: _policies(spare) if os.SCHED_IDLE in _policies(spare) else None)
+    assert os.SCHED_OTHER in policies
+    assert os.SCHED_IDLE not in _policies(children["grader-1"])
     studies = [echo_sr(f"roles-{i}", patient_id=f"HV-R-{i}") for i in range(4)]
     assert send(studies, node.port) == [0, 0, 0, 0]
     wait_for(_all_delivered(node.data_dir, studies), 60)
     # each event is logged by the process of the role that did it
     assert {e["process"] for e in _events(node, "object_received")} == {"receiver"}
-    assert {e["process"] for e in _events(node, "study_graded")} <= {"grader-1", "grader-2"}
+    graders = {"grader-1", "grader-2", "grader-spare-1"}
+    assert {e["process"] for e in _events(node, "study_graded")} <= graders
     assert {e["process"] for e in _events(node, "result_delivered")} == {"sender"}
     assert len(pacs.uids()) == 4
     # /metrics: the counters of the role processes, summed (prometheus-client's parser)
@@ -159,7 +176,7 @@ def test_each_role_runs_in_a_process_of_its_own_and_metrics_sum_them(node_proces
     }
     assert samples[("diastolic_sr_objects_received_total", (("outcome", "stored"),))] == 4
     graded = [v for (name, _), v in samples.items() if name == "diastolic_sr_studies_graded_total"]
-    assert sum(graded) == 4  # counted by outcome in two grader processes, summed
+    assert sum(graded) == 4  # counted by outcome in the grader processes, summed
     delivered = (("kind", "result"), ("outcome", "delivered"))
     assert samples[("diastolic_sr_deliveries_total", delivered)] == 4
     assert samples[("diastolic_sr_queue_depth", (("queue", "studies_waiting"),))] == 0
@@ -211,7 +228,7 @@ def test_a_killed_graders_study_is_given_back_at_once(tmp_path, pacs):
 
     cfg = write_config(
         tmp_path / "node.toml",
-        "[assembly]\nworkers = 1\n[journal]\nlease_seconds = 3600\n"
+        "[assembly]\nworkers = 1\nspare_workers = 0\n[journal]\nlease_seconds = 3600\n"
         '[delivery]\nresults_folder = ""\n',
     )
     node = NodeProcess(

@@ -33,6 +33,7 @@ from pydicom import Dataset
 from service.config import Config
 from service.model import InstanceRef
 from service.network.grading_worker import GradeJob, GradeRecord, TableCache, run_job
+from service.network.idle_cpu import IdleThread
 from service.observability.logs import event
 from service.observability.metrics import Metrics
 from service.store.journal import (
@@ -202,6 +203,7 @@ class Grader:
         metrics: Metrics | None = None,
         on_result: Callable[[], None] = lambda: None,
         name: str = "grader",
+        spare: bool = False,
     ) -> None:
         self.config = config
         self.journal = journal
@@ -219,10 +221,21 @@ class Grader:
         self._io_retries: dict[str, int] = {}
         self._outage = OutageLog(name)
         self._thread = threading.Thread(target=self.run, name=name, daemon=True)
+        #: a spare grader grades on a thread of the idle scheduling class (started by start())
+        self.spare = spare
+        self._idle: IdleThread | None = None
 
     # -- the loop ---------------------------------------------------------------------------
 
     def start(self) -> None:
+        if self.spare and self._idle is None:
+            self._idle = IdleThread(f"{self._thread.name}-idle")
+            event(
+                "spare_grader",
+                f"{self._thread.name}: grades on idle CPU time only"
+                + ("" if self._idle.idle_class else " (at niceness 19: no idle class here)"),
+                idle_class=self._idle.idle_class,
+            )
         self._thread.start()
 
     def wake(self) -> None:
@@ -234,6 +247,8 @@ class Grader:
         self._wake.set()
         if self._thread.is_alive():
             self._thread.join(timeout)
+        if self._idle is not None and not self._thread.is_alive():
+            self._idle.close()
 
     @property
     def stopping(self) -> bool:
@@ -367,7 +382,10 @@ class Grader:
             from service.pipeline import grade_study
 
             grade_fn = grade_study
-        return run_job(job, grade_fn, self.mapping_table())
+        table = self.mapping_table()
+        if self._idle is not None:  # a spare grader: only the computing goes to the idle thread
+            return self._idle.run(run_job, job, grade_fn, table)
+        return run_job(job, grade_fn, table)
 
     def grade(self, claim: StudyClaim) -> None:
         summary_to = summary_targets(self.config, claim.calling_ae)

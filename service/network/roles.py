@@ -3,7 +3,8 @@
 
 * ``receiver``: the pynetdicom listener (store durably, journal, acknowledge; nothing else);
   it reports its port, or why it could not listen, in ``run/receiver.json``.
-* ``grader``: one grading loop (:class:`service.network.grader.Grader`).
+* ``grader``: one grading loop (:class:`service.network.grader.Grader`); with ``--spare``, one
+  that grades only on CPU time nothing else wants (``assembly.spare_workers``).
 * ``sender``: the delivery workers, one per destination (:class:`service.network.sender.Sender`).
 
 Every role opens the journal itself and reads the configuration the supervisor wrote
@@ -93,6 +94,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--name", default="")
     p.add_argument("--lifeline", type=int)
     p.add_argument("--poll-seconds", type=float, default=0.5)
+    p.add_argument("--spare", action="store_true", help="grader: grade on idle CPU time only")
     args = p.parse_args(argv)
     from service.network.service import owner_name
 
@@ -196,6 +198,7 @@ def run_grader(config: Config, args: Any, signals: _Signals, run_dir: Path) -> i
         lease_seconds=config.journal.lease_seconds,
         metrics=Metrics(),
         name=args.name or "grader",
+        spare=args.spare,
     )
     return _run_leased(grader, journal, config, signals, run_dir)
 

@@ -76,7 +76,12 @@ def effective_reload(old: Config, new: Config) -> tuple[Config, list[str]]:
             "tls": old.tls,
             "http": old.http,
             "journal": old.journal,
-            "assembly": new.assembly.model_copy(update={"workers": old.assembly.workers}),
+            "assembly": new.assembly.model_copy(
+                update={
+                    "workers": old.assembly.workers,
+                    "spare_workers": old.assembly.spare_workers,
+                }
+            ),
             "logging": new.logging.model_copy(update={"format": old.logging.format}),
         }
     )

@@ -51,7 +51,9 @@ MAX_RESTART_DELAY = 30.0
 @dataclass
 class RoleProcess:
     role: str  # receiver, grader, sender
-    name: str  # receiver, grader-1, ..., sender
+    name: str  # receiver, grader-1, ..., grader-spare-1, ..., sender
+    #: a grader that grades only on otherwise idle CPU time (``assembly.spare_workers``)
+    spare: bool = False
     proc: subprocess.Popen[bytes] | None = None
     owner: str = ""
     started_at: float = 0.0
@@ -117,6 +119,10 @@ class Supervisor(NodeBase):
                 RoleProcess("grader", f"grader-{i}")
                 for i in range(1, self.config.assembly.workers + 1)
             ]
+            self.roles += [
+                RoleProcess("grader", f"grader-spare-{i}", spare=True)
+                for i in range(1, self.config.assembly.spare_workers + 1)
+            ]
             self.roles.append(RoleProcess("sender", "sender"))
             self._write_run_config()
             self._spawn(receiver)
@@ -155,6 +161,7 @@ class Supervisor(NodeBase):
                 str(self._lifeline[0]),
                 "--poll-seconds",
                 str(self._poll),
+                *(["--spare"] if role.spare else []),
             ],
             pass_fds=(self._lifeline[0],),
             env=env,

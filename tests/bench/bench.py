@@ -217,6 +217,9 @@ def process(cmd: Sequence[str], log: Path, **kw: Any) -> Iterator[subprocess.Pop
 #: the DCMTK storescp acting as the node's PACS writes what it receives as received
 #: (``+B``), not parsed and written again; ``--pacs-parses`` turns this off
 PACS_AS_RECEIVED = True
+#: the nodes' spare grading processes (``assembly.spare_workers``; None: the node's default);
+#: ``--spare-workers``
+SPARE_WORKERS: int | None = None
 
 
 @contextlib.contextmanager
@@ -315,12 +318,13 @@ def _args(pid: int) -> list[bytes] | None:
 
 
 def _role_of(pid: int) -> str:
-    """A node's process by its role: supervisor, receiver, grader, sender."""
+    """A node's process by its role: supervisor, receiver, grader, spare grader, sender."""
     args = _args(pid)
     if args is None:
         return "?"
     if b"service.network.roles" in args:
-        return args[args.index(b"service.network.roles") + 1].decode()
+        role = args[args.index(b"service.network.roles") + 1].decode()
+        return f"spare {role}" if b"--spare" in args else role
     return "supervisor"
 
 
@@ -359,14 +363,17 @@ class Node:
         journal: str = "",
         pg_password: str = "",
         cpus: set[int] | None = None,
+        spare_workers: int | None = None,
     ) -> None:
         self.data = work / f"{name}-data"
         #: the CPUs the node and all its processes may run on (None: any)
         self.cpus = cpus
         self.config = work / f"{name}.toml"
-        # None: the node's own default (assembly.workers left out)
-        line = "" if workers is None else f"workers = {workers}"
-        self.config.write_text(NODE_CONFIG.format(workers=line))
+        # None: the node's own default (assembly.workers, assembly.spare_workers left out)
+        lines = [] if workers is None else [f"workers = {workers}"]
+        spare = SPARE_WORKERS if spare_workers is None else spare_workers
+        lines += [] if spare is None else [f"spare_workers = {spare}"]
+        self.config.write_text(NODE_CONFIG.format(workers="\n".join(lines)))
         self.log = work / f"{name}.log"
         self.pacs_port = pacs_port
         self.port = free_port()
@@ -798,6 +805,7 @@ def bench_nodes(work: Path, n: int, rounds: int, pg: Any) -> dict[str, Any]:
                                 w,
                                 pacs_port,
                                 workers=1,
+                                spare_workers=0,  # one grading process per node
                                 name=f"{setup}-{k}",
                                 journal=url,
                                 pg_password=NODE_PASSWORD,
@@ -1282,6 +1290,11 @@ def parse(argv: list[str] | None) -> argparse.Namespace:
         help="node grading processes (default: the node's own, one per core but one)",
     )
     p.add_argument(
+        "--spare-workers",
+        type=int,
+        help="node grading processes on idle CPU time only (default: the node's own, one)",
+    )
+    p.add_argument(
         "--rounds",
         type=int,
         default=3,
@@ -1313,8 +1326,9 @@ def parse(argv: list[str] | None) -> argparse.Namespace:
 
 def main(argv: list[str] | None = None) -> int:
     args = parse(argv)
-    global PACS_AS_RECEIVED
+    global PACS_AS_RECEIVED, SPARE_WORKERS
     PACS_AS_RECEIVED = not args.pacs_parses
+    SPARE_WORKERS = args.spare_workers
     sections = [s.strip() for s in args.sections.split(",") if s.strip()]
     unknown = set(sections) - set(SECTIONS)
     if unknown:

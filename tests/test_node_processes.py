@@ -180,6 +180,13 @@ def test_each_role_runs_in_a_process_of_its_own_and_metrics_sum_them(node_proces
     delivered = (("kind", "result"), ("outcome", "delivered"))
     assert samples[("diastolic_sr_deliveries_total", delivered)] == 4
     assert samples[("diastolic_sr_queue_depth", (("queue", "studies_waiting"),))] == 0
+    # the status page names each process in words, not as a data structure
+    status, body = _http(node, "/")
+    page = body.decode()
+    assert status == 200
+    for name, pid in children.items():
+        assert f"{name} running (process {pid})" in page
+    assert "alive" not in page and "restarts" not in page
     # /healthz: every role's process
     status, body = _http(node, "/healthz")
     report = json.loads(body)

@@ -33,7 +33,7 @@ from pydantic import (
 
 from service.errors import UserError
 from service.grading import IMPLEMENTED_GUIDELINES, NOT_AVAILABLE, RuleSwitches
-from service.model import Context, Guideline, Rhythm, SpecialSituation
+from service.model import SETTABLE_RHYTHMS, Context, Guideline, Rhythm, SpecialSituation
 
 #: the route that applies to a calling AE with no route of its own
 DEFAULT_ROUTE = "*"
@@ -205,6 +205,14 @@ class SenderDefaults(Section):
     myocardial_disease: bool = False
     #: special situations (valve disease, transplant, ...) that always apply to this sender
     special_situations: list[SpecialSituation] = Field(default_factory=list)
+
+    @field_validator("rhythm")
+    @classmethod
+    def _settable(cls, v: Rhythm) -> Rhythm:
+        if v not in SETTABLE_RHYTHMS:
+            allowed = ", ".join(r.value for r in SETTABLE_RHYTHMS)
+            raise ValueError(f"'{v.value}' is only ever stated by an SR; allowed: {allowed}")
+        return v
 
 
 class GradingConfig(Section):

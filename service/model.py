@@ -13,7 +13,7 @@ from __future__ import annotations
 
 from enum import StrEnum
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 #: Shown on every result (table, JSON, result SR, summary).  Wording is the project's own.
 CAUTION = (
@@ -280,6 +280,14 @@ class Rhythm(StrEnum):
     sinus = "sinus"
     af = "af"
     unknown = "unknown"
+    #: a rhythm the source SR states that is neither sinus rhythm nor atrial fibrillation
+    #: (atrial flutter, a paced rhythm, ...): the guidelines' algorithms do not cover it, and
+    #: it is never configured (only a coded Cardiac Rhythm item can state it)
+    other = "other"
+
+
+#: the rhythms a sender default or a command-line option may set
+SETTABLE_RHYTHMS = (Rhythm.sinus, Rhythm.af, Rhythm.unknown)
 
 
 class Context(Frozen):
@@ -295,11 +303,19 @@ class Context(Frozen):
     special_situations: frozenset[SpecialSituation] = frozenset()
     #: where the rhythm came from, in plain words ("coded Cardiac Rhythm item", "sender default")
     rhythm_source: str = ""
+    #: the coded rhythm the source states when it is ``Rhythm.other`` (e.g. atrial flutter)
+    rhythm_code: Code | None = None
     #: the special situations the source SR states itself by a coded finding (a subset of
     #: ``special_situations``; :mod:`service.sr.situations`), so the result can say so
     situations_stated: frozenset[SpecialSituation] = frozenset()
     #: a value within this fraction of a cut-off is "near" it (borderline check); 0 disables
     borderline_fraction: float = 0.10
+
+    @model_validator(mode="after")
+    def _other_rhythm_is_coded(self) -> Context:
+        if (self.rhythm is Rhythm.other) != (self.rhythm_code is not None):
+            raise ValueError("a rhythm code is given exactly when the rhythm is 'other'")
+        return self
 
 
 class Grade(StrEnum):
@@ -312,6 +328,19 @@ class Grade(StrEnum):
     #: no grade because the guideline gives none here: atrial fibrillation (filling pressure
     #: only), a special situation (alternative criteria, or the standard algorithm not applicable)
     not_applicable = "not-applicable"
+
+
+class GradeRange(StrEnum):
+    """How far an algorithm narrowed a grade it could not give: the grade stays
+    ``indeterminate`` and the result says what is known."""
+
+    #: ASE/EACVI 2016: Algorithm A found diastolic dysfunction, Algorithm B could not grade it
+    #: (shared reference §2.1: report both results)
+    dysfunction_present = "dysfunction-present"
+    #: ASE 2025: raised LAP, E/A not available to tell grade II from III (reading I-25-8)
+    grade_2_or_3 = "grade-2-or-3"
+    #: ASE 2025: normal LAP, e′ not available to tell normal from grade I (reading I-25-7)
+    normal_or_grade_1 = "normal-or-grade-1"
 
 
 class FillingPressure(StrEnum):
@@ -442,12 +471,22 @@ class Assessment(Frozen):
     #: algorithm assumed): a result says each once (:attr:`AssessmentSet.context_notes`)
     context_notes: tuple[str, ...] = ()
     rhythm: Rhythm = Rhythm.unknown
+    #: the coded rhythm the source states when ``rhythm`` is ``Rhythm.other``
+    rhythm_code: Code | None = None
+    #: what an indeterminate grade was narrowed to (None: nothing, or the grade was given)
+    grade_range: GradeRange | None = None
     special_situations: tuple[SpecialSituation, ...] = ()
     borderline: tuple[BorderlineFlag, ...] = ()
     supporting: tuple[SupportingFinding, ...] = ()
     #: the project's readings of ambiguous published rules that this result relied on
     readings: tuple[Reading, ...] = ()
     caution: str = CAUTION
+
+    @model_validator(mode="after")
+    def _range_only_without_grade(self) -> Assessment:
+        if self.grade_range is not None and self.grade is not Grade.indeterminate:
+            raise ValueError("a grade range is given only when the grade is indeterminate")
+        return self
 
     @property
     def is_borderline(self) -> bool:

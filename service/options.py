@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from service.model import Context, Guideline, Rhythm, SpecialSituation
+from service.model import SETTABLE_RHYTHMS, Context, Guideline, Rhythm, SpecialSituation
 from service.pipeline import GradeOptions
 
 
@@ -24,7 +24,7 @@ def add_grading_arguments(p: argparse.ArgumentParser) -> None:
     )
     g.add_argument(
         "--rhythm",
-        choices=[x.value for x in Rhythm],
+        choices=[x.value for x in SETTABLE_RHYTHMS],
         default=Rhythm.unknown.value,
         help="rhythm when the SR does not state it (a coded Cardiac Rhythm item wins)",
     )

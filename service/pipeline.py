@@ -21,6 +21,7 @@ from service.grading import RuleSwitches
 from service.model import (
     Assessment,
     AssessmentSet,
+    Code,
     CodedItem,
     Context,
     Frozen,
@@ -76,25 +77,47 @@ class StudyOutcome(Frozen):
 
 # Rhythm values that the reader may find in a coded Cardiac Rhythm item (8884-9 LN).
 CARDIAC_RHYTHM = ("LN", "8884-9")
+#: atrial fibrillation: SNOMED CT (PS3.16 CID 3230, 3700) and the ECG code (CID 3415)
 AF_VALUES = {("SCT", "49436004"), ("MDC", "10:9472")}
-SINUS_VALUES = {("SCT", "64730000"), ("SCT", "106067008")}
+#: sinus rhythm in the forms that leave mitral inflow usable: normal sinus rhythm (SCT, CID
+#: 3826); 106067008 SCT "Sinus rhythm" (from memory: not in pydicom's PS3.16 dictionary); and
+#: from CID 3415 "Cardiac Rhythm": sinus rhythm, normal sinus rhythm, sinus bradycardia and
+#: the sinus arrhythmias (respiratory and non-respiratory).  Sinus tachycardia is not among
+#: them: with it E and A may fuse and the guidelines treat it apart.
+SINUS_VALUES = {
+    ("SCT", "64730000"),
+    ("SCT", "106067008"),
+    ("MDC", "10:9216"),
+    ("MDC", "10:9232"),
+    ("MDC", "10:9248"),
+    ("MDC", "10:9280"),
+    ("MDC", "10:9296"),
+    ("MDC", "10:9312"),
+}
+#: values that say the rhythm is not known: read as no statement at all (SCT "Undetermined",
+#: CID 230; SCT "Unknown", CID 3703)
+UNSTATED_VALUES = {("SCT", "373068000"), ("SCT", "261665006")}
 #: where a coded rhythm came from, in words (the source's UID is in the result's evidence list)
 SOURCE_RHYTHM = "stated by a coded Cardiac Rhythm item in the source SR"
 
 
 def rhythm_from_documents(
     documents: Sequence[SourceDocument],
-) -> tuple[Rhythm, str] | None:
-    """The rhythm stated by a coded Cardiac Rhythm item, newest document first."""
+) -> tuple[Rhythm, str, Code | None] | None:
+    """The rhythm stated by a coded Cardiac Rhythm item, newest document first: sinus rhythm,
+    atrial fibrillation, or any other stated rhythm (atrial flutter, a paced rhythm, sinus
+    tachycardia, a code this service does not know) as ``Rhythm.other`` with its code, so that
+    a configured default never stands in for a rhythm the source states."""
     for doc in sorted(documents, key=lambda d: d.created, reverse=True):
         item: CodedItem
         for item in doc.coded_items:
-            if item.concept.key != CARDIAC_RHYTHM:
+            if item.concept.key != CARDIAC_RHYTHM or item.value.key in UNSTATED_VALUES:
                 continue
             if item.value.key in AF_VALUES:
-                return Rhythm.af, SOURCE_RHYTHM
+                return Rhythm.af, SOURCE_RHYTHM, None
             if item.value.key in SINUS_VALUES:
-                return Rhythm.sinus, SOURCE_RHYTHM
+                return Rhythm.sinus, SOURCE_RHYTHM, None
+            return Rhythm.other, SOURCE_RHYTHM, item.value
     return None
 
 
@@ -116,8 +139,10 @@ def effective_context(documents: Sequence[SourceDocument], context: Context) -> 
         if context.rhythm_source or context.rhythm is Rhythm.unknown:
             return context  # an unstated rhythm is said once, by the assessment's note
         return context.model_copy(update={"rhythm_source": "the configured default"})
-    rhythm, source = found
-    return context.model_copy(update={"rhythm": rhythm, "rhythm_source": source})
+    rhythm, source, code = found
+    return context.model_copy(
+        update={"rhythm": rhythm, "rhythm_source": source, "rhythm_code": code}
+    )
 
 
 def study_order(datasets: Sequence[Dataset]) -> list[Dataset]:

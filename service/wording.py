@@ -16,12 +16,15 @@ from collections.abc import Iterable
 
 from service.model import (
     Assessment,
+    Code,
     FillingPressure,
     Grade,
+    GradeRange,
     Guideline,
     Measure,
     Outcome,
     Pathway,
+    Rhythm,
     SpecialSituation,
 )
 
@@ -60,6 +63,13 @@ GRADE_WORDS: dict[Grade, str] = {
     Grade.indeterminate: "diastolic function indeterminate",
     Grade.not_gradable: "diastolic function not gradable",
     Grade.not_applicable: "no grade",
+}
+
+#: an indeterminate grade narrowed by the algorithm, inside a sentence (lower case)
+GRADE_RANGE_WORDS: dict[GradeRange, str] = {
+    GradeRange.dysfunction_present: "diastolic dysfunction present, grade indeterminate",
+    GradeRange.grade_2_or_3: "grade II or III diastolic dysfunction",
+    GradeRange.normal_or_grade_1: "normal diastolic function or grade I diastolic dysfunction",
 }
 
 #: a grade as a short name ("grade II"), for criteria and reasoning
@@ -187,6 +197,16 @@ def sentence_start(text: str) -> str:
     return text[:1].upper() + text[1:] if ordinary else text
 
 
+def rhythm_name(code: Code | None) -> str:
+    """A stated rhythm as it reads inside a sentence, from its code meaning: each ordinary
+    capitalised word lowered ("Ventricular Demand Mode Pacing" → "ventricular demand mode
+    pacing"), abbreviations and names kept ("AV junctional (nodal) rhythm")."""
+    meaning = " ".join((code.meaning if code is not None else "").split())
+    if not meaning:
+        return "a rhythm other than sinus rhythm or atrial fibrillation"
+    return " ".join(in_sentence(word) for word in meaning.split(" "))
+
+
 def situation_name(situation: SpecialSituation) -> str:
     """ "mitral stenosis", "LBBB or ventricular pacing" (inside a sentence)."""
     return SITUATION_NAMES.get(situation, situation.value.replace("-", " "))
@@ -219,6 +239,8 @@ def outcome_phrase(a: Assessment) -> str:
         head = "no grade (atrial fibrillation)"
     elif outcome is Outcome.special_situation:
         head = "no grade (special situation)"
+    elif a.grade_range is not None:
+        head = GRADE_RANGE_WORDS[a.grade_range]
     else:
         head = GRADE_WORDS[a.grade]
     return f"{head}, {pressure_phrase(a.filling_pressure)}"
@@ -239,8 +261,13 @@ def headline(a: Assessment) -> str:
         if a.pathway is Pathway.special_situation:
             by = f" by the {guideline} criteria for {named}" if estimated else ""
             return f"{OUTCOME_WORDS[outcome]} in {named}; {pressure}{by}."
-        why = f"in {named}" if named else "(atrial fibrillation not excluded)"
+        if a.rhythm is Rhythm.other:
+            why = f"in {rhythm_name(a.rhythm_code)}"
+        else:
+            why = f"in {named}" if named else "(atrial fibrillation not excluded)"
         return f"{OUTCOME_WORDS[outcome]} {why}: the standard algorithm does not apply; {pressure}."
+    if a.grade_range is not None:
+        return f"{sentence_start(GRADE_RANGE_WORDS[a.grade_range])}; {pressure}."
     return f"{OUTCOME_WORDS[outcome]}; {pressure}."
 
 

@@ -30,6 +30,8 @@ from service.grading.compare import assess_all
 from service.model import (
     CANONICAL_UNITS,
     CAUTION,
+    SETTABLE_RHYTHMS,
+    Code,
     Context,
     FillingPressure,
     Grade,
@@ -104,9 +106,15 @@ def measurement_sets(draw) -> Measurements:
     return Measurements(values=values)
 
 
+#: a stated rhythm that is neither sinus rhythm nor AF comes with its code (PS3.16 CID 3415)
+FLUTTER = Code(value="10:9456", scheme="MDC", meaning="Atrial flutter")
+rhythms = st.one_of(
+    st.sampled_from(SETTABLE_RHYTHMS).map(lambda r: {"rhythm": r}),
+    st.just({"rhythm": Rhythm.other, "rhythm_code": FLUTTER}),
+)
 contexts = st.builds(
-    Context,
-    rhythm=st.sampled_from(list(Rhythm)),
+    lambda rhythm, **kw: Context(**rhythm, **kw),
+    rhythm=rhythms,
     myocardial_disease=st.booleans(),
     lvef_reduced_below=st.sampled_from([40.0, 50.0, 52.0]),
     min_criteria_available=st.integers(min_value=0, max_value=5),
@@ -180,7 +188,12 @@ def test_any_input_gives_a_consistent_assessment(
         assert a.caution == CAUTION
         assert a.pathway_reason
         assert a.reasoning
-        if ctx.special_situations:
+        if ctx.rhythm is Rhythm.other:
+            # a stated rhythm the algorithms do not cover: no grade and no estimate, whatever
+            # else applies (shared reference §1.1)
+            assert a.pathway is Pathway.not_applicable
+            assert a.filling_pressure is FillingPressure.not_estimated
+        elif ctx.special_situations:
             # issue contract: alternative criteria or a stated "not applicable", never a grade
             assert a.pathway in {Pathway.special_situation, Pathway.not_applicable}
         elif ctx.rhythm is Rhythm.af:

@@ -25,6 +25,7 @@ from service.model import (
     Context,
     FillingPressure,
     Grade,
+    GradeRange,
     Guideline,
     Measure,
     Measurements,
@@ -93,10 +94,17 @@ def _assess(
         "guideline_citation": CITATION,
         "rule_set_version": RULE_SET_VERSION,
         "rhythm": context.rhythm,
+        "rhythm_code": context.rhythm_code,
         "special_situations": tuple(sorted(context.special_situations)),
         "caution": CAUTION,
     }
 
+    # a stated rhythm the algorithms do not cover (atrial flutter, pacing, ...): no grade,
+    # whatever else applies (shared reference §1.1)
+    if context.rhythm is Rhythm.other:
+        return special_situations.rhythm_not_covered(
+            measurements, context, Guideline.ase_eacvi_2016, CITATION, RULE_SET_VERSION
+        )
     # special populations take precedence over the rhythm (shared reference §1.4)
     if context.special_situations:
         return special_situations.assess(
@@ -175,6 +183,7 @@ def _assess(
         notes=tuple(trace.notes),
         context_notes=tuple(trace.context_notes),
         readings=tuple(trace.readings),
+        grade_range=trace.grade_range,
     )
 
 
@@ -271,7 +280,10 @@ def _algorithm_a(
             f"Algorithm A: {counted} (more than half): diastolic dysfunction present; "
             "Algorithm B (Figure 8B) grades it."
         )
-        return _algorithm_b(trace, lvef_depressed)
+        result = _algorithm_b(trace, lvef_depressed)
+        if result[0] is Grade.indeterminate:  # the dysfunction stands; only its grade is open
+            trace.grade_range = GradeRange.dysfunction_present
+        return result
     if 2 * t.met == t.available:
         trace.reasoning.append(
             f"Algorithm A: {counted} (exactly half): diastolic function indeterminate."

@@ -29,6 +29,7 @@ from service.model import (
     Context,
     FillingPressure,
     Grade,
+    GradeRange,
     Guideline,
     Measure,
     Measurements,
@@ -106,6 +107,12 @@ def assess(
 
 
 def _assess(measurements: Measurements, context: Context, opts: Ase2025Options) -> Assessment:
+    # a stated rhythm the algorithms do not cover (atrial flutter, pacing, ...): no grade,
+    # whatever else applies (shared reference §1.1)
+    if context.rhythm is Rhythm.other:
+        return special_situations.rhythm_not_covered(
+            measurements, context, Guideline.ase_2025, CITATION, RULE_SET_VERSION
+        )
     if context.special_situations:
         return special_situations.assess(
             measurements, context, Guideline.ase_2025, CITATION, RULE_SET_VERSION
@@ -150,6 +157,7 @@ def _assess(measurements: Measurements, context: Context, opts: Ase2025Options) 
         notes=tuple(trace.notes),
         context_notes=tuple(trace.context_notes),
         readings=tuple(trace.readings),
+        grade_range=trace.grade_range,
     )
 
 
@@ -367,6 +375,7 @@ def _grade(trace: Trace, lap: FillingPressure, e: Verdict) -> _Result:
         trace.say("Normal LAP but e′ is not available: the grade cannot be assigned.")
         trace.note("Normal LAP; grade not assignable without e′ (normal or grade I).")
         trace.reading("I-25-7")
+        trace.grade_range = GradeRange.normal_or_grade_1
         return Grade.indeterminate, FillingPressure.normal
     c = trace.check(T.E_A_HIGH, "ase25.grade.e_a_ratio_high", STEP_GRADE)
     if e is Verdict.not_met:
@@ -379,6 +388,7 @@ def _grade(trace: Trace, lap: FillingPressure, e: Verdict) -> _Result:
         trace.say("Raised LAP but E/A is not available: grade II or III.")
         trace.reading("I-25-8")
         trace.note("Raised LAP; E/A needed to tell grade II from grade III.")
+        trace.grade_range = GradeRange.grade_2_or_3
         return Grade.indeterminate, FillingPressure.elevated
     if c.verdict is Verdict.met:
         trace.say("Raised LAP with E/A ≥ 2: grade III.")

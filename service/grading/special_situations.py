@@ -59,6 +59,7 @@ from service.model import (
 from service.wording import (
     STATED_BY_FINDING,
     count_of,
+    rhythm_name,
     sentence_start,
     situation_name,
     supporting_count,
@@ -501,5 +502,37 @@ def possible_af(
         reasoning=(
             "State the rhythm (coded Cardiac Rhythm item, sender or run setting) to grade by the "
             "sinus-rhythm or the atrial-fibrillation rules.",
+        ),
+    )
+
+
+def rhythm_not_covered(
+    measurements: Measurements,
+    context: Context,
+    guideline: Guideline,
+    citation: str,
+    version: str,
+) -> Assessment:
+    """The source states a rhythm that is neither sinus rhythm nor atrial fibrillation (atrial
+    flutter, a paced rhythm, sinus tachycardia, ...): the guideline's algorithms are for sinus
+    rhythm, with criteria of their own for atrial fibrillation, so no grade and no estimate
+    (shared reference §1.1: other rhythms "go to special handling"; ASE/EACVI 2016, mitral
+    inflow table: in atrial flutter E, E/A and DT are not usable)."""
+    label = _LABEL.get(guideline, guideline.value)
+    stated = rhythm_name(context.rhythm_code)
+    src = f" ({context.rhythm_source})" if context.rhythm_source else ""
+    reason = (
+        f"{stated}{src}: the {label} algorithms are for sinus rhythm, with criteria of their "
+        "own for atrial fibrillation, and neither applies to this rhythm"
+    )
+    return Assessment(
+        **base_fields(guideline, citation, version, context),
+        pathway=Pathway.not_applicable,
+        pathway_reason=reason,
+        grade=Grade.not_applicable,
+        filling_pressure=FillingPressure.not_estimated,
+        reasoning=(
+            "Mitral inflow, e′ and E/e′ are read against sinus-rhythm or atrial-fibrillation "
+            "criteria only; a qualified reader assesses diastolic function in this rhythm.",
         ),
     )

@@ -15,6 +15,7 @@ from service.model import (
     CAUTION,
     Context,
     Criterion,
+    GradeRange,
     Guideline,
     Measurements,
     Reading,
@@ -34,6 +35,8 @@ class Trace:
     #: notes about the study that hold whichever guideline is applied (said once per result)
     context_notes: list[str] = field(default_factory=list)
     readings: list[Reading] = field(default_factory=list)
+    #: what an indeterminate grade was narrowed to, when the algorithm got that far
+    grade_range: GradeRange | None = None
 
     def check(
         self,
@@ -107,6 +110,7 @@ def base_fields(
         "guideline_citation": citation,
         "rule_set_version": version,
         "rhythm": context.rhythm,
+        "rhythm_code": context.rhythm_code,
         "special_situations": tuple(sorted(context.special_situations)),
         "caution": CAUTION,
     }

@@ -42,6 +42,7 @@ from datetime import datetime
 from pydicom import Dataset
 from pydicom.dataelem import RawDataElement
 from pydicom.filewriter import correct_ambiguous_vr
+from pydicom.sr.coding import Code as PydicomCode
 
 import service
 from service.errors import UserError
@@ -57,6 +58,7 @@ from service.model import (
     MeasureValue,
     Origin,
     Reading,
+    Rhythm,
     SupportingFinding,
     Verdict,
 )
@@ -160,6 +162,21 @@ def _text(name: C.CodeDef, value: str, rel: Rel) -> Item:
 
 def _code(name: C.CodeDef, value: C.CodeDef, rel: Rel) -> Item:
     return code_item(name.code, value.code, rel)
+
+
+def _rhythm_item(a: Assessment) -> Item:
+    """The Cardiac Rhythm the assessment went by: sinus rhythm, atrial fibrillation or
+    undetermined; a stated rhythm of another kind as the source coded it (or undetermined when
+    that code cannot be written as is; the pathway's reason names the rhythm in words)."""
+    code = a.rhythm_code
+    if a.rhythm is Rhythm.other and code is not None:
+        try:
+            stated = PydicomCode(code.value, code.scheme, " ".join(code.meaning.split()))
+            return code_item(C.CARDIAC_RHYTHM.code, stated, Rel.CONTAINS)
+        except ValueError:
+            pass
+    value = C.RHYTHM_VALUES.get(a.rhythm, C.UNDETERMINED)
+    return _code(C.CARDIAC_RHYTHM, value, Rel.CONTAINS)
 
 
 def _num(name: C.CodeDef, value: float, unit: str, rel: Rel) -> Item:
@@ -316,7 +333,7 @@ def assessment_container(
         said[_sentence_key(a.pathway_reason)] = reason
         pathway = _with(pathway, [reason])
     items.append(pathway)
-    items.append(_code(C.CARDIAC_RHYTHM, C.RHYTHM_VALUES[a.rhythm], Rel.CONTAINS))
+    items.append(_rhythm_item(a))
     for s in a.special_situations:
         items.append(_code(C.SPECIAL_SITUATION, C.SPECIAL_SITUATION_VALUES[s], Rel.CONTAINS))
     # each criterion once; both conclusions refer to the criteria by reference (a grade the

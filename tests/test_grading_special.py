@@ -349,6 +349,31 @@ def test_two_situations_with_rules_disagreeing_is_indeterminate():
     assert b.filling_pressure is ELEVATED
 
 
+def test_a_situation_rule_without_data_neither_decides_nor_disagrees():
+    # hypertrophic cardiomyopathy with none of its criteria, pulmonary hypertension with
+    # lateral E/e′ > 13 (Nagueh 2016 §V, from memory: a left-heart cause, raised pressure):
+    # the second rule decides alone
+    a = run(
+        Guideline.ase_eacvi_2016,
+        S.hypertrophic_cardiomyopathy,
+        S.pulmonary_hypertension_non_cardiac,
+        e_e_prime_lateral=15,
+    )
+    assert a.filling_pressure is ELEVATED
+    assert not any("disagree" in r for r in a.reasoning)
+    # hypertrophic cardiomyopathy without data, mitral regurgitation with its criteria (listed
+    # without a combining rule): indeterminate by reading I-16-15, not "not estimated"
+    b = run(
+        Guideline.ase_eacvi_2016,
+        S.hypertrophic_cardiomyopathy,
+        S.mitral_regurgitation,
+        ivrt=50,
+        lvef=60,
+    )
+    assert b.filling_pressure is INDET
+    assert "I-16-15" in {r.id for r in b.readings}
+
+
 def test_special_situation_takes_precedence_over_af():
     # reference §1.4: special-population routing first; AF is noted
     c = ctx(S.pulmonary_hypertension_non_cardiac, rhythm=Rhythm.af, rhythm_source="run setting")

@@ -239,7 +239,9 @@ def _rhythm_sentence(context: Context) -> str:
 
 
 def _combine(trace: Trace, outcomes: list[_Outcome]) -> FillingPressure:
-    stated = [o for o in outcomes if o.pressure is not None]
+    # a rule that had no data ("not estimated") states nothing: it neither decides nor
+    # disagrees with a rule that had data
+    stated = [o for o in outcomes if o.pressure not in (None, FillingPressure.not_estimated)]
     for o in outcomes:
         trace.say(o.summary)
     if not stated:

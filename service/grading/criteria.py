@@ -46,8 +46,11 @@ class Threshold:
     value: float
     unit: str  # unit as shown to readers ("" for ratios)
     citation: str  # e.g. "Nagueh 2016 JASE 29:277, Fig 8A"
-    #: evidence behind the row: "R" recalled from the primary paper, "V" confirmed in a retrieved
-    #: source, "R+V" both, "I" an interpretation (see ``reading``)
+    #: evidence behind the row as the project's reference note on the algorithms tags it: "R"
+    #: recalled from the primary paper, "V" confirmed in a retrieved source, "R+V" both, "I" an
+    #: interpretation (see ``reading``).  The project's own check against stored copies,
+    #: docs/guideline-verification.md, did not find every "V" row (A16-SL, A16-B1, A16-B2,
+    #: A25-5, A25-AF1 to AF3 there are NOT FOUND): there the tag is the reference's, not ours.
     evidence: str
     #: identifier of the project's reading of an ambiguity that the row depends on
     #: (:mod:`service.grading.readings`), "" when the row is as published

@@ -178,7 +178,9 @@ E_A_HIGH = Threshold(
     citation=f"{PAPER}, Figure 3 (raised LAP with E/A ≥ 2: grade III, else grade II)",
     evidence="R",
 )
-#: used only with the switch that asks for E/A ≤ 0.8 before reduced e′ alone means grade 1
+#: not used by the grading (no rule switch offers the secondary reading that asks for E/A ≤ 0.8
+#: before reduced e′ alone means grade 1); kept only as a value the audit's counterfactual
+#: probes on either side of (service.audit.counterfactual)
 E_A_LOW = Threshold(
     key="e_a_ratio_low",
     name="E/A",
@@ -187,8 +189,8 @@ E_A_LOW = Threshold(
     value=0.8,
     unit="",
     citation=(
-        f"{PAPER}, Figure 3 (reduced e′ alone: grade I only with E/A ≤ 0.8 in the secondary "
-        "reading; switch, default off)"
+        f"{PAPER}, Figure 3 (reduced e′ alone: grade I only with E/A ≤ 0.8 in a secondary "
+        "reading that this service does not apply)"
     ),
     evidence="V",
 )

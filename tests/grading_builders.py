@@ -31,3 +31,17 @@ def sinus(**kw: object) -> Context:
     kw.setdefault("rhythm", Rhythm.sinus)
     kw.setdefault("borderline_fraction", 0.0)
     return Context(**kw)
+
+
+#: a normal-LVEF study that the sinus-rhythm algorithm grades (grade II) when neither a special
+#: situation nor another rhythm applies (invented values)
+GRADE_2_STUDY: dict[Measure, float] = {
+    Measure.lvef: 60,
+    Measure.mitral_e: 146,
+    Measure.mitral_a: 172,
+    Measure.ivrt: 52,
+    Measure.e_prime_septal: 6.4,
+    Measure.e_prime_lateral: 8.1,
+    Measure.tr_peak_velocity: 2.9,
+    Measure.lavi: 52,
+}

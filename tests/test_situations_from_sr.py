@@ -11,6 +11,7 @@ Patients and values are invented (fictional Harbour Vale Cardiac Centre).
 from __future__ import annotations
 
 import pytest
+from grading_builders import GRADE_2_STUDY
 from pydicom.sr._cid_dict import cid_concepts
 from pydicom.sr._concepts_dict import concepts
 
@@ -22,16 +23,7 @@ from service.wording import STATED_BY_FINDING, headline
 
 MS = Code(value="79619009", scheme="SCT", meaning="Mitral stenosis")
 #: a normal-LVEF study that the standard algorithm grades (grade II) when no situation applies
-VALUES = {
-    Measure.lvef: 60,
-    Measure.mitral_e: 146,
-    Measure.mitral_a: 172,
-    Measure.ivrt: 52,
-    Measure.e_prime_septal: 6.4,
-    Measure.e_prime_lateral: 8.1,
-    Measure.tr_peak_velocity: 2.9,
-    Measure.lavi: 52,
-}
+VALUES = GRADE_2_STUDY
 
 
 def _sr(seed: str, *, findings=(), raw_content=()):

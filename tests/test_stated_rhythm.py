@@ -17,8 +17,10 @@ Patients and values are invented (fictional Harbour Vale Cardiac Centre).
 from __future__ import annotations
 
 import pytest
+from grading_builders import GRADE_2_STUDY
 from pydicom.sr._cid_dict import cid_concepts
 from pydicom.sr._concepts_dict import concepts
+from test_write import walk
 
 from service.config import config_from_dict
 from service.errors import UserError
@@ -28,7 +30,6 @@ from service.model import (
     FillingPressure,
     Grade,
     Guideline,
-    Measure,
     Outcome,
     Pathway,
     Rhythm,
@@ -49,16 +50,7 @@ PACED = Code(value="10:10240", scheme="MDC", meaning="Ventricular Demand Mode Pa
 SINUS_BRADY = Code(value="10:9248", scheme="MDC", meaning="Sinus Bradycardia")
 UNDETERMINED = Code(value="373068000", scheme="SCT", meaning="Undetermined")
 #: a normal-LVEF study that the sinus algorithm grades (grade II) when nothing else applies
-VALUES = {
-    Measure.lvef: 60,
-    Measure.mitral_e: 146,
-    Measure.mitral_a: 172,
-    Measure.ivrt: 52,
-    Measure.e_prime_septal: 6.4,
-    Measure.e_prime_lateral: 8.1,
-    Measure.tr_peak_velocity: 2.9,
-    Measure.lavi: 52,
-}
+VALUES = GRADE_2_STUDY
 
 
 def _sr(seed: str, rhythm: Code | None):
@@ -128,8 +120,8 @@ def test_stated_atrial_flutter_gets_no_grade_whatever_the_default(guideline) -> 
     # the result SR carries the source's own code for the rhythm
     [item] = [
         i
-        for i in _walk(outcome.result.ContentSequence)
-        if "ConceptNameCodeSequence" in i and i.ConceptNameCodeSequence[0].CodeValue == "8884-9"
+        for _depth, i in walk(outcome.result)
+        if i.ConceptNameCodeSequence[0].CodeValue == "8884-9"
     ]
     value = item.ConceptCodeSequence[0]
     assert (value.CodeValue, value.CodingSchemeDesignator, value.CodeMeaning) == (
@@ -197,10 +189,3 @@ def test_the_flutter_result_passes_dciodvfy_and_dcmtk_reads_it(tmp_path) -> None
     assert rc == 0
     assert 'CODE:(8884-9,LN,"Cardiac Rhythm")=(10:9456,MDC,"Atrial flutter")' in out
     assert "Grade not applicable in atrial flutter" in out
-
-
-def _walk(seq):
-    for item in seq:
-        yield item
-        if "ContentSequence" in item:
-            yield from _walk(item.ContentSequence)

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 from service.grading import readings as R
 from service.grading import thresholds_ase2016 as T16
@@ -188,15 +189,7 @@ def assess(
         unruled = (S.mitral_annular_calcification, S.heart_transplant)
         if guideline is Guideline.ase_eacvi_2016 and any(s in unruled for s, _ in blocked):
             readings = (Reading(id="I-16-14", text=R.words("I-16-14")),)
-        return Assessment(
-            **base,
-            pathway=Pathway.not_applicable,
-            pathway_reason=reason,
-            grade=Grade.not_applicable,
-            filling_pressure=FillingPressure.not_estimated,
-            reasoning=tuple(reasoning),
-            readings=readings,
-        )
+        return _no_standard_grade(base, reason, *reasoning, readings=readings)
 
     trace = Trace(measurements)
     reason = f"{words}: the {label} alternative criteria apply, each reported"
@@ -216,6 +209,21 @@ def assess(
         notes=tuple(trace.notes),
         context_notes=tuple(trace.context_notes),
         readings=tuple(trace.readings),
+    )
+
+
+def _no_standard_grade(
+    base: dict[str, Any], reason: str, *reasoning: str, readings: tuple[Reading, ...] = ()
+) -> Assessment:
+    """The standard algorithm does not apply, for ``reason``: no grade and no estimate."""
+    return Assessment(
+        **base,
+        pathway=Pathway.not_applicable,
+        pathway_reason=reason,
+        grade=Grade.not_applicable,
+        filling_pressure=FillingPressure.not_estimated,
+        reasoning=reasoning,
+        readings=readings,
     )
 
 
@@ -495,16 +503,11 @@ def possible_af(
         f"cardiac rhythm not stated{src} and the mitral A wave is missing: atrial fibrillation "
         "may be present and the sinus-rhythm algorithm cannot be relied on"
     )
-    return Assessment(
-        **base_fields(guideline, citation, version, context),
-        pathway=Pathway.not_applicable,
-        pathway_reason=reason,
-        grade=Grade.not_applicable,
-        filling_pressure=FillingPressure.not_estimated,
-        reasoning=(
-            "State the rhythm (coded Cardiac Rhythm item, sender or run setting) to grade by the "
-            "sinus-rhythm or the atrial-fibrillation rules.",
-        ),
+    return _no_standard_grade(
+        base_fields(guideline, citation, version, context),
+        reason,
+        "State the rhythm (coded Cardiac Rhythm item, sender or run setting) to grade by the "
+        "sinus-rhythm or the atrial-fibrillation rules.",
     )
 
 
@@ -527,14 +530,9 @@ def rhythm_not_covered(
         f"{stated}{src}: the {label} algorithms are for sinus rhythm, with criteria of their "
         "own for atrial fibrillation, and neither applies to this rhythm"
     )
-    return Assessment(
-        **base_fields(guideline, citation, version, context),
-        pathway=Pathway.not_applicable,
-        pathway_reason=reason,
-        grade=Grade.not_applicable,
-        filling_pressure=FillingPressure.not_estimated,
-        reasoning=(
-            "Mitral inflow, e′ and E/e′ are read against sinus-rhythm or atrial-fibrillation "
-            "criteria only; a qualified reader assesses diastolic function in this rhythm.",
-        ),
+    return _no_standard_grade(
+        base_fields(guideline, citation, version, context),
+        reason,
+        "Mitral inflow, e′ and E/e′ are read against sinus-rhythm or atrial-fibrillation "
+        "criteria only; a qualified reader assesses diastolic function in this rhythm.",
     )
